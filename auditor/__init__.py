@@ -1,0 +1,36 @@
+"""panel-auditor: a pre-estimation auditor for panel data.
+
+The public entry points are imported lazily so that ``import auditor`` and
+``panel-audit --help`` stay fast.
+"""
+
+from __future__ import annotations
+
+from typing import TYPE_CHECKING, Any
+
+__version__ = "0.1.0"
+
+__all__ = ["profile", "instruments", "compare", "check", "__version__"]
+
+if TYPE_CHECKING:  # pragma: no cover
+    from auditor.profile import profile as profile
+
+
+def __getattr__(name: str) -> Any:
+    if name == "profile":
+        from auditor.profile import profile
+
+        return profile
+    if name == "instruments":
+        from auditor.readiness import instruments
+
+        return instruments
+    if name == "compare":
+        from auditor.waves import compare
+
+        return compare
+    if name == "check":
+        from auditor.rules import check
+
+        return check
+    raise AttributeError(f"module 'auditor' has no attribute {name!r}")

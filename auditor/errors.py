@@ -1,0 +1,82 @@
+"""Every ``panel-audit: error:`` message the tool can print, in one place.
+
+Code raises ``fail("code", **fields)``; the CLI prints ``panel-audit: error: <text>``
+and exits 2. Each entry is a ``str.format`` template. Keep one entry per distinct
+problem, and a test that triggers it (tests/test_error_catalogue.py).
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+CATALOGUE: dict[str, str] = {
+    # --- arguments -----------------------------------------------------------
+    "bad-argument": "{detail}",
+    # --- loading ---------------------------------------------------------------
+    "file-not-found": "cannot read '{path}': no such file; check the path",
+    "not-a-file": "cannot read '{path}': it is a folder with no data files in it",
+    "unreadable-file": "cannot read '{path}': {reason}",
+    "unsupported-format": (
+        "cannot read '{path}': unknown file type '{suffix}'; use .csv, .tsv (also .gz), "
+        ".parquet, .arrow/.feather/.ipc or .jsonl/.ndjson"
+    ),
+    "corrupt-file": "cannot read '{path}' as {format}: {reason}",
+    "empty-file": "'{path}' holds no data rows; nothing to audit",
+    "empty-frame": "the data frame holds no rows; nothing to audit",
+    "unsupported-object": "cannot audit an object of type {type}; pass a file path, a pandas or a polars DataFrame",
+    "unknown-column": "column '{column}' not found; columns are: {available}",
+    "key-all-null": "key column '{column}' is empty (all {rows} values are missing); choose another key",
+    "key-repeated": "column '{column}' is named more than once among the keys",
+    "unit-is-time": "column '{column}' cannot be both a unit key and the time key",
+    "time-unorderable": (
+        "time column '{column}' cannot be ordered: values such as {examples} are neither numbers nor dates"
+    ),
+    "time-fractional": (
+        "time column '{column}' holds fractional values such as {examples}; periods must be whole numbers or dates"
+    ),
+    "duplicate-column-names": "the file has more than one column named {names}; rename them first",
+    "no-glob-match": "no files match '{pattern}'",
+    "too-large": "'{path}' ({size}) does not fit in memory here and cannot be streamed: {reason}",
+    # --- rule and threshold files ---------------------------------------------
+    "rules-not-found": "rules file '{path}' not found",
+    "rules-too-large": "rules file '{path}' is {size} bytes; the limit is {limit} bytes",
+    "rules-syntax": "rules file '{path}' is not valid YAML at line {line}: {reason}",
+    "rules-tag": "rules file '{path}' line {line}: the YAML tag '{tag}' is not allowed (tags never construct objects here)",
+    "rules-not-mapping": "rules file '{path}' must hold a mapping at the top level, found {found}",
+    "rules-unknown-key": "rules file '{path}' line {line}: unknown key '{key}' in {where}; expected one of: {expected}",
+    "rules-bad-value": "rules file '{path}' line {line}: '{key}' must be {expected}, found {found}",
+    # --- output ----------------------------------------------------------------
+    "output-exists": "'{path}' already exists; pass --force to replace it",
+    "output-is-input": "'{path}' is an input of this run; choose another output path",
+    "output-unwritable": "cannot write '{path}': {reason}",
+    # --- instruments -----------------------------------------------------------
+    # --- compare ---------------------------------------------------------------
+    # --- check / rules ---------------------------------------------------------
+    # --- report ----------------------------------------------------------------
+}
+
+
+class AuditError(Exception):
+    """An input or argument problem that stops a command (exit code 2).
+
+    ``code`` is a key of :data:`CATALOGUE`; ``message`` the filled-in text.
+    """
+
+    def __init__(self, code: str, message: str) -> None:
+        super().__init__(message)
+        self.code = code
+        self.message = message
+
+
+def fail(code: str, **fields: Any) -> AuditError:
+    """Return (for ``raise``) the AuditError for catalogue entry ``code`` filled with ``fields``."""
+    template = CATALOGUE[code]
+    return AuditError(code, template.format(**fields))
+
+
+def short_list(values: Any, limit: int = 12) -> str:
+    """Join values as ``a, b, c, ... (N in all)`` for an error message."""
+    items = [str(v) for v in values]
+    if len(items) <= limit:
+        return ", ".join(items)
+    return ", ".join(items[:limit]) + f", ... ({len(items)} in all)"

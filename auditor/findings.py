@@ -1,0 +1,128 @@
+"""The Finding value and the one list of checks with their default severities.
+
+Checks are plain functions elsewhere (structure.py, variation.py, ...) that turn
+computed statistics into Findings; renderers (text, JSON, HTML) show them. No
+check knows how it is shown.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable, Mapping
+from dataclasses import dataclass, field
+from typing import TYPE_CHECKING, Any
+
+if TYPE_CHECKING:  # pragma: no cover
+    from auditor.config import Settings
+
+SEVERITIES: tuple[str, ...] = ("error", "warning", "note")
+_RANK = {name: i for i, name in enumerate(SEVERITIES)}
+
+
+@dataclass(frozen=True)
+class CheckSpec:
+    """A check's default severity, the command that runs it and what it looks for."""
+
+    severity: str
+    command: str
+    about: str
+
+
+CHECKS: dict[str, CheckSpec] = {
+    # --- profile ---------------------------------------------------------------
+    "missing-keys": CheckSpec("error", "profile", "rows whose unit or time key is missing"),
+    "duplicate-keys": CheckSpec("error", "profile", "rows beyond the first sharing a (unit, time) key"),
+    "gaps": CheckSpec("warning", "profile", "units absent in a period inside their own span"),
+    "irregular-periods": CheckSpec("warning", "profile", "a whole period missing from the grid"),
+    "constant-column": CheckSpec("warning", "profile", "a column with one value everywhere"),
+    "nearly-time-invariant": CheckSpec(
+        "warning", "profile", "a column that changes for only a few units (often a coding error)"
+    ),
+    "absorbed-by-time": CheckSpec(
+        "warning", "profile", "within variation explained by period effects (age-like columns)"
+    ),
+    "near-constant": CheckSpec("warning", "profile", "one value holds nearly every row"),
+    "few-switchers": CheckSpec("warning", "profile", "a 0/1 column with few units that switch"),
+    "missing-in-period": CheckSpec("warning", "profile", "a column entirely missing in a period"),
+    "high-missing": CheckSpec("warning", "profile", "a column with a high missing share"),
+    "non-finite": CheckSpec("warning", "profile", "infinite values in a numeric column"),
+    "unbalanced": CheckSpec("note", "profile", "units observed in different numbers of periods"),
+    "singleton-units": CheckSpec("note", "profile", "units observed once"),
+    "period-only": CheckSpec("note", "profile", "a column that varies only across periods"),
+    "schema-mismatch": CheckSpec("warning", "profile", "wave files whose column types differ"),
+    "column-all-missing": CheckSpec("warning", "profile", "a column with no value at all"),
+    # --- instruments -----------------------------------------------------------
+    # --- compare ---------------------------------------------------------------
+    # --- check / rules ---------------------------------------------------------
+}
+
+
+@dataclass(frozen=True)
+class Finding:
+    """One thing the auditor found.
+
+    ``count`` is the number of rows, units, periods or keys concerned (what the
+    message says it counts); ``examples`` a few JSON-ready dicts.
+    """
+
+    check: str
+    severity: str
+    message: str
+    column: str | None = None
+    count: int | None = None
+    examples: tuple[Mapping[str, Any], ...] = field(default_factory=tuple)
+
+    def to_dict(self) -> dict[str, Any]:
+        """The finding as the contract's JSON object."""
+        return {
+            "check": self.check,
+            "severity": self.severity,
+            "column": self.column,
+            "count": self.count,
+            "message": self.message,
+            "examples": [dict(e) for e in self.examples],
+        }
+
+
+def make(
+    check: str,
+    settings: Settings | None,
+    message: str,
+    *,
+    column: str | None = None,
+    count: int | None = None,
+    examples: Iterable[Mapping[str, Any]] = (),
+) -> Finding:
+    """Build a Finding for a registered check, with its severity from ``settings`` or the default."""
+    spec = CHECKS[check]
+    severity = settings.severity(check, spec.severity) if settings is not None else spec.severity
+    return Finding(
+        check=check,
+        severity=severity,
+        message=message,
+        column=column,
+        count=None if count is None else int(count),
+        examples=tuple(examples),
+    )
+
+
+def sort_findings(findings: Iterable[Finding]) -> tuple[Finding, ...]:
+    """Findings in the contract's order: severity (error first), then check, then column."""
+    return tuple(
+        sorted(findings, key=lambda f: (_RANK.get(f.severity, 99), f.check, f.column or ""))
+    )
+
+
+def exit_code(findings: Iterable[Finding], fail_on: str) -> int:
+    """0 when no finding reaches ``fail_on`` ('error', 'warning' or 'never'), else 1."""
+    if fail_on == "never":
+        return 0
+    limit = _RANK[fail_on]
+    return 1 if any(_RANK.get(f.severity, 99) <= limit for f in findings) else 0
+
+
+def counts_by_severity(findings: Iterable[Finding]) -> dict[str, int]:
+    """How many findings of each severity, every severity present as a key."""
+    out = dict.fromkeys(SEVERITIES, 0)
+    for f in findings:
+        out[f.severity] = out.get(f.severity, 0) + 1
+    return out
