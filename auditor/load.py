@@ -1,0 +1,277 @@
+"""Any input (paths, pandas or polars frames) becomes one validated Panel.
+
+Validation happens here, once: key columns exist and are usable, the period
+grid is known, every row carries a unit code and a period index. Every later
+stage trusts the Panel.
+"""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from functools import cached_property
+from pathlib import Path
+from typing import Any
+
+import polars as pl
+
+from auditor.errors import fail, short_list
+from auditor.periods import grid_step, scale_for
+
+UNIT_ID = "__pa_unit"
+PERIOD_ID = "__pa_period"
+ROW_ID = "__pa_row"
+INTERNAL = (UNIT_ID, PERIOD_ID, ROW_ID)
+
+
+@dataclass(frozen=True)
+class Panel:
+    """A validated panel.
+
+    ``lazy`` (and ``frame``, its collected form) holds the rows whose keys are all
+    present: every original column plus ``__pa_unit`` (UInt32 unit code 0..n-1,
+    units in sorted key order), ``__pa_period`` (UInt32 index into ``grid``) and
+    ``__pa_row`` (UInt64 row number in the input). ``units`` maps unit codes to
+    key values. ``grid`` holds the period labels (JSON values) and
+    ``grid_position`` their positions on the ``frequency`` scale.
+    """
+
+    lazy: pl.LazyFrame
+    unit: tuple[str, ...]
+    time: str
+    grid: tuple[Any, ...]
+    grid_position: tuple[int, ...]
+    frequency: str
+    step: int | None
+    irregular: tuple[tuple[Any, Any], ...]
+    rows: int
+    missing_keys: int
+    missing_key_examples: tuple[dict[str, Any], ...]
+    columns: tuple[str, ...]
+    schema: dict[str, pl.DataType]
+    units: pl.DataFrame
+    source: str
+    inputs: tuple[Path, ...] = ()
+    streaming: bool = False
+    load_findings: tuple[Any, ...] = field(default_factory=tuple)
+    eager: pl.DataFrame | None = None
+
+    @property
+    def n_units(self) -> int:
+        """Number of distinct units with complete keys."""
+        return self.units.height
+
+    @property
+    def n_periods(self) -> int:
+        """Number of periods on the grid."""
+        return len(self.grid)
+
+    @cached_property
+    def frame(self) -> pl.DataFrame:
+        """The rows with complete keys, in input order, in memory."""
+        if self.eager is not None:
+            return self.eager
+        return self.lazy.collect(engine="streaming")
+
+    def collect(self, query: pl.LazyFrame) -> pl.DataFrame:
+        """Run ``query`` with the engine this panel was loaded for."""
+        return query.collect(engine="streaming" if self.streaming else "auto")
+
+    def unit_labels(self, codes: Sequence[int]) -> list[dict[str, Any]]:
+        """Key values of the units with the given codes, as dicts (for examples)."""
+        if not codes:
+            return []
+        sub = self.units.filter(pl.col(UNIT_ID).is_in(list(codes)))
+        order = {c: i for i, c in enumerate(codes)}
+        rows = sorted(sub.iter_rows(named=True), key=lambda r: order[r[UNIT_ID]])
+        return [{k: r[k] for k in self.unit} for r in rows]
+
+
+def parse_unit(unit: str | Sequence[str]) -> tuple[str, ...]:
+    """``"a,b"`` or ``["a", "b"]`` as a tuple of column names."""
+    if isinstance(unit, str):
+        parts = [u.strip() for u in unit.split(",")]
+    else:
+        parts = [str(u).strip() for u in unit]
+    parts = [p for p in parts if p]
+    if not parts:
+        raise fail("bad-argument", detail="--unit needs at least one column name")
+    return tuple(parts)
+
+
+def memory_bytes() -> int:
+    """Total physical memory of this machine in bytes (0 when unknown)."""
+    try:
+        return os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
+    except (ValueError, OSError, AttributeError):  # pragma: no cover
+        return 0
+
+
+def _to_lazy(
+    data: Any, text_columns: Sequence[str]
+) -> tuple[pl.LazyFrame, str, tuple[Path, ...], list[Any], bool]:
+    """(lazy frame, description, input paths, load findings, scanned binary file)."""
+    import importlib
+
+    if isinstance(data, pl.LazyFrame):
+        return data, "polars LazyFrame", (), [], False
+    if isinstance(data, pl.DataFrame):
+        if data.height == 0:
+            raise fail("empty-frame")
+        return data.lazy(), "polars DataFrame", (), [], False
+    pd = importlib.import_module("pandas") if "pandas" in _loaded_modules() else None
+    if pd is not None and isinstance(data, pd.DataFrame):
+        if len(data) == 0:
+            raise fail("empty-frame")
+        if len(set(map(str, data.columns))) != len(data.columns):
+            dup = sorted({str(c) for c in data.columns if list(map(str, data.columns)).count(str(c)) > 1})
+            raise fail("duplicate-column-names", names=", ".join(f"'{d}'" for d in dup))
+        frame = data.reset_index(drop=True)
+        frame.columns = [str(c) for c in frame.columns]
+        return pl.from_pandas(frame).lazy(), "pandas DataFrame", (), [], False
+    from auditor.sources import resolve_inputs, scan_inputs
+
+    paths = resolve_inputs(data)
+    lf, findings, binary = scan_inputs(paths, text_columns)
+    desc = str(paths[0]) if len(paths) == 1 else f"{len(paths)} files ({paths[0].parent})"
+    return lf, desc, tuple(paths), findings, binary
+
+
+def _loaded_modules() -> set[str]:
+    import sys
+
+    return set(sys.modules)
+
+
+def load_panel(
+    data: Any,
+    unit: str | Sequence[str],
+    time: str,
+    *,
+    streaming: bool | None = None,
+    settings: Any = None,
+) -> Panel:
+    """Validate ``data`` as a panel keyed by ``unit`` (one or more columns) and ``time``.
+
+    ``data`` is a path, a list of paths, a folder, a glob, or a pandas/polars frame.
+    ``streaming`` forces (True) or forbids (False) the polars streaming engine;
+    None chooses it for binary inputs larger than the configured memory share.
+    Raises AuditError (exit 2) naming what was found.
+    """
+    units = parse_unit(unit)
+    time = str(time).strip()
+    if not time:
+        raise fail("bad-argument", detail="--time needs a column name")
+    keys = (*units, time)
+    for k in keys:
+        if keys.count(k) > 1:
+            if k == time and k in units:
+                raise fail("unit-is-time", column=k)
+            raise fail("key-repeated", column=k)
+
+    lf, source, inputs, load_findings, binary = _to_lazy(data, units)
+    try:
+        schema = dict(lf.collect_schema())
+    except pl.exceptions.PolarsError as exc:
+        raise fail("corrupt-file", path=source, format="data", reason=str(exc).splitlines()[0][:200]) from None
+    for k in keys:
+        if k not in schema:
+            raise fail("unknown-column", column=k, available=short_list(c for c in schema if c not in INTERNAL))
+
+    if streaming is None:
+        streaming = False
+        if binary and inputs:
+            share = 0.25
+            if settings is not None:
+                share = float(settings.get("profile", "streaming_memory_share"))
+            total = sum(p.stat().st_size for p in inputs)
+            mem = memory_bytes()
+            streaming = bool(mem) and total > share * mem
+    engine = "streaming" if streaming else "auto"
+
+    lf = lf.with_row_index(ROW_ID)
+    # Float keys: NaN counts as missing, like null.
+    def _missing(col: str) -> pl.Expr:
+        dt = schema[col]
+        e = pl.col(col).is_null()
+        if dt.is_float():
+            e = e | pl.col(col).is_nan()
+        return e
+
+    missing_any = pl.any_horizontal([_missing(k) for k in keys])
+    summary = lf.select(
+        pl.len().alias("rows"),
+        missing_any.sum().alias("missing"),
+        *[_missing(k).sum().alias(f"null:{k}") for k in keys],
+    ).collect(engine=engine)
+    rows = int(summary["rows"][0])
+    if rows == 0:
+        raise fail("empty-file", path=source) if inputs else fail("empty-frame")
+    for k in keys:
+        if int(summary[f"null:{k}"][0]) == rows:
+            raise fail("key-all-null", column=k, rows=rows)
+    missing = int(summary["missing"][0])
+    missing_examples: tuple[dict[str, Any], ...] = ()
+    if missing:
+        ex = lf.filter(missing_any).select(ROW_ID, *keys).head(5).collect(engine=engine)
+        missing_examples = tuple(
+            {"row": int(r[ROW_ID]) + 1, **{k: r[k] for k in keys}} for r in ex.iter_rows(named=True)
+        )
+
+    keyed = lf.filter(~missing_any)
+    distinct_times = keyed.select(pl.col(time).unique()).collect(engine=engine).to_series()
+    scale = scale_for(time, distinct_times)
+    order = sorted(range(len(scale.positions)), key=lambda i: scale.positions[i])
+    # Several raw values may share one position (e.g. "2019" and 2019 as text): one period.
+    positions_sorted: list[int] = []
+    labels_sorted: list[Any] = []
+    for i in order:
+        if not positions_sorted or positions_sorted[-1] != scale.positions[i]:
+            positions_sorted.append(scale.positions[i])
+            labels_sorted.append(scale.labels[i])
+    index_of = {p: j for j, p in enumerate(positions_sorted)}
+    time_map = pl.DataFrame(
+        {
+            time: pl.Series(time, list(scale.values), dtype=distinct_times.dtype),
+            PERIOD_ID: pl.Series(PERIOD_ID, [index_of[p] for p in scale.positions], dtype=pl.UInt32),
+        }
+    )
+    step, irregular_pairs = grid_step(positions_sorted)
+    label_at = dict(zip(positions_sorted, labels_sorted, strict=True))
+    irregular = tuple((label_at[a], label_at[b]) for a, b in irregular_pairs)
+
+    unit_table = (
+        keyed.select(list(units)).unique().sort(list(units)).collect(engine=engine)
+    )
+    unit_table = unit_table.with_row_index(UNIT_ID).with_columns(pl.col(UNIT_ID).cast(pl.UInt32))
+    coded = (
+        keyed.join(unit_table.lazy(), on=list(units), how="left", maintain_order="left", nulls_equal=False)
+        .join(time_map.lazy(), on=time, how="left", maintain_order="left")
+    )
+    eager = None
+    if not streaming:
+        eager = coded.collect()
+        coded = eager.lazy()
+    columns = tuple(c for c in schema if c not in keys and c not in INTERNAL)
+    return Panel(
+        lazy=coded,
+        unit=units,
+        time=time,
+        grid=tuple(labels_sorted),
+        grid_position=tuple(positions_sorted),
+        frequency=scale.frequency,
+        step=step,
+        irregular=irregular,
+        rows=rows,
+        missing_keys=missing,
+        missing_key_examples=missing_examples,
+        columns=columns,
+        schema={c: schema[c] for c in schema if c not in INTERNAL},
+        units=unit_table,
+        source=source,
+        inputs=inputs,
+        streaming=bool(streaming),
+        load_findings=tuple(load_findings),
+        eager=eager,
+    )

@@ -1,0 +1,473 @@
+"""The diagnostic estimators: within, between, random effects (Swamy-Arora), Mundlak,
+Hausman-Taylor, and the Hausman and Sargan tests (methods.md section 4).
+
+Everything works on numpy arrays with integer unit codes 0..n-1: unit means come
+from ``np.bincount``, never from a loop over units, and no n x n or N x n matrix is
+ever formed (unit dummies exist in the tests only). Each fit carries classical
+standard errors (``se``) and standard errors clustered by unit (``se_cluster``).
+
+Conventions chosen here (README states the same):
+- cluster-robust covariances use the small-sample factor G/(G-1) * (N-1)/(N-K)
+  (common practice; G = units, K = estimated coefficients of that fit);
+- the random-effects and Hausman-Taylor residual variance is e'e / (N - K);
+- Wald statistics are referred to the chi-square distribution, single coefficients
+  to the standard normal.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+from scipy import stats
+
+CONST = "const"
+
+
+# --------------------------------------------------------------------------- arrays
+
+
+def unit_means(codes: np.ndarray, n: int, values: np.ndarray, counts: np.ndarray | None = None) -> np.ndarray:
+    """Per-unit means of ``values`` ((N,) or (N, k)); returns (n,) or (n, k) in the values' units."""
+    if counts is None:
+        counts = np.bincount(codes, minlength=n).astype(float)
+    if values.ndim == 1:
+        return np.bincount(codes, weights=values, minlength=n) / counts
+    out = np.empty((n, values.shape[1]))
+    for j in range(values.shape[1]):  # loop over columns, never over units
+        out[:, j] = np.bincount(codes, weights=values[:, j], minlength=n)
+    return out / counts[:, None]
+
+
+def unit_sums(codes: np.ndarray, n: int, values: np.ndarray) -> np.ndarray:
+    """Per-unit sums of the columns of ``values`` (N, k); returns (n, k)."""
+    out = np.empty((n, values.shape[1]))
+    for j in range(values.shape[1]):
+        out[:, j] = np.bincount(codes, weights=values[:, j], minlength=n)
+    return out
+
+
+@dataclass(frozen=True)
+class PanelArrays:
+    """The numeric panel a model sees: rows with every used column present.
+
+    ``codes`` are unit codes 0..n-1 (every code present), ``x`` the time-varying
+    regressors (N, kx) and ``z`` the time-invariant ones without the constant (N, kz).
+    """
+
+    codes: np.ndarray
+    n: int
+    y: np.ndarray
+    x: np.ndarray
+    x_names: tuple[str, ...]
+    z: np.ndarray
+    z_names: tuple[str, ...]
+    counts: np.ndarray = field(init=False, repr=False)
+    ybar: np.ndarray = field(init=False, repr=False)
+    xbar: np.ndarray = field(init=False, repr=False)
+    zbar: np.ndarray = field(init=False, repr=False)
+
+    def __post_init__(self) -> None:
+        counts = np.bincount(self.codes, minlength=self.n).astype(float)
+        object.__setattr__(self, "counts", counts)
+        object.__setattr__(self, "ybar", unit_means(self.codes, self.n, self.y, counts))
+        object.__setattr__(self, "xbar", unit_means(self.codes, self.n, _two_d(self.x), counts))
+        object.__setattr__(self, "zbar", unit_means(self.codes, self.n, _two_d(self.z), counts))
+
+    @property
+    def nobs(self) -> int:
+        """N, the number of rows."""
+        return int(self.y.shape[0])
+
+    @classmethod
+    def build(
+        cls,
+        codes: np.ndarray,
+        y: np.ndarray,
+        x: np.ndarray | None,
+        x_names: tuple[str, ...] | list[str],
+        z: np.ndarray | None,
+        z_names: tuple[str, ...] | list[str],
+    ) -> PanelArrays:
+        """Arrays from raw codes (any integers): codes are renumbered 0..n-1 in sorted order."""
+        uniq, dense = np.unique(np.asarray(codes), return_inverse=True)
+        nrow = len(dense)
+        xa = np.zeros((nrow, 0)) if x is None else _two_d(np.asarray(x, dtype=float))
+        za = np.zeros((nrow, 0)) if z is None else _two_d(np.asarray(z, dtype=float))
+        return cls(
+            codes=dense.astype(np.int64),
+            n=len(uniq),
+            y=np.asarray(y, dtype=float),
+            x=xa,
+            x_names=tuple(x_names),
+            z=za,
+            z_names=tuple(z_names),
+        )
+
+    def select(self, x_cols: list[str], z_cols: list[str]) -> PanelArrays:
+        """The same panel with only the named X and Z columns (in the given order)."""
+        xi = [self.x_names.index(c) for c in x_cols]
+        zi = [self.z_names.index(c) for c in z_cols]
+        return PanelArrays(self.codes, self.n, self.y, self.x[:, xi], tuple(x_cols), self.z[:, zi], tuple(z_cols))
+
+
+def _two_d(a: np.ndarray) -> np.ndarray:
+    return a.reshape(-1, 1) if a.ndim == 1 else a
+
+
+# --------------------------------------------------------------------------- fits
+
+
+@dataclass(frozen=True)
+class Fit:
+    """One estimated linear model: coefficients, classical and unit-clustered covariances."""
+
+    names: tuple[str, ...]
+    coef: np.ndarray
+    cov: np.ndarray
+    cov_cluster: np.ndarray
+    sigma2: float
+    df_resid: int
+    nobs: int
+
+    @property
+    def se(self) -> np.ndarray:
+        """Classical standard errors, in the units of the coefficients."""
+        return np.sqrt(np.clip(np.diag(self.cov), 0.0, None))
+
+    @property
+    def se_cluster(self) -> np.ndarray:
+        """Standard errors clustered by unit, in the units of the coefficients."""
+        return np.sqrt(np.clip(np.diag(self.cov_cluster), 0.0, None))
+
+    def index(self, names: list[str] | tuple[str, ...]) -> list[int]:
+        """Positions of ``names`` among this fit's coefficients."""
+        return [self.names.index(c) for c in names]
+
+    def to_dict(self) -> dict[str, Any]:
+        """``{"coef": {...}, "se": {...}, "se_cluster": {...}}`` keyed by column name."""
+        return {
+            "coef": {k: _num(v) for k, v in zip(self.names, self.coef, strict=True)},
+            "se": {k: _num(v) for k, v in zip(self.names, self.se, strict=True)},
+            "se_cluster": {k: _num(v) for k, v in zip(self.names, self.se_cluster, strict=True)},
+        }
+
+
+def _num(v: float) -> float | None:
+    v = float(v)
+    return v if np.isfinite(v) else None
+
+
+def _cluster_cov(bread: np.ndarray, scores: np.ndarray, codes: np.ndarray, n: int, nobs: int) -> np.ndarray:
+    k = bread.shape[0]
+    g = unit_sums(codes, n, scores)
+    meat = g.T @ g
+    factor = (n / (n - 1.0)) * ((nobs - 1.0) / max(nobs - k, 1)) if n > 1 else np.nan
+    return factor * (bread @ meat @ bread)
+
+
+def _inv(m: np.ndarray) -> np.ndarray:
+    try:
+        return np.linalg.inv(m)
+    except np.linalg.LinAlgError:
+        return np.linalg.pinv(m)
+
+
+def ols(
+    design: np.ndarray,
+    y: np.ndarray,
+    names: tuple[str, ...] | list[str],
+    codes: np.ndarray,
+    n: int,
+    *,
+    df_resid: int | None = None,
+) -> tuple[Fit, np.ndarray]:
+    """Least squares of ``y`` on ``design`` (N, K); returns (Fit, residuals).
+
+    ``df_resid`` overrides N - K (the within fit uses N - n - K).
+    """
+    nobs, k = design.shape
+    if k == 0:
+        e = y.copy()
+        dfr = nobs if df_resid is None else df_resid
+        empty = np.zeros((0, 0))
+        return Fit(tuple(names), np.zeros(0), empty, empty, float(e @ e / max(dfr, 1)), dfr, nobs), e
+    xtx = design.T @ design
+    bread = _inv(xtx)
+    coef = bread @ (design.T @ y)
+    e = y - design @ coef
+    dfr = nobs - k if df_resid is None else df_resid
+    sigma2 = float(e @ e) / max(dfr, 1)
+    cov = sigma2 * bread
+    cov_cl = _cluster_cov(bread, design * e[:, None], codes, n, nobs)
+    return Fit(tuple(names), coef, cov, cov_cl, sigma2, int(dfr), nobs), e
+
+
+def tsls(
+    design: np.ndarray,
+    instruments: np.ndarray,
+    y: np.ndarray,
+    names: tuple[str, ...] | list[str],
+    codes: np.ndarray,
+    n: int,
+) -> tuple[Fit, np.ndarray]:
+    """Two-stage least squares of ``y`` on ``design`` with ``instruments``; returns (Fit, residuals).
+
+    Residual variance e'e / (N - K), e the structural residuals.
+    """
+    nobs, k = design.shape
+    proj, *_ = np.linalg.lstsq(instruments, design, rcond=None)
+    fitted = instruments @ proj
+    bread = _inv(fitted.T @ fitted)
+    coef = bread @ (fitted.T @ y)
+    e = y - design @ coef
+    dfr = nobs - k
+    sigma2 = float(e @ e) / max(dfr, 1)
+    cov = sigma2 * bread
+    cov_cl = _cluster_cov(bread, fitted * e[:, None], codes, n, nobs)
+    return Fit(tuple(names), coef, cov, cov_cl, sigma2, int(dfr), nobs), e
+
+
+def within(pa: PanelArrays) -> tuple[Fit, np.ndarray]:
+    """The within (fixed-effects) fit on the time-varying columns; returns (Fit, residuals).
+
+    sigma2 = e'e / (N - n - K_X) (methods.md section 4).
+    """
+    xw = pa.x - pa.xbar[pa.codes]
+    yw = pa.y - pa.ybar[pa.codes]
+    dfr = pa.nobs - pa.n - xw.shape[1]
+    return ols(xw, yw, pa.x_names, pa.codes, pa.n, df_resid=dfr)
+
+
+def between(pa: PanelArrays) -> tuple[Fit, np.ndarray]:
+    """OLS of the unit means of y on [1, X means, Z] with n rows; returns (Fit, residuals)."""
+    design = np.column_stack([np.ones(pa.n), pa.xbar, pa.zbar])
+    names = (CONST, *pa.x_names, *pa.z_names)
+    return ols(design, pa.ybar, names, np.arange(pa.n), pa.n)
+
+
+@dataclass(frozen=True)
+class Components:
+    """Variance components: sigma_u and sigma_e in the outcome's units, theta per unit."""
+
+    sigma2_u: float
+    sigma2_e: float
+    theta: np.ndarray
+
+    def to_dict(self) -> dict[str, Any]:
+        """The contract's ``variance_components``: sigma_u, sigma_e, theta_mean (mean over units)."""
+        return {
+            "sigma_u": _num(np.sqrt(self.sigma2_u)),
+            "sigma_e": _num(np.sqrt(self.sigma2_e)),
+            "theta_mean": _num(float(np.mean(self.theta))) if self.theta.size else None,
+        }
+
+
+def _theta(sigma2_e: float, sigma2_u: float, counts: np.ndarray) -> np.ndarray:
+    total = sigma2_e + counts * sigma2_u
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(total > 0, 1.0 - np.sqrt(sigma2_e / total), 0.0)
+
+
+def _quasi_demean(pa: PanelArrays, theta: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    th = theta[pa.codes]
+    design = np.column_stack([1.0 - th, pa.x - th[:, None] * pa.xbar[pa.codes], pa.z - th[:, None] * pa.zbar[pa.codes]])
+    return design, pa.y - th * pa.ybar[pa.codes]
+
+
+def random_effects(
+    pa: PanelArrays, within_fit: Fit | None = None, between_fit: Fit | None = None
+) -> tuple[Fit, Components]:
+    """Swamy-Arora random effects on [1, X, Z]; returns (Fit, Components).
+
+    sigma2_u = max(0, sigma2_b - sigma2_e * mean_i(1/T_i)), sigma2_b the between
+    residual variance with n - K_b degrees of freedom.
+    """
+    wf = within_fit if within_fit is not None else within(pa)[0]
+    bf = between_fit if between_fit is not None else between(pa)[0]
+    sigma2_e = wf.sigma2
+    sigma2_u = max(0.0, bf.sigma2 - sigma2_e * float(np.mean(1.0 / pa.counts)))
+    theta = _theta(sigma2_e, sigma2_u, pa.counts)
+    design, ys = _quasi_demean(pa, theta)
+    fit, _ = ols(design, ys, (CONST, *pa.x_names, *pa.z_names), pa.codes, pa.n)
+    return fit, Components(sigma2_u, sigma2_e, theta)
+
+
+# --------------------------------------------------------------------------- tests
+
+
+@dataclass(frozen=True)
+class WaldTest:
+    """A chi-square test: statistic, degrees of freedom, p-value, and how it was computed."""
+
+    statistic: float | None
+    df: int
+    p: float | None
+    positive_definite: bool | None = None
+    note: str | None = None
+
+    def to_dict(self) -> dict[str, Any]:
+        """The contract's ``{"statistic", "df", "p"}`` plus ``positive_definite`` and ``note``."""
+        out: dict[str, Any] = {"statistic": _num(self.statistic) if self.statistic is not None else None,
+                               "df": int(self.df),
+                               "p": _num(self.p) if self.p is not None else None}
+        if self.positive_definite is not None:
+            out["positive_definite"] = self.positive_definite
+        if self.note:
+            out["note"] = self.note
+        return out
+
+
+def wald(coef: np.ndarray, cov: np.ndarray) -> WaldTest:
+    """Joint Wald test that ``coef`` is zero, chi-square with len(coef) degrees of freedom."""
+    k = len(coef)
+    if k == 0:
+        return WaldTest(None, 0, None)
+    stat = float(coef @ np.linalg.solve(cov, coef)) if np.linalg.matrix_rank(cov) == k else float(
+        coef @ np.linalg.pinv(cov) @ coef
+    )
+    return WaldTest(stat, k, float(stats.chi2.sf(stat, k)))
+
+
+def contrast(b_eff: np.ndarray, v_eff: np.ndarray, b_cons: np.ndarray, v_cons: np.ndarray,
+             df: int | None = None) -> WaldTest:
+    """Hausman contrast of a consistent estimate (``b_cons``) against an efficient one.
+
+    H = d' (V_cons - V_eff)^+ d. When the difference matrix has negative eigenvalues
+    it is not positive definite: the statistic is then computed on the subspace of
+    its positive eigenvalues only (a generalised inverse), with that many degrees of
+    freedom, and the result says so. ``df`` fixes the degrees of freedom (the
+    over-identification contrast uses k1 - g2).
+    """
+    d = b_cons - b_eff
+    diff = v_cons - v_eff
+    diff = (diff + diff.T) / 2.0
+    if d.size == 0:
+        return WaldTest(None, 0, None)
+    vals, vecs = np.linalg.eigh(diff)
+    scale = max(float(np.max(np.abs(vals))), 1e-300)
+    tol = scale * 1e-10 * len(vals)
+    positive = vals > tol
+    negative = vals < -tol
+    pd = bool(positive.all())
+    proj = vecs[:, positive].T @ d
+    stat = float(np.sum(proj**2 / vals[positive])) if positive.any() else 0.0
+    rank = int(positive.sum())
+    dof = rank if df is None else min(df, rank) if rank else df
+    note = None
+    if not pd:
+        note = (
+            f"the difference of the covariance matrices is not positive definite "
+            f"({int(negative.sum())} negative, {len(vals) - rank - int(negative.sum())} zero eigenvalues); "
+            f"the statistic uses the {rank} positive directions only"
+        )
+    p = float(stats.chi2.sf(stat, dof)) if dof > 0 else None
+    return WaldTest(stat, dof, p, pd, note)
+
+
+@dataclass(frozen=True)
+class Mundlak:
+    """Mundlak (1978) correlated random effects: pooled OLS on [1, X, Z, X means], clustered by unit."""
+
+    fit: Fit
+    joint: WaldTest
+    per_column: tuple[dict[str, Any], ...]
+
+    def to_dict(self) -> dict[str, Any]:
+        """The contract's ``tests.mundlak``."""
+        out = self.joint.to_dict()
+        out["per_column"] = [dict(r) for r in self.per_column]
+        return out
+
+
+def mundlak(pa: PanelArrays) -> Mundlak:
+    """The Mundlak regression and its joint and per-column tests of the X-mean coefficients.
+
+    Per-column t = coefficient / clustered se, two-sided normal p.
+    """
+    mean_names = tuple(f"mean({c})" for c in pa.x_names)
+    design = np.column_stack([np.ones(pa.nobs), pa.x, pa.z, pa.xbar[pa.codes]])
+    fit, _ = ols(design, pa.y, (CONST, *pa.x_names, *pa.z_names, *mean_names), pa.codes, pa.n)
+    idx = fit.index(mean_names)
+    b = fit.coef[idx]
+    v = fit.cov_cluster[np.ix_(idx, idx)]
+    joint = wald(b, v)
+    se = np.sqrt(np.clip(np.diag(v), 0, None))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        t = b / se
+    rows = tuple(
+        {"column": c, "coef": _num(bi), "t": _num(ti), "p": _num(2 * stats.norm.sf(abs(ti))) if np.isfinite(ti) else None}
+        for c, bi, ti in zip(pa.x_names, b, t, strict=True)
+    )
+    return Mundlak(fit, joint, rows)
+
+
+def hausman_within_random(wf: Fit, re: Fit) -> WaldTest:
+    """Hausman test of within against random effects on the time-varying coefficients."""
+    idx = re.index(wf.names)
+    return contrast(re.coef[idx], re.cov[np.ix_(idx, idx)], wf.coef, wf.cov)
+
+
+# --------------------------------------------------------------------------- Hausman-Taylor
+
+
+@dataclass(frozen=True)
+class HausmanTaylor:
+    """The Hausman-Taylor (1981) fit, its variance components and over-identification tests."""
+
+    fit: Fit
+    components: Components
+    sargan: WaldTest | None
+    hausman_within: WaldTest | None
+
+
+def hausman_taylor(
+    pa: PanelArrays,
+    x1: list[str],
+    x2: list[str],
+    z1: list[str],
+    z2: list[str],
+    within_fit: Fit | None = None,
+) -> HausmanTaylor | None:
+    """The Hausman-Taylor estimator exactly as methods.md section 4; None when k1 < g2.
+
+    Coefficients are ordered X1, X2, const, Z1, Z2. The Sargan statistic (N times the
+    uncentred R2 of the transformed residuals on the instruments) and the contrast
+    with the within fit are given when k1 > g2, else None.
+    """
+    k1, g2 = len(x1), len(z2)
+    if k1 < g2:
+        return None
+    sub = pa.select(x1 + x2, z1 + z2)
+    wf = within_fit if within_fit is not None and list(within_fit.names) == x1 + x2 else within(sub)[0]
+    sigma2_e = wf.sigma2
+    nx = len(x1) + len(x2)
+    xbar1 = sub.xbar[:, : len(x1)]
+    zi = sub.zbar
+    # step 2: unit-level 2SLS of d on [1, Z1, Z2], instruments [1, Z1, X1 means]
+    d = sub.ybar - sub.xbar @ wf.coef if nx else sub.ybar.copy()
+    design_u = np.column_stack([np.ones(sub.n), zi])
+    instr_u = np.column_stack([np.ones(sub.n), zi[:, : len(z1)], xbar1])
+    unit_codes = np.arange(sub.n)
+    _, r = tsls(design_u, instr_u, d, (CONST, *z1, *z2), unit_codes, sub.n)
+    sigma2_u = max(0.0, float(np.mean(r**2)) - sigma2_e * float(np.mean(1.0 / sub.counts)))
+    theta = _theta(sigma2_e, sigma2_u, sub.counts)
+    # steps 3-4: transformed 2SLS with A = [X - X means, X1 means, 1, Z1]
+    design, ys = _quasi_demean(sub, theta)
+    # reorder to X1, X2, const, Z1, Z2
+    design = np.column_stack([design[:, 1 : 1 + nx], design[:, :1], design[:, 1 + nx :]])
+    xw = sub.x - sub.xbar[sub.codes]
+    instr = np.column_stack([xw, xbar1[sub.codes], np.ones(sub.nobs), sub.z[:, : len(z1)]])
+    names = (*x1, *x2, CONST, *z1, *z2)
+    fit, e = tsls(design, instr, ys, names, sub.codes, sub.n)
+    sargan = hw = None
+    if k1 > g2:
+        proj, *_ = np.linalg.lstsq(instr, e, rcond=None)
+        explained = instr @ proj
+        stat = float(sub.nobs * (explained @ explained) / (e @ e))
+        dof = k1 - g2
+        sargan = WaldTest(stat, dof, float(stats.chi2.sf(stat, dof)))
+        idx = list(range(nx))
+        hw = contrast(fit.coef[idx], fit.cov[np.ix_(idx, idx)], wf.coef, wf.cov, df=dof)
+    return HausmanTaylor(fit, Components(sigma2_u, sigma2_e, theta), sargan, hw)

@@ -1,0 +1,222 @@
+"""Reading data files into polars, with clear errors.
+
+Text formats (CSV, TSV, JSON lines) keep the unit key columns as text, so that
+``007`` and ``7`` stay different units. Binary formats keep their stored types.
+"""
+
+from __future__ import annotations
+
+import csv
+import gzip
+import io
+from collections.abc import Sequence
+from pathlib import Path
+from typing import Any
+
+import polars as pl
+
+from auditor.errors import fail
+
+TEXT_SUFFIXES = {".csv": ",", ".tsv": "\t", ".txt": None}
+PARQUET_SUFFIXES = {".parquet", ".pq"}
+IPC_SUFFIXES = {".arrow", ".feather", ".ipc"}
+JSONL_SUFFIXES = {".jsonl", ".ndjson"}
+
+
+def file_format(path: Path) -> tuple[str, bool]:
+    """The format name of ``path`` by its suffix and whether it is gzipped."""
+    suffixes = [s.lower() for s in path.suffixes]
+    gz = bool(suffixes) and suffixes[-1] == ".gz"
+    last = suffixes[-2] if gz and len(suffixes) >= 2 else (suffixes[-1] if suffixes else "")
+    if last in TEXT_SUFFIXES:
+        return ("csv", gz)
+    if last in PARQUET_SUFFIXES and not gz:
+        return ("parquet", False)
+    if last in IPC_SUFFIXES and not gz:
+        return ("ipc", False)
+    if last in JSONL_SUFFIXES:
+        return ("jsonl", gz)
+    raise fail("unsupported-format", path=path, suffix="".join(path.suffixes) or "(none)")
+
+
+def _raw_bytes(path: Path, gz: bool) -> bytes:
+    try:
+        raw = path.read_bytes()
+    except PermissionError:
+        raise fail("unreadable-file", path=path, reason="permission denied") from None
+    except OSError as exc:
+        raise fail("unreadable-file", path=path, reason=exc.strerror or str(exc)) from None
+    if gz:
+        try:
+            raw = gzip.decompress(raw)
+        except (OSError, EOFError) as exc:
+            raise fail("corrupt-file", path=path, format="gzip", reason=str(exc)) from None
+    return raw
+
+
+def _decode_header(raw: bytes) -> str:
+    head = raw[:65536]
+    if head.startswith(b"\xef\xbb\xbf"):
+        head = head[3:]
+    try:
+        return head.decode("utf-8")
+    except UnicodeDecodeError:
+        return head.decode("latin-1")
+
+
+def _sniff_separator(text: str, default: str | None) -> str:
+    first = text.split("\n", 1)[0]
+    if default is not None and default in first:
+        return default
+    counts = {sep: first.count(sep) for sep in (",", ";", "\t", "|")}
+    best = max(counts, key=lambda s: counts[s])
+    return best if counts[best] > 0 else (default or ",")
+
+
+def _read_text(path: Path, gz: bool, separator: str | None, text_columns: Sequence[str]) -> pl.DataFrame:
+    raw = _raw_bytes(path, gz)
+    if not raw.strip():
+        raise fail("empty-file", path=path)
+    head = _decode_header(raw)
+    sep = _sniff_separator(head, separator)
+    try:
+        header = next(csv.reader(io.StringIO(head), delimiter=sep))
+    except (StopIteration, csv.Error):
+        raise fail("empty-file", path=path) from None
+    header = [h.strip() for h in header]
+    seen: dict[str, int] = {}
+    for h in header:
+        seen[h] = seen.get(h, 0) + 1
+    dup = sorted(h for h, c in seen.items() if c > 1)
+    if dup:
+        raise fail("duplicate-column-names", names=", ".join(f"'{d}'" for d in dup))
+    overrides = {c: pl.String for c in text_columns if c in header}
+    if raw.startswith(b"\xef\xbb\xbf"):
+        raw = raw[3:]
+    encoding = "utf8"
+    try:
+        raw.decode("utf-8")
+    except UnicodeDecodeError:
+        raw = raw.decode("latin-1").encode("utf-8")
+    last_error: Exception | None = None
+    for infer in (10_000, None):
+        try:
+            df = pl.read_csv(
+                raw,
+                separator=sep,
+                schema_overrides=overrides,
+                infer_schema_length=infer,
+                encoding=encoding,
+                null_values=["", "NA", "N/A", "null", "NULL"],
+                try_parse_dates=False,
+                truncate_ragged_lines=False,
+            )
+            break
+        except pl.exceptions.PolarsError as exc:
+            last_error = exc
+    else:
+        reason = str(last_error).strip().splitlines()[0] if last_error else "unknown problem"
+        raise fail("corrupt-file", path=path, format="delimited text", reason=reason[:200])
+    df = df.rename({c: c.strip() for c in df.columns if c != c.strip()})
+    return df
+
+
+def _read_jsonl(path: Path, gz: bool, text_columns: Sequence[str]) -> pl.DataFrame:
+    raw = _raw_bytes(path, gz)
+    if not raw.strip():
+        raise fail("empty-file", path=path)
+    try:
+        df = pl.read_ndjson(raw, infer_schema_length=None)
+    except pl.exceptions.PolarsError as exc:
+        reason = str(exc).strip().splitlines()[0]
+        raise fail("corrupt-file", path=path, format="JSON lines", reason=reason[:200]) from None
+    casts = [pl.col(c).cast(pl.String) for c in text_columns if c in df.columns and df.schema[c] != pl.String]
+    return df.with_columns(casts) if casts else df
+
+
+def scan_source(path: str | Path, text_columns: Sequence[str] = ()) -> pl.LazyFrame:
+    """A lazy frame over one data file; text formats are read eagerly with keys as text.
+
+    Raises ``file-not-found``, ``unsupported-format``, ``empty-file``,
+    ``corrupt-file`` or ``unreadable-file`` with the path named.
+    """
+    p = Path(path)
+    if not p.exists():
+        raise fail("file-not-found", path=path)
+    if p.is_dir():
+        raise fail("not-a-file", path=path)
+    fmt, gz = file_format(p)
+    if fmt == "csv":
+        sep = TEXT_SUFFIXES.get([s.lower() for s in p.suffixes][-2 if gz else -1])
+        return _read_text(p, gz, sep, text_columns).lazy()
+    if fmt == "jsonl":
+        return _read_jsonl(p, gz, text_columns).lazy()
+    try:
+        if p.stat().st_size == 0:
+            raise fail("empty-file", path=path)
+        if fmt == "parquet":
+            lf = pl.scan_parquet(p)
+        else:
+            lf = pl.scan_ipc(p)
+        lf.collect_schema()
+    except pl.exceptions.PolarsError as exc:
+        reason = str(exc).strip().splitlines()[0]
+        raise fail("corrupt-file", path=path, format=fmt, reason=reason[:200]) from None
+    except OSError as exc:
+        raise fail("corrupt-file", path=path, format=fmt, reason=str(exc)[:200]) from None
+    return lf
+
+
+def read_source(path: str | Path, text_columns: Sequence[str] = ()) -> pl.DataFrame:
+    """One data file read into memory (see :func:`scan_source`)."""
+    lf = scan_source(path, text_columns)
+    try:
+        return lf.collect()
+    except pl.exceptions.PolarsError as exc:
+        reason = str(exc).strip().splitlines()[0]
+        raise fail("corrupt-file", path=path, format=file_format(Path(path))[0], reason=reason[:200]) from None
+
+
+def resolve_inputs(data: Any) -> list[Path]:
+    """The data files named by ``data``: a path, a folder, a glob or a list of paths."""
+    import glob as globmod
+
+    items = list(data) if isinstance(data, list | tuple) else [data]
+    paths: list[Path] = []
+    for item in items:
+        if not isinstance(item, str | Path):
+            raise fail("unsupported-object", type=type(item).__name__)
+        text = str(item)
+        p = Path(text)
+        if any(ch in text for ch in "*?[") and not p.exists():
+            found = sorted(Path(x) for x in globmod.glob(text))
+            if not found:
+                raise fail("no-glob-match", pattern=text)
+            paths.extend(found)
+        elif p.is_dir():
+            found = sorted(x for x in p.iterdir() if x.is_file() and _is_data_file(x))
+            if not found:
+                raise fail("not-a-file", path=text)
+            paths.extend(found)
+        else:
+            paths.append(p)
+    return paths
+
+
+def _is_data_file(p: Path) -> bool:
+    try:
+        file_format(p)
+    except Exception:
+        return False
+    return not p.name.startswith(".")
+
+
+def scan_inputs(
+    paths: Sequence[Path], text_columns: Sequence[str] = ()
+) -> tuple[pl.LazyFrame, list[Any], bool]:
+    """One lazy frame over all ``paths`` (schemas aligned), schema findings, whether all are binary."""
+    frames = [scan_source(p, text_columns) for p in paths]
+    binary = all(file_format(p)[0] in ("parquet", "ipc") for p in paths)
+    if len(frames) == 1:
+        return frames[0], [], binary
+    return pl.concat(frames, how="diagonal_relaxed"), [], binary
