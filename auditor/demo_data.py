@@ -271,8 +271,8 @@ def make_orchards(seed: int = ORCHARD_SEED) -> pl.DataFrame:
     n_null_u, n_null_t = PLANTED["null_unit_rows"], PLANTED["null_season_rows"]
     src = rng.choice(rows, n_null_u + n_null_t, replace=False)
     blank = frame[src.tolist()].with_columns(
-        pl.when(pl.arange(0, pl.len()) < n_null_u).then(None).otherwise(pl.col("orchard_id")).alias("orchard_id"),
-        pl.when(pl.arange(0, pl.len()) >= n_null_u).then(None).otherwise(pl.col("season")).alias("season"),
+        pl.when(pl.int_range(pl.len()) < n_null_u).then(None).otherwise(pl.col("orchard_id")).alias("orchard_id"),
+        pl.when(pl.int_range(pl.len()) >= n_null_u).then(None).otherwise(pl.col("season")).alias("season"),
     )
     frame = pl.concat([frame, blank], how="vertical")
     return frame.select(COLUMNS)
