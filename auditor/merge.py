@@ -48,13 +48,17 @@ class GroupStats:
 
     ``table`` has one row per group: the key columns, ``__pa_rows`` (rows with both
     keys present), then for column j the fields ``__pa_c{j}_n`` (usable values),
-    ``_missing`` (null or NaN), ``_nonfinite`` (+-inf), ``_mean``, ``_m2`` (centred sum
-    of squares), ``_min`` and ``_max`` (all Float64 except the counts, UInt64).
+    ``_missing`` (null or NaN), ``_nonfinite`` (+-inf), ``_mean`` (the group mean minus
+    ``shifts[j]``), ``_m2`` (centred sum of squares), ``_min`` and ``_max`` (all Float64
+    except the counts, UInt64). Means are kept relative to a per-column shift, a value
+    of the column itself, so that a column like 1e9 + small noise keeps the digits of
+    its unit means (methods.md section 2).
     """
 
     by: tuple[str, ...]
     columns: tuple[str, ...]
     integral: tuple[bool, ...]
+    shifts: tuple[float, ...]
     table: pl.DataFrame
 
     def column_index(self, name: str) -> int:
@@ -94,6 +98,23 @@ def _numeric_schema(schema: Mapping[str, pl.DataType], columns: Sequence[str]) -
     return out
 
 
+def _shifts(lf: pl.LazyFrame, columns: Sequence[str], present: Sequence[bool]) -> list[float]:
+    # Any value of the column near its bulk will do as a shift; the first usable value
+    # among the first rows is read cheaply (slice pushdown), the whole column only when
+    # those rows hold none.
+    names = [c for c, here in zip(columns, present, strict=True) if here]
+    found: dict[str, float] = {}
+    if names:
+        head = lf.head(4096).select(_usable(c, True).drop_nulls().first().alias(c) for c in names)
+        row = head.collect().row(0, named=True)
+        found = {c: v for c, v in row.items() if v is not None}
+        rest = [c for c in names if c not in found]
+        if rest:
+            row = lf.select(_usable(c, True).drop_nulls().first().alias(c) for c in rest).collect()
+            found.update({c: v for c, v in row.row(0, named=True).items() if v is not None})
+    return [float(found.get(c, 0.0)) for c in columns]
+
+
 def _usable(name: str, present: bool) -> pl.Expr:
     if not present:
         return pl.lit(None, dtype=pl.Float64)
@@ -108,14 +129,16 @@ def group_stats(
     *,
     keys: Sequence[str] | None = None,
     integral: Sequence[bool] | None = None,
+    shifts: Sequence[float] | None = None,
 ) -> GroupStats:
     """Per-group sufficient statistics of numeric ``columns``, in one grouped pass.
 
     ``keys`` are the columns whose missing values exclude a row (default ``by``); a
     column of ``columns`` absent from ``frame`` counts as missing in every row (wave
     files whose schemas differ). ``integral`` (default: from the frame's types) says
-    which columns change by any difference rather than by the float tolerance.
-    Returns a :class:`GroupStats`; counts are rows, means in the column's units, M2 in
+    which columns change by any difference rather than by the float tolerance;
+    ``shifts`` (default: a value of each column read from the first rows) are the
+    values the stored means are relative to. Returns a :class:`GroupStats`; counts are rows, means in the column's units, M2 in
     squared units.
     """
     lf = frame.lazy()
@@ -124,10 +147,11 @@ def group_stats(
     keys = list(keys) if keys is not None else by
     flags = list(integral) if integral is not None else _numeric_schema(schema, columns)
     present = [c in schema for c in columns]
+    shift = list(shifts) if shifts is not None else _shifts(lf, columns, present)
     lf = lf.filter(pl.all_horizontal([pl.col(k).is_not_null() for k in keys]))
     aggs: list[pl.Expr] = [pl.len().cast(pl.UInt64).alias(ROWS)]
     for j, (c, here) in enumerate(zip(columns, present, strict=True)):
-        u = _usable(c, here)
+        u = _usable(c, here) - shift[j]
         if here:
             raw = pl.col(c)
             isfloat = schema[c].is_float()
@@ -145,12 +169,12 @@ def group_stats(
             u.mean().alias(_field(j, "mean")),
             # two-pass within the group: centre on the group's own mean before squaring
             ((u - u.mean()) ** 2).sum().alias(_field(j, "m2")),
-            u.min().alias(_field(j, "min")),
-            u.max().alias(_field(j, "max")),
+            _usable(c, here).min().alias(_field(j, "min")),
+            _usable(c, here).max().alias(_field(j, "max")),
         ]
     table = lf.group_by(by).agg(aggs).collect()
     table = _null_empty_m2(table, len(columns))
-    return GroupStats(tuple(by), tuple(columns), tuple(flags), table)
+    return GroupStats(tuple(by), tuple(columns), tuple(flags), tuple(shift), table)
 
 
 def _null_empty_m2(table: pl.DataFrame, k: int) -> pl.DataFrame:
@@ -161,21 +185,32 @@ def _null_empty_m2(table: pl.DataFrame, k: int) -> pl.DataFrame:
     )
 
 
-def _align(part: GroupStats, columns: Sequence[str]) -> pl.DataFrame:
-    # Re-index a part's fields to the merged column order; a column the part lacks is
-    # all missing there (its rows count as missing, nothing else).
+def _align(part: GroupStats, columns: Sequence[str], shifts: Sequence[float]) -> pl.DataFrame:
+    # Re-index a part's fields to the merged column order and re-base its means on the
+    # merged shifts (the difference of two values of the column is exact or carries an
+    # error on the scale of the column's spread, never of its magnitude); a column the
+    # part lacks is all missing there (its rows count as missing, nothing else).
     t = part.table
     exprs: list[pl.Expr] = [pl.col(b) for b in part.by] + [pl.col(ROWS)]
     for j, c in enumerate(columns):
         if c in part.columns:
             i = part.columns.index(c)
-            exprs += [pl.col(_field(i, s)).alias(_field(j, s)) for s in STATS]
+            rebase = part.shifts[i] - shifts[j]
+            exprs += [
+                (pl.col(_field(i, s)) + rebase if s == "mean" else pl.col(_field(i, s))).alias(
+                    _field(j, s)
+                )
+                for s in STATS
+            ]
         else:
             exprs += [
                 pl.lit(0, dtype=pl.UInt64).alias(_field(j, "n")),
                 pl.col(ROWS).alias(_field(j, "missing")),
                 pl.lit(0, dtype=pl.UInt64).alias(_field(j, "nonfinite")),
-            ] + [pl.lit(None, dtype=pl.Float64).alias(_field(j, s)) for s in ("mean", "m2", "min", "max")]
+            ] + [
+                pl.lit(None, dtype=pl.Float64).alias(_field(j, s))
+                for s in ("mean", "m2", "min", "max")
+            ]
     return t.select(exprs)
 
 
@@ -194,14 +229,17 @@ def merge_group_stats(parts: Iterable[GroupStats]) -> GroupStats:
         raise ValueError("parts are grouped by different keys")
     columns: list[str] = []
     integral: dict[str, bool] = {}
+    shift: dict[str, float] = {}
     for p in parts:
-        for c, f in zip(p.columns, p.integral, strict=True):
+        for c, f, s in zip(p.columns, p.integral, p.shifts, strict=True):
             if c not in integral:
                 columns.append(c)
                 integral[c] = f
+                shift[c] = s
             else:
                 integral[c] = integral[c] and f
-    stacked = pl.concat([_align(p, columns) for p in parts], how="vertical_relaxed")
+    shifts = [shift[c] for c in columns]
+    stacked = pl.concat([_align(p, columns, shifts) for p in parts], how="vertical_relaxed")
     aggs: list[pl.Expr] = [pl.col(ROWS).sum().alias(ROWS)]
     for j in range(len(columns)):
         n, m = pl.col(_field(j, "n")), pl.col(_field(j, "mean"))
@@ -213,13 +251,15 @@ def merge_group_stats(parts: Iterable[GroupStats]) -> GroupStats:
             pl.col(_field(j, "nonfinite")).sum().alias(_field(j, "nonfinite")),
             pl.when(total > 0).then(merged_mean).alias(_field(j, "mean")),
             pl.when(total > 0)
-            .then(pl.col(_field(j, "m2")).sum() + (n.cast(pl.Float64) * (m - merged_mean) ** 2).sum())
+            .then(
+                pl.col(_field(j, "m2")).sum() + (n.cast(pl.Float64) * (m - merged_mean) ** 2).sum()
+            )
             .alias(_field(j, "m2")),
             pl.col(_field(j, "min")).min().alias(_field(j, "min")),
             pl.col(_field(j, "max")).max().alias(_field(j, "max")),
         ]
     table = stacked.group_by(list(by)).agg(aggs)
-    return GroupStats(by, tuple(columns), tuple(integral[c] for c in columns), table)
+    return GroupStats(by, tuple(columns), tuple(integral[c] for c in columns), tuple(shifts), table)
 
 
 def value_counts(
@@ -258,8 +298,7 @@ def merge_value_counts(parts: Iterable[Mapping[str, pl.DataFrame]]) -> dict[str,
         for c, df in p.items():
             pieces.setdefault(c, []).append(df)
     return {
-        c: pl.concat(dfs).group_by("value").agg(pl.col("count").sum())
-        for c, dfs in pieces.items()
+        c: pl.concat(dfs).group_by("value").agg(pl.col("count").sum()) for c, dfs in pieces.items()
     }
 
 
@@ -278,7 +317,9 @@ def summarise_shard(
     keys = [*unit_cols, time]
     lf = frame.lazy()
     units = group_stats(lf, unit_cols, columns, keys=keys)
-    periods = group_stats(lf, [time], columns, keys=keys, integral=units.integral)
+    periods = group_stats(
+        lf, [time], columns, keys=keys, integral=units.integral, shifts=units.shifts
+    )
     values = value_counts(lf, columns, keys=keys)
     return ShardSummary(tuple(unit_cols), time, units, periods, values)
 
@@ -323,7 +364,7 @@ def _changes(stats: GroupStats, j: int, tolerance: float) -> pl.Expr:
     lo, hi, m = (pl.col(_field(j, s)) for s in ("min", "max", "mean"))
     if stats.integral[j]:
         return hi > lo
-    return (hi - lo) > tolerance * (1.0 + m.abs())
+    return (hi - lo) > tolerance * (1.0 + (m + stats.shifts[j]).abs())
 
 
 def column_figures(summary: ShardSummary | GroupStats, *, tolerance: float = 1e-9) -> pl.DataFrame:
@@ -358,7 +399,7 @@ def column_figures(summary: ShardSummary | GroupStats, *, tolerance: float = 1e-
             (n > 0).sum().cast(pl.UInt64).alias(f"{j}_units"),
             pl.col(_field(j, "missing")).sum().alias(f"{j}_missing"),
             pl.col(_field(j, "nonfinite")).sum().alias(f"{j}_nonfinite"),
-            grand.alias(f"{j}_mean"),
+            (grand + stats.shifts[j]).alias(f"{j}_mean"),
             wss.alias(f"{j}_wss"),
             bss.alias(f"{j}_bss"),
             m.std(ddof=1).alias(f"{j}_between_sd"),
