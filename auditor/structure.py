@@ -1,0 +1,291 @@
+"""Panel structure: balance, duplicate and missing keys, gaps, patterns, attrition.
+
+Everything comes from two small tables computed in polars: the distinct
+(unit, period) cells with their row counts, and one row per unit (rows, first
+and last period, distinct periods, participation pattern).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import polars as pl
+
+from auditor.config import Settings
+from auditor.findings import Finding, make
+from auditor.load import PERIOD_ID, UNIT_ID, Panel
+
+
+@dataclass(frozen=True)
+class Structure:
+    """The contract's ``panel`` object (``summary``) and tables for figures and later stages.
+
+    ``per_unit``: one row per unit code with ``rows``, ``periods_seen``, ``first``,
+    ``last`` (period indices), ``pattern`` (a key shared by units seen in the same
+    periods). ``patterns``: ``periods`` (list of period indices), ``label``,
+    ``units``, most common first. ``obs_per_unit``: ``t_i``, ``units``.
+    """
+
+    summary: dict[str, Any]
+    per_unit: pl.DataFrame
+    patterns: pl.DataFrame
+    obs_per_unit: pl.DataFrame
+    duplicate_examples: tuple[dict[str, Any], ...]
+    gap_examples: tuple[dict[str, Any], ...]
+
+
+def period_ranges(indices: list[int], grid: tuple[Any, ...]) -> str:
+    """Period indices written as ranges of labels: ``2011-2015, 2017``."""
+    parts: list[str] = []
+    start = prev = None
+    for i in sorted(indices):
+        if start is None:
+            start = prev = i
+        elif i == prev + 1:
+            prev = i
+        else:
+            parts.append(_range(start, prev, grid))
+            start = prev = i
+    if start is not None:
+        parts.append(_range(start, prev, grid))
+    return ", ".join(parts)
+
+
+def _range(a: int, b: int, grid: tuple[Any, ...]) -> str:
+    if a == b:
+        return str(grid[a])
+    sep = "-" if isinstance(grid[a], int) else " to "
+    return f"{grid[a]}{sep}{grid[b]}"
+
+
+def _pattern_expr(n_periods: int) -> pl.Expr:
+    if n_periods <= 63:
+        return (pl.lit(1, dtype=pl.UInt64) << pl.col(PERIOD_ID).cast(pl.UInt64)).sum().alias("pattern")
+    return (
+        pl.col(PERIOD_ID).sort().cast(pl.String).str.join(",").alias("pattern")
+    )
+
+
+def compute_structure(panel: Panel, settings: Settings) -> Structure:
+    """Structure of ``panel``: every field of the contract's ``panel`` object."""
+    n_periods = panel.n_periods
+    cells = panel.collect(
+        panel.lazy.group_by(UNIT_ID, PERIOD_ID).agg(pl.len().alias("n"))
+    )
+    dup_cells = cells.filter(pl.col("n") > 1)
+    duplicate_keys = int((dup_cells["n"] - 1).sum()) if dup_cells.height else 0
+
+    per_unit = (
+        cells.group_by(UNIT_ID)
+        .agg(
+            pl.col("n").sum().alias("rows"),
+            pl.len().alias("periods_seen"),
+            pl.col(PERIOD_ID).min().alias("first"),
+            pl.col(PERIOD_ID).max().alias("last"),
+            _pattern_expr(n_periods),
+        )
+        .sort(UNIT_ID)
+    )
+    per_unit = per_unit.with_columns(
+        ((pl.col("last") - pl.col("first")).cast(pl.Int64) + 1 - pl.col("periods_seen"))
+        .alias("gap_periods")
+    )
+    n = per_unit.height
+    t_i = per_unit["rows"].to_numpy().astype(np.float64)
+    n_rows = float(t_i.sum())
+    inv_sum = float((1.0 / t_i).sum())
+    harmonic = n / inv_sum
+    t_mean = n_rows / n
+    unbalancedness = n / (t_mean * inv_sum)
+
+    gaps = per_unit.filter(pl.col("gap_periods") > 0)
+    units_with_gaps = gaps.height
+    gap_periods = int(gaps["gap_periods"].sum()) if units_with_gaps else 0
+    singletons = int((per_unit["rows"] == 1).sum())
+    balanced = (
+        duplicate_keys == 0
+        and bool((per_unit["periods_seen"] == n_periods).all())
+        and bool((per_unit["rows"] == n_periods).all())
+    )
+
+    # Participation patterns: units grouped by the set of periods they are seen in.
+    pat = (
+        per_unit.group_by("pattern")
+        .agg(pl.len().alias("units"), pl.col(UNIT_ID).min().alias("first_unit"))
+        .sort(["units", "first_unit"], descending=[True, False])
+    )
+    first_units = pat["first_unit"].to_list()
+    members = (
+        cells.filter(pl.col(UNIT_ID).is_in(first_units))
+        .group_by(UNIT_ID)
+        .agg(pl.col(PERIOD_ID).sort().alias("periods"))
+    )
+    pat = pat.join(members, left_on="first_unit", right_on=UNIT_ID, how="left", maintain_order="left")
+    labels = [period_ranges(list(p), panel.grid) for p in pat["periods"].to_list()]
+    patterns = pat.select(
+        pl.col("periods"), pl.Series("label", labels, dtype=pl.String), pl.col("units")
+    )
+    top = int(settings.get("profile", "patterns"))
+
+    # Attrition by period.
+    present = cells.group_by(PERIOD_ID).agg(pl.len().alias("present"))
+    entering = per_unit.group_by("first").agg(pl.len().alias("entering")).rename({"first": PERIOD_ID})
+    leaving = per_unit.group_by("last").agg(pl.len().alias("leaving")).rename({"last": PERIOD_ID})
+    returning = (
+        cells.sort(UNIT_ID, PERIOD_ID)
+        .with_columns(
+            (pl.col(PERIOD_ID).cast(pl.Int64) - pl.col(PERIOD_ID).cast(pl.Int64).shift(1).over(UNIT_ID))
+            .alias("jump")
+        )
+        .filter(pl.col("jump") > 1)
+        .group_by(PERIOD_ID)
+        .agg(pl.len().alias("returning"))
+    )
+    base = pl.DataFrame({PERIOD_ID: pl.Series(range(n_periods), dtype=pl.UInt32)})
+    att = base
+    for t in (present, entering, leaving, returning):
+        att = att.join(t.with_columns(pl.col(PERIOD_ID).cast(pl.UInt32)), on=PERIOD_ID, how="left")
+    att = att.fill_null(0).sort(PERIOD_ID)
+    last_index = n_periods - 1
+    attrition = [
+        {
+            "period": panel.grid[int(r[PERIOD_ID])],
+            "present": int(r["present"]),
+            "entering": int(r["entering"]),
+            "leaving": int(r["leaving"]) if int(r[PERIOD_ID]) < last_index else 0,
+            "returning": int(r["returning"]),
+        }
+        for r in att.iter_rows(named=True)
+    ]
+
+    k = int(settings.get("profile", "examples"))
+    dup_ex = dup_cells.sort(UNIT_ID, PERIOD_ID).head(k)
+    dup_labels = panel.unit_labels(dup_ex[UNIT_ID].to_list())
+    duplicate_examples = tuple(
+        {**lab, panel.time: panel.grid[int(p)], "rows": int(c)}
+        for lab, p, c in zip(dup_labels, dup_ex[PERIOD_ID].to_list(), dup_ex["n"].to_list(), strict=True)
+    )
+    gap_ex = gaps.head(k)
+    gap_labels = panel.unit_labels(gap_ex[UNIT_ID].to_list())
+    gap_examples = tuple(
+        {**lab, "absent_periods": int(g)}
+        for lab, g in zip(gap_labels, gap_ex["gap_periods"].to_list(), strict=True)
+    )
+
+    obs = per_unit.group_by("rows").agg(pl.len().alias("units")).sort("rows").rename({"rows": "t_i"})
+    summary = {
+        "unit": list(panel.unit),
+        "time": panel.time,
+        "rows": panel.rows,
+        "units": n,
+        "periods": n_periods,
+        "period_values": list(panel.grid),
+        "frequency": panel.frequency,
+        "step": panel.step if not panel.irregular else None,
+        "balanced": balanced,
+        "duplicate_keys": duplicate_keys,
+        "missing_keys": panel.missing_keys,
+        "units_with_gaps": units_with_gaps,
+        "gap_periods": gap_periods,
+        "singleton_units": singletons,
+        "obs_per_unit": {
+            "min": int(t_i.min()),
+            "median": float(np.median(t_i)),
+            "mean": t_mean,
+            "max": int(t_i.max()),
+            "harmonic_mean": harmonic,
+        },
+        "unbalancedness": unbalancedness,
+        "patterns": [
+            {"periods": lab, "units": int(u)}
+            for lab, u in zip(patterns["label"].head(top).to_list(), patterns["units"].head(top).to_list(), strict=True)
+        ],
+        "pattern_count": patterns.height,
+        "attrition": attrition,
+        "missing_periods": [list(pair) for pair in panel.irregular],
+        "grid_step": panel.step,
+        "engine": "streaming" if panel.streaming else "in-memory",
+    }
+    return Structure(
+        summary=summary,
+        per_unit=per_unit,
+        patterns=patterns,
+        obs_per_unit=obs,
+        duplicate_examples=duplicate_examples,
+        gap_examples=gap_examples,
+    )
+
+
+def structure_findings(panel: Panel, s: Structure, settings: Settings) -> list[Finding]:
+    """Findings about keys and structure (missing and duplicate keys, gaps, balance, ...)."""
+    out: list[Finding] = []
+    d = s.summary
+    if panel.missing_keys:
+        out.append(
+            make(
+                "missing-keys",
+                settings,
+                f"{panel.missing_keys} rows have no unit or no period; they are left out of every "
+                "statistic and would be dropped by any estimator: fill in or remove them.",
+                count=panel.missing_keys,
+                examples=panel.missing_key_examples,
+            )
+        )
+    if d["duplicate_keys"]:
+        out.append(
+            make(
+                "duplicate-keys",
+                settings,
+                f"{d['duplicate_keys']} rows repeat a (unit, period) key already present; a panel "
+                "estimator needs one row per unit and period: remove double entries or fix the keys.",
+                count=d["duplicate_keys"],
+                examples=s.duplicate_examples,
+            )
+        )
+    if d["units_with_gaps"]:
+        out.append(
+            make(
+                "gaps",
+                settings,
+                f"{d['units_with_gaps']} units are absent in {d['gap_periods']} periods inside their "
+                "own span; lags and differences across those gaps are not one period apart.",
+                count=d["units_with_gaps"],
+                examples=s.gap_examples,
+            )
+        )
+    if panel.irregular:
+        missing = [f"{a} to {b}" for a, b in panel.irregular]
+        out.append(
+            make(
+                "irregular-periods",
+                settings,
+                f"the period grid skips its step of {panel.step} between "
+                + ", ".join(missing[:5])
+                + "; a whole period is missing for every unit, so period dummies and lags need care.",
+                count=len(panel.irregular),
+                examples=[{"from": a, "to": b} for a, b in panel.irregular[:5]],
+            )
+        )
+    if not d["balanced"]:
+        out.append(
+            make(
+                "unbalanced",
+                settings,
+                f"units are seen in {d['obs_per_unit']['min']} to {d['obs_per_unit']['max']} periods "
+                f"(Ahrens-Pincus unbalancedness {d['unbalancedness']:.3f}); estimators weight units "
+                "by their number of observations.",
+                count=d["units"],
+            )
+        )
+    if d["singleton_units"]:
+        out.append(
+            make(
+                "singleton-units",
+                settings,
+                f"{d['singleton_units']} units are observed once; they add nothing to a within estimator.",
+                count=d["singleton_units"],
+            )
+        )
+    return out
