@@ -212,11 +212,90 @@ def _is_data_file(p: Path) -> bool:
 
 
 def scan_inputs(
-    paths: Sequence[Path], text_columns: Sequence[str] = ()
+    paths: Sequence[Path], text_columns: Sequence[str] = (), settings: Any = None
 ) -> tuple[pl.LazyFrame, list[Any], bool]:
-    """One lazy frame over all ``paths`` (schemas aligned), schema findings, whether all are binary."""
+    """One lazy frame over all ``paths``, schema findings, whether all files are binary.
+
+    Several files are read as one panel with their schemas aligned: a column missing
+    from a file is missing (null) in that file's rows; a column whose type differs
+    between files gives one ``schema-mismatch`` finding naming the files and types, and
+    is read as the types' common numeric type when all are numeric, else as text.
+    ``settings`` (auditor.config.Settings) sets the finding's severity.
+    """
     frames = [scan_source(p, text_columns) for p in paths]
     binary = all(file_format(p)[0] in ("parquet", "ipc") for p in paths)
     if len(frames) == 1:
         return frames[0], [], binary
-    return pl.concat(frames, how="diagonal_relaxed"), [], binary
+    schemas = [_typed_schema(p, lf) for p, lf in zip(paths, frames, strict=True)]
+    targets, findings = _align_types(paths, schemas, settings)
+    aligned = []
+    for lf, sch in zip(frames, schemas, strict=True):
+        casts = [
+            pl.col(c).cast(targets[c])
+            for c, dt in sch.items()
+            if c in targets and dt != targets[c]
+        ]
+        aligned.append(lf.with_columns(casts) if casts else lf)
+    return pl.concat(aligned, how="diagonal_relaxed"), findings, binary
+
+
+def _typed_schema(path: Path, lf: pl.LazyFrame) -> dict[str, pl.DataType]:
+    # Column types of one file. A text file's column that is empty in that file has no
+    # type of its own (the reader calls it text): it takes the other files' type.
+    schema = dict(lf.collect_schema())
+    if file_format(path)[0] in ("csv", "jsonl"):
+        df = lf.collect()  # already in memory: text files are read eagerly
+        for c in df.columns:
+            if df[c].null_count() == df.height:
+                schema[c] = pl.Null()
+    return schema
+
+
+def _align_types(
+    paths: Sequence[Path], schemas: Sequence[dict[str, pl.DataType]], settings: Any
+) -> tuple[dict[str, pl.DataType], list[Any]]:
+    from auditor.findings import make
+
+    order: list[str] = []
+    for sch in schemas:
+        order.extend(c for c in sch if c not in order)
+    targets: dict[str, pl.DataType] = {}
+    findings = []
+    for c in order:
+        by_type: dict[str, list[str]] = {}
+        types: dict[str, pl.DataType] = {}
+        for p, sch in zip(paths, schemas, strict=True):
+            dt = sch.get(c)
+            if dt is None or dt == pl.Null:
+                continue
+            by_type.setdefault(str(dt), []).append(p.name)
+            types[str(dt)] = dt
+        if len(by_type) == 0:
+            targets[c] = pl.String()
+            continue
+        if len(by_type) == 1:
+            targets[c] = next(iter(types.values()))
+            continue
+        dts = list(types.values())
+        if all(dt.is_numeric() for dt in dts):
+            target: pl.DataType = pl.Float64() if any(dt.is_float() for dt in dts) else pl.Int64()
+        else:
+            target = pl.String()
+        targets[c] = target
+        if all(dt.is_integer() for dt in dts) or all(dt.is_float() for dt in dts):
+            continue  # only the storage width differs (Int32 / Int64): no finding
+        parts = "; ".join(f"{t} in {', '.join(files)}" for t, files in by_type.items())
+        findings.append(
+            make(
+                "schema-mismatch",
+                settings,
+                f"column '{c}' has different types across the input files ({parts}); "
+                f"it is read as {target} in all of them, so check how each wave was exported",
+                column=c,
+                count=sum(len(f) for f in by_type.values()),
+                examples=[
+                    {"file": f, "dtype": t} for t, files in by_type.items() for f in files[:5]
+                ],
+            )
+        )
+    return targets, findings

@@ -62,7 +62,10 @@ def _range(a: int, b: int, grid: tuple[Any, ...]) -> str:
 
 def _pattern_expr(n_periods: int) -> pl.Expr:
     if n_periods <= 63:
-        return (pl.lit(1, dtype=pl.UInt64) << pl.col(PERIOD_ID).cast(pl.UInt64)).sum().alias("pattern")
+        bits = pl.col(PERIOD_ID).replace_strict(
+            list(range(n_periods)), [1 << i for i in range(n_periods)], return_dtype=pl.UInt64
+        )
+        return bits.sum().alias("pattern")
     return (
         pl.col(PERIOD_ID).sort().cast(pl.String).str.join(",").alias("pattern")
     )

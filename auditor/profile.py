@@ -1,0 +1,119 @@
+"""The profile: structure, variation and findings of one panel (``auditor.profile``)."""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import polars as pl
+
+from auditor.config import Settings, load_settings
+from auditor.findings import Finding, sort_findings
+from auditor.load import Panel, load_panel
+from auditor.structure import compute_structure, structure_findings
+from auditor.variation import compute_variation, variation_findings
+
+
+def tool_info() -> dict[str, str]:
+    """The ``tool`` object every JSON document starts with."""
+    from auditor import __version__
+
+    return {"name": "panel-audit", "version": __version__}
+
+
+@dataclass(frozen=True)
+class ProfileDetails:
+    """Tables behind the profile, for figures and later stages.
+
+    ``patterns``: ``periods`` (list of period indices), ``label``, ``units``, most
+    common first (every pattern). ``obs_per_unit``: ``t_i``, ``units``.
+    ``missing_by_period``: ``column``, ``period`` (label as text), ``missing_share``.
+    ``per_unit``: one row per unit code (rows, periods_seen, first, last, gap_periods).
+    ``absorbed_basis``: the rows and units ``absorbed_by_time`` was computed on.
+    """
+
+    patterns: pl.DataFrame
+    obs_per_unit: pl.DataFrame
+    missing_by_period: pl.DataFrame
+    per_unit: pl.DataFrame
+    absorbed_basis: dict[str, Any]
+
+
+@dataclass(frozen=True)
+class ProfileResult:
+    """A panel's profile: ``panel`` (contract dict), ``columns`` (polars), ``findings``."""
+
+    panel: dict[str, Any]
+    columns: pl.DataFrame
+    findings: tuple[Finding, ...]
+    data: Panel
+    settings: Settings
+    details: ProfileDetails
+
+    def to_dict(self) -> dict[str, Any]:
+        """The contract's JSON document (non-finite numbers as null)."""
+        from auditor.report.jsonout import clean
+
+        return clean(
+            {
+                "tool": tool_info(),
+                "source": self.data.source,
+                "panel": self.panel,
+                "columns": self.columns.to_dicts(),
+                "absorbed_basis": self.details.absorbed_basis,
+                "findings": [f.to_dict() for f in self.findings],
+            }
+        )
+
+    def kind_of(self, column: str) -> str | None:
+        """The kind of ``column`` (None for a key or unknown column)."""
+        hit = self.columns.filter(pl.col("name") == column)
+        return hit["kind"][0] if hit.height else None
+
+    def _repr_html_(self) -> str:  # pragma: no cover - exercised in notebooks and report tests
+        from auditor.report.html import profile_fragment
+
+        return profile_fragment(self)
+
+
+def profile(
+    data: Any,
+    unit: str | Sequence[str],
+    time: str,
+    *,
+    rules: str | Path | None = None,
+    settings: Settings | None = None,
+    streaming: bool | None = None,
+) -> ProfileResult:
+    """Profile ``data`` (a path, paths, or a pandas/polars frame) keyed by ``unit`` and ``time``.
+
+    ``rules`` is a rules file overriding the shipped thresholds (or pass ``settings``).
+    Raises AuditError for input that cannot be used.
+    """
+    if settings is None:
+        settings = load_settings(rules)
+    panel = load_panel(data, unit, time, streaming=streaming, settings=settings)
+    return profile_panel(panel, settings)
+
+
+def profile_panel(panel: Panel, settings: Settings) -> ProfileResult:
+    """The profile of an already loaded panel."""
+    s = compute_structure(panel, settings)
+    v = compute_variation(panel, settings)
+    findings = [*panel.load_findings, *structure_findings(panel, s, settings), *variation_findings(panel, v, settings)]
+    return ProfileResult(
+        panel=s.summary,
+        columns=v.columns,
+        findings=sort_findings(findings),
+        data=panel,
+        settings=settings,
+        details=ProfileDetails(
+            patterns=s.patterns,
+            obs_per_unit=s.obs_per_unit,
+            missing_by_period=v.missing_by_period,
+            per_unit=s.per_unit,
+            absorbed_basis=v.absorbed_basis,
+        ),
+    )

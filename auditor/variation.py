@@ -1,0 +1,502 @@
+"""Within / between variation, column kinds and per-column signals.
+
+Three small passes over the rows, each one polars query for every column:
+a global pass (missing, non-finite, distinct values, dominant value), a grouped
+pass by unit (count, mean, centred sum of squares, min, max, distinct values)
+and a grouped pass by period (count, distinct values, for period-only columns
+and missing data by wave). Everything else is numpy arithmetic on those tables.
+
+Numerical stability: numeric columns are shifted by their first finite value
+before aggregation, per-unit sums of squares are centred within the unit
+(polars' grouped variance), and totals are combined as WSS + BSS from unit
+means (methods.md, section 2).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import polars as pl
+
+from auditor.config import Settings
+from auditor.findings import Finding, make
+from auditor.load import PERIOD_ID, UNIT_ID, Panel
+
+KINDS = ("constant", "period-only", "time-invariant", "nearly-time-invariant", "time-varying")
+
+# Field order of the columns table (the contract's names first).
+COLUMN_FIELDS = (
+    "name",
+    "dtype",
+    "kind",
+    "missing_share",
+    "distinct",
+    "units_changing",
+    "units_observed_twice",
+    "dominant_share",
+    "mean",
+    "overall_sd",
+    "between_sd",
+    "within_sd",
+    "within_share",
+    "absorbed_by_time",
+    "time_r2",
+    "non_finite",
+    "binary",
+    "periods_all_missing",
+)
+
+
+@dataclass(frozen=True)
+class Variation:
+    """The columns table and its side tables.
+
+    ``columns``: one row per non-key column with :data:`COLUMN_FIELDS`.
+    ``missing_by_period``: ``column``, ``period`` (label), ``missing_share`` for
+    every column and period. ``absorbed_basis``: how ``absorbed_by_time`` was
+    computed (all rows, or a fixed subset of units for very large panels).
+    ``changing_examples``: per column, a few changing units with their min/max.
+    """
+
+    columns: pl.DataFrame
+    missing_by_period: pl.DataFrame
+    absorbed_basis: dict[str, Any]
+    changing_examples: dict[str, tuple[dict[str, Any], ...]]
+
+
+def dtype_name(dtype: pl.DataType) -> str:
+    """A short lower-case name for a polars dtype (``float64``, ``int64``, ``string``, ...)."""
+    if isinstance(dtype, pl.Categorical | pl.Enum):
+        return "categorical"
+    if isinstance(dtype, pl.Datetime):
+        return "datetime"
+    return str(dtype).lower()
+
+
+def is_numeric(dtype: pl.DataType) -> bool:
+    """Whether the within/between decomposition applies (numbers and booleans)."""
+    return dtype.is_numeric() or dtype == pl.Boolean
+
+
+def _clean(col: str, dtype: pl.DataType) -> pl.Expr:
+    """The column as Float64 with NaN and infinities set to missing."""
+    e = pl.col(col).cast(pl.Float64)
+    if dtype.is_float():
+        e = pl.when(e.is_finite()).then(e)
+    return e
+
+
+def compute_variation(panel: Panel, settings: Settings) -> Variation:
+    """Kinds, shares and signals for every non-key column of ``panel``."""
+    cols = list(panel.columns)
+    schema = panel.schema
+    n_rows = panel.rows - panel.missing_keys
+    tol = float(settings.get("profile", "float_tolerance"))
+    if not cols:
+        return Variation(
+            columns=pl.DataFrame(schema={f: pl.Null for f in COLUMN_FIELDS}),
+            missing_by_period=pl.DataFrame(schema={"column": pl.String, "period": pl.String, "missing_share": pl.Float64}),
+            absorbed_basis={"rows": 0, "units": 0, "all_units": True},
+            changing_examples={},
+        )
+    numeric = [c for c in cols if is_numeric(schema[c])]
+    names = {c: f"c{i}" for i, c in enumerate(cols)}  # safe aliases for any column name
+
+    # --- global pass ---------------------------------------------------------------
+    glob: list[pl.Expr] = []
+    for c in cols:
+        a, dt = names[c], schema[c]
+        present = pl.col(c).drop_nulls()
+        if dt.is_float():
+            present = present.drop_nans()
+            glob.append(pl.col(c).is_nan().sum().alias(f"{a}:nan"))
+            glob.append(pl.col(c).is_infinite().sum().alias(f"{a}:inf"))
+            glob.append(_clean(c, dt).drop_nulls().first().alias(f"{a}:shift"))
+        elif c in numeric:
+            glob.append(pl.col(c).cast(pl.Float64).drop_nulls().first().alias(f"{a}:shift"))
+        glob.append(pl.col(c).null_count().alias(f"{a}:null"))
+        vc = present.value_counts(sort=True, name="n").struct.field("n")
+        glob.append(vc.len().alias(f"{a}:distinct"))
+        glob.append(vc.first().alias(f"{a}:dominant"))
+        if c in numeric:
+            glob.append(present.cast(pl.Float64).min().alias(f"{a}:min"))
+            glob.append(present.cast(pl.Float64).max().alias(f"{a}:max"))
+    g = panel.collect(panel.lazy.select(glob)).row(0, named=True)
+    shift = {c: (g.get(f"{names[c]}:shift") or 0.0) for c in numeric}
+
+    # --- grouped pass by unit --------------------------------------------------------
+    per_unit: list[pl.Expr] = []
+    for c in cols:
+        a, dt = names[c], schema[c]
+        if c in numeric:
+            x = _clean(c, dt) - shift[c]
+            per_unit += [
+                x.count().alias(f"{a}:n"),
+                x.mean().alias(f"{a}:mean"),
+                (x.var(ddof=0) * x.count()).alias(f"{a}:m2"),
+                x.min().alias(f"{a}:min"),
+                x.max().alias(f"{a}:max"),
+            ]
+        else:
+            per_unit += [
+                pl.col(c).count().alias(f"{a}:n"),
+                pl.col(c).drop_nulls().n_unique().alias(f"{a}:nu"),
+            ]
+    pu = panel.collect(panel.lazy.group_by(UNIT_ID).agg(per_unit)).sort(UNIT_ID)
+
+    # --- grouped pass by period -------------------------------------------------------
+    per_period: list[pl.Expr] = [pl.len().alias("rows")]
+    for c in cols:
+        a, dt = names[c], schema[c]
+        present = pl.col(c).drop_nulls()
+        if dt.is_float():
+            present = present.drop_nans()
+        per_period += [
+            present.len().alias(f"{a}:n"),
+            present.n_unique().alias(f"{a}:nu"),
+        ]
+    pp = panel.collect(panel.lazy.group_by(PERIOD_ID).agg(per_period)).sort(PERIOD_ID)
+
+    # --- arithmetic on the small tables ------------------------------------------------
+    records: list[dict[str, Any]] = []
+    changing_examples: dict[str, tuple[dict[str, Any], ...]] = {}
+    k_examples = int(settings.get("profile", "examples"))
+    period_rows = pp["rows"].to_numpy().astype(np.float64)
+    miss_cols: list[str] = []
+    miss_periods: list[Any] = []
+    miss_shares: list[float] = []
+    period_labels = [panel.grid[int(i)] for i in pp[PERIOD_ID].to_list()]
+    for c in cols:
+        a, dt = names[c], schema[c]
+        nulls = int(g[f"{a}:null"]) + int(g.get(f"{a}:nan") or 0)
+        non_finite = int(g.get(f"{a}:inf") or 0)
+        distinct = int(g[f"{a}:distinct"] or 0)
+        present_rows = n_rows - nulls
+        dominant = (int(g[f"{a}:dominant"]) / present_rows) if present_rows and distinct else None
+        n_i = pu[f"{a}:n"].to_numpy()
+        observed_twice = int((n_i >= 2).sum())
+        rec: dict[str, Any] = {
+            "name": c,
+            "dtype": dtype_name(dt),
+            "missing_share": nulls / n_rows if n_rows else None,
+            "distinct": distinct,
+            "units_observed_twice": observed_twice,
+            "dominant_share": dominant,
+            "mean": None,
+            "overall_sd": None,
+            "between_sd": None,
+            "within_sd": None,
+            "within_share": None,
+            "absorbed_by_time": None,
+            "time_r2": None,
+            "non_finite": non_finite,
+            "binary": False,
+        }
+        if c in numeric:
+            mean_i = pu[f"{a}:mean"].to_numpy()
+            m2_i = pu[f"{a}:m2"].to_numpy()
+            lo = pu[f"{a}:min"].to_numpy()
+            hi = pu[f"{a}:max"].to_numpy()
+            seen = n_i > 0
+            stats = decompose(n_i[seen], mean_i[seen], m2_i[seen])
+            rec.update(stats)
+            if rec["mean"] is not None:
+                rec["mean"] = rec["mean"] + shift[c]
+            unit_mean_abs = np.abs(np.where(seen, mean_i, 0.0) + shift[c])
+            if dt.is_float():
+                changing = seen & ((hi - lo) > tol * (1.0 + unit_mean_abs))
+            else:
+                changing = seen & (hi != lo)
+            gmin, gmax = g.get(f"{a}:min"), g.get(f"{a}:max")
+            rec["binary"] = bool(distinct == 2 and gmin == 0.0 and gmax == 1.0)
+        else:
+            changing = pu[f"{a}:nu"].to_numpy() >= 2
+        changing = np.asarray(changing, dtype=bool)
+        units_changing = int(changing.sum())
+        rec["units_changing"] = units_changing
+        if units_changing:
+            idx = np.flatnonzero(changing)[:k_examples]
+            labels = panel.unit_labels([int(pu[UNIT_ID][int(i)]) for i in idx])
+            if c in numeric:
+                exs = [
+                    {**lab, "min": float(lo[i] + shift[c]), "max": float(hi[i] + shift[c])}
+                    for lab, i in zip(labels, idx, strict=True)
+                ]
+            else:
+                exs = [{**lab, "distinct_values": int(pu[f"{a}:nu"][int(i)])} for lab, i in zip(labels, idx, strict=True)]
+            changing_examples[c] = tuple(exs)
+        # per period: distinct values and missing data
+        nu_t = pp[f"{a}:nu"].to_numpy()
+        n_t = pp[f"{a}:n"].to_numpy().astype(np.float64)
+        share_t = 1.0 - n_t / period_rows
+        miss_cols += [c] * len(share_t)
+        miss_periods += period_labels
+        miss_shares += share_t.tolist()
+        rec["periods_all_missing"] = [
+            period_labels[i] for i in np.flatnonzero(n_t == 0)
+        ] if distinct else []
+        rec["kind"] = classify(
+            distinct=distinct,
+            period_only=bool(distinct > 1 and (nu_t <= 1).all()),
+            units_changing=units_changing,
+            units_observed_twice=observed_twice,
+            within_share=rec["within_share"],
+            settings=settings,
+        )
+        records.append(rec)
+
+    basis = _absorbed(panel, records, numeric, shift, settings)
+    table = _table(records)
+    missing = pl.DataFrame(
+        {
+            "column": pl.Series(miss_cols, dtype=pl.String),
+            "period": pl.Series([str(p) for p in miss_periods], dtype=pl.String),
+            "missing_share": pl.Series(miss_shares, dtype=pl.Float64),
+        }
+    )
+    return Variation(columns=table, missing_by_period=missing, absorbed_basis=basis, changing_examples=changing_examples)
+
+
+def _table(records: list[dict[str, Any]]) -> pl.DataFrame:
+    data = {f: [r.get(f) for r in records] for f in COLUMN_FIELDS}
+    data["periods_all_missing"] = [[str(p) for p in r["periods_all_missing"]] for r in records]
+    types: dict[str, Any] = {
+        "name": pl.String,
+        "dtype": pl.String,
+        "kind": pl.String,
+        "missing_share": pl.Float64,
+        "distinct": pl.Int64,
+        "units_changing": pl.Int64,
+        "units_observed_twice": pl.Int64,
+        "dominant_share": pl.Float64,
+        "mean": pl.Float64,
+        "overall_sd": pl.Float64,
+        "between_sd": pl.Float64,
+        "within_sd": pl.Float64,
+        "within_share": pl.Float64,
+        "absorbed_by_time": pl.Boolean,
+        "time_r2": pl.Float64,
+        "non_finite": pl.Int64,
+        "binary": pl.Boolean,
+        "periods_all_missing": pl.List(pl.String),
+    }
+    return pl.DataFrame({f: pl.Series(f, data[f], dtype=types[f]) for f in COLUMN_FIELDS})
+
+
+def decompose(n_i: np.ndarray, mean_i: np.ndarray, m2_i: np.ndarray) -> dict[str, float | None]:
+    """Mean, overall / between / within sd and within share from per-unit sufficient statistics.
+
+    ``n_i`` counts, ``mean_i`` means and ``m2_i`` centred sums of squares of the
+    units with at least one value. TSS = WSS + BSS exactly (methods.md, section 2).
+    """
+    n_i = np.asarray(n_i, dtype=np.float64)
+    units = n_i.size
+    total = float(n_i.sum())
+    if units == 0 or total == 0:
+        return {"mean": None, "overall_sd": None, "between_sd": None, "within_sd": None, "within_share": None}
+    mean = float((n_i * mean_i).sum() / total)
+    wss = float(np.maximum(m2_i, 0.0).sum())
+    bss = float((n_i * (mean_i - mean) ** 2).sum())
+    tss = wss + bss
+    return {
+        "mean": mean,
+        "overall_sd": float(np.sqrt(tss / (total - 1))) if total > 1 else None,
+        "between_sd": float(np.std(mean_i, ddof=1)) if units > 1 else None,
+        "within_sd": float(np.sqrt(wss / (total - units))) if total > units else None,
+        "within_share": (wss / tss) if tss > 0 else None,
+    }
+
+
+def classify(
+    *,
+    distinct: int,
+    period_only: bool,
+    units_changing: int,
+    units_observed_twice: int,
+    within_share: float | None,
+    settings: Settings,
+) -> str:
+    """The column kind of methods.md section 3 (first rule that applies)."""
+    if distinct <= 1:
+        return "constant"
+    if period_only:
+        return "period-only"
+    if units_changing == 0:
+        return "time-invariant"
+    share = float(settings.get("profile", "nearly_invariant_units_share"))
+    low_within = float(settings.get("profile", "nearly_invariant_within_share"))
+    if units_changing <= share * units_observed_twice or (
+        within_share is not None and within_share < low_within
+    ):
+        return "nearly-time-invariant"
+    return "time-varying"
+
+
+def _absorbed(
+    panel: Panel,
+    records: list[dict[str, Any]],
+    numeric: list[str],
+    shift: dict[str, float],
+    settings: Settings,
+) -> dict[str, Any]:
+    """Fill ``time_r2`` and ``absorbed_by_time`` in ``records``; return the basis used.
+
+    R2_t = 1 - SS(two-way residual) / WSS. The two-way residual is the limit of the
+    alternating projections of methods.md; it is computed here directly, from the
+    normal equations of period dummies after the unit demeaning
+    ((D' M_U D) b = D' M_U x, a P x P system), which gives the same projection
+    without iterating.
+    """
+    cut = float(settings.get("profile", "absorbed_r2"))
+    max_rows = int(settings.get("profile", "absorbed_max_rows"))
+    todo = [
+        r for r in records
+        if r["name"] in numeric and r["kind"] in ("time-varying", "nearly-time-invariant")
+    ]
+    for r in records:
+        if r["name"] in numeric:
+            r["absorbed_by_time"] = r["kind"] == "period-only"
+            r["time_r2"] = 1.0 if r["kind"] == "period-only" else None
+    n_keyed = panel.rows - panel.missing_keys
+    basis = {"rows": n_keyed, "units": panel.n_units, "all_units": True}
+    if not todo:
+        return basis
+    lf = panel.lazy
+    if n_keyed > max_rows:
+        k = int(np.ceil(n_keyed / max_rows))
+        lf = lf.filter((pl.col(UNIT_ID) % k) == 0)
+        basis = {"all_units": False, "every_kth_unit": k}
+    schema = panel.schema
+    sub = panel.collect(
+        lf.select(
+            pl.col(UNIT_ID),
+            pl.col(PERIOD_ID),
+            *[(_clean(r["name"], schema[r["name"]]) - shift[r["name"]]).alias(f"x{i}") for i, r in enumerate(todo)],
+        )
+    )
+    if not basis["all_units"]:
+        basis["rows"] = sub.height
+        basis["units"] = int(sub[UNIT_ID].n_unique())
+    u = sub[UNIT_ID].to_numpy().astype(np.int64)
+    t = sub[PERIOD_ID].to_numpy().astype(np.int64)
+    n_units = int(u.max()) + 1 if u.size else 0
+    n_periods = panel.n_periods
+    cache: dict[bytes, Any] = {}
+    for i, r in enumerate(todo):
+        x = sub[f"x{i}"].to_numpy()
+        mask = np.isfinite(x)
+        key = b"all" if mask.all() else np.packbits(mask).tobytes()
+        if key not in cache:
+            cache = {key: _period_system(u[mask], t[mask], n_units, n_periods)}
+        uu, tt = (u, t) if key == b"all" else (u[mask], t[mask])
+        xm = x[mask] if key != b"all" else x
+        r2 = time_r2(uu, tt, xm, n_units, n_periods, cache[key])
+        r["time_r2"] = r2
+        r["absorbed_by_time"] = bool(r2 is not None and r2 >= cut)
+    return basis
+
+
+def _period_system(u: np.ndarray, t: np.ndarray, n_units: int, n_periods: int) -> np.ndarray:
+    """D' M_U D for period dummies D after demeaning by unit (P x P)."""
+    from scipy import sparse
+
+    counts = sparse.coo_matrix(
+        (np.ones(u.size), (u, t)), shape=(n_units, n_periods)
+    ).tocsr()
+    t_i = np.asarray(counts.sum(axis=1)).ravel()
+    w = np.divide(1.0, t_i, out=np.zeros_like(t_i), where=t_i > 0)
+    weighted = sparse.diags(w) @ counts
+    cwc = (counts.T @ weighted).toarray()
+    n_t = np.asarray(counts.sum(axis=0)).ravel()
+    return np.diag(n_t) - cwc
+
+
+def time_r2(
+    u: np.ndarray, t: np.ndarray, x: np.ndarray, n_units: int, n_periods: int, system: np.ndarray
+) -> float | None:
+    """Share of the within variation of ``x`` explained by period effects (None when WSS = 0)."""
+    t_i = np.bincount(u, minlength=n_units).astype(np.float64)
+    sums = np.bincount(u, weights=x, minlength=n_units)
+    means = np.divide(sums, t_i, out=np.zeros_like(sums), where=t_i > 0)
+    xt = x - means[u]
+    wss = float(xt @ xt)
+    if not wss > 0:
+        return None
+    rhs = np.bincount(t, weights=xt, minlength=n_periods)
+    vals, vecs = np.linalg.eigh(system)
+    keep = vals > max(vals.max(), 0.0) * 1e-12 * n_periods
+    proj = vecs[:, keep].T @ rhs
+    explained = float((proj**2 / vals[keep]).sum())
+    return float(min(max(explained / wss, 0.0), 1.0))
+
+
+def variation_findings(panel: Panel, v: Variation, settings: Settings) -> list[Finding]:
+    """Findings about columns: constant, nearly invariant, absorbed, near-constant, missing, ..."""
+    out: list[Finding] = []
+    near = float(settings.get("profile", "near_constant_share"))
+    few = int(settings.get("profile", "few_switchers"))
+    high = float(settings.get("profile", "high_missing_share"))
+    for r in v.columns.iter_rows(named=True):
+        c, kind = r["name"], r["kind"]
+        if r["distinct"] == 0:
+            out.append(make("column-all-missing", settings, f"'{c}' has no value in any row; it cannot enter any model.", column=c, count=0))
+            continue
+        if kind == "constant":
+            out.append(make("constant-column", settings, f"'{c}' takes one value everywhere; no model can estimate its effect.", column=c, count=1))
+        elif kind == "nearly-time-invariant":
+            out.append(
+                make(
+                    "nearly-time-invariant",
+                    settings,
+                    f"'{c}' changes within {r['units_changing']} of {r['units_observed_twice']} units seen twice or more"
+                    + (f" (within share {r['within_share']:.4f})" if r["within_share"] is not None else "")
+                    + "; such rare changes are often coding errors, and a within estimate of it rests on those units alone.",
+                    column=c,
+                    count=r["units_changing"],
+                    examples=v.changing_examples.get(c, ()),
+                )
+            )
+        elif kind == "period-only":
+            out.append(make("period-only", settings, f"'{c}' is the same for every unit within each period; period effects absorb it completely.", column=c, count=r["distinct"]))
+        if kind != "period-only" and r["absorbed_by_time"]:
+            out.append(
+                make(
+                    "absorbed-by-time",
+                    settings,
+                    f"period effects explain {100 * r['time_r2']:.2f}% of the within variation of '{c}'; with unit and period effects in the model its coefficient is not identified.",
+                    column=c,
+                    count=r["units_changing"],
+                )
+            )
+        if kind != "constant" and r["dominant_share"] is not None and r["dominant_share"] >= near:
+            out.append(make("near-constant", settings, f"one value of '{c}' holds {100 * r['dominant_share']:.2f}% of its rows; its effect rests on very few observations.", column=c, count=r["distinct"]))
+        if r["binary"] and 0 < r["units_changing"] < few:
+            out.append(
+                make(
+                    "few-switchers",
+                    settings,
+                    f"only {r['units_changing']} units switch '{c}' between 0 and 1; a within estimate of its effect is identified from those units alone.",
+                    column=c,
+                    count=r["units_changing"],
+                    examples=v.changing_examples.get(c, ()),
+                )
+            )
+        if r["periods_all_missing"]:
+            ps = r["periods_all_missing"]
+            out.append(
+                make(
+                    "missing-in-period",
+                    settings,
+                    f"'{c}' is missing for every unit in {len(ps)} period(s) ({', '.join(map(str, ps[:5]))}); the question may not have been asked in that wave.",
+                    column=c,
+                    count=len(ps),
+                    examples=[{"period": p} for p in ps[:5]],
+                )
+            )
+        if r["missing_share"] is not None and r["missing_share"] > high:
+            out.append(make("high-missing", settings, f"{100 * r['missing_share']:.1f}% of '{c}' is missing; a model using it drops those rows.", column=c, count=round(r["missing_share"] * (panel.rows - panel.missing_keys))))
+        if r["non_finite"]:
+            out.append(make("non-finite", settings, f"'{c}' holds {r['non_finite']} infinite values; they are left out of every statistic here but would break an estimator.", column=c, count=r["non_finite"]))
+    return out
