@@ -281,3 +281,35 @@ def test_unit_in_one_shard_only_with_no_values_has_null_moments():
     assert row["units"] == 1
     assert row["between_sd"] is None  # one unit: no between sd (n - 1 = 0)
     assert row["missing_share"] == pytest.approx(0.5)
+
+
+def test_merged_shards_agree_with_the_profile_columns():
+    # Cross-check with a second, separately written implementation: the profile's own
+    # grouped pass over the whole panel (auditor/variation.py). The numpy oracle above
+    # is the primary check; this one says the two code paths define the figures alike.
+    from auditor.profile import profile
+
+    frame = random_panel(21)
+    rng = np.random.default_rng(2)
+    shards = split(frame, rng.integers(0, 5, frame.height), 5)
+    merged = merge_summaries(
+        summarise_shard(s, unit="orchard", time="season", columns=NUMERIC) for s in shards
+    )
+    ours = {r["name"]: r for r in column_figures(merged).iter_rows(named=True)}
+    theirs = {
+        r["name"]: r
+        for r in profile(frame, unit="orchard", time="season").columns.iter_rows(named=True)
+    }
+    for name in NUMERIC:
+        for key in (
+            "missing_share",
+            "mean",
+            "overall_sd",
+            "between_sd",
+            "within_sd",
+            "within_share",
+            "dominant_share",
+        ):
+            assert ours[name][key] == pytest.approx(theirs[name][key], rel=1e-12), (name, key)
+        for key in ("units_changing", "units_observed_twice", "distinct", "non_finite"):
+            assert ours[name][key] == theirs[name][key], (name, key)
