@@ -224,9 +224,11 @@ def x2_first_stage(
 ) -> list[dict[str, Any]]:
     """Observation-level first stage of each quasi-demeaned X2 column on the HT instruments.
 
-    Instruments A = [X - X means, X1 means, 1, Z1]. Returns, per X2 column, the
-    unit-clustered Wald F of its own within deviation (1 df) and of all non-constant
-    instruments (divided by their number), and the regression's R2.
+    Instruments A = [X - X means, X1 means, 1, Z1]. Per X2 column: ``own_f``, the
+    squared classical t of its own within deviation (its clustered variance is zero by
+    construction, since within deviations sum to zero in every unit);
+    ``other_f_cluster``, the unit-clustered Wald F (divided by its df) of the X1 means
+    and Z1, which carry the between part of the column; and the regression's R2.
     """
     if not x2:
         return []
@@ -234,29 +236,30 @@ def x2_first_stage(
     xcols = x1 + x2
     xi = [pa.x_names.index(c) for c in xcols]
     xw = pa.x[:, xi] - pa.xbar[pa.codes][:, xi]
+    zi1 = [pa.z_names.index(c) for c in z1]
     a = np.column_stack([xw, pa.xbar[pa.codes][:, [pa.x_names.index(c) for c in x1]], np.ones(pa.nobs),
-                         pa.zbar[pa.codes][:, [pa.z_names.index(c) for c in z1]]])
+                         pa.zbar[pa.codes][:, zi1]])
     names = [f"dev({c})" for c in xcols] + [f"mean({c})" for c in x1] + ["const"] + list(z1)
+    other = [f"mean({c})" for c in x1] + list(z1)
     out = []
-    for c in x2:
+    for c in x2:  # loop over the few X2 columns
         j = pa.x_names.index(c)
         target = pa.x[:, j] - th * pa.xbar[pa.codes, j]
         fit, e = models.ols(a, target, names, pa.codes, pa.n)
         own = fit.index([f"dev({c})"])
-        rest = [i for i, nm in enumerate(names) if nm != "const"]
-        own_w = models.wald(fit.coef[own], fit.cov_cluster[np.ix_(own, own)])
-        all_w = models.wald(fit.coef[rest], fit.cov_cluster[np.ix_(rest, rest)])
+        rest = fit.index(other)
+        own_t = fit.coef[own[0]] / fit.se[own[0]] if fit.se[own[0]] > 0 else np.inf
+        other_w = models.wald(fit.coef[rest], fit.cov_cluster[np.ix_(rest, rest)])
         centred = target - target.mean()
         tss = float(centred @ centred)
         out.append(
             {
                 "endogenous": c,
                 "role": "X2",
-                "instruments": [f"{c} (within deviation)"] + [f"{x} (unit mean)" for x in x1],
-                "own_f": own_w.statistic,
-                "joint_f": None if all_w.statistic is None else all_w.statistic / all_w.df,
+                "instruments": [f"{c} (within deviation)"] + [f"{x} (unit mean)" for x in x1] + list(z1),
+                "own_f": float(own_t**2),
+                "other_f_cluster": None if other_w.statistic is None else other_w.statistic / other_w.df,
                 "r2": 1.0 - float(e @ e) / tss if tss > 0 else None,
-                "clustered": True,
             }
         )
     return out
