@@ -51,6 +51,15 @@ CATALOGUE: dict[str, str] = {
     "output-unwritable": "cannot write '{path}': {reason}",
     # --- instruments -----------------------------------------------------------
     # --- compare ---------------------------------------------------------------
+    "compare-key-missing": (
+        "the {which} has no key column {missing}, so base and new wave share no key to compare on; "
+        "its columns are: {available}; rename the key in one file or pass --unit/--time names both hold"
+    ),
+    "compare-empty-new": "the new wave {source} holds no data rows; nothing to compare against the base",
+    "compare-time-mismatch": (
+        "time key '{column}' cannot be put on one scale for both inputs: base values such as {base}, "
+        "new-wave values such as {new}; write the periods the same way in both files"
+    ),
     # --- check / rules ---------------------------------------------------------
     # --- report ----------------------------------------------------------------
 }

@@ -52,6 +52,37 @@ CHECKS: dict[str, CheckSpec] = {
     "column-all-missing": CheckSpec("warning", "profile", "a column with no value at all"),
     # --- instruments -----------------------------------------------------------
     # --- compare ---------------------------------------------------------------
+    # (compare also reuses duplicate-keys and missing-keys, for the new wave's own rows)
+    "overlapping-periods": CheckSpec(
+        "error", "compare", "new-wave (unit, period) keys the base already holds"
+    ),
+    "type-changed": CheckSpec(
+        "warning", "compare", "a column whose type differs between base and new wave (error for a key)"
+    ),
+    "invariant-changed": CheckSpec(
+        "warning", "compare", "returning units whose time-invariant answer differs in the new wave"
+    ),
+    "implausible-jump": CheckSpec(
+        "warning", "compare", "returning units whose change is far outside the base's own within changes"
+    ),
+    "new-categories": CheckSpec("warning", "compare", "levels of a categorical column never seen in the base"),
+    "vanished-categories": CheckSpec(
+        "note", "compare", "levels of the base's last period that no new-wave row uses"
+    ),
+    "distribution-shift": CheckSpec(
+        "warning", "compare", "a stability index against the base's last period above the cut-off"
+    ),
+    "missing-jump": CheckSpec("warning", "compare", "a missing share that rises against the base's last period"),
+    "column-removed": CheckSpec("warning", "compare", "a base column absent from the new wave"),
+    "unexpected-period": CheckSpec("warning", "compare", "a new period that does not continue the base grid"),
+    "column-added": CheckSpec("note", "compare", "a column new in the wave"),
+    "backfilled-rows": CheckSpec(
+        "note", "compare", "new-wave rows in periods the base holds, with keys it does not hold"
+    ),
+    "returning-after-absence": CheckSpec(
+        "note", "compare", "returning units absent from the base's last period"
+    ),
+    "units-not-returning": CheckSpec("note", "compare", "base units absent from the new wave"),
     # --- check / rules ---------------------------------------------------------
 }
 

@@ -1,0 +1,321 @@
+"""Command line: argument parsing and exit codes only.
+
+Exit codes: 0 ran and no finding reached --fail-on; 1 ran and findings reached
+it (for ``check``: a rule failed); 2 could not run (one line on stderr,
+``panel-audit: error: ...``; a traceback only with --debug).
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from collections.abc import Callable, Sequence
+from pathlib import Path
+from typing import Any, NoReturn
+
+PROG = "panel-audit"
+
+
+class _Parser(argparse.ArgumentParser):
+    """An argument parser whose errors are the project's one-line errors (exit 2)."""
+
+    def error(self, message: str) -> NoReturn:
+        sys.stderr.write(f"{PROG}: error: {message}; see '{self.prog} --help'\n")
+        raise SystemExit(2)
+
+
+def _common(p: argparse.ArgumentParser, keys: bool = True) -> None:
+    if keys:
+        p.add_argument("--unit", required=True, metavar="COL[,COL...]", help="unit key; several columns form one key")
+        p.add_argument("--time", required=True, metavar="COL", help="period key")
+    p.add_argument("--json", action="store_true", help="print the JSON document on stdout and nothing else")
+    p.add_argument(
+        "--fail-on",
+        choices=("error", "warning", "never"),
+        default="error",
+        help="which findings make the exit code 1 (default: error)",
+    )
+    p.add_argument("--rules", metavar="FILE", help="thresholds and checks to use instead of the shipped defaults")
+    p.add_argument("--debug", action="store_true", help="show a traceback on errors")
+
+
+def _engine_flags(p: argparse.ArgumentParser) -> None:
+    g = p.add_mutually_exclusive_group()
+    g.add_argument("--streaming", dest="streaming", action="store_const", const=True, default=None,
+                   help="force the polars streaming engine (larger-than-memory Parquet)")
+    g.add_argument("--in-memory", dest="streaming", action="store_const", const=False,
+                   help="force reading the panel into memory")
+
+
+def _csv_list(text: str | None) -> list[str]:
+    return [t.strip() for t in (text or "").split(",") if t.strip()]
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """The argument parser for every subcommand."""
+    parser = _Parser(
+        prog=PROG,
+        description="Audit a panel (units observed over periods) before estimating a panel model.",
+    )
+    from auditor import __version__
+
+    parser.add_argument("--version", action="version", version=f"{PROG} {__version__}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+
+    p = sub.add_parser("profile", help="keys, structure and within/between variation of a panel")
+    p.add_argument("data", nargs="+", metavar="DATA", help="a data file, several files, a folder or a glob")
+    _common(p)
+    _engine_flags(p)
+
+    p = sub.add_parser("instruments", help="model readiness: roles, instrument strength, diagnostic estimators")
+    p.add_argument("data", nargs="+", metavar="DATA")
+    _common(p)
+    p.add_argument("--outcome", required=True, metavar="COL", help="the dependent variable")
+    p.add_argument("--regressors", required=True, metavar="A,B,...", help="candidate regressors")
+    p.add_argument("--correlated", metavar="A,C", default=None,
+                   help="regressors suspected of correlation with the unit effect (may be empty)")
+    p.add_argument("--period-effects", action="store_true", help="add a dummy for each period but the first")
+    p.add_argument("--treat-as-invariant", metavar="COL", action="append", default=[],
+                   help="use a nearly-time-invariant column's most common value within each unit")
+
+    p = sub.add_parser("compare", help="a new wave against the panel so far")
+    p.add_argument("base", metavar="BASE")
+    p.add_argument("new", metavar="NEW")
+    _common(p)
+    p.add_argument("--merged", action="store_true", help="also profile base and new together")
+
+    p = sub.add_parser("check", help="check a panel against a contract (rules file)")
+    p.add_argument("data", nargs="+", metavar="DATA")
+    p.add_argument("--rules", required=True, metavar="FILE", help="the panel contract")
+    p.add_argument("--unit", metavar="COL[,COL...]", help="unit key (default: the contract's)")
+    p.add_argument("--time", metavar="COL", help="period key (default: the contract's)")
+    p.add_argument("--json", action="store_true")
+    p.add_argument("--debug", action="store_true")
+
+    p = sub.add_parser("rules", help="draft a contract from a clean panel, or export its row rules")
+    rsub = p.add_subparsers(dest="rules_command", metavar="ACTION", parser_class=_Parser)
+    d = rsub.add_parser("draft", help="write a starting contract learned from a clean panel")
+    d.add_argument("data", nargs="+", metavar="DATA")
+    d.add_argument("--unit", required=True)
+    d.add_argument("--time", required=True)
+    d.add_argument("--out", metavar="FILE", help="write here instead of stdout")
+    d.add_argument("--force", action="store_true", help="replace an existing --out file")
+    d.add_argument("--rules", metavar="FILE", help="thresholds to use while drafting")
+    d.add_argument("--debug", action="store_true")
+    e = rsub.add_parser("export", help="the row-level rules as a great-expectations expectation suite")
+    e.add_argument("file", metavar="FILE")
+    e.add_argument("--out", required=True, metavar="SUITE.json")
+    e.add_argument("--force", action="store_true", help="replace an existing --out file")
+    e.add_argument("--debug", action="store_true")
+
+    p = sub.add_parser("report", help="a self-contained HTML report with figures")
+    p.add_argument("data", nargs="+", metavar="DATA")
+    _common(p)
+    p.add_argument("--outcome", metavar="COL")
+    p.add_argument("--regressors", metavar="A,B,...")
+    p.add_argument("--correlated", metavar="A,C", default=None)
+    p.add_argument("--against", metavar="BASE", help="compare DATA as a new wave against BASE")
+    p.add_argument("--out", required=True, metavar="FILE.html")
+    p.add_argument("--png-dir", metavar="DIR", help="also write each figure as PNG here")
+    p.add_argument("--force", action="store_true", help="replace an existing --out file")
+
+    p = sub.add_parser("demo", help="write the invented orchard panel and its report, print the profile")
+    p.add_argument("--out", metavar="DIR", help="folder for the demo files (default: a new temporary folder)")
+    p.add_argument("--debug", action="store_true")
+    return parser
+
+
+def _data(args: argparse.Namespace) -> Any:
+    return args.data[0] if len(args.data) == 1 else list(args.data)
+
+
+def _settings(args: argparse.Namespace) -> Any:
+    from auditor.config import load_settings
+
+    return load_settings(getattr(args, "rules", None))
+
+
+def _emit(args: argparse.Namespace, result: Any, render: Callable[..., str]) -> int:
+    from auditor.findings import exit_code
+
+    _print_result(args, result, render)
+    return exit_code(result.findings, args.fail_on)
+
+
+def _print_result(args: argparse.Namespace, result: Any, render: Callable[..., str]) -> None:
+    if getattr(args, "json", False):
+        from auditor.report.jsonout import dumps
+
+        sys.stdout.write(dumps(result.to_dict()))
+    else:
+        from auditor.report.text import terminal_width, use_colour
+
+        sys.stdout.write(render(result, width=terminal_width(), colour=use_colour(sys.stdout)))
+
+
+def _cmd_profile(args: argparse.Namespace) -> int:
+    from auditor.profile import profile
+    from auditor.report.text import render
+
+    result = profile(_data(args), args.unit, args.time, settings=_settings(args), streaming=args.streaming)
+    return _emit(args, result, render)
+
+
+def _cmd_instruments(args: argparse.Namespace) -> int:
+    from auditor.readiness import instruments
+    from auditor.report.text_instruments import render
+
+    correlated = None if args.correlated is None else _csv_list(args.correlated)
+    result = instruments(
+        _data(args),
+        unit=args.unit,
+        time=args.time,
+        outcome=args.outcome,
+        regressors=_csv_list(args.regressors),
+        correlated=correlated,
+        period_effects=args.period_effects,
+        treat_as_invariant=list(args.treat_as_invariant),
+        settings=_settings(args),
+    )
+    return _emit(args, result, render)
+
+
+def _cmd_compare(args: argparse.Namespace) -> int:
+    from auditor.report.text_compare import render
+    from auditor.waves import compare
+
+    result = compare(args.base, args.new, unit=args.unit, time=args.time, merged=args.merged, settings=_settings(args))
+    return _emit(args, result, render)
+
+
+def _cmd_check(args: argparse.Namespace) -> int:
+    from auditor.report.text_check import render
+    from auditor.rules import check
+
+    result = check(_data(args), rules=args.rules, unit=args.unit, time=args.time)
+    _print_result(args, result, render)
+    return 0 if result.passed else 1
+
+
+def _cmd_rules(args: argparse.Namespace) -> int:
+    from auditor.outputs import write_atomic
+
+    if args.rules_command == "draft":
+        from auditor.rules import draft
+
+        text = draft(_data(args), unit=args.unit, time=args.time, settings=_settings(args))
+        if args.out:
+            inputs = [Path(d) for d in args.data]
+            write_atomic(args.out, text, force=args.force, inputs=inputs)
+            sys.stdout.write(f"{args.out}\n")
+        else:
+            sys.stdout.write(text)
+        return 0
+    if args.rules_command == "export":
+        import json
+
+        from auditor.outputs import check_output_path
+        from auditor.rules import export_suite
+
+        check_output_path(args.out, force=args.force, inputs=[Path(args.file)])
+        suite = export_suite(args.file)
+        write_atomic(args.out, json.dumps(suite, indent=2, sort_keys=True) + "\n", force=args.force, inputs=[Path(args.file)])
+        sys.stdout.write(f"{args.out}\n")
+        return 0
+    from auditor.errors import fail
+
+    raise fail("bad-argument", detail="'rules' needs an action: draft or export")
+
+
+def _cmd_report(args: argparse.Namespace) -> int:
+    from auditor.outputs import check_output_path
+    from auditor.report.html import write_report
+
+    inputs = [Path(d) for d in args.data] + ([Path(args.against)] if args.against else [])
+    check_output_path(args.out, force=args.force, inputs=inputs)
+    path = write_report(
+        _data(args),
+        unit=args.unit,
+        time=args.time,
+        out=args.out,
+        outcome=args.outcome,
+        regressors=_csv_list(args.regressors) or None,
+        correlated=None if args.correlated is None else _csv_list(args.correlated),
+        against=args.against,
+        png_dir=args.png_dir,
+        settings=_settings(args),
+        force=args.force,
+    )
+    if args.json:
+        from auditor.profile import tool_info
+        from auditor.report.jsonout import dumps
+
+        sys.stdout.write(dumps({"tool": tool_info(), "report": str(path)}))
+    else:
+        sys.stdout.write(f"{path}\n")
+    return 0
+
+
+def _cmd_demo(args: argparse.Namespace) -> int:
+    from auditor.demo import run_demo
+    from auditor.report.text import render, terminal_width, use_colour
+
+    run = run_demo(Path(args.out) if args.out else None)
+    sys.stdout.write(render(run.profile, width=terminal_width(), colour=use_colour(sys.stdout)))
+    sys.stdout.write("\nfiles written:\n")
+    for name, path in run.paths.items():
+        sys.stdout.write(f"  {name:<10} {path}\n")
+    return 0
+
+
+COMMANDS: dict[str, Callable[[argparse.Namespace], int]] = {
+    "profile": _cmd_profile,
+    "instruments": _cmd_instruments,
+    "compare": _cmd_compare,
+    "check": _cmd_check,
+    "rules": _cmd_rules,
+    "report": _cmd_report,
+    "demo": _cmd_demo,
+}
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Run the command line; return the exit code."""
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if not args.command:
+        parser.print_help()
+        return 2
+    debug = bool(getattr(args, "debug", False))
+    try:
+        return COMMANDS[args.command](args)
+    except KeyboardInterrupt:
+        sys.stderr.write(f"{PROG}: interrupted\n")
+        return 130
+    except BrokenPipeError:
+        return 0
+    except Exception as exc:  # the one place where any failure becomes exit 2
+        from auditor.errors import AuditError
+
+        if debug:
+            raise
+        if isinstance(exc, AuditError):
+            sys.stderr.write(f"{PROG}: error: {_one_line(exc.message)}\n")
+        elif isinstance(exc, MemoryError):
+            sys.stderr.write(f"{PROG}: error: the data does not fit in memory; try --streaming on Parquet input\n")
+        else:
+            sys.stderr.write(
+                f"{PROG}: error: internal problem ({type(exc).__name__}: {_one_line(str(exc))[:300]}); "
+                "rerun with --debug and report it\n"
+            )
+        return 2
+
+
+def _one_line(text: str) -> str:
+    from auditor.report.text import safe
+
+    return safe(text)
+
+
+if __name__ == "__main__":  # pragma: no cover
+    raise SystemExit(main())

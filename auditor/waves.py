@@ -1,0 +1,982 @@
+"""A new wave against the panel so far: schema, units, periods, consistency, distributions.
+
+``compare(base, new, ...)`` answers, before a wave is appended: does it collide with
+periods already held, did a time-invariant answer change for returning units, did a
+code list or a column type change, did a distribution or a missing share jump, who came
+back and who did not. Distributions are compared like with like: the new wave against
+the base's last period, never against the whole base.
+
+Conventions (README and rules/defaults.yaml state the same):
+
+- Unit keys are compared as text on both sides (a float key holding whole numbers is
+  written without its ``.0``), so integer ids in one file and text ids in the other
+  still match; the change of type is itself a finding.
+- Periods are placed on one scale built from the time values of both inputs together
+  (``auditor.periods.scale_for``); the base grid's step is its most common difference.
+- Null, NaN and infinite values count as missing in every comparison here; the
+  missing shares count null and NaN.
+- Population stability index (PSI): numeric columns are cut at the base reference's
+  deciles (``numpy.quantile``, linear interpolation; repeated cut points merged), bins
+  closed on the right; categorical columns use one bin per level. Each bin's count gets
+  ``psi_smoothing`` added before shares are taken, on both sides, so an empty bin keeps
+  the index finite: PSI = sum_k (q_k - p_k) * ln(q_k / p_k), p the base reference's
+  shares and q the new wave's.
+- Implausible jumps: the base's within changes are differences between a unit's
+  consecutive rows in period order; their robust scale is 1.4826 times the median
+  absolute deviation about their median (the factor makes it the standard deviation
+  for normal data, common practice). A returning unit's jump is its first new value
+  minus its last base value; it is implausible when it lies more than ``jump_mads``
+  scaled deviations from the base's median change.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from datetime import date, timedelta
+from typing import Any
+
+import numpy as np
+import polars as pl
+
+from auditor.config import Settings, load_settings
+from auditor.errors import AuditError, fail, short_list
+from auditor.findings import Finding, make, sort_findings
+from auditor.load import INTERNAL, UNIT_ID, Panel, load_panel, parse_unit
+from auditor.periods import grid_step, scale_for
+
+SECTION = "compare"
+POS = "__pa_pos"  # the period's position on the scale shared by base and new
+BASE_UNIT = "__pa_base_unit"  # the base's unit code of a new row's unit (null: entering)
+MAD_TO_SD = 1.4826  # 1 / Phi^-1(3/4): the MAD of normal data times this is its sd (common practice)
+INVARIANT_KINDS = ("constant", "time-invariant", "nearly-time-invariant")
+
+
+def _key(j: int) -> str:
+    return f"__pa_k{j}"
+
+
+# --- the result ---------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class CompareResult:
+    """What a new wave would do to the panel held so far.
+
+    ``schema``, ``units`` and ``periods`` are the contract's dicts; ``columns`` one
+    dict per compared column (KS statistic, PSI, missing shares, as fractions);
+    ``reference`` names the base period the distributions are compared with.
+    ``wave_findings`` are this command's own findings, ``merged_findings`` those of
+    the profile of base + new together (only with ``merged=True``).
+    """
+
+    schema: dict[str, Any]
+    units: dict[str, Any]
+    periods: dict[str, Any]
+    columns: tuple[dict[str, Any], ...]
+    reference: str
+    reference_period: Any
+    rows: dict[str, int]
+    unit: tuple[str, ...]
+    time: str
+    sources: dict[str, str]
+    wave_findings: tuple[Finding, ...]
+    merged_findings: tuple[Finding, ...] = ()
+    merged_panel: dict[str, Any] | None = None
+    settings: Settings | None = field(default=None, repr=False, compare=False)
+
+    @property
+    def findings(self) -> tuple[Finding, ...]:
+        """Every finding (the wave's and the merged profile's), in the contract's order."""
+        return sort_findings((*self.wave_findings, *self.merged_findings))
+
+    def scope_of(self, finding: Finding) -> str:
+        """``"wave"`` for this command's findings, ``"merged"`` for the merged profile's."""
+        return "merged" if any(finding is f for f in self.merged_findings) else "wave"
+
+    def to_dict(self) -> dict[str, Any]:
+        """The contract's JSON document (plus ``reference``, ``rows`` and a ``scope`` per finding)."""
+        from auditor import __version__
+
+        findings = []
+        for f in self.findings:
+            d = f.to_dict()
+            d["scope"] = self.scope_of(f)
+            findings.append(d)
+        return {
+            "tool": {"name": "panel-audit", "version": __version__},
+            "unit": list(self.unit),
+            "time": self.time,
+            "sources": dict(self.sources),
+            "reference": self.reference,
+            "rows": dict(self.rows),
+            "schema": self.schema,
+            "units": self.units,
+            "periods": self.periods,
+            "columns": [dict(c) for c in self.columns],
+            "merged": None if self.merged_panel is None else {"panel": self.merged_panel},
+            "findings": findings,
+        }
+
+
+# --- stability index and distance ----------------------------------------------------
+
+
+def _shares(counts: np.ndarray, smoothing: float) -> np.ndarray:
+    counts = counts.astype(float) + smoothing
+    return counts / counts.sum()
+
+
+def _psi_from_counts(base_counts: np.ndarray, new_counts: np.ndarray, smoothing: float) -> float:
+    p = _shares(base_counts, smoothing)
+    q = _shares(new_counts, smoothing)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        terms = (q - p) * np.log(q / p)
+    # A bin empty on both sides with no smoothing adds nothing.
+    terms = np.where((p == 0) & (q == 0), 0.0, terms)
+    return float(terms.sum())
+
+
+def numeric_psi(base: np.ndarray, new: np.ndarray, *, bins: int = 10, smoothing: float = 0.5) -> float:
+    """Population stability index of ``new`` against ``base`` on the base's quantile bins.
+
+    Cut points are the base's quantiles at 1/bins, ..., (bins-1)/bins (numpy's linear
+    interpolation), repeated cut points merged, bins closed on the right. Returns the
+    index (dimensionless, 0 for identical shares); NaN when either sample is empty.
+    """
+    base = np.asarray(base, dtype=float)
+    new = np.asarray(new, dtype=float)
+    if base.size == 0 or new.size == 0:
+        return math.nan
+    edges = np.unique(np.quantile(base, np.arange(1, bins) / bins))
+    k = edges.size + 1
+    b = np.bincount(np.searchsorted(edges, base, side="left"), minlength=k)
+    n = np.bincount(np.searchsorted(edges, new, side="left"), minlength=k)
+    return _psi_from_counts(b, n, smoothing)
+
+
+def level_psi(base_counts: dict[Any, int], new_counts: dict[Any, int], *, smoothing: float = 0.5) -> float:
+    """Population stability index over categorical levels (one bin per level of either side).
+
+    Returns the index (dimensionless); NaN when either side has no values.
+    """
+    levels = sorted(set(base_counts) | set(new_counts), key=str)
+    b = np.array([base_counts.get(v, 0) for v in levels], dtype=float)
+    n = np.array([new_counts.get(v, 0) for v in levels], dtype=float)
+    if b.sum() == 0 or n.sum() == 0:
+        return math.nan
+    return _psi_from_counts(b, n, smoothing)
+
+
+def ks_two_sample(base: np.ndarray, new: np.ndarray) -> tuple[float, float]:
+    """Two-sample Kolmogorov-Smirnov statistic (largest gap between the two empirical
+    distribution functions, 0..1) and its two-sided p-value (scipy.stats.ks_2samp,
+    method 'auto'). NaN, NaN when either sample is empty."""
+    if len(base) == 0 or len(new) == 0:
+        return math.nan, math.nan
+    from scipy.stats import ks_2samp
+
+    res = ks_2samp(np.asarray(base, dtype=float), np.asarray(new, dtype=float))
+    return float(res.statistic), float(res.pvalue)
+
+
+# --- small helpers ----------------------------------------------------------------------
+
+
+def _dtype_name(dt: pl.DataType) -> str:
+    if isinstance(dt, pl.Datetime):
+        return "datetime"
+    if isinstance(dt, pl.Categorical):
+        return "categorical"
+    if isinstance(dt, pl.Enum):
+        return "enum"
+    return str(dt).lower()
+
+
+def _family(dt: pl.DataType) -> str:
+    if dt.is_integer():
+        return "integer"
+    if dt.is_float() or dt.is_decimal():
+        return "float"
+    if dt == pl.Boolean:
+        return "boolean"
+    if dt in (pl.String, pl.Utf8) or isinstance(dt, pl.Categorical | pl.Enum):
+        return "text"
+    if dt == pl.Date:
+        return "date"
+    if isinstance(dt, pl.Datetime):
+        return "datetime"
+    return _dtype_name(dt)
+
+
+def _is_numeric(dt: pl.DataType) -> bool:
+    return dt.is_numeric() and dt != pl.Boolean
+
+
+def _is_levels(dt: pl.DataType) -> bool:
+    return _family(dt) in ("text", "boolean")
+
+
+def _key_text(col: str, dt: pl.DataType) -> pl.Expr:
+    c = pl.col(col)
+    if dt.is_float():
+        whole = c.is_finite() & (c == c.round(0))
+        return pl.when(whole).then(c.cast(pl.Int64, strict=False).cast(pl.String)).otherwise(c.cast(pl.String))
+    return c.cast(pl.String)
+
+
+def _clean(col: str, dt: pl.DataType) -> pl.Expr:
+    """The column with NaN and infinities as null (floats); others unchanged."""
+    c = pl.col(col)
+    if dt.is_float():
+        return pl.when(c.is_finite()).then(c).otherwise(None).alias(col)
+    return c
+
+
+def _missing(col: str, dt: pl.DataType) -> pl.Expr:
+    e = pl.col(col).is_null()
+    if dt.is_float():
+        e = e | pl.col(col).is_nan()
+    return e
+
+
+def _label_at(pos: int, freq: str) -> Any:
+    """The period label of a position on the scale (also for periods nobody holds)."""
+    if freq in ("integer", "year"):
+        return int(pos)
+    if freq == "quarter":
+        return f"{pos // 4}Q{pos % 4 + 1}"
+    if freq == "month":
+        return f"{pos // 12:04d}-{pos % 12 + 1:02d}"
+    if freq == "week":
+        return (date(1970, 1, 1) + timedelta(days=7 * pos)).isoformat()
+    if freq == "day":
+        return (date(1970, 1, 1) + timedelta(days=pos)).isoformat()
+    return int(pos)
+
+
+def _json_value(v: Any) -> Any:
+    if isinstance(v, float) and not math.isfinite(v):
+        return None
+    if isinstance(v, date):
+        return v.isoformat()
+    return v
+
+
+def _num(v: Any, digits: int = 6) -> float | None:
+    if v is None:
+        return None
+    v = float(v)
+    return None if not math.isfinite(v) else round(v, digits)
+
+
+def _plural(n: int, one: str, many: str | None = None) -> str:
+    return f"{n} {one}" if n == 1 else f"{n} {many or one + 's'}"
+
+
+def _labels_text(labels: Sequence[Any]) -> str:
+    return short_list([str(v) for v in labels], 6)
+
+
+# --- loading ------------------------------------------------------------------------------
+
+
+def _columns_of(data: Any) -> list[str]:
+    """The column names of ``data`` (for an error message), or [] when unreadable."""
+    try:
+        from auditor.load import _to_lazy
+
+        lf = _to_lazy(data, ())[0]
+        return [c for c in lf.collect_schema().names() if c not in INTERNAL]
+    except (AuditError, pl.exceptions.PolarsError, OSError):
+        return []
+
+
+def _load_side(data: Any, units: tuple[str, ...], time: str, which: str, settings: Settings) -> Panel:
+    try:
+        return load_panel(data, units, time, settings=settings)
+    except AuditError as exc:
+        if exc.code == "unknown-column":
+            cols = _columns_of(data)
+            missing = [k for k in (*units, time) if k not in cols]
+            if cols and missing:
+                raise fail(
+                    "compare-key-missing",
+                    which=which,
+                    missing=", ".join(f"'{m}'" for m in missing),
+                    available=short_list(cols),
+                ) from None
+        if exc.code in ("empty-file", "empty-frame") and which == "new wave":
+            raise fail("compare-empty-new", source=_describe(data)) from None
+        raise
+
+
+def _describe(data: Any) -> str:
+    if isinstance(data, pl.DataFrame | pl.LazyFrame):
+        return "the polars frame"
+    if type(data).__name__ == "DataFrame":
+        return "the pandas frame"
+    if isinstance(data, list | tuple):
+        return ", ".join(f"'{d}'" for d in data)
+    return f"'{data}'"
+
+
+def _profile(data: Any, units: tuple[str, ...], time: str, settings: Settings) -> Any:
+    from auditor.profile import profile
+
+    return profile(data, unit=list(units), time=time, settings=settings)
+
+
+def _period_scale(
+    base: Panel, new: Panel, time: str
+) -> tuple[Any, pl.Expr, pl.Expr]:
+    """One period scale for both sides; expressions giving each side's row position."""
+    bt = base.frame.select(pl.col(time).unique()).to_series()
+    nt = new.frame.select(pl.col(time).unique()).to_series()
+    same = bt.dtype == nt.dtype
+    bj = bt if same else bt.cast(pl.String)
+    nj = nt if same else nt.cast(pl.String)
+    union = pl.concat([bj, nj]).unique()
+    try:
+        scale = scale_for(time, union)
+    except AuditError as exc:
+        if exc.code != "time-unorderable":
+            raise
+        raise fail(
+            "compare-time-mismatch",
+            column=time,
+            base=short_list([str(v) for v in bt.head(3).to_list()], 3),
+            new=short_list([str(v) for v in nt.head(3).to_list()], 3),
+        ) from None
+    pos_of = dict(zip(scale.values, scale.positions, strict=True))
+
+    def mapping(raw: pl.Series, joined: pl.Series) -> pl.Expr:
+        return pl.col(time).replace_strict(
+            old=raw, new=[pos_of[v] for v in joined.to_list()], return_dtype=pl.Int64
+        ).alias(POS)
+
+    return scale, mapping(bt, bj), mapping(nt, nj)
+
+
+# --- the comparison ---------------------------------------------------------------------
+
+
+def compare(
+    base: Any,
+    new: Any,
+    *,
+    unit: str | Sequence[str],
+    time: str,
+    merged: bool = False,
+    settings: Settings | None = None,
+    rules: Any = None,
+) -> CompareResult:
+    """Compare a new wave ``new`` with the panel held so far ``base``.
+
+    Both are paths (any supported format) or pandas/polars frames keyed by ``unit``
+    and ``time``. ``merged`` also profiles base + new together and adds that
+    profile's findings (scope ``merged``). Returns a CompareResult; shares are
+    fractions, the PSI and KS statistic dimensionless. Raises AuditError (exit 2)
+    when a side cannot serve (no common keys, an empty new wave, unreadable files).
+    """
+    if settings is None:
+        settings = load_settings(rules)
+    units = parse_unit(unit)
+    time = str(time).strip()
+    newp = _load_side(new, units, time, "new wave", settings)
+    try:
+        prof = _profile(base, units, time, settings)
+    except AuditError as exc:
+        if exc.code == "unknown-column":
+            _load_side(base, units, time, "base", settings)  # re-raise with the compare wording
+        raise
+    basep: Panel = prof.data
+    return _Comparison(basep, newp, prof, settings, merged, base, new).run()
+
+
+class _Comparison:
+    """One run of compare: the two panels, their aligned frames, the findings so far."""
+
+    def __init__(
+        self, basep: Panel, newp: Panel, prof: Any, settings: Settings, merged: bool, base_data: Any, new_data: Any
+    ) -> None:
+        self.bp = basep
+        self.np = newp
+        self.prof = prof
+        self.s = settings
+        self.merged = merged
+        self.base_data = base_data
+        self.new_data = new_data
+        self.units = basep.unit
+        self.time = basep.time
+        self.nkeys = [_key(j) for j in range(len(self.units))]
+        self.examples = int(settings.get("profile", "examples"))
+        self.findings: list[Finding] = []
+
+    def get(self, key: str) -> Any:
+        return self.s.get(SECTION, key)
+
+    def add(self, check: str, message: str, **kw: Any) -> Finding:
+        f = make(check, self.s, message, **kw)
+        self.findings.append(f)
+        return f
+
+    # -- run ------------------------------------------------------------------------------
+    def run(self) -> CompareResult:
+        schema = self._schema()
+        self._align()
+        units = self._units()
+        periods = self._periods()
+        columns = self._columns()
+        merged_findings: tuple[Finding, ...] = ()
+        merged_panel = None
+        if self.merged:
+            merged_findings, merged_panel = self._merged_profile()
+        ref_label = _label_at(self.last_pos, self.scale.frequency)
+        return CompareResult(
+            schema=schema,
+            units=units,
+            periods=periods,
+            columns=tuple(columns),
+            reference=f"base period {ref_label}",
+            reference_period=ref_label,
+            rows={
+                "base": self.bp.rows,
+                "new": self.np.rows,
+                "base_reference": self.ref.height,
+                "new_missing_keys": self.np.missing_keys,
+            },
+            unit=self.units,
+            time=self.time,
+            sources={"base": self.bp.source, "new": self.np.source},
+            wave_findings=sort_findings(self.findings),
+            merged_findings=merged_findings,
+            merged_panel=merged_panel,
+            settings=self.s,
+        )
+
+    # -- schema ---------------------------------------------------------------------------
+    def _schema(self) -> dict[str, Any]:
+        bs, ns = self.bp.schema, self.np.schema
+        keys = (*self.units, self.time)
+        bcols = [c for c in bs if c not in keys]
+        ncols = [c for c in ns if c not in keys]
+        added = [c for c in ncols if c not in bs]
+        removed = [c for c in bcols if c not in ns]
+        changed = []
+        for c in [*keys, *[c for c in bcols if c in ns]]:
+            if bs[c] != ns[c]:
+                changed.append(
+                    {"column": c, "base": _dtype_name(bs[c]), "new": _dtype_name(ns[c]), "key": c in keys}
+                )
+        for c in added:
+            self.add(
+                "column-added",
+                f"column '{c}' ({_dtype_name(ns[c])}) is new in this wave; after appending it is "
+                "missing for every base period: document it or leave it out of models that span them",
+                column=c,
+                count=1,
+            )
+        for c in removed:
+            self.add(
+                "column-removed",
+                f"column '{c}' is in the base but not in the new wave; appending leaves it missing for "
+                "the new periods: ask for it again or plan models without it",
+                column=c,
+                count=1,
+            )
+        for ch in changed:
+            c = ch["column"]
+            severe = ch["key"] and _family(bs[c]) != _family(ns[c])
+            if ch["key"]:
+                what = (
+                    f"key column '{c}' is {ch['base']} in the base and {ch['new']} in the new wave; "
+                    f"keys were compared as text: cast the new wave's '{c}' to {ch['base']} before appending"
+                )
+            else:
+                what = (
+                    f"column '{c}' is {ch['base']} in the base and {ch['new']} in the new wave; "
+                    f"cast it to {ch['base']} (or fix the source) before appending"
+                )
+            f = make("type-changed", self.s, what, column=c, count=1)
+            if severe and "type-changed" not in self.s.severities:
+                f = dataclasses.replace(f, severity="error")
+            self.findings.append(f)
+        self.common = [c for c in bcols if c in ns]
+        return {"added": added, "removed": removed, "type_changed": changed}
+
+    # -- aligned frames -------------------------------------------------------------------
+    def _align(self) -> None:
+        bs, ns = self.bp.schema, self.np.schema
+        self.scale, bpos, npos = _period_scale(self.bp, self.np, self.time)
+        # Unit tables (one row per unit) carry the text keys; rows carry codes only.
+        bunits = self.bp.units.with_columns(
+            [_key_text(u, bs[u]).alias(k) for u, k in zip(self.units, self.nkeys, strict=True)]
+        ).select(UNIT_ID, *self.nkeys)
+        nunits = self.np.units.with_columns(
+            [_key_text(u, ns[u]).alias(k) for u, k in zip(self.units, self.nkeys, strict=True)]
+        ).select(UNIT_ID, *self.nkeys)
+        code_map = nunits.join(
+            bunits.rename({UNIT_ID: BASE_UNIT}), on=self.nkeys, how="left", nulls_equal=True
+        )
+        self.bunits, self.nunits, self.code_map = bunits, nunits, code_map
+
+        # Columns compared: common ones that both sides can hold in one type.
+        self.numeric = [c for c in self.common if _is_numeric(bs[c]) and _is_numeric(ns[c])]
+        self.levels = [c for c in self.common if _is_levels(bs[c]) and _is_levels(ns[c])]
+        self.other = [c for c in self.common if c not in self.numeric and c not in self.levels]
+
+        def cast_expr(c: str, dt: pl.DataType) -> pl.Expr:
+            if c in self.numeric:
+                return _clean(c, dt).cast(pl.Float64).alias(c)
+            return pl.col(c).cast(pl.String).alias(c)
+
+        compared = [*self.numeric, *self.levels, *[c for c in self.other if _family(bs[c]) == _family(ns[c])]]
+        self.compared = compared
+        miss_b = [_missing(c, bs[c]).alias(f"__pa_miss_{j}") for j, c in enumerate(compared)]
+        miss_n = [_missing(c, ns[c]).alias(f"__pa_miss_{j}") for j, c in enumerate(compared)]
+        self.B = self.bp.frame.select(
+            UNIT_ID, bpos, *[cast_expr(c, bs[c]) for c in compared], *miss_b
+        )
+        self.N = (
+            self.np.frame.select(UNIT_ID, npos, *[cast_expr(c, ns[c]) for c in compared], *miss_n)
+            .join(code_map.select(UNIT_ID, BASE_UNIT), on=UNIT_ID, how="left")
+        )
+        self.base_pos = sorted(self.B.get_column(POS).unique().to_list())
+        self.new_pos = sorted(self.N.get_column(POS).unique().to_list())
+        self.last_pos = self.base_pos[-1]
+        self.ref = self.B.filter(pl.col(POS) == self.last_pos)
+
+    def _lab(self, pos: int) -> Any:
+        return _label_at(pos, self.scale.frequency)
+
+    def _unit_examples(self, table: pl.DataFrame, extra: Sequence[str] = ()) -> list[dict[str, Any]]:
+        """Examples from a table holding the text keys (and ``extra`` columns)."""
+        out = []
+        for r in table.head(self.examples).iter_rows(named=True):
+            d = {u: r[k] for u, k in zip(self.units, self.nkeys, strict=True)}
+            for e in extra:
+                d[e] = _json_value(r[e])
+            out.append(d)
+        return out
+
+    # -- units ----------------------------------------------------------------------------
+    def _units(self) -> dict[str, Any]:
+        last = self.B.group_by(UNIT_ID).agg(pl.col(POS).max().alias("__pa_last"))
+        returning = self.code_map.filter(pl.col(BASE_UNIT).is_not_null())
+        n_ret = returning.height
+        entering = self.code_map.height - n_ret
+        not_returning = self.bunits.join(returning.select(BASE_UNIT), left_on=UNIT_ID, right_on=BASE_UNIT, how="anti")
+        after_gap = (
+            returning.join(last, left_on=BASE_UNIT, right_on=UNIT_ID, how="inner")
+            .filter(pl.col("__pa_last") < self.last_pos)
+            .sort(self.nkeys)
+        )
+        if after_gap.height:
+            ex = after_gap
+            examples = [
+                {**e, "last_base_period": self._lab(int(p))}
+                for e, p in zip(
+                    self._unit_examples(ex), ex.get_column("__pa_last").head(self.examples).to_list(), strict=True
+                )
+            ]
+            self.add(
+                "returning-after-absence",
+                f"{_plural(after_gap.height, 'returning unit')} were absent from the base's last period "
+                f"{self._lab(self.last_pos)}; their gap stays in the panel: check they are the same units "
+                "(not re-used ids) before appending",
+                count=after_gap.height,
+                examples=examples,
+            )
+        if not_returning.height:
+            self.add(
+                "units-not-returning",
+                f"{_plural(not_returning.height, 'base unit')} are not in the new wave; if they left the "
+                "survey, attrition may select the sample: compare their base answers with the stayers'",
+                count=not_returning.height,
+                examples=self._unit_examples(not_returning.sort(self.nkeys)),
+            )
+        return {
+            "base": self.bunits.height,
+            "new": self.code_map.height,
+            "returning": n_ret,
+            "entering": entering,
+            "not_returning": not_returning.height,
+            "returning_after_absence": after_gap.height,
+        }
+
+    # -- periods --------------------------------------------------------------------------
+    def _periods(self) -> dict[str, Any]:
+        base_set = set(self.base_pos)
+        overlap = [p for p in self.new_pos if p in base_set]
+        keys = [BASE_UNIT, POS]
+        colliding = 0
+        if overlap:
+            held = self.B.filter(pl.col(POS).is_in(overlap)).select(pl.col(UNIT_ID).alias(BASE_UNIT), POS).unique()
+            in_overlap = self.N.filter(pl.col(POS).is_in(overlap) & pl.col(BASE_UNIT).is_not_null())
+            hits = in_overlap.select(keys).unique().join(held, on=keys, how="semi")
+            colliding = hits.height
+            if colliding:
+                hit_periods = sorted(hits.get_column(POS).unique().to_list())
+                labels = [self._lab(p) for p in hit_periods]
+                ex = (
+                    hits.sort(keys)
+                    .head(self.examples)
+                    .join(self.bunits.rename({UNIT_ID: BASE_UNIT}), on=BASE_UNIT, how="left")
+                    .sort(keys)
+                )
+                examples = [
+                    {**{u: r[k] for u, k in zip(self.units, self.nkeys, strict=True)}, self.time: self._lab(r[POS])}
+                    for r in ex.iter_rows(named=True)
+                ]
+                self.add(
+                    "overlapping-periods",
+                    f"{_plural(colliding, '(unit, period) key')} of the new wave are already in the base "
+                    f"(period {_labels_text(labels)}); appending would duplicate them: drop or re-key the "
+                    f"{_labels_text(labels)} rows of the new wave before appending, or replace the base's "
+                    "rows on purpose",
+                    count=colliding,
+                    examples=examples,
+                )
+            late = in_overlap.height + self.N.filter(
+                pl.col(POS).is_in(overlap) & pl.col(BASE_UNIT).is_null()
+            ).height - in_overlap.join(held, on=keys, how="semi").height
+            if late:
+                self.add(
+                    "backfilled-rows",
+                    f"{_plural(late, 'row')} of the new wave fall in periods the base already holds "
+                    f"({_labels_text([self._lab(p) for p in overlap])}) without colliding with its keys; "
+                    "appending backfills those periods: check this is intended",
+                    count=late,
+                )
+        # duplicates inside the new wave
+        dup = self.N.group_by(UNIT_ID, POS).agg(pl.len().alias("__pa_n")).filter(pl.col("__pa_n") > 1)
+        if dup.height:
+            extra = int((dup.get_column("__pa_n") - 1).sum())
+            ex = dup.sort(UNIT_ID, POS).head(self.examples).join(self.nunits, on=UNIT_ID, how="left")
+            examples = [
+                {**{u: r[k] for u, k in zip(self.units, self.nkeys, strict=True)}, self.time: self._lab(r[POS]),
+                 "rows": int(r["__pa_n"])}
+                for r in ex.iter_rows(named=True)
+            ]
+            self.add(
+                "duplicate-keys",
+                f"{_plural(extra, 'row')} of the new wave repeat a (unit, period) key already used in the "
+                "wave; keep one row per key before appending",
+                count=extra,
+                examples=examples,
+            )
+        if self.np.missing_keys:
+            self.add(
+                "missing-keys",
+                f"{_plural(self.np.missing_keys, 'row')} of the new wave have no unit or no period; they "
+                "cannot be appended: fill in their keys or drop them",
+                count=self.np.missing_keys,
+                examples=self.np.missing_key_examples[: self.examples],
+            )
+        self._unexpected_periods(base_set)
+        return {
+            "base": [self._lab(p) for p in self.base_pos],
+            "new": [self._lab(p) for p in self.new_pos],
+            "overlap": [self._lab(p) for p in overlap],
+            "frequency": self.scale.frequency,
+            "step": self.step,
+            "colliding_keys": colliding,
+        }
+
+    def _unexpected_periods(self, base_set: set[int]) -> None:
+        step, _ = grid_step(self.base_pos)
+        if step is None and self.scale.frequency not in ("integer", "datetime"):
+            step = 1  # one base period on a calendar scale: the next period is one step on
+        self.step = step
+        if step is None:
+            return
+        first, last = self.base_pos[0], self.last_pos
+        fresh = [p for p in self.new_pos if p not in base_set]
+        later = [p for p in fresh if p > last]
+        expected = {last + step * k for k in range(1, len(later) + 1)}
+        problems = []
+        for p in fresh:
+            if p > last and p in expected:
+                continue
+            if (p - first) % step != 0:
+                why = f"is not on the base grid's step of {step}"
+            elif p < first:
+                why = "comes before the base's first period"
+            elif p < last:
+                why = "fills a period missing inside the base grid"
+            else:
+                skipped = [self._lab(q) for q in range(last + step, p, step) if q not in set(self.new_pos)]
+                why = f"skips {_labels_text(skipped)}" if skipped else "does not continue the grid"
+            problems.append({"period": self._lab(p), "reason": why})
+        if problems:
+            labels = [e["period"] for e in problems]
+            self.add(
+                "unexpected-period",
+                f"new period {_labels_text(labels)} does not continue the base grid "
+                f"(last {self._lab(last)}, step {step}): {problems[0]['reason']}; check the wave's period "
+                "labels before appending",
+                count=len(problems),
+                examples=problems[: self.examples],
+            )
+
+    # -- per column -----------------------------------------------------------------------
+    def _columns(self) -> list[dict[str, Any]]:
+        kinds = self._base_kinds()
+        tol = float(self.s.get("profile", "float_tolerance"))
+        inv = [c for c in self.compared if kinds.get(c) in INVARIANT_KINDS]
+        jump = [c for c in self.numeric if kinds.get(c) == "time-varying"]
+        jump_info = self._consistency(inv, jump, tol)
+        cat_info = self._categories(kinds)
+        out = []
+        for j, c in enumerate(self.compared):
+            out.append(self._distribution(j, c, kinds.get(c), jump_info.get(c), cat_info.get(c)))
+        return out
+
+    def _base_kinds(self) -> dict[str, str]:
+        cols = getattr(self.prof, "columns", None)
+        if not isinstance(cols, pl.DataFrame) or "name" not in cols.columns or "kind" not in cols.columns:
+            return {}
+        self.base_distinct = (
+            dict(zip(cols["name"].to_list(), cols["distinct"].to_list(), strict=True))
+            if "distinct" in cols.columns
+            else {}
+        )
+        return dict(zip(cols["name"].to_list(), cols["kind"].to_list(), strict=True))
+
+    def _consistency(self, inv: list[str], jump: list[str], tol: float) -> dict[str, dict[str, Any]]:
+        """invariant-changed and implausible-jump findings; the jump scales by column."""
+        cols = [*inv, *jump]
+        if not cols:
+            return {}
+        narrow = self.B.select(UNIT_ID, POS, *cols).sort(UNIT_ID, POS)
+        base_last = narrow.group_by(UNIT_ID).agg([pl.col(c).drop_nulls().last().alias(c) for c in cols])
+        new_first = (
+            self.N.filter(pl.col(BASE_UNIT).is_not_null())
+            .select(BASE_UNIT, POS, *cols)
+            .sort(BASE_UNIT, POS)
+            .group_by(BASE_UNIT)
+            .agg([pl.col(c).drop_nulls().first().alias(c) for c in cols])
+        )
+        both = new_first.join(
+            base_last.rename({c: f"{c}\x00base" for c in cols}), left_on=BASE_UNIT, right_on=UNIT_ID, how="inner"
+        ).join(self.bunits.rename({UNIT_ID: BASE_UNIT}), on=BASE_UNIT, how="left")
+        info: dict[str, dict[str, Any]] = {}
+        # invariant columns: any difference between the last base value and the first new value
+        if inv:
+            diffs = []
+            for c in inv:
+                a, b = pl.col(f"{c}\x00base"), pl.col(c)
+                if c in self.numeric:
+                    d = (b - a).abs() > tol * (1 + a.abs())
+                else:
+                    d = a != b
+                diffs.append((a.is_not_null() & b.is_not_null() & d).alias(f"{c}\x00diff"))
+            flagged = both.with_columns(diffs)
+            counts = flagged.select([pl.col(f"{c}\x00diff").sum() for c in inv]).row(0)
+            for c, n in zip(inv, counts, strict=True):
+                info[c] = {"changed_units": int(n)}
+                if not n:
+                    continue
+                ex = flagged.filter(pl.col(f"{c}\x00diff")).sort(self.nkeys).head(self.examples)
+                examples = [
+                    {**{u: r[k] for u, k in zip(self.units, self.nkeys, strict=True)},
+                     "base": _json_value(r[f"{c}\x00base"]), "new": _json_value(r[c])}
+                    for r in ex.iter_rows(named=True)
+                ]
+                self.add(
+                    "invariant-changed",
+                    f"'{c}' does not change within units in the base, but {_plural(int(n), 'returning unit')} "
+                    "report a different value in the new wave; a fixed-effects model would read these as "
+                    "real changes: confirm them with the source or keep the base value",
+                    column=c,
+                    count=int(n),
+                    examples=examples,
+                )
+        if jump:
+            cut = float(self.get("jump_mads"))
+            same_unit = pl.col(UNIT_ID) == pl.col(UNIT_ID).shift(1)
+            d = narrow.select([pl.when(same_unit).then(pl.col(c) - pl.col(c).shift(1)).alias(c) for c in jump])
+            med = d.select([pl.col(c).median() for c in jump]).row(0)
+            mad = d.select([(pl.col(c) - m).abs().median() for c, m in zip(jump, med, strict=True)]).row(0)
+            zs = []
+            for c, m, s in zip(jump, med, mad, strict=True):
+                scale = None if s is None or m is None else MAD_TO_SD * float(s)
+                info[c] = {"change_median": _num(m), "change_scale": _num(scale)}
+                if not scale:
+                    zs.append(pl.lit(None, dtype=pl.Float64).alias(f"{c}\x00z"))
+                    continue
+                zs.append((((pl.col(c) - pl.col(f"{c}\x00base")) - m).abs() / scale).alias(f"{c}\x00z"))
+            zed = both.with_columns(zs)
+            for c in jump:
+                hit = zed.filter(pl.col(f"{c}\x00z") > cut)
+                info[c]["implausible_jumps"] = hit.height
+                if not hit.height:
+                    continue
+                ex = hit.sort(f"{c}\x00z", descending=True).head(self.examples)
+                examples = [
+                    {**{u: r[k] for u, k in zip(self.units, self.nkeys, strict=True)},
+                     "base": _json_value(r[f"{c}\x00base"]), "new": _json_value(r[c]),
+                     "robust_z": round(float(r[f"{c}\x00z"]), 2)}
+                    for r in ex.iter_rows(named=True)
+                ]
+                self.add(
+                    "implausible-jump",
+                    f"'{c}' jumps for {_plural(hit.height, 'returning unit')} by more than {cut:g} robust "
+                    "deviations of the base's own period-to-period changes; check for a unit or entry "
+                    "error (a missed decimal, another measure) before appending",
+                    column=c,
+                    count=hit.height,
+                    examples=examples,
+                )
+        return info
+
+    def _categories(self, kinds: dict[str, str]) -> dict[str, dict[str, Any]]:
+        max_levels = int(self.get("category_max_levels"))
+        min_expected = float(self.get("vanished_min_expected"))
+        distinct = getattr(self, "base_distinct", {})
+        info: dict[str, dict[str, Any]] = {}
+        n_new = self.N.height
+        for c in self.levels:
+            nb = distinct.get(c)
+            base_levels = self.B.select(pl.col(c).drop_nulls().unique()).to_series()
+            if nb is None:
+                nb = base_levels.len()
+            if nb > max_levels:
+                info[c] = {"levels_checked": False}
+                continue
+            new_counts = self.N.group_by(c).agg(pl.len().alias("n")).filter(pl.col(c).is_not_null())
+            fresh = new_counts.filter(~pl.col(c).is_in(base_levels.implode())).sort("n", c, descending=[True, False])
+            ref_counts = self.ref.group_by(c).agg(pl.len().alias("n")).filter(pl.col(c).is_not_null())
+            ref_total = max(int(ref_counts.get_column("n").sum()), 1)
+            gone = (
+                ref_counts.filter(~pl.col(c).is_in(new_counts.get_column(c).implode()))
+                .with_columns((pl.col("n") / ref_total * n_new).alias("expected"))
+                .filter(pl.col("expected") >= min_expected)
+                .sort("n", c, descending=[True, False])
+            )
+            info[c] = {"levels_checked": True, "new_levels": fresh.height, "vanished_levels": gone.height}
+            if fresh.height:
+                rows = int(fresh.get_column("n").sum())
+                self.add(
+                    "new-categories",
+                    f"'{c}' has {_plural(fresh.height, 'level')} never seen in the base "
+                    f"({short_list(fresh.get_column(c).head(6).to_list(), 6)}; {_plural(rows, 'row')}); "
+                    "map them to the base's code list or document the new codes before appending",
+                    column=c,
+                    count=fresh.height,
+                    examples=[{"level": r[c], "rows": int(r["n"])} for r in fresh.head(self.examples).iter_rows(named=True)],
+                )
+            if gone.height:
+                self.add(
+                    "vanished-categories",
+                    f"'{c}' has {_plural(gone.height, 'level')} of base period {self._lab(self.last_pos)} that no "
+                    f"row of the new wave uses ({short_list(gone.get_column(c).head(6).to_list(), 6)}); check "
+                    "whether the code list was changed or merged",
+                    column=c,
+                    count=gone.height,
+                    examples=[
+                        {"level": r[c], "rows_in_reference": int(r["n"]), "expected_new_rows": round(float(r["expected"]), 1)}
+                        for r in gone.head(self.examples).iter_rows(named=True)
+                    ],
+                )
+        return info
+
+    def _distribution(
+        self, j: int, c: str, kind: str | None, jump: dict[str, Any] | None, cats: dict[str, Any] | None
+    ) -> dict[str, Any]:
+        bins = int(self.get("psi_bins"))
+        smoothing = float(self.get("psi_smoothing"))
+        miss = f"__pa_miss_{j}"
+        ref_rows, new_rows = self.ref.height, self.N.height
+        mb = float(self.ref.get_column(miss).mean()) if ref_rows else math.nan
+        mn = float(self.N.get_column(miss).mean()) if new_rows else math.nan
+        ks_stat = ks_p = math.nan
+        if c in self.numeric:
+            a = self.ref.get_column(c).drop_nulls().to_numpy()
+            b = self.N.get_column(c).drop_nulls().to_numpy()
+            ks_stat, ks_p = ks_two_sample(a, b)
+            psi = numeric_psi(a, b, bins=bins, smoothing=smoothing)
+            kind_cmp = "numeric"
+            nb, nn = a.size, b.size
+        else:
+            bc = self.ref.group_by(c).agg(pl.len().alias("n")).filter(pl.col(c).is_not_null())
+            nc = self.N.group_by(c).agg(pl.len().alias("n")).filter(pl.col(c).is_not_null())
+            bd = dict(zip(bc[c].to_list(), bc["n"].to_list(), strict=True))
+            nd = dict(zip(nc[c].to_list(), nc["n"].to_list(), strict=True))
+            max_levels = int(self.get("category_max_levels"))
+            if len(bd) > max_levels:
+                psi = math.nan
+            else:
+                psi = level_psi(bd, nd, smoothing=smoothing)
+            kind_cmp = "levels"
+            nb, nn = sum(bd.values()), sum(nd.values())
+        ref = f"base period {self._lab(self.last_pos)}"
+        cut = float(self.get("psi_shift"))
+        if math.isfinite(psi) and psi > cut:
+            self.add(
+                "distribution-shift",
+                f"the distribution of '{c}' in the new wave differs from {ref} (stability index "
+                f"{psi:.2f} > {cut:g}); check for a changed question, unit of measure or coding before "
+                "appending",
+                column=c,
+                count=nn,
+            )
+        jump_amount = float(self.get("missing_jump"))
+        if math.isfinite(mb) and math.isfinite(mn) and mn - mb > jump_amount:
+            self.add(
+                "missing-jump",
+                f"'{c}' is missing in {mn:.1%} of the new wave's rows against {mb:.1%} in {ref}; find out "
+                "why (a skipped question, a broken export) before appending",
+                column=c,
+                count=int(round(mn * new_rows)),
+            )
+        row: dict[str, Any] = {
+            "column": c,
+            "compared_as": kind_cmp,
+            "base_kind": kind,
+            "reference": ref,
+            "n_base": int(nb),
+            "n_new": int(nn),
+            "ks_statistic": _num(ks_stat),
+            "ks_p": _num(ks_p, 8),
+            "psi": _num(psi),
+            "missing_base": _num(mb),
+            "missing_new": _num(mn),
+        }
+        if jump:
+            row.update(jump)
+        if cats:
+            row.update(cats)
+        return row
+
+    # -- merged ---------------------------------------------------------------------------
+    def _merged_profile(self) -> tuple[tuple[Finding, ...], dict[str, Any] | None]:
+        bs, ns = self.bp.schema, self.np.schema
+        keys = (*self.units, self.time)
+        bf = self.bp.frame.drop([c for c in INTERNAL if c in self.bp.frame.columns])
+        nf = self.np.frame.drop([c for c in INTERNAL if c in self.np.frame.columns])
+        bcast, ncast = [], []
+        for c in set(bs) & set(ns):
+            if bs[c] == ns[c]:
+                continue
+            if c in keys:
+                expr_b = _key_text(c, bs[c]).alias(c) if c in self.units else pl.col(c).cast(pl.String)
+                expr_n = _key_text(c, ns[c]).alias(c) if c in self.units else pl.col(c).cast(pl.String)
+            elif _is_numeric(bs[c]) and _is_numeric(ns[c]):
+                expr_b, expr_n = pl.col(c).cast(pl.Float64), pl.col(c).cast(pl.Float64)
+            else:
+                expr_b, expr_n = pl.col(c).cast(pl.String), pl.col(c).cast(pl.String)
+            bcast.append(expr_b)
+            ncast.append(expr_n)
+        if bcast:
+            bf, nf = bf.with_columns(bcast), nf.with_columns(ncast)
+        both = pl.concat([bf, nf], how="diagonal_relaxed")
+        prof = _profile(both, self.units, self.time, self.s)
+        marked = tuple(
+            dataclasses.replace(f, message=f"base + new: {f.message}") for f in getattr(prof, "findings", ())
+        )
+        panel = getattr(prof, "panel", None)
+        return marked, (dict(panel) if isinstance(panel, dict) else None)
