@@ -590,13 +590,19 @@ class _Comparison:
                 count=after_gap.height,
                 examples=examples,
             )
-        if not_returning.height:
+        # Of the units the base holds in its last period, those the new wave does not bring back.
+        in_last = self.B.filter(pl.col(POS) == self.last_pos).select(UNIT_ID).unique()
+        left_last = (
+            not_returning.join(in_last, on=UNIT_ID, how="semi").sort(self.nkeys)
+        )
+        if left_last.height:
             self.add(
                 "units-not-returning",
-                f"{_plural(not_returning.height, 'base unit')} are not in the new wave; if they left the "
-                "survey, attrition may select the sample: compare their base answers with the stayers'",
-                count=not_returning.height,
-                examples=self._unit_examples(not_returning.sort(self.nkeys)),
+                f"{_plural(left_last.height, 'unit')} of base period {self._lab(self.last_pos)} "
+                f"{'is' if left_last.height == 1 else 'are'} not in the new wave; if they left the survey, "
+                "attrition may select the sample: compare their base answers with the stayers'",
+                count=left_last.height,
+                examples=self._unit_examples(left_last),
             )
         return {
             "base": self.bunits.height,
@@ -605,6 +611,8 @@ class _Comparison:
             "entering": entering,
             "not_returning": not_returning.height,
             "returning_after_absence": after_gap.height,
+            "last_period": in_last.height,
+            "not_returning_from_last_period": left_last.height,
         }
 
     # -- periods --------------------------------------------------------------------------
@@ -764,37 +772,43 @@ class _Comparison:
             base_last.rename({c: f"{c}\x00base" for c in cols}), left_on=BASE_UNIT, right_on=UNIT_ID, how="inner"
         ).join(self.bunits.rename({UNIT_ID: BASE_UNIT}), on=BASE_UNIT, how="left")
         info: dict[str, dict[str, Any]] = {}
-        # invariant columns: any difference between the last base value and the first new value
-        if inv:
-            diffs = []
-            for c in inv:
-                a, b = pl.col(f"{c}\x00base"), pl.col(c)
-                if c in self.numeric:
-                    d = (b - a).abs() > tol * (1 + a.abs())
-                else:
-                    d = a != b
-                diffs.append((a.is_not_null() & b.is_not_null() & d).alias(f"{c}\x00diff"))
-            flagged = both.with_columns(diffs)
-            counts = flagged.select([pl.col(f"{c}\x00diff").sum() for c in inv]).row(0)
-            for c, n in zip(inv, counts, strict=True):
-                info[c] = {"changed_units": int(n)}
-                if not n:
-                    continue
-                ex = flagged.filter(pl.col(f"{c}\x00diff")).sort(self.nkeys).head(self.examples)
-                examples = [
-                    {**{u: r[k] for u, k in zip(self.units, self.nkeys, strict=True)},
-                     "base": _json_value(r[f"{c}\x00base"]), "new": _json_value(r[c])}
-                    for r in ex.iter_rows(named=True)
-                ]
-                self.add(
-                    "invariant-changed",
-                    f"'{c}' does not change within units in the base, but {_plural(int(n), 'returning unit')} "
-                    "report a different value in the new wave; a fixed-effects model would read these as "
-                    "real changes: confirm them with the source or keep the base value",
-                    column=c,
-                    count=int(n),
-                    examples=examples,
-                )
+        # Invariant columns: a returning unit changes when its first new value is none of the
+        # values it ever reported in the base (so a one-season typo in the base is not
+        # held against a correct new value).
+        for c in inv:
+            pairs = narrow.select(UNIT_ID, pl.col(c).alias("__pa_b")).drop_nulls().unique()
+            cand = both.select(BASE_UNIT, *self.nkeys, c, f"{c}\x00base").filter(pl.col(c).is_not_null())
+            matched = cand.join(pairs, left_on=BASE_UNIT, right_on=UNIT_ID, how="inner")
+            if c in self.numeric:
+                same = (pl.col(c) - pl.col("__pa_b")).abs() <= tol * (1 + pl.col("__pa_b").abs())
+            else:
+                same = pl.col(c) == pl.col("__pa_b")
+            seen = matched.filter(same).select(BASE_UNIT).unique()
+            # units with base values for c, none of them equal to the new one
+            has_base = matched.select(BASE_UNIT).unique()
+            changed = (
+                cand.join(has_base, on=BASE_UNIT, how="semi")
+                .join(seen, on=BASE_UNIT, how="anti")
+                .sort(self.nkeys)
+            )
+            n = changed.height
+            info[c] = {"changed_units": n}
+            if not n:
+                continue
+            examples = [
+                {**{u: r[k] for u, k in zip(self.units, self.nkeys, strict=True)},
+                 "base": _json_value(r[f"{c}\x00base"]), "new": _json_value(r[c])}
+                for r in changed.head(self.examples).iter_rows(named=True)
+            ]
+            self.add(
+                "invariant-changed",
+                f"'{c}' does not change within units in the base, but {_plural(n, 'returning unit')} "
+                "report a value in the new wave they never reported before; a fixed-effects model would "
+                "read these as real changes: confirm them with the source or keep the base value",
+                column=c,
+                count=n,
+                examples=examples,
+            )
         if jump:
             cut = float(self.get("jump_mads"))
             same_unit = pl.col(UNIT_ID) == pl.col(UNIT_ID).shift(1)
@@ -915,7 +929,8 @@ class _Comparison:
             nb, nn = sum(bd.values()), sum(nd.values())
         ref = f"base period {self._lab(self.last_pos)}"
         cut = float(self.get("psi_shift"))
-        if math.isfinite(psi) and psi > cut:
+        # A period-only column changes with the period by definition: its shift is no alarm.
+        if math.isfinite(psi) and psi > cut and kind != "period-only":
             self.add(
                 "distribution-shift",
                 f"the distribution of '{c}' in the new wave differs from {ref} (stability index "
