@@ -100,12 +100,14 @@ class CompareResult:
         """The contract's JSON document (plus ``reference``, ``rows`` and a ``scope`` per finding)."""
         from auditor import __version__
 
+        from auditor.report.jsonout import clean
+
         findings = []
         for f in self.findings:
             d = f.to_dict()
             d["scope"] = self.scope_of(f)
             findings.append(d)
-        return {
+        return clean({
             "tool": {"name": "panel-audit", "version": __version__},
             "unit": list(self.unit),
             "time": self.time,
@@ -118,7 +120,7 @@ class CompareResult:
             "columns": [dict(c) for c in self.columns],
             "merged": None if self.merged_panel is None else {"panel": self.merged_panel},
             "findings": findings,
-        }
+        })
 
 
 # --- stability index and distance ----------------------------------------------------
