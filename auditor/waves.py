@@ -99,7 +99,6 @@ class CompareResult:
     def to_dict(self) -> dict[str, Any]:
         """The contract's JSON document (plus ``reference``, ``rows`` and a ``scope`` per finding)."""
         from auditor import __version__
-
         from auditor.report.jsonout import clean
 
         findings = []
