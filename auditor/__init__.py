@@ -6,6 +6,8 @@ The public entry points are imported lazily so that ``import auditor`` and
 
 from __future__ import annotations
 
+import sys
+import types
 from typing import TYPE_CHECKING, Any
 
 __version__ = "0.1.0"
@@ -34,3 +36,20 @@ def __getattr__(name: str) -> Any:
 
         return check
     raise AttributeError(f"module 'auditor' has no attribute {name!r}")
+
+
+class _Package(types.ModuleType):
+    """Keeps ``auditor.profile`` the function after the submodule of that name is imported.
+
+    Importing ``auditor.profile`` (the module) would otherwise bind the module over
+    the public function; ``from auditor.profile import ...`` still works through
+    ``sys.modules``.
+    """
+
+    def __setattr__(self, name: str, value: Any) -> None:
+        if name == "profile" and isinstance(value, types.ModuleType):
+            return
+        super().__setattr__(name, value)
+
+
+sys.modules[__name__].__class__ = _Package

@@ -82,10 +82,9 @@ class Panel:
         """Key values of the units with the given codes, as dicts (for examples)."""
         if not codes:
             return []
-        sub = self.units.filter(pl.col(UNIT_ID).is_in(list(codes)))
-        order = {c: i for i, c in enumerate(codes)}
-        rows = sorted(sub.iter_rows(named=True), key=lambda r: order[r[UNIT_ID]])
-        return [{k: r[k] for k in self.unit} for r in rows]
+        wanted = pl.DataFrame({UNIT_ID: pl.Series(list(codes), dtype=pl.UInt32)})
+        rows = wanted.join(self.units, on=UNIT_ID, how="left", maintain_order="left")
+        return [{k: r[k] for k in self.unit} for r in rows.iter_rows(named=True)]
 
 
 def parse_unit(unit: str | Sequence[str]) -> tuple[str, ...]:
