@@ -33,6 +33,7 @@ PANEL_KEYS: dict[str, str] = {
     "max_attrition": "a share between 0 and 1",
     "max_duplicate_keys": "a whole number, at least 0",
     "max_missing_keys": "a whole number, at least 0",
+    "only_listed_columns": "true or false",
 }
 
 COLUMN_KEYS: dict[str, str] = {
@@ -67,6 +68,7 @@ class PanelRules:
     max_attrition: float | None = None
     max_duplicate_keys: int | None = None
     max_missing_keys: int | None = None
+    only_listed_columns: bool = False
 
 
 @dataclass(frozen=True)
@@ -217,7 +219,7 @@ class _Reader:
                     out[f"{rk}_period"] = rv
             elif key in ("min_units", "max_duplicate_keys", "max_missing_keys"):
                 out[key] = self.whole(v, keys, 0)
-            elif key == "balanced":
+            elif key in ("balanced", "only_listed_columns"):
                 out[key] = self.flag(v, keys)
             elif key == "max_attrition":
                 out[key] = self.share(v, keys)
@@ -334,6 +336,8 @@ def read_contract(path: str | Path) -> tuple[Contract, Any]:
 
     settings = load_settings(path)  # checks the top level, thresholds and severities
     data, root = read_yaml(path)
+    if data is None:
+        data = {}
     if not isinstance(data, dict):
         raise fail("rules-not-mapping", path=path, found=type(data).__name__)
     return parse_contract(data, path, root), settings

@@ -61,6 +61,22 @@ CATALOGUE: dict[str, str] = {
         "new-wave values such as {new}; write the periods the same way in both files"
     ),
     # --- check / rules ---------------------------------------------------------
+    "contract-empty": "rules file '{path}' holds no 'panel' or 'columns' part; there is no rule to check",
+    "contract-no-keys": (
+        "rules file '{path}' does not name the panel keys; add panel.unit and panel.time, "
+        "or pass --unit and --time"
+    ),
+    "contract-key-conflict": (
+        "--{key} {given} differs from the {key} key '{declared}' in rules file '{path}'; "
+        "drop the option or change the file"
+    ),
+    "contract-rule-kind": (
+        "rules file '{path}' line {line}: rule '{key}' of column '{column}' needs {expected}, "
+        "but the column holds {dtype}"
+    ),
+    "contract-engine": (
+        "great-expectations could not evaluate rule '{rule}' of column '{column}': {reason}"
+    ),
     # --- report ----------------------------------------------------------------
 }
 

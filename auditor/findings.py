@@ -84,6 +84,7 @@ CHECKS: dict[str, CheckSpec] = {
     ),
     "units-not-returning": CheckSpec("note", "compare", "base units absent from the new wave"),
     # --- check / rules ---------------------------------------------------------
+    "rule-failed": CheckSpec("error", "check", "a rule of a panel contract that the data breaks"),
 }
 
 
