@@ -86,7 +86,7 @@ STYLE: dict[str, Any] = {
     "path.simplify": True,
 }
 
-WIDTH = 7.6  # inches; the report's column width
+WIDTH = 9.0  # inches; the report's column width
 _CONTROL = re.compile(r"[\x00-\x1f\x7f-\x9f]")
 
 
@@ -180,7 +180,7 @@ def participation(
 
     title = "Which periods do the units take part in?"
     n_periods = len(period_values)
-    fig = _new_figure(3.6)
+    fig = _new_figure(4.0)
     ax = fig.axes[0]
     if patterns.height == 0 or n_periods == 0:
         return _empty(fig, ax, title, "no units with both keys present")
@@ -255,7 +255,7 @@ def periods_per_unit(obs_per_unit: pl.DataFrame, n_periods: int) -> Figure:
     """
     _mpl()
     title = "In how many periods is each unit observed?"
-    fig = _new_figure(2.7)
+    fig = _new_figure(3.0)
     ax = fig.axes[0]
     if obs_per_unit.height == 0:
         return _empty(fig, ax, title, "no units")
@@ -279,7 +279,7 @@ def periods_per_unit(obs_per_unit: pl.DataFrame, n_periods: int) -> Figure:
         handles.insert(0, Patch(color=VERMILLION, label="once (no within variation)"))
     if (t == n_periods).any():
         handles.append(Patch(color=BLUE, label="every period"))
-    fig.legend(handles=handles, loc="outside upper right", ncols=len(handles))
+    ax.legend(handles=handles, loc="upper left", ncols=len(handles))
     return fig
 
 
@@ -307,7 +307,7 @@ def entry_exit(attrition: Sequence[Mapping[str, Any]]) -> Figure:
     import numpy as np
 
     title = "How many units are present, entering and leaving in each period?"
-    fig = _new_figure(3.8, nrows=2, height_ratios=[1.0, 1.15])
+    fig = _new_figure(4.2, nrows=2, height_ratios=[1.0, 1.15])
     top, low = fig.axes
     if not attrition:
         return _empty(fig, top, title, "no periods")
@@ -406,7 +406,7 @@ def within_shares(columns: pl.DataFrame, *, max_columns: int = 40) -> Figure:
 
     present = [k for k in KIND_COLOURS if k in set(kinds)]
     for yi, v in zip(y, share, strict=True):
-        ax.text(v, yi, f" {v:.1%}", va="center", ha="left", fontsize=7, color=MUTED)
+        ax.text(v, yi, f" {(v if v > 0 else 0.0):.1%}", va="center", ha="left", fontsize=7, color=MUTED)
     fig.legend(handles=[Patch(color=KIND_COLOURS[k], label=k) for k in present],
                loc="outside lower center", ncols=len(present))
     return fig
@@ -431,7 +431,7 @@ def missing_map(
     """
     _mpl()
     import numpy as np
-    from matplotlib.colors import LinearSegmentedColormap
+    from matplotlib.colors import LinearSegmentedColormap, PowerNorm
 
     title = "Where are values missing, by column and period?"
     labels = [str(p) for p in period_values]
@@ -454,7 +454,9 @@ def missing_map(
     grid[cells["__row"].to_numpy(), cells["__col"].to_numpy()] = cells["missing_share"].to_numpy()
     cmap = LinearSegmentedColormap.from_list("missing", ["#F7F8FA", "#F5D28A", ORANGE, VERMILLION, "#5A1E00"])
     cmap.set_bad(PAPER)
-    image = ax.imshow(grid, aspect="auto", cmap=cmap, vmin=0.0, vmax=1.0, interpolation="nearest")
+    # a square-root scale, so that a few percent missing is visible beside 100 %
+    image = ax.imshow(grid, aspect="auto", cmap=cmap, norm=PowerNorm(0.5, vmin=0.0, vmax=1.0),
+                      interpolation="nearest")
     ax.set_yticks(np.arange(order.height), [plain(c, 30) for c in order["column"].to_list()])
     _period_axis(ax, labels)
     if grid.size <= 900:
@@ -471,6 +473,7 @@ def missing_map(
     bar.outline.set_visible(False)
     from matplotlib.ticker import PercentFormatter
 
+    bar.set_ticks([0.0, 0.05, 0.25, 0.5, 1.0])
     bar.formatter = PercentFormatter(1.0, decimals=0)
     bar.update_ticks()
     return fig
