@@ -50,6 +50,22 @@ CATALOGUE: dict[str, str] = {
     "output-is-input": "'{path}' is an input of this run; choose another output path",
     "output-unwritable": "cannot write '{path}': {reason}",
     # --- instruments -----------------------------------------------------------
+    "instruments-unknown-outcome": "outcome column '{column}' not found; columns are: {available}",
+    "instruments-unknown-regressor": "regressor '{column}' not found; columns are: {available}",
+    "instruments-no-regressors": "--regressors names no column; give at least one, e.g. --regressors a,b",
+    "instruments-regressor-repeated": "regressor '{column}' is named more than once in --regressors",
+    "instruments-key-as-regressor": "'{column}' is a key column ({role}) and cannot also be the outcome or a regressor",
+    "instruments-regressor-is-outcome": "'{column}' is the outcome and cannot also be a regressor; remove it from --regressors",
+    "instruments-outcome-not-numeric": "outcome '{column}' holds {dtype} values; the outcome must be numeric",
+    "instruments-regressor-unusable": "regressor '{column}' holds {dtype} values, which cannot enter a regression; convert it to numbers or text categories",
+    "instruments-not-a-regressor": "{option} names '{column}', which is not among --regressors ({regressors})",
+    "instruments-no-complete-rows": (
+        "no row has the outcome and every regressor present ({rows} rows with keys, {dropped} dropped); "
+        "check the missing values of {worst}"
+    ),
+    "instruments-one-unit": (
+        "only one unit ({unit}) has complete rows; within, between and random-effects fits need at least two units"
+    ),
     # --- compare ---------------------------------------------------------------
     "compare-key-missing": (
         "the {which} has no key column {missing}, so base and new wave share no key to compare on; "
@@ -78,6 +94,10 @@ CATALOGUE: dict[str, str] = {
         "great-expectations could not evaluate rule '{rule}' of column '{column}': {reason}"
     ),
     # --- report ----------------------------------------------------------------
+    "report-png-dir-not-folder": "--png-dir '{path}' is a file, not a folder; name a folder for the figures",
+    "report-model-needs-both": (
+        "the model readiness section needs both --outcome and --regressors; pass both, or neither"
+    ),
 }
 
 
