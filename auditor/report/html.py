@@ -159,7 +159,8 @@ def _as_dict(obj: Any) -> dict[str, Any] | None:
 
 @dataclass(frozen=True)
 class Limits:
-    """How much of each table and figure the page shows (from the ``report`` settings)."""
+    """How much of each table and figure the page shows (from the ``report`` settings),
+    and the first-stage F lines drawn (from the ``instruments`` settings)."""
 
     findings: int = 200
     columns: int = 400
@@ -185,8 +186,15 @@ class Limits:
         for name in cls.__dataclass_fields__:
             if name in section:
                 values[name] = section[name]
-        if "patterns" not in values and "patterns" in settings.thresholds.get("profile", {}):
-            values["patterns"] = settings.thresholds["profile"]["patterns"]
+        profile = settings.thresholds.get("profile", {})
+        if "patterns" in profile:
+            values["patterns"] = profile["patterns"]
+        # the F lines drawn are the ones the instruments check uses
+        inst = settings.thresholds.get("instruments", {})
+        if "rule_of_thumb_f" in inst:
+            values["f_rule_of_thumb"] = float(inst["rule_of_thumb_f"])
+        if "lee_f" in inst:
+            values["f_t_test"] = float(inst["lee_f"])
         return cls(**values)
 
 
