@@ -117,7 +117,7 @@ def compute_structure(panel: Panel, settings: Settings) -> Structure:
     pat = (
         per_unit.group_by("pattern")
         .agg(pl.len().alias("units"), pl.col(UNIT_ID).min().alias("first_unit"))
-        .sort(["units", "first_unit"], descending=[True, False])
+        .sort(["units", "pattern"], descending=[True, False])
     )
     first_units = pat["first_unit"].to_list()
     members = (
