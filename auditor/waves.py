@@ -468,7 +468,8 @@ class _Comparison:
         removed = [c for c in bcols if c not in ns]
         changed = []
         for c in [*keys, *[c for c in bcols if c in ns]]:
-            if bs[c] != ns[c]:
+            # A width change within one family (int32 vs int64) changes nothing when appending.
+            if _family(bs[c]) != _family(ns[c]):
                 changed.append(
                     {"column": c, "base": _dtype_name(bs[c]), "new": _dtype_name(ns[c]), "key": c in keys}
                 )
@@ -490,7 +491,7 @@ class _Comparison:
             )
         for ch in changed:
             c = ch["column"]
-            severe = ch["key"] and _family(bs[c]) != _family(ns[c])
+            severe = ch["key"]
             if ch["key"]:
                 what = (
                     f"key column '{c}' is {ch['base']} in the base and {ch['new']} in the new wave; "
@@ -735,8 +736,23 @@ class _Comparison:
     def _columns(self) -> list[dict[str, Any]]:
         kinds = self._base_kinds()
         tol = float(self.s.get("profile", "float_tolerance"))
-        inv = [c for c in self.compared if kinds.get(c) in INVARIANT_KINDS]
-        jump = [c for c in self.numeric if kinds.get(c) == "time-varying"]
+        # Columns held fixed within units: constant, time-invariant, and nearly-time-invariant
+        # ones where few units change (a column that is nearly invariant only because its within
+        # share is small still changes for most units, and is checked for jumps instead).
+        few = float(self.s.get("profile", "nearly_invariant_units_share"))
+        changing = getattr(self, "changing_share", {})
+
+        def fixed(c: str) -> bool:
+            k = kinds.get(c)
+            if k in ("constant", "time-invariant"):
+                return True
+            return k == "nearly-time-invariant" and changing.get(c, 0.0) <= few
+
+        inv = [c for c in self.compared if fixed(c)]
+        jump = [
+            c for c in self.numeric
+            if kinds.get(c) == "time-varying" or (kinds.get(c) == "nearly-time-invariant" and c not in inv)
+        ]
         jump_info = self._consistency(inv, jump, tol)
         cat_info = self._categories(kinds)
         out = []
@@ -753,6 +769,11 @@ class _Comparison:
             if "distinct" in cols.columns
             else {}
         )
+        if {"units_changing", "units_observed_twice"} <= set(cols.columns):
+            self.changing_share = {
+                r["name"]: (r["units_changing"] or 0) / r["units_observed_twice"] if r["units_observed_twice"] else 0.0
+                for r in cols.select("name", "units_changing", "units_observed_twice").iter_rows(named=True)
+            }
         return dict(zip(cols["name"].to_list(), cols["kind"].to_list(), strict=True))
 
     def _consistency(self, inv: list[str], jump: list[str], tol: float) -> dict[str, dict[str, Any]]:
