@@ -240,10 +240,16 @@ def within(pa: PanelArrays) -> tuple[Fit, np.ndarray]:
     return ols(xw, yw, pa.x_names, pa.codes, pa.n, df_resid=dfr)
 
 
-def between(pa: PanelArrays) -> tuple[Fit, np.ndarray]:
-    """OLS of the unit means of y on [1, X means, Z] with n rows; returns (Fit, residuals)."""
-    design = np.column_stack([np.ones(pa.n), pa.xbar, pa.zbar])
-    names = (CONST, *pa.x_names, *pa.z_names)
+def between(pa: PanelArrays, mean_columns: list[str] | None = None) -> tuple[Fit, np.ndarray]:
+    """OLS of the unit means of y on [1, X means, Z] with n rows; returns (Fit, residuals).
+
+    ``mean_columns`` limits the X means to those columns (default: every X), for
+    example to leave out means that are collinear with the constant.
+    """
+    cols = list(pa.x_names) if mean_columns is None else list(mean_columns)
+    xi = [pa.x_names.index(c) for c in cols]
+    design = np.column_stack([np.ones(pa.n), pa.xbar[:, xi], pa.zbar])
+    names = (CONST, *cols, *pa.z_names)
     return ols(design, pa.ybar, names, np.arange(pa.n), pa.n)
 
 
@@ -381,15 +387,21 @@ class Mundlak:
         return out
 
 
-def mundlak(pa: PanelArrays) -> Mundlak:
+def mundlak(pa: PanelArrays, mean_columns: list[str] | None = None, tested: list[str] | None = None) -> Mundlak:
     """The Mundlak regression and its joint and per-column tests of the X-mean coefficients.
 
-    Per-column t = coefficient / clustered se, two-sided normal p.
+    ``mean_columns``: the X columns whose unit means enter (default every X; leave out
+    means collinear with the rest). ``tested``: the means in the joint test and the
+    per-column rows (default every mean that enters). Per-column t = coefficient /
+    clustered se, two-sided normal p.
     """
-    mean_names = tuple(f"mean({c})" for c in pa.x_names)
-    design = np.column_stack([np.ones(pa.nobs), pa.x, pa.z, pa.xbar[pa.codes]])
+    cols = list(pa.x_names) if mean_columns is None else list(mean_columns)
+    tested_cols = cols if tested is None else [c for c in tested if c in cols]
+    xi = [pa.x_names.index(c) for c in cols]
+    mean_names = tuple(f"mean({c})" for c in cols)
+    design = np.column_stack([np.ones(pa.nobs), pa.x, pa.z, pa.xbar[pa.codes][:, xi]])
     fit, _ = ols(design, pa.y, (CONST, *pa.x_names, *pa.z_names, *mean_names), pa.codes, pa.n)
-    idx = fit.index(mean_names)
+    idx = fit.index([f"mean({c})" for c in tested_cols])
     b = fit.coef[idx]
     v = fit.cov_cluster[np.ix_(idx, idx)]
     joint = wald(b, v)
@@ -398,15 +410,19 @@ def mundlak(pa: PanelArrays) -> Mundlak:
         t = b / se
     rows = tuple(
         {"column": c, "coef": _num(bi), "t": _num(ti), "p": _num(2 * stats.norm.sf(abs(ti))) if np.isfinite(ti) else None}
-        for c, bi, ti in zip(pa.x_names, b, t, strict=True)
+        for c, bi, ti in zip(tested_cols, b, t, strict=True)
     )
     return Mundlak(fit, joint, rows)
 
 
-def hausman_within_random(wf: Fit, re: Fit) -> WaldTest:
-    """Hausman test of within against random effects on the time-varying coefficients."""
-    idx = re.index(wf.names)
-    return contrast(re.coef[idx], re.cov[np.ix_(idx, idx)], wf.coef, wf.cov)
+def hausman_within_random(wf: Fit, re: Fit, columns: list[str] | None = None) -> WaldTest:
+    """Hausman test of within against random effects on the time-varying coefficients.
+
+    ``columns`` limits the comparison (default every within coefficient).
+    """
+    cols = list(wf.names) if columns is None else list(columns)
+    i_re, i_w = re.index(cols), wf.index(cols)
+    return contrast(re.coef[i_re], re.cov[np.ix_(i_re, i_re)], wf.coef[i_w], wf.cov[np.ix_(i_w, i_w)])
 
 
 # --------------------------------------------------------------------------- Hausman-Taylor
@@ -429,21 +445,25 @@ def hausman_taylor(
     z1: list[str],
     z2: list[str],
     within_fit: Fit | None = None,
+    mean_instruments: list[str] | None = None,
 ) -> HausmanTaylor | None:
     """The Hausman-Taylor estimator exactly as methods.md section 4; None when k1 < g2.
 
-    Coefficients are ordered X1, X2, const, Z1, Z2. The Sargan statistic (N times the
+    Coefficients are ordered X1, X2, const, Z1, Z2. ``mean_instruments`` names the X1
+    columns whose unit means serve as instruments (default all X1; period dummies are
+    left out by the caller) and k1 counts them. The Sargan statistic (N times the
     uncentred R2 of the transformed residuals on the instruments) and the contrast
     with the within fit are given when k1 > g2, else None.
     """
-    k1, g2 = len(x1), len(z2)
+    means = list(x1) if mean_instruments is None else list(mean_instruments)
+    k1, g2 = len(means), len(z2)
     if k1 < g2:
         return None
     sub = pa.select(x1 + x2, z1 + z2)
     wf = within_fit if within_fit is not None and list(within_fit.names) == x1 + x2 else within(sub)[0]
     sigma2_e = wf.sigma2
     nx = len(x1) + len(x2)
-    xbar1 = sub.xbar[:, : len(x1)]
+    xbar1 = sub.xbar[:, [sub.x_names.index(c) for c in means]]
     zi = sub.zbar
     # step 2: unit-level 2SLS of d on [1, Z1, Z2], instruments [1, Z1, X1 means]
     d = sub.ybar - sub.xbar @ wf.coef if nx else sub.ybar.copy()
@@ -453,21 +473,59 @@ def hausman_taylor(
     _, r = tsls(design_u, instr_u, d, (CONST, *z1, *z2), unit_codes, sub.n)
     sigma2_u = max(0.0, float(np.mean(r**2)) - sigma2_e * float(np.mean(1.0 / sub.counts)))
     theta = _theta(sigma2_e, sigma2_u, sub.counts)
-    # steps 3-4: transformed 2SLS with A = [X - X means, X1 means, 1, Z1]
-    design, ys = _quasi_demean(sub, theta)
-    # reorder to X1, X2, const, Z1, Z2
-    design = np.column_stack([design[:, 1 : 1 + nx], design[:, :1], design[:, 1 + nx :]])
-    xw = sub.x - sub.xbar[sub.codes]
-    instr = np.column_stack([xw, xbar1[sub.codes], np.ones(sub.nobs), sub.z[:, : len(z1)]])
-    names = (*x1, *x2, CONST, *z1, *z2)
-    fit, e = tsls(design, instr, ys, names, sub.codes, sub.n)
+    fit, e, explained = _ht_final(sub, x1, x2, z1, z2, means, theta)
     sargan = hw = None
     if k1 > g2:
-        proj, *_ = np.linalg.lstsq(instr, e, rcond=None)
-        explained = instr @ proj
         stat = float(sub.nobs * (explained @ explained) / (e @ e))
         dof = k1 - g2
         sargan = WaldTest(stat, dof, float(stats.chi2.sf(stat, dof)))
         idx = list(range(nx))
         hw = contrast(fit.coef[idx], fit.cov[np.ix_(idx, idx)], wf.coef, wf.cov, df=dof)
     return HausmanTaylor(fit, Components(sigma2_u, sigma2_e, theta), sargan, hw)
+
+
+def _ht_final(
+    sub: PanelArrays, x1: list[str], x2: list[str], z1: list[str], z2: list[str], means: list[str],
+    theta: np.ndarray,
+) -> tuple[Fit, np.ndarray, np.ndarray]:
+    """Steps 3-4 of Hausman-Taylor: (fit, residuals, residuals projected on the instruments)."""
+    nx = len(x1) + len(x2)
+    design, ys = _quasi_demean(sub, theta)
+    # reorder to X1, X2, const, Z1, Z2
+    design = np.column_stack([design[:, 1 : 1 + nx], design[:, :1], design[:, 1 + nx :]])
+    xw = sub.x - sub.xbar[sub.codes]
+    xbar1 = sub.xbar[:, [sub.x_names.index(c) for c in means]]
+    instr = np.column_stack([xw, xbar1[sub.codes], np.ones(sub.nobs), sub.z[:, : len(z1)]])
+    names = (*x1, *x2, CONST, *z1, *z2)
+    fit, e = tsls(design, instr, ys, names, sub.codes, sub.n)
+    proj, *_ = np.linalg.lstsq(instr, e, rcond=None)
+    return fit, e, instr @ proj
+
+
+def instrument_difference(
+    pa: PanelArrays,
+    x1: list[str],
+    x2: list[str],
+    z1: list[str],
+    z2: list[str],
+    means: list[str],
+    candidate: str,
+    theta: np.ndarray,
+) -> WaldTest | None:
+    """Difference-in-Sargan (C) test of the unit mean of ``candidate`` as an instrument.
+
+    C = (e'P_A e - e_r'P_Ar e_r) / (e'e / N): the full Hausman-Taylor instrument set A
+    against the set without that mean, both at the full model's ``theta`` and scaled
+    by the full model's residual variance (Eichenbaum, Hansen and Singleton 1988;
+    Hayashi 2000, section 3.6); chi-square with 1 df. None when dropping the mean
+    leaves fewer instruments than Z2 columns (the restriction cannot be tested).
+    """
+    rest = [c for c in means if c != candidate]
+    if len(rest) < len(z2) or candidate not in means:
+        return None
+    sub = pa.select(x1 + x2, z1 + z2)
+    _, e, ex = _ht_final(sub, x1, x2, z1, z2, means, theta)
+    _, er, exr = _ht_final(sub, x1, x2, z1, z2, rest, theta)
+    scale = float(e @ e) / sub.nobs
+    stat = max(0.0, float(ex @ ex - exr @ exr) / scale)
+    return WaldTest(stat, 1, float(stats.chi2.sf(stat, 1)))

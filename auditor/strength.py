@@ -221,10 +221,12 @@ def z2_strength(
 
 def x2_first_stage(
     pa: models.PanelArrays, x1: list[str], x2: list[str], z1: list[str], theta: np.ndarray,
+    means: list[str] | None = None,
 ) -> list[dict[str, Any]]:
     """Observation-level first stage of each quasi-demeaned X2 column on the HT instruments.
 
-    Instruments A = [X - X means, X1 means, 1, Z1]. Per X2 column: ``own_f``, the
+    Instruments A = [X - X means, X1 means, 1, Z1]; ``means`` names the X1 columns
+    whose unit means enter (default all X1). Per X2 column: ``own_f``, the
     squared classical t of its own within deviation (its clustered variance is zero by
     construction, since within deviations sum to zero in every unit);
     ``other_f_cluster``, the unit-clustered Wald F (divided by its df) of the X1 means
@@ -232,15 +234,16 @@ def x2_first_stage(
     """
     if not x2:
         return []
+    mean_cols = list(x1) if means is None else list(means)
     th = theta[pa.codes]
     xcols = x1 + x2
     xi = [pa.x_names.index(c) for c in xcols]
     xw = pa.x[:, xi] - pa.xbar[pa.codes][:, xi]
     zi1 = [pa.z_names.index(c) for c in z1]
-    a = np.column_stack([xw, pa.xbar[pa.codes][:, [pa.x_names.index(c) for c in x1]], np.ones(pa.nobs),
+    a = np.column_stack([xw, pa.xbar[pa.codes][:, [pa.x_names.index(c) for c in mean_cols]], np.ones(pa.nobs),
                          pa.zbar[pa.codes][:, zi1]])
-    names = [f"dev({c})" for c in xcols] + [f"mean({c})" for c in x1] + ["const"] + list(z1)
-    other = [f"mean({c})" for c in x1] + list(z1)
+    names = [f"dev({c})" for c in xcols] + [f"mean({c})" for c in mean_cols] + ["const"] + list(z1)
+    other = [f"mean({c})" for c in mean_cols] + list(z1)
     out = []
     for c in x2:  # loop over the few X2 columns
         j = pa.x_names.index(c)
@@ -256,7 +259,7 @@ def x2_first_stage(
             {
                 "endogenous": c,
                 "role": "X2",
-                "instruments": [f"{c} (within deviation)"] + [f"{x} (unit mean)" for x in x1] + list(z1),
+                "instruments": [f"{c} (within deviation)"] + [f"{x} (unit mean)" for x in mean_cols] + list(z1),
                 "own_f": float(own_t**2),
                 "other_f_cluster": None if other_w.statistic is None else other_w.statistic / other_w.df,
                 "r2": 1.0 - float(e @ e) / tss if tss > 0 else None,
@@ -279,12 +282,15 @@ def candidates(
     size: int = 10,
     rule_of_thumb: float = 10.0,
     max_exhaustive: int = 12,
+    validity_p: dict[str, float | None] | None = None,
 ) -> tuple[list[dict[str, Any]], list[dict[str, Any]]]:
     """Per (Z2, X1) the partial F of that X1 mean alone, its Mundlak p and whether it is usable;
     and per Z2 the suggested set.
 
     A candidate is unusable when its Mundlak p is below ``alpha`` (it behaves like X2,
-    so as an instrument it would be correlated with u_i). The suggestion is the set of
+    so as an instrument it would be correlated with u_i). ``validity_p`` replaces the
+    Mundlak p for the columns it holds a value for (the caller passes the
+    difference-in-Sargan p there; rows then say ``usable_basis: "c-test"``). The suggestion is the set of
     usable candidates whose joint partial F is largest relative to its critical value
     (Stock-Yogo for that many instruments, else the rule of thumb): every subset when
     there are at most ``max_exhaustive`` usable candidates, a greedy forward search
@@ -326,11 +332,13 @@ def candidates(
         usable_idx = []
         for i, x in enumerate(x1):
             p = mundlak_p.get(x)
-            usable = p is None or p >= alpha
+            cp = (validity_p or {}).get(x)
+            evidence, basis = (cp, "c-test") if cp is not None else (p, "mundlak")
+            usable = evidence is None or evidence >= alpha
             if usable:
                 usable_idx.append(i)
             rows.append({"endogenous": col, "instrument": x, "partial_f": joint((i,)), "mundlak_p": p,
-                         "usable": bool(usable)})
+                         "c_p": cp, "usable_basis": basis, "usable": bool(usable)})
 
         def score(subset: tuple[int, ...]) -> float:
             f = joint(subset)
