@@ -51,6 +51,41 @@ CHECKS: dict[str, CheckSpec] = {
     "schema-mismatch": CheckSpec("warning", "profile", "wave files whose column types differ"),
     "column-all-missing": CheckSpec("warning", "profile", "a column with no value at all"),
     # --- instruments -----------------------------------------------------------
+    "order-condition": CheckSpec(
+        "error", "instruments", "fewer exogenous time-varying regressors (X1) than correlated time-invariant ones (Z2)"
+    ),
+    "weak-instrument": CheckSpec("warning", "instruments", "a Z2 column whose first-stage F is below its critical value"),
+    "invalid-instrument": CheckSpec(
+        "warning", "instruments", "an X1 column whose Mundlak coefficient says it is correlated with the unit effect"
+    ),
+    "overidentification-rejected": CheckSpec(
+        "warning", "instruments", "the Sargan or within-vs-Hausman-Taylor test rejects the instruments"
+    ),
+    "not-identified": CheckSpec("warning", "instruments", "a regressor whose coefficient the data cannot identify"),
+    "correlated-with-effect": CheckSpec(
+        "warning", "instruments", "Mundlak evidence that regressors are correlated with the unit effect"
+    ),
+    "random-effects-rejected": CheckSpec(
+        "warning", "instruments", "the Hausman test rejects random effects against within"
+    ),
+    "hausman-not-positive-definite": CheckSpec(
+        "note", "instruments", "a Hausman covariance difference that is not positive definite"
+    ),
+    "outcome-time-invariant": CheckSpec("error", "instruments", "an outcome that never changes within a unit"),
+    "too-few-units": CheckSpec("error", "instruments", "fewer units than unit-level parameters"),
+    "correlated-not-declared": CheckSpec(
+        "note", "instruments", "no --correlated given: X2 suggested from the data, Z2 must be declared"
+    ),
+    "nearly-invariant-regressor": CheckSpec(
+        "warning", "instruments", "a nearly-time-invariant regressor used as time-varying"
+    ),
+    "weak-within-variation": CheckSpec(
+        "warning", "instruments", "an X2 column with little within variation to instrument itself"
+    ),
+    "rows-dropped": CheckSpec("note", "instruments", "rows left out because the outcome or a regressor is missing"),
+    "treated-as-invariant": CheckSpec(
+        "note", "instruments", "a column replaced by its most common value within each unit"
+    ),
     # --- compare ---------------------------------------------------------------
     # (compare also reuses duplicate-keys and missing-keys, for the new wave's own rows)
     "overlapping-periods": CheckSpec(
