@@ -447,7 +447,8 @@ def _run(panel: Panel, outcome: str, regs: list[str], corr: list[str] | None, pe
         estimates["between"] = bf.to_dict()
         mundlak_tested = [c for c in x_user if c in mean_columns]
         mu = models.mundlak(pa, mean_columns, tested=mundlak_tested)
-        tests["mundlak"] = mu.to_dict()
+        tests["mundlak"] = {**mu.to_dict(), "alpha": alpha,
+                            "flagged": [r["column"] for r in mu.per_column if r["p"] is not None and r["p"] < alpha]}
         estimates["mundlak"] = mu.fit.to_dict()
         if wf is not None:
             re, comp = models.random_effects(pa, wf, bf)
@@ -512,7 +513,7 @@ def _run(panel: Panel, outcome: str, regs: list[str], corr: list[str] | None, pe
                 f"(p = {mu.joint.p:.3g}), so some regressors are correlated with the unit effect and random "
                 "effects would be biased.",
                 count=sum(1 for r in mu.per_column if r["p"] is not None and r["p"] < alpha),
-                examples=[{"column": r["column"], "p": r["p"]} for r in mu.per_column
+                examples=[{"column": r["column"], "p": float(f"{r['p']:.3g}")} for r in mu.per_column
                           if r["p"] is not None and r["p"] < alpha][:n_examples],
             ))
     # ---- Hausman-Taylor
