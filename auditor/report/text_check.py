@@ -24,8 +24,14 @@ def _example_text(example: dict[str, Any]) -> str:
     return ", ".join(f"{k}={safe(v)}" for k, v in example.items())
 
 
-def render(result: CheckResult, width: int = 100, color: bool = False) -> str:
-    """The check result as terminal text, at most ``width`` characters a line."""
+def render(
+    result: CheckResult, width: int = 100, colour: bool = False, *, color: bool | None = None
+) -> str:
+    """The check result as terminal text, at most ``width`` characters a line.
+
+    ``colour`` (or its spelling ``color``) turns ANSI styles on.
+    """
+    color = colour if color is None else color
     width = max(60, width)
     broken = result.failed
     total = len(result.rules)
