@@ -398,3 +398,41 @@ def test_keys_given_and_declared_must_agree(tmp_path):
     # keys may come from the call when the contract leaves them out
     bare = write(tmp_path, "columns:\n  age: {min: 0}\n", name="bare.yaml")
     assert check(_hand_panel(), rules=bare, unit="u", time="t").passed
+
+
+# --- the shipped example contract ---------------------------------------------------
+
+EXAMPLES = Path(__file__).resolve().parent.parent / "examples"
+
+
+def test_example_contract_breaks_exactly_the_planted_faults():
+    # planted sizes: auditor/demo_data.py PLANTED (listed in examples/README.md)
+    from auditor.demo_data import PLANTED
+
+    res = check(EXAMPLES / "orchards.csv", rules=EXAMPLES / "orchards_contract.yaml")
+    failed = {(r.rule, r.column): r.failing for r in res.failed}
+    assert failed == {
+        ("max_missing_keys", None): PLANTED["null_unit_rows"] + PLANTED["null_season_rows"],
+        ("max_duplicate_keys", None): PLANTED["duplicate_rows"],
+        ("invariant", "founder_training_yrs"): PLANTED["training_errors"],
+    }
+
+
+def test_example_contract_on_the_next_season_names_its_planted_changes():
+    from auditor.demo_data import PLANTED_NEXT
+
+    res = check(EXAMPLES / "orchards_next_season.csv", rules=EXAMPLES / "orchards_contract.yaml")
+    failed = {(r.rule, r.column): r.failing for r in res.failed}
+    nxt = pl.read_csv(EXAMPLES / "orchards_next_season.csv")
+    assert failed == {
+        ("allowed", "soil_class"): PLANTED_NEXT["new_soil_code"],
+        ("max_missing", "labour_days"): int(nxt["labour_days"].is_null().sum()),  # polars oracle
+    }
+
+
+def test_example_contract_thresholds_reach_the_settings():
+    from auditor.contract import read_contract
+
+    _, settings = read_contract(EXAMPLES / "orchards_contract.yaml")
+    assert settings.get("profile", "high_missing_share") == 0.10
+    assert settings.severity("few-switchers", "warning") == "note"
