@@ -436,3 +436,20 @@ def test_example_contract_thresholds_reach_the_settings():
     _, settings = read_contract(EXAMPLES / "orchards_contract.yaml")
     assert settings.get("profile", "high_missing_share") == 0.10
     assert settings.severity("few-switchers", "warning") == "note"
+
+
+def test_readme_example_contract_is_valid(tmp_path):
+    import re
+
+    text = (EXAMPLES.parent / "README.md").read_text(encoding="utf-8")
+    section = text.split("## Panel contracts", 1)[1].split("\n## ", 1)[0]
+    block = re.findall(r"```yaml\n(.*?)```", section, flags=re.S)
+    assert len(block) == 1
+    from auditor.contract import read_contract
+
+    contract, settings = read_contract(write(tmp_path, block[0]))
+    names = [c.name for c in contract.columns]
+    assert names == ["orchard_id", "labour_days", "soil_class", "tree_age", "registry_code", "visited"]
+    assert contract.columns[-1].min == dt.date(2017, 1, 1)
+    assert contract.panel.only_listed_columns and contract.panel.first_period == 2017
+    assert settings.severity("few-switchers", "warning") == "note"
