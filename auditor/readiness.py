@@ -486,8 +486,9 @@ def _run(panel: Panel, outcome: str, regs: list[str], corr: list[str] | None, pe
         findings.append(make(
             "correlated-not-declared", settings,
             "No regressor was declared correlated with the unit effect: X2 is suggested from the Mundlak evidence "
-            f"({', '.join(x2) or 'none'}), but whether a time-invariant regressor is correlated cannot be tested "
-            "from the data, so any Z2 must be declared with --correlated.",
+            f"({', '.join(x2) or 'none'}), which assumes every time-invariant regressor is exogenous, and whether "
+            "a time-invariant regressor is correlated cannot be tested from the data, so any Z2 must be declared "
+            "with --correlated.",
             count=len(x2),
         ))
     x1 = [c for c in x_user if c not in x2] + x_period
