@@ -798,8 +798,21 @@ class _Comparison:
         # values it ever reported in the base (so a one-season typo in the base is not
         # held against a correct new value).
         for c in inv:
-            pairs = narrow.select(UNIT_ID, pl.col(c).alias("__pa_b")).drop_nulls().unique()
-            cand = both.select(BASE_UNIT, *self.nkeys, c, f"{c}\x00base").filter(pl.col(c).is_not_null())
+            a, b = pl.col(f"{c}\x00base"), pl.col(c)
+            if c in self.numeric:
+                differs = (b - a).abs() > tol * (1 + a.abs())
+            else:
+                differs = a != b
+            # candidates differ from their last base value; only they need all their base values
+            cand = both.select(BASE_UNIT, *self.nkeys, c, f"{c}\x00base").filter(
+                b.is_not_null() & a.is_not_null() & differs
+            )
+            pairs = (
+                narrow.filter(pl.col(UNIT_ID).is_in(cand.get_column(BASE_UNIT).implode()))
+                .select(UNIT_ID, pl.col(c).alias("__pa_b"))
+                .drop_nulls()
+                .unique()
+            )
             matched = cand.join(pairs, left_on=BASE_UNIT, right_on=UNIT_ID, how="inner")
             if c in self.numeric:
                 same = (pl.col(c) - pl.col("__pa_b")).abs() <= tol * (1 + pl.col("__pa_b").abs())
