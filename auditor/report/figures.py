@@ -452,8 +452,9 @@ def missing_map(
     cells = frame.join(order.select("column", "__row"), on="column").join(pos, on="period")
     grid = np.full((order.height, len(labels)), np.nan)
     grid[cells["__row"].to_numpy(), cells["__col"].to_numpy()] = cells["missing_share"].to_numpy()
-    cmap = LinearSegmentedColormap.from_list("missing", ["#F7F8FA", "#F5D28A", ORANGE, VERMILLION, "#5A1E00"])
-    cmap.set_bad(PAPER)
+    cmap = LinearSegmentedColormap.from_list(
+        "missing", ["#F7F8FA", "#F5D28A", ORANGE, VERMILLION, "#5A1E00"]
+    ).with_extremes(bad=PAPER)
     # a square-root scale, so that a few percent missing is visible beside 100 %
     image = ax.imshow(grid, aspect="auto", cmap=cmap, norm=PowerNorm(0.5, vmin=0.0, vmax=1.0),
                       interpolation="nearest")
@@ -641,6 +642,7 @@ def shifted_distributions(
 
 # --- output ------------------------------------------------------------------------
 
+_METADATA = re.compile(r"<metadata>.*?</metadata>\s*", re.S)
 _SIZE = re.compile(r'<svg([^>]*?)\swidth="[^"]*"\sheight="[^"]*"')
 
 
@@ -656,6 +658,12 @@ def to_svg(fig: Figure, *, name: str) -> str:
     text = buf.getvalue()
     start = text.find("<svg")
     svg = text[start:]
+    # the RDF metadata block names vocabularies by URL; the page needs none of it
+    svg = _METADATA.sub("", svg, count=1)
+    # element ids unique on a page holding several figures
+    tag = re.sub(r"[^A-Za-z0-9-]", "-", name)
+    svg = svg.replace(' id="', f' id="{tag}-').replace('href="#', f'href="#{tag}-')
+    svg = svg.replace("url(#", f"url(#{tag}-")
     svg = _SIZE.sub(r'<svg\1 class="pa-figure" role="img" preserveAspectRatio="xMidYMid meet"', svg, count=1)
     return svg
 
