@@ -532,6 +532,10 @@ def first_stage_strength(
     for yi, fi in zip(y, f, strict=True):
         ax.text(fi, yi, f" {fi:,.1f}", va="center", ha="left", fontsize=7.5, color=INK)
     ax.set_xlabel("first-stage F (log scale)")
+    from matplotlib.ticker import FuncFormatter, NullFormatter
+
+    ax.xaxis.set_major_formatter(FuncFormatter(lambda v, _p: f"{v:,.10g}"))
+    ax.xaxis.set_minor_formatter(NullFormatter())
     ax.xaxis.grid(True, which="major")
     ax.set_axisbelow(True)
     ax.set_title(title)
@@ -543,7 +547,7 @@ def first_stage_strength(
     handles.append(Line2D([], [], color=INK, linewidth=2.0, label="Stock-Yogo critical value"))
     handles.append(Line2D([], [], color=MUTED, linestyle=(0, (4, 3)), label="rule of thumb"))
     handles.append(Line2D([], [], color=MUTED, linestyle=(0, (1, 2)), label="t-test size bound"))
-    fig.legend(handles=handles, loc="outside lower center", ncols=min(len(handles), 3))
+    fig.legend(handles=handles, loc="outside lower center", ncols=len(handles))
     return fig
 
 

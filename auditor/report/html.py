@@ -617,10 +617,11 @@ def _readiness(doc: Mapping[str, Any], svgs: Mapping[str, str], lim: Limits) -> 
             for v in est.values():
                 c = (v.get("coef") or {}).get(n)
                 s = (v.get("se") or {}).get(n)
-                pm = f'<span class="pa-quiet">\u00b1 {_num(s, 3)}</span>'
-                r.append("\u2013" if c is None else f"{_num(c, 4)} {pm}")
+                pm = f'<br><span class="pa-quiet">\u00b1 {_num(s, 3)}</span>' if s is not None else ""
+                r.append("\u2013" if c is None else f"{_num(c, 4)}{pm}")
             erows.append(r)
-        pretty = {"within": "within", "random": "random effects", "hausman_taylor": "Hausman-Taylor"}
+        pretty = {"within": "within", "between": "between", "random": "random effects",
+                  "mundlak": "Mundlak", "hausman_taylor": "Hausman-Taylor"}
         parts.append("<h3>Estimates (coefficient \u00b1 standard error)</h3>")
         parts.append(_table(["regressor", *[esc(pretty.get(k, k)) for k in est]], erows,
                             numeric=list(range(1, len(est) + 1))))
