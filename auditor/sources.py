@@ -118,7 +118,32 @@ def _read_text(path: Path, gz: bool, separator: str | None, text_columns: Sequen
         reason = str(last_error).strip().splitlines()[0] if last_error else "unknown problem"
         raise fail("corrupt-file", path=path, format="delimited text", reason=reason[:200])
     df = df.rename({c: c.strip() for c in df.columns if c != c.strip()})
-    return df
+    return _non_finite_as_float(df, text_columns)
+
+
+_NON_FINITE_TOKENS = ["inf", "+inf", "-inf", "infinity", "+infinity", "-infinity", "nan", "+nan", "-nan"]
+
+
+def _non_finite_as_float(df: pl.DataFrame, text_columns: Sequence[str]) -> pl.DataFrame:
+    # The CSV reader does not infer 'inf' or 'nan' as numbers, so a numeric column holding
+    # them arrives as text. Read such a column as Float64 when every other value parses.
+    candidates = [c for c, dt in df.schema.items() if dt == pl.String and c not in text_columns]
+    if not candidates:
+        return df
+    probe = df.select(
+        *[
+            pl.col(c).str.strip_chars().str.to_lowercase().is_in(_NON_FINITE_TOKENS).any().alias(f"t:{c}")
+            for c in candidates
+        ],
+        *[
+            (pl.col(c).cast(pl.Float64, strict=False).is_null() & pl.col(c).is_not_null()).any().alias(f"b:{c}")
+            for c in candidates
+        ],
+    ).row(0, named=True)
+    numeric = [c for c in candidates if probe[f"t:{c}"] and not probe[f"b:{c}"]]
+    if not numeric:
+        return df
+    return df.with_columns(pl.col(c).str.strip_chars().cast(pl.Float64) for c in numeric)
 
 
 def _read_jsonl(path: Path, gz: bool, text_columns: Sequence[str]) -> pl.DataFrame:

@@ -88,8 +88,135 @@ def _clean(col: str, dtype: pl.DataType) -> pl.Expr:
     return e
 
 
-def compute_variation(panel: Panel, settings: Settings) -> Variation:
-    """Kinds, shares and signals for every non-key column of ``panel``."""
+def column_aliases(panel: Panel) -> dict[str, str]:
+    """Safe aliases (``c0``, ``c1``, ...) for every non-key column, whatever its name."""
+    return {c: f"c{i}" for i, c in enumerate(panel.columns)}
+
+
+def _text(col: str, dtype: pl.DataType) -> pl.Expr:
+    e = pl.col(col)
+    return e.cast(pl.String) if isinstance(dtype, pl.Categorical | pl.Enum) else e
+
+
+def _orderable(dtype: pl.DataType) -> bool:
+    return not isinstance(dtype, pl.List | pl.Array | pl.Struct | pl.Object | pl.Null)
+
+
+def unit_exprs(panel: Panel, shift: dict[str, float]) -> list[pl.Expr]:
+    """Per-unit aggregations of every column: count, mean, centred sum of squares, min, max.
+
+    Numeric columns are shifted by ``shift`` first; other columns give count, min and max
+    (a unit changes when its min and max differ).
+    """
+    names = column_aliases(panel)
+    out: list[pl.Expr] = []
+    for c in panel.columns:
+        a, dt = names[c], panel.schema[c]
+        if c in shift:
+            x = _clean(c, dt) - shift[c]
+            out += [
+                x.count().alias(f"{a}:n"),
+                x.mean().alias(f"{a}:mean"),
+                # explicit two-pass sum: polars' grouped var() is not bit-reproducible
+                # from run to run, and the JSON must be (determinism)
+                ((x - x.mean()) ** 2).sum().alias(f"{a}:m2"),
+                x.min().alias(f"{a}:min"),
+                x.max().alias(f"{a}:max"),
+            ]
+        elif _orderable(dt):
+            out += [
+                pl.col(c).count().alias(f"{a}:n"),
+                _text(c, dt).min().alias(f"{a}:tmin"),
+                _text(c, dt).max().alias(f"{a}:tmax"),
+            ]
+        else:
+            out += [pl.col(c).count().alias(f"{a}:n"), pl.col(c).n_unique().alias(f"{a}:nu")]
+    return out
+
+
+@dataclass(frozen=True)
+class Passes:
+    """The tables of the three passes: ``scalars`` (one row as a dict), ``per_unit``,
+    ``per_period`` (sorted by code), ``values`` (alias -> (distinct, dominant count)), ``shift``."""
+
+    scalars: dict[str, Any]
+    per_unit: pl.DataFrame
+    per_period: pl.DataFrame
+    values: dict[str, tuple[int, int]]
+    shift: dict[str, float]
+
+
+def run_passes(panel: Panel, extra_unit: list[pl.Expr] | None = None) -> Passes:
+    """Run the scalar pass, then the per-unit, per-period and value-count queries together.
+
+    ``extra_unit`` adds aggregations (e.g. the structure's) to the same grouped pass by unit.
+    """
+    cols = list(panel.columns)
+    schema = panel.schema
+    names = column_aliases(panel)
+    numeric = [c for c in cols if is_numeric(schema[c])]
+    scalar: list[pl.Expr] = [pl.len().alias("__rows")]
+    for c in cols:
+        a, dt = names[c], schema[c]
+        if dt.is_float():
+            scalar.append(pl.col(c).is_nan().sum().alias(f"{a}:nan"))
+            scalar.append(pl.col(c).is_infinite().sum().alias(f"{a}:inf"))
+        if c in numeric:
+            clean = _clean(c, dt)
+            scalar += [
+                clean.drop_nulls().first().alias(f"{a}:shift"),
+                clean.min().alias(f"{a}:min"),
+                clean.max().alias(f"{a}:max"),
+            ]
+        scalar.append(pl.col(c).null_count().alias(f"{a}:null"))
+    g = panel.collect(panel.lazy.select(scalar)).row(0, named=True)
+    shift = {c: float(g.get(f"{names[c]}:shift") or 0.0) for c in numeric}
+
+    per_period: list[pl.Expr] = [pl.len().alias("rows")]
+    for c in cols:
+        a, dt = names[c], schema[c]
+        present = _clean(c, dt) if c in numeric else _text(c, dt)
+        if c not in numeric and not _orderable(dt):
+            per_period += [pl.col(c).count().alias(f"{a}:n"), pl.col(c).n_unique().alias(f"{a}:nu")]
+            continue
+        if dt.is_float():  # infinities count as values here, as in distinct
+            present = pl.when(pl.col(c).is_nan()).then(None).otherwise(pl.col(c))
+        per_period += [
+            present.count().alias(f"{a}:n"),
+            present.min().alias(f"{a}:pmin"),
+            present.max().alias(f"{a}:pmax"),
+        ]
+    queries = [
+        panel.lazy.group_by(UNIT_ID).agg([*unit_exprs(panel, shift), *(extra_unit or [])]),
+        panel.lazy.group_by(PERIOD_ID).agg(per_period),
+    ]
+    for c in cols:
+        dt = schema[c]
+        keep = pl.col(c).is_not_null()
+        if dt.is_float():
+            keep = keep & ~pl.col(c).is_nan()
+        if not _orderable(dt):
+            queries.append(panel.lazy.select(pl.col(c).n_unique().alias("d"), pl.lit(0).alias("top")))
+            continue
+        queries.append(
+            panel.lazy.filter(keep).group_by(c).len().select(pl.len().alias("d"), pl.col("len").max().alias("top"))
+        )
+    engine = "streaming" if panel.streaming else "auto"
+    results = pl.collect_all(queries, engine=engine)
+    pu = results[0].sort(UNIT_ID)
+    pp = results[1].sort(PERIOD_ID)
+    values = {}
+    for c, res in zip(cols, results[2:], strict=True):
+        row = res.row(0, named=True) if res.height else {"d": 0, "top": 0}
+        values[names[c]] = (int(row["d"] or 0), int(row["top"] or 0))
+    return Passes(scalars=g, per_unit=pu, per_period=pp, values=values, shift=shift)
+
+
+def compute_variation(panel: Panel, settings: Settings, passes: Passes | None = None) -> Variation:
+    """Kinds, shares and signals for every non-key column of ``panel``.
+
+    ``passes`` are the grouped tables from :func:`run_passes` (computed here when None).
+    """
     cols = list(panel.columns)
     schema = panel.schema
     n_rows = panel.rows - panel.missing_keys
@@ -102,62 +229,10 @@ def compute_variation(panel: Panel, settings: Settings) -> Variation:
             changing_examples={},
         )
     numeric = [c for c in cols if is_numeric(schema[c])]
-    names = {c: f"c{i}" for i, c in enumerate(cols)}  # safe aliases for any column name
-
-    # --- global pass ---------------------------------------------------------------
-    glob: list[pl.Expr] = []
-    for c in cols:
-        a, dt = names[c], schema[c]
-        present = pl.col(c).drop_nulls()
-        if dt.is_float():
-            present = present.drop_nans()
-            glob.append(pl.col(c).is_nan().sum().alias(f"{a}:nan"))
-            glob.append(pl.col(c).is_infinite().sum().alias(f"{a}:inf"))
-            glob.append(_clean(c, dt).drop_nulls().first().alias(f"{a}:shift"))
-        elif c in numeric:
-            glob.append(pl.col(c).cast(pl.Float64).drop_nulls().first().alias(f"{a}:shift"))
-        glob.append(pl.col(c).null_count().alias(f"{a}:null"))
-        vc = present.value_counts(sort=True, name="n").struct.field("n")
-        glob.append(vc.len().alias(f"{a}:distinct"))
-        glob.append(vc.first().alias(f"{a}:dominant"))
-        if c in numeric:
-            glob.append(present.cast(pl.Float64).min().alias(f"{a}:min"))
-            glob.append(present.cast(pl.Float64).max().alias(f"{a}:max"))
-    g = panel.collect(panel.lazy.select(glob)).row(0, named=True)
-    shift = {c: (g.get(f"{names[c]}:shift") or 0.0) for c in numeric}
-
-    # --- grouped pass by unit --------------------------------------------------------
-    per_unit: list[pl.Expr] = []
-    for c in cols:
-        a, dt = names[c], schema[c]
-        if c in numeric:
-            x = _clean(c, dt) - shift[c]
-            per_unit += [
-                x.count().alias(f"{a}:n"),
-                x.mean().alias(f"{a}:mean"),
-                (x.var(ddof=0) * x.count()).alias(f"{a}:m2"),
-                x.min().alias(f"{a}:min"),
-                x.max().alias(f"{a}:max"),
-            ]
-        else:
-            per_unit += [
-                pl.col(c).count().alias(f"{a}:n"),
-                pl.col(c).drop_nulls().n_unique().alias(f"{a}:nu"),
-            ]
-    pu = panel.collect(panel.lazy.group_by(UNIT_ID).agg(per_unit)).sort(UNIT_ID)
-
-    # --- grouped pass by period -------------------------------------------------------
-    per_period: list[pl.Expr] = [pl.len().alias("rows")]
-    for c in cols:
-        a, dt = names[c], schema[c]
-        present = pl.col(c).drop_nulls()
-        if dt.is_float():
-            present = present.drop_nans()
-        per_period += [
-            present.len().alias(f"{a}:n"),
-            present.n_unique().alias(f"{a}:nu"),
-        ]
-    pp = panel.collect(panel.lazy.group_by(PERIOD_ID).agg(per_period)).sort(PERIOD_ID)
+    names = column_aliases(panel)
+    passes = passes if passes is not None else run_passes(panel)
+    g, pu, pp = passes.scalars, passes.per_unit, passes.per_period
+    shift = passes.shift
 
     # --- arithmetic on the small tables ------------------------------------------------
     records: list[dict[str, Any]] = []
@@ -172,9 +247,9 @@ def compute_variation(panel: Panel, settings: Settings) -> Variation:
         a, dt = names[c], schema[c]
         nulls = int(g[f"{a}:null"]) + int(g.get(f"{a}:nan") or 0)
         non_finite = int(g.get(f"{a}:inf") or 0)
-        distinct = int(g[f"{a}:distinct"] or 0)
+        distinct, top = passes.values[a]
         present_rows = n_rows - nulls
-        dominant = (int(g[f"{a}:dominant"]) / present_rows) if present_rows and distinct else None
+        dominant = (top / present_rows) if present_rows and distinct and top else None
         n_i = pu[f"{a}:n"].to_numpy()
         observed_twice = int((n_i >= 2).sum())
         rec: dict[str, Any] = {
@@ -211,6 +286,9 @@ def compute_variation(panel: Panel, settings: Settings) -> Variation:
                 changing = seen & (hi != lo)
             gmin, gmax = g.get(f"{a}:min"), g.get(f"{a}:max")
             rec["binary"] = bool(distinct == 2 and gmin == 0.0 and gmax == 1.0)
+        elif f"{a}:tmin" in pu.columns:
+            tmin, tmax = pu[f"{a}:tmin"], pu[f"{a}:tmax"]
+            changing = (tmin.is_not_null() & (tmin != tmax)).fill_null(False).to_numpy()
         else:
             changing = pu[f"{a}:nu"].to_numpy() >= 2
         changing = np.asarray(changing, dtype=bool)
@@ -224,11 +302,20 @@ def compute_variation(panel: Panel, settings: Settings) -> Variation:
                     {**lab, "min": float(lo[i] + shift[c]), "max": float(hi[i] + shift[c])}
                     for lab, i in zip(labels, idx, strict=True)
                 ]
+            elif f"{a}:tmin" in pu.columns:
+                exs = [
+                    {**lab, "min": str(pu[f"{a}:tmin"][int(i)]), "max": str(pu[f"{a}:tmax"][int(i)])}
+                    for lab, i in zip(labels, idx, strict=True)
+                ]
             else:
                 exs = [{**lab, "distinct_values": int(pu[f"{a}:nu"][int(i)])} for lab, i in zip(labels, idx, strict=True)]
             changing_examples[c] = tuple(exs)
-        # per period: distinct values and missing data
-        nu_t = pp[f"{a}:nu"].to_numpy()
+        # per period: one value per period (period-only) and missing data
+        if f"{a}:pmin" in pp.columns:
+            pmin, pmax = pp[f"{a}:pmin"], pp[f"{a}:pmax"]
+            one_value = bool((pmin.is_null() | (pmin == pmax)).fill_null(True).all())
+        else:
+            one_value = bool((pp[f"{a}:nu"].to_numpy() <= 1).all())
         n_t = pp[f"{a}:n"].to_numpy().astype(np.float64)
         share_t = 1.0 - n_t / period_rows
         miss_cols += [c] * len(share_t)
@@ -239,7 +326,7 @@ def compute_variation(panel: Panel, settings: Settings) -> Variation:
         ] if distinct else []
         rec["kind"] = classify(
             distinct=distinct,
-            period_only=bool(distinct > 1 and (nu_t <= 1).all()),
+            period_only=bool(distinct > 1 and one_value),
             units_changing=units_changing,
             units_observed_twice=observed_twice,
             within_share=rec["within_share"],
