@@ -460,7 +460,14 @@ class _Comparison:
 
     # -- schema ---------------------------------------------------------------------------
     def _schema(self) -> dict[str, Any]:
-        bs, ns = self.bp.schema, self.np.schema
+        bs = self.bp.schema
+        # A column the new wave leaves entirely empty has no type of its own (an empty CSV
+        # column reads as text): it takes the base's type, and shows up as missing-jump.
+        shared = [c for c in self.np.columns if c in bs and c not in (*self.units, self.time)]
+        empty = self.np.frame.select([pl.col(c).is_null().all().alias(c) for c in shared]).row(0) if shared else ()
+        self.empty_new = [c for c, e in zip(shared, empty, strict=True) if e]
+        self.ns = {**self.np.schema, **{c: bs[c] for c in self.empty_new}}
+        ns = self.ns
         keys = (*self.units, self.time)
         bcols = [c for c in bs if c not in keys]
         ncols = [c for c in ns if c not in keys]
@@ -511,7 +518,7 @@ class _Comparison:
 
     # -- aligned frames -------------------------------------------------------------------
     def _align(self) -> None:
-        bs, ns = self.bp.schema, self.np.schema
+        bs, ns = self.bp.schema, self.ns
         self.scale, bpos, npos = _period_scale(self.bp, self.np, self.time)
         # Unit tables (one row per unit) carry the text keys; rows carry codes only.
         bunits = self.bp.units.with_columns(
@@ -543,7 +550,8 @@ class _Comparison:
             UNIT_ID, bpos, *[cast_expr(c, bs[c]) for c in compared], *miss_b
         )
         self.N = (
-            self.np.frame.select(UNIT_ID, npos, *[cast_expr(c, ns[c]) for c in compared], *miss_n)
+            self.np.frame.with_columns([pl.col(c).cast(bs[c]) for c in self.empty_new])
+            .select(UNIT_ID, npos, *[cast_expr(c, ns[c]) for c in compared], *miss_n)
             .join(code_map.select(UNIT_ID, BASE_UNIT), on=UNIT_ID, how="left")
         )
         self.base_pos = sorted(self.B.get_column(POS).unique().to_list())
@@ -742,8 +750,13 @@ class _Comparison:
         few = float(self.s.get("profile", "nearly_invariant_units_share"))
         changing = getattr(self, "changing_share", {})
 
+        min_units = int(self.get("invariant_min_units"))
+        twice = getattr(self, "observed_twice", {})
+
         def fixed(c: str) -> bool:
             k = kinds.get(c)
+            if twice.get(c, 0) < min_units:  # too few repeat observations to call it fixed
+                return False
             if k in ("constant", "time-invariant"):
                 return True
             return k == "nearly-time-invariant" and changing.get(c, 0.0) <= few
@@ -770,6 +783,10 @@ class _Comparison:
             else {}
         )
         if {"units_changing", "units_observed_twice"} <= set(cols.columns):
+            self.observed_twice = {
+                r["name"]: r["units_observed_twice"] or 0
+                for r in cols.select("name", "units_observed_twice").iter_rows(named=True)
+            }
             self.changing_share = {
                 r["name"]: (r["units_changing"] or 0) / r["units_observed_twice"] if r["units_observed_twice"] else 0.0
                 for r in cols.select("name", "units_changing", "units_observed_twice").iter_rows(named=True)

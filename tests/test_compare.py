@@ -542,3 +542,27 @@ def test_cli_exit_code_follows_fail_on(tmp_path, capsys):
     assert main(["compare", base, new, "--unit", "id", "--time", "year", "--json"]) == 0
     doc = json.loads(capsys.readouterr().out)
     assert doc["units"]["returning"] == 6
+
+
+def test_a_base_of_one_period_calls_no_column_fixed():
+    # with one base period no unit is seen twice: nothing is known to be time-invariant
+    res = compare(_small_base().filter(pl.col("year") == 2021), _small_new().with_columns(pl.col("fixed") + 1), **KEYS)
+    assert not _checks(res, "invariant-changed")
+    assert res.periods["step"] is None and not _checks(res, "unexpected-period")
+
+
+def test_a_column_left_empty_in_the_new_wave_is_a_missing_jump_not_a_type_change():
+    new = _small_new().with_columns(pl.lit(None, dtype=pl.String).alias("x"))
+    res = compare(_small_base(), new, **KEYS)
+    assert not _checks(res, "type-changed")
+    assert _one(res, "missing-jump", "x").count == 6
+
+
+def test_composite_unit_keys_match_across_types():
+    base = _small_base().with_columns((pl.col("id") % 2).alias("farm"), (pl.col("id") // 2).alias("plot")).drop("id")
+    new = _small_new().with_columns(
+        (pl.col("id") % 2).cast(pl.String).alias("farm"), (pl.col("id") // 2).alias("plot")
+    ).drop("id")
+    res = compare(base, new, unit="farm,plot", time="year")
+    assert res.units["returning"] == 6 and res.units["entering"] == 0
+    assert _one(res, "type-changed", "farm").severity == "error"
