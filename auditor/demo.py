@@ -92,7 +92,6 @@ def run_demo(out: Path | str | None = None, *, force: bool = False) -> DemoRun:
             outcome=DEMO_OUTCOME,
             regressors=list(DEMO_REGRESSORS),
             correlated=list(DEMO_CORRELATED),
-            against=paths["orchards_next_season"],
             force=force,
         )
     return DemoRun(out_dir=out_dir, paths=paths, profile=result)
