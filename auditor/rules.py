@@ -195,7 +195,7 @@ def run_contract(
                     f"the column is missing from the data, so none of its {panel.frame.height} rows carries it",
                 )
             )
-    within = {c.name: _within_rules(c, panel, settings, limit) for c in present}
+    within = _within_rules(present, panel, settings, limit)
     timings["panel_rules"] = _time.perf_counter() - clock
 
     row = _row_rules_gx(present, panel, limit, timings)
@@ -493,8 +493,11 @@ def _panel_rules(rules: PanelRules, contract: Contract, panel: Panel, limit: int
                 examples=tuple(panel.missing_key_examples[:limit]),
             )
         )
-    if rules.max_duplicate_keys is not None:
-        pairs = frame.select(UNIT_ID, PERIOD_ID).n_unique()
+    per_unit = _per_unit(panel) if (
+        rules.max_duplicate_keys is not None or rules.balanced or rules.max_attrition is not None
+    ) else None
+    if rules.max_duplicate_keys is not None and per_unit is not None:
+        pairs = int(per_unit["periods"].sum())
         n = frame.height - pairs
         examples: tuple[dict[str, Any], ...] = ()
         if n > rules.max_duplicate_keys:
@@ -565,9 +568,8 @@ def _panel_rules(rules: PanelRules, contract: Contract, panel: Panel, limit: int
                 examples=tuple({"period": o} for o in outside[:limit]),
             )
         )
-    if rules.balanced:
-        seen = frame.group_by(UNIT_ID).agg(pl.col(PERIOD_ID).n_unique().alias("n"))
-        short = seen.filter(pl.col("n") < panel.n_periods).sort(UNIT_ID)
+    if rules.balanced and per_unit is not None:
+        short = per_unit.filter(pl.col("periods") < panel.n_periods).sort(UNIT_ID)
         n = short.height
         out.append(
             RuleResult(
@@ -576,8 +578,8 @@ def _panel_rules(rules: PanelRules, contract: Contract, panel: Panel, limit: int
                 examples=tuple(panel.unit_labels(short[UNIT_ID].head(limit).to_list())),
             )
         )
-    if rules.max_attrition is not None:
-        out.append(_attrition_rule(rules.max_attrition, panel, limit))
+    if rules.max_attrition is not None and per_unit is not None:
+        out.append(_attrition_rule(rules.max_attrition, panel, limit, per_unit))
     if rules.only_listed_columns:
         listed = {c.name for c in contract.columns}
         extra_cols = [c for c in panel.columns if c not in listed]
@@ -595,15 +597,22 @@ def _panel_rules(rules: PanelRules, contract: Contract, panel: Panel, limit: int
     return out
 
 
-def attrition_shares(panel: Panel) -> pl.DataFrame:
+def _per_unit(panel: Panel) -> pl.DataFrame:
+    """One row per unit code: ``periods`` (distinct periods observed) and ``last`` (last period index)."""
+    return panel.frame.group_by(UNIT_ID).agg(
+        pl.col(PERIOD_ID).n_unique().alias("periods"), pl.col(PERIOD_ID).max().alias("last")
+    )
+
+
+def attrition_shares(panel: Panel, per_unit: pl.DataFrame | None = None) -> pl.DataFrame:
     """Per period but the last: ``present`` units, ``leaving`` (last seen there) and their ``share``.
 
     Columns ``period_index`` (UInt32), ``present``, ``leaving`` (counts of units),
     ``share`` (leaving / present, a fraction).
     """
     frame = panel.frame
-    last = frame.group_by(UNIT_ID).agg(pl.col(PERIOD_ID).max().alias("last"))
-    present = frame.select(UNIT_ID, PERIOD_ID).unique().group_by(PERIOD_ID).agg(pl.len().alias("present"))
+    last = per_unit if per_unit is not None else _per_unit(panel)
+    present = frame.group_by(PERIOD_ID).agg(pl.col(UNIT_ID).n_unique().alias("present"))
     leaving = last.group_by("last").agg(pl.len().alias("leaving")).rename({"last": PERIOD_ID})
     final = panel.n_periods - 1
     return (
@@ -616,8 +625,8 @@ def attrition_shares(panel: Panel) -> pl.DataFrame:
     )
 
 
-def _attrition_rule(limit_share: float, panel: Panel, limit: int) -> RuleResult:
-    table = attrition_shares(panel)
+def _attrition_rule(limit_share: float, panel: Panel, limit: int, per_unit: pl.DataFrame) -> RuleResult:
+    table = attrition_shares(panel, per_unit)
     bad = table.filter(pl.col("share") > limit_share)
     examples = tuple(
         {"period": panel.grid[int(r["period_index"])], "present": int(r["present"]),
@@ -641,66 +650,99 @@ def _values(column: str, dtype: pl.DataType) -> pl.Expr:
     return e
 
 
-def _within_rules(col: ColumnRules, panel: Panel, settings: Settings, limit: int) -> list[RuleResult]:
-    out: list[RuleResult] = []
-    if not (col.invariant or col.monotone or col.max_change is not None):
-        return out
-    dtype = panel.schema[col.name]
-    v = _values(col.name, dtype)
-    if col.invariant:
-        per_unit = changing_units(panel, col.name, float(settings.get("profile", "float_tolerance")))
-        n = per_unit.height
-        codes = per_unit[UNIT_ID].head(limit).to_list()
-        labels = panel.unit_labels(codes)
-        first = per_unit["first"].head(limit).to_list()
-        other = per_unit["other"].head(limit).to_list()
-        examples = tuple(
-            {**lab, "values": [a, b]} for lab, a, b in zip(labels, first, other, strict=True)
-        )
-        from auditor.report.jsonout import clean
+def _within_rules(
+    columns: list[ColumnRules], panel: Panel, settings: Settings, limit: int
+) -> dict[str, list[RuleResult]]:
+    """The invariant, monotone and max_change rules of ``columns``: one grouped pass for every
+    invariant column, one sort for every monotone or change-limited column."""
+    from auditor.report.jsonout import clean
 
-        out.append(
-            RuleResult(
-                "invariant", "panel", col.name, n == 0, n,
-                f"{n} of {panel.n_units} units change value over time; the contract says it never changes within a unit",
-                examples=tuple(clean(e) for e in examples),
+    out: dict[str, list[RuleResult]] = {c.name: [] for c in columns}
+    tol = float(settings.get("profile", "float_tolerance"))
+    inv = [c for c in columns if c.invariant]
+    if inv:
+        counts = invariant_counts(panel, [c.name for c in inv], tol)
+        for col in inv:
+            n = counts[col.name]
+            examples: tuple[dict[str, Any], ...] = ()
+            if n:
+                per_unit = changing_units(panel, col.name, tol).head(limit)
+                labels = panel.unit_labels(per_unit[UNIT_ID].to_list())
+                examples = tuple(
+                    clean({**lab, "values": [a, b]})
+                    for lab, a, b in zip(labels, per_unit["first"].to_list(), per_unit["other"].to_list(), strict=True)
+                )
+            out[col.name].append(
+                RuleResult(
+                    "invariant", "panel", col.name, n == 0, n,
+                    f"{n} of {panel.n_units} units change value over time; the contract says it never changes within a unit",
+                    examples=examples,
+                )
             )
-        )
-    if col.monotone or col.max_change is not None:
-        steps = unit_steps(panel, col.name, v)
+    moving = [c for c in columns if c.monotone or c.max_change is not None]
+    if moving:
+        steps = step_changes(panel, [c.name for c in moving])
         keys = [*panel.unit, panel.time]
-        from auditor.report.jsonout import clean
-
-        if col.monotone:
-            wrong = steps.filter(pl.col("change") < 0) if col.monotone == "increasing" else steps.filter(pl.col("change") > 0)
-            word = "falls" if col.monotone == "increasing" else "rises"
-            out.append(
-                RuleResult(
-                    "monotone", "panel", col.name, wrong.height == 0, wrong.height,
-                    f"{wrong.height} times a unit's value {word} from one observation to its next"
-                    f" (the contract says it is {col.monotone})",
-                    examples=tuple(clean(r) for r in wrong.select([*keys, "previous", col.name]).head(limit).iter_rows(named=True)),
+        for col in moving:
+            change = pl.col(f"change:{col.name}")
+            shown = [*keys, pl.col(f"previous:{col.name}").alias("previous"), col.name]
+            if col.monotone:
+                wrong = steps.filter(change < 0 if col.monotone == "increasing" else change > 0)
+                word = "falls" if col.monotone == "increasing" else "rises"
+                out[col.name].append(
+                    RuleResult(
+                        "monotone", "panel", col.name, wrong.height == 0, wrong.height,
+                        f"{wrong.height} times a unit's value {word} from one observation to its next"
+                        f" (the contract says it is {col.monotone})",
+                        examples=tuple(clean(r) for r in wrong.select(shown).head(limit).iter_rows(named=True)),
+                    )
                 )
-            )
-        if col.max_change is not None:
-            big = steps.filter(pl.col("change").abs() > col.max_change)
-            out.append(
-                RuleResult(
-                    "max_change", "panel", col.name, big.height == 0, big.height,
-                    f"{big.height} times a unit's value moves by more than {col.max_change:g} between consecutive observations",
-                    examples=tuple(clean(r) for r in big.select([*keys, "previous", col.name]).head(limit).iter_rows(named=True)),
+            if col.max_change is not None:
+                big = steps.filter(change.abs() > col.max_change)
+                out[col.name].append(
+                    RuleResult(
+                        "max_change", "panel", col.name, big.height == 0, big.height,
+                        f"{big.height} times a unit's value moves by more than {col.max_change:g} between consecutive observations",
+                        examples=tuple(clean(r) for r in big.select(shown).head(limit).iter_rows(named=True)),
+                    )
                 )
-            )
     return out
+
+
+def _changes(dtype: pl.DataType, values: pl.Expr) -> pl.Expr:
+    """Values as float64 so that differences are numbers (days for dates, seconds for datetimes)."""
+    if dtype == pl.Date:
+        return values.cast(pl.Int32).cast(pl.Float64)
+    if isinstance(dtype, pl.Datetime):
+        return values.dt.epoch("s").cast(pl.Float64)
+    return values.cast(pl.Float64)
+
+
+def invariant_counts(panel: Panel, columns: list[str], tolerance: float) -> dict[str, int]:
+    """For each column, the number of units whose non-missing values differ (one grouped pass).
+
+    Floats differ when (max - min) > tolerance * (1 + |unit mean|) (methods.md);
+    other types when a unit holds more than one distinct value.
+    """
+    aggs: list[pl.Expr] = []
+    for c in columns:
+        dtype = panel.schema[c]
+        v = _values(c, dtype)
+        if dtype.is_float():
+            aggs.append(((v.max() - v.min()) > tolerance * (1 + v.mean().abs())).alias(c))
+        else:
+            aggs.append((v.drop_nulls().n_unique() > 1).alias(c))
+    per_unit = panel.frame.group_by(UNIT_ID).agg(aggs)
+    sums = per_unit.select([pl.col(c).fill_null(False).sum() for c in columns]).row(0, named=True)
+    return {c: int(sums[c]) for c in columns}
 
 
 def changing_units(panel: Panel, column: str, tolerance: float) -> pl.DataFrame:
     """Units whose non-missing values of ``column`` differ, with two of their values.
 
-    Floats change when (max - min) > tolerance * (1 + |unit mean|) (methods.md);
-    other types when a unit holds more than one distinct value. Returns columns
-    ``__pa_unit``, ``first`` and ``other`` (the unit's first value and one that
-    differs from it), sorted by unit code.
+    The same test as :func:`invariant_counts`. Returns columns ``__pa_unit``,
+    ``first`` and ``other`` (for floats the unit's lowest and highest value; else
+    its first value by period and one that differs from it), sorted by unit code.
     """
     dtype = panel.schema[column]
     v = _values(column, dtype)
@@ -719,35 +761,31 @@ def changing_units(panel: Panel, column: str, tolerance: float) -> pl.DataFrame:
     return stats.filter(pl.col("n") > 1).select(UNIT_ID, "first", "other").sort(UNIT_ID)
 
 
-def unit_steps(panel: Panel, column: str, values: pl.Expr | None = None) -> pl.DataFrame:
-    """Each unit's consecutive non-missing observations of ``column``, ordered by period.
+def step_changes(panel: Panel, columns: list[str]) -> pl.DataFrame:
+    """Each unit's steps between consecutive non-missing observations of each column.
 
-    Columns: the key columns, ``previous`` (the value at the unit's previous
-    observation), ``column`` (the value now) and ``change`` (now - previous, in
-    the column's units; days for dates). Units' first observations are left out.
+    One sort by (unit, period) for all columns. Returns the rows in that order
+    with the key columns, each column, ``previous:<col>`` (the unit's previous
+    non-missing value) and ``change:<col>`` (now - previous as a float: days for
+    dates; null on a unit's first observation and where the value is missing).
     """
-    dtype = panel.schema[column]
-    v = values if values is not None else _values(column, dtype)
     keys = [*panel.unit, panel.time]
-    frame = (
-        panel.frame.select(UNIT_ID, PERIOD_ID, *keys, v.alias(column))
-        .drop_nulls(column)
-        .sort(UNIT_ID, PERIOD_ID, maintain_order=True)
-    )
-    num = pl.col(column)
-    if dtype == pl.Date:
-        num = num.cast(pl.Int32).cast(pl.Float64)
-    elif isinstance(dtype, pl.Datetime):
-        num = num.dt.epoch("s").cast(pl.Float64)
-    else:
-        num = num.cast(pl.Float64)
-    return (
-        frame.with_columns(
-            pl.col(column).shift(1).over(UNIT_ID).alias("previous"),
-            (num - num.shift(1).over(UNIT_ID)).alias("change"),
-        )
-        .filter(pl.col("change").is_not_null())
-    )
+    frame = panel.frame.select(
+        UNIT_ID, PERIOD_ID, *[k for k in keys if k not in columns],
+        *[_values(c, panel.schema[c]).alias(c) for c in columns],
+    ).sort(UNIT_ID, PERIOD_ID, maintain_order=True)
+    exprs: list[pl.Expr] = []
+    for c in columns:
+        v = pl.col(c)
+        # the previous non-missing value and the unit it belongs to, without a window per unit
+        previous = v.shift(1).forward_fill()
+        owner = pl.when(v.is_not_null()).then(pl.col(UNIT_ID)).shift(1).forward_fill()
+        same = v.is_not_null() & (owner == pl.col(UNIT_ID))
+        num = _changes(panel.schema[c], v)
+        prev_num = _changes(panel.schema[c], previous)
+        exprs.append(pl.when(same).then(previous).otherwise(None).alias(f"previous:{c}"))
+        exprs.append(pl.when(same).then(num - prev_num).otherwise(None).alias(f"change:{c}"))
+    return frame.with_columns(exprs)
 
 
 # --- drafting --------------------------------------------------------------------
@@ -813,14 +851,14 @@ def _draft_panel(panel: Panel, settings: Settings) -> dict[str, Any]:
     else:
         doc["period_range"] = {"first": panel.grid[0], "last": panel.grid[-1]}
     doc["min_units"] = panel.n_units
-    seen = panel.frame.group_by(UNIT_ID).agg(pl.col(PERIOD_ID).n_unique().alias("n"))
-    if int(seen["n"].min()) == panel.n_periods:
+    per_unit = _per_unit(panel)
+    if int(per_unit["periods"].min()) == panel.n_periods:
         doc["balanced"] = True
-    table = attrition_shares(panel)
+    table = attrition_shares(panel, per_unit)
     if table.height:
         worst = float(table["share"].max())
         doc["max_attrition"] = _ceil(max(worst, worst + margin))
-    doc["max_duplicate_keys"] = panel.frame.height - panel.frame.select(UNIT_ID, PERIOD_ID).n_unique()
+    doc["max_duplicate_keys"] = panel.frame.height - int(per_unit["periods"].sum())
     doc["max_missing_keys"] = panel.missing_keys
     doc["only_listed_columns"] = True
     return doc
@@ -846,11 +884,31 @@ def _draft_columns(panel: Panel, kinds: dict[str, str], settings: Settings) -> d
     for c in names:
         v = _values(c, panel.schema[c])
         aggs.append(v.null_count().alias(f"{c}\x00null"))
-        aggs.append(v.drop_nulls().n_unique().alias(f"{c}\x00distinct"))
+        if fams[c] in ("text", "integer", "boolean"):
+            aggs.append(v.drop_nulls().n_unique().alias(f"{c}\x00distinct"))
         if fams[c] in ("integer", "float", "date", "datetime"):
             aggs.append(v.min().alias(f"{c}\x00min"))
             aggs.append(v.max().alias(f"{c}\x00max"))
     stats = frame.select(aggs).row(0, named=True) if aggs else {}
+    # columns that change within units: do they only rise (or only fall)? one sort for all
+    moving = [
+        c for c in names
+        if fams[c] in ("integer", "float", "date")
+        and kinds.get(c) not in (None, "constant", "time-invariant")
+    ]
+    direction: dict[str, str] = {}
+    if moving:
+        steps = step_changes(panel, moving)
+        counts = steps.select(
+            [(pl.col(f"change:{c}") < 0).sum().alias(f"{c}\x00falls") for c in moving]
+            + [(pl.col(f"change:{c}") > 0).sum().alias(f"{c}\x00rises") for c in moving]
+        ).row(0, named=True)
+        for c in moving:
+            falls, rises = int(counts[f"{c}\x00falls"]), int(counts[f"{c}\x00rises"])
+            if falls == 0 and rises > 0:
+                direction[c] = "increasing"
+            elif rises == 0 and falls > 0:
+                direction[c] = "decreasing"
     doc: dict[str, Any] = {}
     for c in [*panel.unit, panel.time]:
         fam = type_family(panel.schema[c])
@@ -865,21 +923,16 @@ def _draft_columns(panel: Panel, kinds: dict[str, str], settings: Settings) -> d
             lo, hi = stats[f"{c}\x00min"], stats[f"{c}\x00max"]
             if lo is not None and hi is not None:
                 spec["min"], spec["max"] = _scalar(lo), _scalar(hi)
-        distinct = int(stats[f"{c}\x00distinct"])
-        if fam in ("text", "integer", "boolean") and 0 < distinct <= max_levels:
+        distinct = int(stats.get(f"{c}\x00distinct") or 0)
+        if 0 < distinct <= max_levels:
             levels = frame.select(pl.col(c).drop_nulls().unique().sort()).to_series().to_list()
             spec["allowed"] = [_scalar(x) for x in levels]
         share = int(stats[f"{c}\x00null"]) / rows if rows else 0.0
         spec["max_missing"] = 0.0 if share == 0 else _ceil(share + margin)
         if kinds.get(c) in ("constant", "time-invariant"):
             spec["invariant"] = True
-        elif fam in ("integer", "float", "date") and kinds.get(c) is not None and distinct > 1:
-            steps = unit_steps(panel, c)
-            if steps.height:
-                if int((steps["change"] < 0).sum()) == 0 and int((steps["change"] > 0).sum()) > 0:
-                    spec["monotone"] = "increasing"
-                elif int((steps["change"] > 0).sum()) == 0 and int((steps["change"] < 0).sum()) > 0:
-                    spec["monotone"] = "decreasing"
+        elif c in direction:
+            spec["monotone"] = direction[c]
         doc[c] = spec
     return doc
 

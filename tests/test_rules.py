@@ -453,3 +453,16 @@ def test_readme_example_contract_is_valid(tmp_path):
     assert contract.columns[-1].min == dt.date(2017, 1, 1)
     assert contract.panel.only_listed_columns and contract.panel.first_period == 2017
     assert settings.severity("few-switchers", "warning") == "note"
+
+
+def test_steps_skip_missing_values_like_pandas_dropna_then_diff(random_panel, tmp_path):
+    # oracle: pandas, dropping missing values first, then diff within unit ordered by period
+    frame = random_panel.with_columns(
+        pl.when(pl.int_range(pl.len()) % 7 == 3).then(None).otherwise(pl.col("x").fill_nan(None).round(0)).alias("score")
+    )
+    path = write(tmp_path, "panel: {unit: unit, time: period}\ncolumns:\n  score: {monotone: decreasing, max_change: 25}\n")
+    res = check(frame, rules=path)
+    pdf = frame.select("unit", "period", "score").to_pandas().dropna().sort_values(["unit", "period"])
+    diffs = pdf.groupby("unit")["score"].diff().dropna()
+    assert by_rule(res, "monotone", "score").failing == int((diffs > 0).sum())
+    assert by_rule(res, "max_change", "score").failing == int((diffs.abs() > 25).sum())
