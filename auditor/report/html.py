@@ -347,7 +347,8 @@ def _summary(result: Any, findings: list[dict[str, Any]], lim: Limits) -> str:
     if p.get("missing_keys"):
         extra.append(f"{_plural(p['missing_keys'], 'row')} lack a unit or period key")
     if extra:
-        parts.append("; ".join(extra).capitalize() + ".")
+        text = "; ".join(extra)
+        parts.append(text[0].upper() + text[1:] + ".")
     tally = {s: sum(1 for f in findings if f.get("severity") == s) for s in _RANK}
     if findings:
         parts.append(
