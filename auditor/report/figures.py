@@ -627,7 +627,7 @@ def shifted_distributions(
         base, new = (np.asarray(q, dtype=float) for q in quantiles[name])
         pb = np.linspace(0.0, 1.0, base.size)
         pn = np.linspace(0.0, 1.0, new.size)
-        ax.plot(base, pb, color=BLUE, linewidth=1.6, drawstyle="steps-post", label="base")
+        ax.plot(base, pb, color=BLUE, linewidth=1.6, drawstyle="steps-post", label="base, last period")
         ax.plot(new, pn, color=VERMILLION, linewidth=1.6, linestyle=(0, (5, 2)),
                 drawstyle="steps-post", label="new wave")
         head = plain(name, 30)
