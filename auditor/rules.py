@@ -416,15 +416,28 @@ def _row_rules_gx(
         .add_batch_definition_whole_dataframe("all_rows")
         .get_batch(batch_parameters={"dataframe": pdf})
     )
-    suite = gx.ExpectationSuite(name="panel_audit_check")
-    for e in expectations:
-        suite.add_expectation(e)
-    outcome = batch.validate(
-        suite, result_format={"result_format": "SUMMARY", "partial_unexpected_count": limit}
-    )
+    def validate(chosen: list[Any], name: str, result_format: str) -> dict[tuple[str, str], Any]:
+        suite = gx.ExpectationSuite(name=name)
+        for e in chosen:
+            suite.add_expectation(e)
+        outcome = batch.validate(
+            suite, result_format={"result_format": result_format, "partial_unexpected_count": limit}
+        )
+        return {(r.expectation_config.meta["column"], r.expectation_config.meta["rule"]): r for r in outcome.results}
+
+    # Counts and verdicts for every rule at the library's BASIC level; the failing rows'
+    # positions (SUMMARY, which also tallies unexpected values) only for rules that fail.
+    by_rule = validate(expectations, "panel_audit_check", "BASIC")
+    failing_keys = {k for k, r in by_rule.items() if int((r.result or {}).get("unexpected_count") or 0) > 0}
+    located: dict[tuple[str, str], Any] = {}
+    if failing_keys:
+        again = [
+            e for e in build_expectations(columns)
+            if (e.meta["column"], e.meta["rule"]) in failing_keys
+        ]
+        located = validate(again, "panel_audit_examples", "SUMMARY")
     timings["expectations"] = _time.perf_counter() - clock
 
-    by_rule = {(r.expectation_config.meta["column"], r.expectation_config.meta["rule"]): r for r in outcome.results}
     spec = {c.name: c for c in columns}
     out: dict[str, list[RuleResult]] = {}
     rows = frame.height
@@ -437,7 +450,8 @@ def _row_rules_gx(
             raise fail("contract-engine", column=col, rule=rule, reason=reason)
         r = res.result
         failing = int(r.get("unexpected_count") or 0)
-        where = [int(i) for i in (r.get("partial_unexpected_index_list") or [])][:limit]
+        detail = located[(col, rule)].result if (col, rule) in located else {}
+        where = [int(i) for i in (detail.get("partial_unexpected_index_list") or [])][:limit]
         examples = _row_examples(panel, col, where)
         message = _row_message(spec[col], rule, failing, rows, int(r.get("missing_count") or 0))
         passed = bool(res.success)
