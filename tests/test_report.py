@@ -228,8 +228,9 @@ def test_report_keeps_an_existing_file_without_force(tmp_path):
     assert out.read_text().startswith("<!DOCTYPE html>")
 
 
-def _leftovers(folder: Path) -> list[str]:
-    return sorted(p.name for p in folder.iterdir() if p.name.endswith(".part"))
+def _files(folder: Path) -> list[str]:
+    """Every entry in ``folder``, hidden temporary files included."""
+    return sorted(p.name for p in folder.iterdir())
 
 
 def test_renderer_failing_midway_leaves_no_partial_file(tmp_path, monkeypatch):
@@ -244,7 +245,7 @@ def test_renderer_failing_midway_leaves_no_partial_file(tmp_path, monkeypatch):
     with pytest.raises(RuntimeError):
         report.write_report(data, unit="orchard", time="season", out=out)
     assert not out.exists()
-    assert _leftovers(tmp_path) == []
+    assert _files(tmp_path) == ["orchards.csv"]  # no partial page, no temporary file
 
 
 def test_write_interrupted_before_the_rename_keeps_the_old_file(tmp_path, monkeypatch):
@@ -262,7 +263,7 @@ def test_write_interrupted_before_the_rename_keeps_the_old_file(tmp_path, monkey
     with pytest.raises(KeyboardInterrupt):
         report.write_report(data, unit="orchard", time="season", out=out, force=True)
     assert out.read_text() == "earlier report"
-    assert _leftovers(tmp_path) == []
+    assert _files(tmp_path) == ["audit.html", "orchards.csv"]  # the temporary file is gone
 
 
 def test_png_dir_receives_each_drawn_figure(tmp_path):
