@@ -87,6 +87,16 @@ class Panel:
         return [{k: r[k] for k in self.unit} for r in rows.iter_rows(named=True)]
 
 
+def panel_units(coded: pl.LazyFrame, units: Sequence[str], engine: str) -> pl.DataFrame:
+    """One row per unit code with its key values, sorted by code."""
+    return (
+        coded.select(UNIT_ID, *units)
+        .unique(subset=[UNIT_ID], keep="any")
+        .sort(UNIT_ID)
+        .collect(engine=engine)
+    )
+
+
 def parse_unit(unit: str | Sequence[str]) -> tuple[str, ...]:
     """``"a,b"`` or ``["a", "b"]`` as a tuple of column names."""
     if isinstance(unit, str):
@@ -188,6 +198,11 @@ def load_panel(
             mem = memory_bytes()
             streaming = bool(mem) and total > share * mem
     engine = "streaming" if streaming else "auto"
+    if not streaming:  # read once; every later query runs on the frame in memory
+        try:
+            lf = lf.collect().lazy()
+        except pl.exceptions.PolarsError as exc:
+            raise fail("corrupt-file", path=source, format="data", reason=str(exc).splitlines()[0][:200]) from None
 
     lf = lf.with_row_index(ROW_ID)
     # Float keys: NaN counts as missing, like null.
@@ -240,18 +255,19 @@ def load_panel(
     label_at = dict(zip(positions_sorted, labels_sorted, strict=True))
     irregular = tuple((label_at[a], label_at[b]) for a, b in irregular_pairs)
 
-    unit_table = (
-        keyed.select(list(units)).unique().sort(list(units)).collect(engine=engine)
-    )
-    unit_table = unit_table.with_row_index(UNIT_ID).with_columns(pl.col(UNIT_ID).cast(pl.UInt32))
-    coded = (
-        keyed.join(unit_table.lazy(), on=list(units), how="left", maintain_order="left", nulls_equal=False)
-        .join(time_map.lazy(), on=time, how="left", maintain_order="left")
+    # Unit codes: dense ranks of the key (composite keys rank as a struct), 0-based, in key order.
+    key = pl.col(units[0]) if len(units) == 1 else pl.struct(list(units))
+    coded = keyed.with_columns(
+        (key.rank("dense") - 1).cast(pl.UInt32).alias(UNIT_ID),
+        pl.col(time)
+        .replace_strict(time_map[time], time_map[PERIOD_ID], return_dtype=pl.UInt32)
+        .alias(PERIOD_ID),
     )
     eager = None
     if not streaming:
         eager = coded.collect()
         coded = eager.lazy()
+    unit_table = panel_units(coded, units, engine)
     columns = tuple(c for c in schema if c not in keys and c not in INTERNAL)
     return Panel(
         lazy=coded,

@@ -13,7 +13,8 @@ from auditor.config import Settings, load_settings
 from auditor.findings import Finding, sort_findings
 from auditor.load import Panel, load_panel
 from auditor.structure import compute_structure, structure_findings
-from auditor.variation import compute_variation, variation_findings
+from auditor.structure import unit_exprs as structure_unit_exprs
+from auditor.variation import compute_variation, run_passes, variation_findings
 
 
 def tool_info() -> dict[str, str]:
@@ -100,8 +101,9 @@ def profile(
 
 def profile_panel(panel: Panel, settings: Settings) -> ProfileResult:
     """The profile of an already loaded panel."""
-    s = compute_structure(panel, settings)
-    v = compute_variation(panel, settings)
+    passes = run_passes(panel, extra_unit=structure_unit_exprs(panel))
+    s = compute_structure(panel, settings, passes.per_unit)
+    v = compute_variation(panel, settings, passes)
     findings = [*panel.load_findings, *structure_findings(panel, s, settings), *variation_findings(panel, v, settings)]
     return ProfileResult(
         panel=s.summary,

@@ -60,41 +60,69 @@ def _range(a: int, b: int, grid: tuple[Any, ...]) -> str:
     return f"{grid[a]}{sep}{grid[b]}"
 
 
+BITMASK_PERIODS = 63  # patterns as bit masks up to this many periods; beyond, as text
+
+
 def _pattern_expr(n_periods: int) -> pl.Expr:
-    if n_periods <= 63:
-        bits = pl.col(PERIOD_ID).replace_strict(
-            list(range(n_periods)), [1 << i for i in range(n_periods)], return_dtype=pl.UInt64
-        )
-        return bits.sum().alias("pattern")
-    return (
-        pl.col(PERIOD_ID).sort().cast(pl.String).str.join(",").alias("pattern")
-    )
+    if n_periods <= BITMASK_PERIODS:
+        bits = pl.lit(2, dtype=pl.UInt64).pow(pl.col(PERIOD_ID).cast(pl.UInt64))
+        return bits.bitwise_or().alias("pattern")
+    return pl.col(PERIOD_ID).unique().sort().cast(pl.String).str.join(",").alias("pattern")
 
 
-def compute_structure(panel: Panel, settings: Settings) -> Structure:
-    """Structure of ``panel``: every field of the contract's ``panel`` object."""
+def unit_exprs(panel: Panel) -> list[pl.Expr]:
+    """Per-unit aggregations the structure needs, for the shared grouped pass by unit."""
+    return [
+        pl.len().alias("__rows"),
+        pl.col(PERIOD_ID).min().alias("__first"),
+        pl.col(PERIOD_ID).max().alias("__last"),
+        pl.col(PERIOD_ID).n_unique().alias("__seen")
+        if panel.n_periods > BITMASK_PERIODS
+        else pl.lit(None).alias("__seen"),
+        _pattern_expr(panel.n_periods).alias("__pattern"),
+    ]
+
+
+def _decode(patterns: pl.Series, n_periods: int) -> np.ndarray:
+    """A (patterns x periods) boolean matrix: which periods each pattern holds."""
+    if patterns.dtype == pl.UInt64:
+        arr = patterns.to_numpy().astype(np.uint64)
+        bits = (arr[:, None] >> np.arange(n_periods, dtype=np.uint64)[None, :]) & np.uint64(1)
+        return bits.astype(bool)
+    seen = np.zeros((patterns.len(), n_periods), dtype=bool)
+    for row, text in enumerate(patterns.to_list()):  # beyond 63 periods only: one row per pattern
+        seen[row, [int(x) for x in text.split(",")]] = True
+    return seen
+
+
+LABELLED_PATTERNS = 1000  # patterns given a text label; rarer ones keep only their periods
+
+
+def compute_structure(panel: Panel, settings: Settings, unit_table: pl.DataFrame | None = None) -> Structure:
+    """Structure of ``panel``: every field of the contract's ``panel`` object.
+
+    ``unit_table`` is the shared grouped pass by unit holding :func:`unit_exprs`
+    (computed here when None).
+    """
     n_periods = panel.n_periods
-    cells = panel.collect(
-        panel.lazy.group_by(UNIT_ID, PERIOD_ID).agg(pl.len().alias("n"))
-    )
-    dup_cells = cells.filter(pl.col("n") > 1)
-    duplicate_keys = int((dup_cells["n"] - 1).sum()) if dup_cells.height else 0
-
-    per_unit = (
-        cells.group_by(UNIT_ID)
-        .agg(
-            pl.col("n").sum().alias("rows"),
-            pl.len().alias("periods_seen"),
-            pl.col(PERIOD_ID).min().alias("first"),
-            pl.col(PERIOD_ID).max().alias("last"),
-            _pattern_expr(n_periods),
-        )
-        .sort(UNIT_ID)
-    )
+    if unit_table is None:
+        unit_table = panel.collect(panel.lazy.group_by(UNIT_ID).agg(unit_exprs(panel)))
+    per_unit = unit_table.select(
+        pl.col(UNIT_ID),
+        pl.col("__rows").cast(pl.Int64).alias("rows"),
+        pl.col("__first").alias("first"),
+        pl.col("__last").alias("last"),
+        pl.col("__pattern").alias("pattern"),
+        (
+            pl.col("__pattern").bitwise_count_ones().cast(pl.Int64)
+            if n_periods <= BITMASK_PERIODS
+            else pl.col("__seen").cast(pl.Int64)
+        ).alias("periods_seen"),
+    ).sort(UNIT_ID)
     per_unit = per_unit.with_columns(
-        ((pl.col("last") - pl.col("first")).cast(pl.Int64) + 1 - pl.col("periods_seen"))
-        .alias("gap_periods")
+        ((pl.col("last") - pl.col("first")).cast(pl.Int64) + 1 - pl.col("periods_seen")).alias("gap_periods")
     )
+    duplicate_keys = int((per_unit["rows"] - per_unit["periods_seen"]).sum())
     n = per_unit.height
     t_i = per_unit["rows"].to_numpy().astype(np.float64)
     n_rows = float(t_i.sum())
@@ -116,53 +144,60 @@ def compute_structure(panel: Panel, settings: Settings) -> Structure:
     # Participation patterns: units grouped by the set of periods they are seen in.
     pat = (
         per_unit.group_by("pattern")
-        .agg(pl.len().alias("units"), pl.col(UNIT_ID).min().alias("first_unit"))
+        .agg(pl.len().alias("units"))
         .sort(["units", "pattern"], descending=[True, False])
     )
-    first_units = pat["first_unit"].to_list()
-    members = (
-        cells.filter(pl.col(UNIT_ID).is_in(first_units))
-        .group_by(UNIT_ID)
-        .agg(pl.col(PERIOD_ID).sort().alias("periods"))
+    seen = _decode(pat["pattern"], n_periods)
+    rows_idx, cols_idx = np.nonzero(seen)
+    periods_lists = (
+        pl.DataFrame({"r": rows_idx.astype(np.int64), "p": cols_idx.astype(np.uint32)})
+        .group_by("r")
+        .agg(pl.col("p").sort())
+        .sort("r")
     )
-    pat = pat.join(members, left_on="first_unit", right_on=UNIT_ID, how="left", maintain_order="left")
-    labels = [period_ranges(list(p), panel.grid) for p in pat["periods"].to_list()]
-    patterns = pat.select(
-        pl.col("periods"), pl.Series("label", labels, dtype=pl.String), pl.col("units")
+    labels = [
+        period_ranges(list(m), panel.grid) for m in periods_lists["p"].head(LABELLED_PATTERNS).to_list()
+    ]
+    labels += [None] * (pat.height - len(labels))
+    patterns = pl.DataFrame(
+        {
+            "periods": periods_lists["p"].cast(pl.List(pl.UInt32)).alias("periods"),
+            "label": pl.Series("label", labels, dtype=pl.String),
+            "units": pat["units"].cast(pl.Int64),
+        }
     )
     top = int(settings.get("profile", "patterns"))
 
-    # Attrition by period.
-    present = cells.group_by(PERIOD_ID).agg(pl.len().alias("present"))
-    entering = per_unit.group_by("first").agg(pl.len().alias("entering")).rename({"first": PERIOD_ID})
-    leaving = per_unit.group_by("last").agg(pl.len().alias("leaving")).rename({"last": PERIOD_ID})
-    returning = (
-        cells.sort(UNIT_ID, PERIOD_ID)
-        .with_columns(
-            (pl.col(PERIOD_ID).cast(pl.Int64) - pl.col(PERIOD_ID).cast(pl.Int64).shift(1).over(UNIT_ID))
-            .alias("jump")
-        )
-        .filter(pl.col("jump") > 1)
-        .group_by(PERIOD_ID)
-        .agg(pl.len().alias("returning"))
-    )
-    base = pl.DataFrame({PERIOD_ID: pl.Series(range(n_periods), dtype=pl.UInt32)})
-    att = base
-    for t in (present, entering, leaving, returning):
-        att = att.join(t.with_columns(pl.col(PERIOD_ID).cast(pl.UInt32)), on=PERIOD_ID, how="left")
-    att = att.fill_null(0).sort(PERIOD_ID)
-    last_index = n_periods - 1
+    # Attrition by period, from the pattern table (a few rows) and first/last periods.
+    weights = pat["units"].to_numpy().astype(np.int64)
+    present = (seen * weights[:, None]).sum(axis=0)
+    before = np.cumsum(seen, axis=1) - seen > 0  # seen in some earlier period
+    prev = np.zeros_like(seen)
+    prev[:, 1:] = seen[:, :-1]
+    returning = ((seen & ~prev & before) * weights[:, None]).sum(axis=0)
+    entering = np.bincount(per_unit["first"].to_numpy().astype(np.int64), minlength=n_periods)
+    leaving = np.bincount(per_unit["last"].to_numpy().astype(np.int64), minlength=n_periods)
     attrition = [
         {
-            "period": panel.grid[int(r[PERIOD_ID])],
-            "present": int(r["present"]),
-            "entering": int(r["entering"]),
-            "leaving": int(r["leaving"]) if int(r[PERIOD_ID]) < last_index else 0,
-            "returning": int(r["returning"]),
+            "period": panel.grid[t],
+            "present": int(present[t]),
+            "entering": int(entering[t]),
+            "leaving": int(leaving[t]) if t < n_periods - 1 else 0,
+            "returning": int(returning[t]),
         }
-        for r in att.iter_rows(named=True)
+        for t in range(n_periods)
     ]
 
+    if duplicate_keys:
+        doubled = per_unit.filter(pl.col("rows") > pl.col("periods_seen"))[UNIT_ID]
+        dup_cells = panel.collect(
+            panel.lazy.filter(pl.col(UNIT_ID).is_in(doubled.implode()))
+            .group_by(UNIT_ID, PERIOD_ID)
+            .agg(pl.len().alias("n"))
+            .filter(pl.col("n") > 1)
+        )
+    else:
+        dup_cells = pl.DataFrame(schema={UNIT_ID: pl.UInt32, PERIOD_ID: pl.UInt32, "n": pl.UInt32})
     k = int(settings.get("profile", "examples"))
     dup_ex = dup_cells.sort(UNIT_ID, PERIOD_ID).head(k)
     dup_labels = panel.unit_labels(dup_ex[UNIT_ID].to_list())

@@ -102,36 +102,106 @@ def _orderable(dtype: pl.DataType) -> bool:
     return not isinstance(dtype, pl.List | pl.Array | pl.Struct | pl.Object | pl.Null)
 
 
-def unit_exprs(panel: Panel, shift: dict[str, float]) -> list[pl.Expr]:
-    """Per-unit aggregations of every column: count, mean, centred sum of squares, min, max.
+def prepared(panel: Panel) -> pl.LazyFrame:
+    """The panel with helper columns so every grouped aggregation is a plain one.
 
-    Numeric columns are shifted by ``shift`` first; other columns give count, min and max
-    (a unit changes when its min and max differ).
+    For column alias ``a``: ``a:v`` the values with NaN as missing (infinities kept),
+    ``a:x`` the finite values as Float64 (numeric columns), ``a:t`` text for
+    categoricals.
+    """
+    names = column_aliases(panel)
+    exprs: list[pl.Expr] = []
+    for c in panel.columns:
+        a, dt = names[c], panel.schema[c]
+        if dt.is_float():
+            exprs.append(pl.when(pl.col(c).is_nan()).then(None).otherwise(pl.col(c)).alias(f"{a}:v"))
+            exprs.append(pl.when(pl.col(c).is_finite()).then(pl.col(c)).alias(f"{a}:x"))
+        elif is_numeric(dt):
+            exprs.append(pl.col(c).alias(f"{a}:v"))
+            exprs.append(pl.col(c).cast(pl.Float64).alias(f"{a}:x"))
+        elif _orderable(dt):
+            exprs.append(_text(c, dt).alias(f"{a}:v"))
+        else:
+            exprs.append(pl.col(c).alias(f"{a}:v"))
+    return panel.lazy.select(pl.col(UNIT_ID), pl.col(PERIOD_ID), *exprs)
+
+
+def unit_exprs(panel: Panel) -> list[pl.Expr]:
+    """Per-unit aggregations on :func:`prepared` columns: count, min and max of every column.
+
+    The sums (means and centred sums of squares) come from :func:`unit_moments`.
     """
     names = column_aliases(panel)
     out: list[pl.Expr] = []
     for c in panel.columns:
         a, dt = names[c], panel.schema[c]
-        if c in shift:
-            x = _clean(c, dt) - shift[c]
+        src = f"{a}:x" if is_numeric(dt) else f"{a}:v"
+        if is_numeric(dt) or _orderable(dt):
             out += [
-                x.count().alias(f"{a}:n"),
-                x.mean().alias(f"{a}:mean"),
-                # explicit two-pass sum: polars' grouped var() is not bit-reproducible
-                # from run to run, and the JSON must be (determinism)
-                ((x - x.mean()) ** 2).sum().alias(f"{a}:m2"),
-                x.min().alias(f"{a}:min"),
-                x.max().alias(f"{a}:max"),
-            ]
-        elif _orderable(dt):
-            out += [
-                pl.col(c).count().alias(f"{a}:n"),
-                _text(c, dt).min().alias(f"{a}:tmin"),
-                _text(c, dt).max().alias(f"{a}:tmax"),
+                pl.col(src).count().alias(f"{a}:n"),
+                pl.col(src).min().alias(f"{a}:min" if is_numeric(dt) else f"{a}:tmin"),
+                pl.col(src).max().alias(f"{a}:max" if is_numeric(dt) else f"{a}:tmax"),
             ]
         else:
-            out += [pl.col(c).count().alias(f"{a}:n"), pl.col(c).n_unique().alias(f"{a}:nu")]
+            out += [pl.col(src).count().alias(f"{a}:n"), pl.col(src).n_unique().alias(f"{a}:nu")]
     return out
+
+
+MOMENT_BATCH_ROWS = 4_000_000  # rows per batch of the ordered numpy pass in streaming mode
+
+
+def unit_moments(
+    panel: Panel, columns: list[str], shift: dict[str, float]
+) -> dict[str, tuple[np.ndarray, np.ndarray, np.ndarray]]:
+    """Per-unit (count, mean - shift, centred sum of squares) of each numeric column.
+
+    One ordered pass with numpy's bincount: polars' parallel grouped sums are not
+    bit-reproducible from run to run, and the JSON must be. Finite values only. In
+    streaming mode the rows come in batches, merged exactly (Chan et al.).
+    """
+    n_units = panel.n_units
+    out: dict[str, tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
+    if not columns:
+        return out
+    if panel.eager is not None:
+        batches = [panel.eager]
+    else:
+        total = panel.rows - panel.missing_keys
+        batches = (
+            panel.lazy.select(UNIT_ID, *columns).slice(start, MOMENT_BATCH_ROWS).collect(engine="streaming")
+            for start in range(0, total, MOMENT_BATCH_ROWS)
+        )
+    acc: dict[str, tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
+    for frame in batches:
+        u = frame[UNIT_ID].to_numpy().astype(np.intp)
+        for c in columns:
+            x = frame[c].cast(pl.Float64).to_numpy()
+            keep = np.isfinite(x)
+            if keep.all():
+                uu, xx = u, x - shift[c]
+            else:
+                uu, xx = u[keep], x[keep] - shift[c]
+            n = np.bincount(uu, minlength=n_units).astype(np.float64)
+            sums = np.bincount(uu, weights=xx, minlength=n_units)
+            mean = np.divide(sums, n, out=np.zeros_like(sums), where=n > 0)
+            dev = xx - mean[uu]
+            m2 = np.bincount(uu, weights=dev * dev, minlength=n_units)
+            acc[c] = (n, mean, m2) if c not in acc else merge_moments(acc[c], (n, mean, m2))
+    return acc
+
+
+def merge_moments(
+    a: tuple[np.ndarray, np.ndarray, np.ndarray], b: tuple[np.ndarray, np.ndarray, np.ndarray]
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Combine per-unit (count, mean, M2) of two parts exactly (Chan, Golub and LeVeque)."""
+    na, ma, qa = a
+    nb, mb, qb = b
+    n = na + nb
+    delta = mb - ma
+    w = np.divide(nb, n, out=np.zeros_like(n), where=n > 0)
+    mean = ma + delta * w
+    m2 = qa + qb + delta * delta * na * w
+    return n, mean, m2
 
 
 @dataclass(frozen=True)
@@ -169,44 +239,64 @@ def run_passes(panel: Panel, extra_unit: list[pl.Expr] | None = None) -> Passes:
                 clean.max().alias(f"{a}:max"),
             ]
         scalar.append(pl.col(c).null_count().alias(f"{a}:null"))
+        if _orderable(dt):
+            v = pl.col(c).fill_nan(None) if dt.is_float() else pl.col(c)
+            scalar.append(v.drop_nulls().n_unique().alias(f"{a}:distinct"))
     g = panel.collect(panel.lazy.select(scalar)).row(0, named=True)
+    n_keyed = int(g["__rows"])
     shift = {c: float(g.get(f"{names[c]}:shift") or 0.0) for c in numeric}
 
     per_period: list[pl.Expr] = [pl.len().alias("rows")]
     for c in cols:
         a, dt = names[c], schema[c]
-        present = _clean(c, dt) if c in numeric else _text(c, dt)
-        if c not in numeric and not _orderable(dt):
-            per_period += [pl.col(c).count().alias(f"{a}:n"), pl.col(c).n_unique().alias(f"{a}:nu")]
+        if not (is_numeric(dt) or _orderable(dt)):
+            per_period += [pl.col(f"{a}:v").count().alias(f"{a}:n"), pl.col(f"{a}:v").n_unique().alias(f"{a}:nu")]
             continue
-        if dt.is_float():  # infinities count as values here, as in distinct
-            present = pl.when(pl.col(c).is_nan()).then(None).otherwise(pl.col(c))
         per_period += [
-            present.count().alias(f"{a}:n"),
-            present.min().alias(f"{a}:pmin"),
-            present.max().alias(f"{a}:pmax"),
+            pl.col(f"{a}:v").count().alias(f"{a}:n"),
+            pl.col(f"{a}:v").min().alias(f"{a}:pmin"),
+            pl.col(f"{a}:v").max().alias(f"{a}:pmax"),
         ]
+    prep = prepared(panel)
     queries = [
-        panel.lazy.group_by(UNIT_ID).agg([*unit_exprs(panel, shift), *(extra_unit or [])]),
-        panel.lazy.group_by(PERIOD_ID).agg(per_period),
+        prep.group_by(UNIT_ID).agg([*unit_exprs(panel), *(extra_unit or [])]),
+        prep.group_by(PERIOD_ID).agg(per_period),
     ]
+    # Distinct values and the most common value's count. When every present value is
+    # distinct (continuous columns), the count is 1 and no value table is needed.
+    values: dict[str, tuple[int, int]] = {}
+    counted: list[str] = []
     for c in cols:
-        dt = schema[c]
-        keep = pl.col(c).is_not_null()
-        if dt.is_float():
-            keep = keep & ~pl.col(c).is_nan()
+        a, dt = names[c], schema[c]
+        v = pl.col(f"{a}:v")
         if not _orderable(dt):
-            queries.append(panel.lazy.select(pl.col(c).n_unique().alias("d"), pl.lit(0).alias("top")))
+            counted.append(c)
+            queries.append(prep.select(v.n_unique().alias("d"), pl.lit(0).alias("top")))
             continue
+        present = n_keyed - int(g[f"{a}:null"]) - int(g.get(f"{a}:nan") or 0)
+        distinct = int(g[f"{a}:distinct"])
+        if distinct == present:
+            values[a] = (distinct, 1 if distinct else 0)
+            continue
+        counted.append(c)
         queries.append(
-            panel.lazy.filter(keep).group_by(c).len().select(pl.len().alias("d"), pl.col("len").max().alias("top"))
+            prep.select(v).filter(v.is_not_null()).group_by(v).len().select(pl.len().alias("d"), pl.col("len").max().alias("top"))
         )
     engine = "streaming" if panel.streaming else "auto"
     results = pl.collect_all(queries, engine=engine)
     pu = results[0].sort(UNIT_ID)
     pp = results[1].sort(PERIOD_ID)
-    values = {}
-    for c, res in zip(cols, results[2:], strict=True):
+    moments = unit_moments(panel, numeric, shift)
+    codes = pu[UNIT_ID].to_numpy()
+    pu = pu.with_columns(
+        e
+        for c in numeric
+        for e in (
+            pl.Series(f"{names[c]}:mean", moments[c][1][codes]),
+            pl.Series(f"{names[c]}:m2", moments[c][2][codes]),
+        )
+    )
+    for c, res in zip(counted, results[2:], strict=True):
         row = res.row(0, named=True) if res.height else {"d": 0, "top": 0}
         values[names[c]] = (int(row["d"] or 0), int(row["top"] or 0))
     return Passes(scalars=g, per_unit=pu, per_period=pp, values=values, shift=shift)
@@ -299,7 +389,7 @@ def compute_variation(panel: Panel, settings: Settings, passes: Passes | None = 
             labels = panel.unit_labels([int(pu[UNIT_ID][int(i)]) for i in idx])
             if c in numeric:
                 exs = [
-                    {**lab, "min": float(lo[i] + shift[c]), "max": float(hi[i] + shift[c])}
+                    {**lab, "min": float(lo[i]), "max": float(hi[i])}
                     for lab, i in zip(labels, idx, strict=True)
                 ]
             elif f"{a}:tmin" in pu.columns:
