@@ -287,6 +287,9 @@ def main(argv: Sequence[str] | None = None) -> int:
         parser.print_help()
         return 2
     debug = bool(getattr(args, "debug", False))
+    from auditor import progress
+
+    progress.enable(bool(sys.stderr.isatty()) and not getattr(args, "json", False))
     try:
         return COMMANDS[args.command](args)
     except KeyboardInterrupt:

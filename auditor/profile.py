@@ -93,17 +93,24 @@ def profile(
     ``rules`` is a rules file overriding the shipped thresholds (or pass ``settings``).
     Raises AuditError for input that cannot be used.
     """
+    from auditor import progress
+
     if settings is None:
         settings = load_settings(rules)
-    panel = load_panel(data, unit, time, streaming=streaming, settings=settings)
+    with progress.step("reading the panel"):
+        panel = load_panel(data, unit, time, streaming=streaming, settings=settings)
     return profile_panel(panel, settings)
 
 
 def profile_panel(panel: Panel, settings: Settings) -> ProfileResult:
     """The profile of an already loaded panel."""
-    passes = run_passes(panel, extra_unit=structure_unit_exprs(panel))
-    s = compute_structure(panel, settings, passes.per_unit)
-    v = compute_variation(panel, settings, passes)
+    from auditor import progress
+
+    with progress.step(f"grouped pass over {panel.rows:,} rows"):
+        passes = run_passes(panel, extra_unit=structure_unit_exprs(panel))
+    with progress.step("structure and variation"):
+        s = compute_structure(panel, settings, passes.per_unit)
+        v = compute_variation(panel, settings, passes)
     findings = [*panel.load_findings, *structure_findings(panel, s, settings), *variation_findings(panel, v, settings)]
     return ProfileResult(
         panel=s.summary,
