@@ -251,3 +251,19 @@ def test_importing_the_report_modules_does_not_import_matplotlib(module):
     code = f"import sys, {module}; print('matplotlib' in sys.modules)"
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert out.stdout.strip() == "False"
+
+
+def test_many_periods_stay_small_in_svg():
+    # 3,000 daily periods: the entry/exit and periods-per-unit series become one filled
+    # area each (no bar per period), and the whole SVG stays small
+    n = 3000
+    attrition = [{"period": i, "present": 1000 + i, "entering": 5, "leaving": 4, "returning": 1}
+                 for i in range(n)]
+    fig = fg.entry_exit(attrition)
+    assert len(bar_patches(fig.axes[1])) == 0
+    assert fig.axes[1].get_xlim()[1] >= n - 1
+    assert len(fg.to_svg(fig, name="e")) < 150_000
+    counts = pl.DataFrame({"t_i": np.arange(1, n + 1), "units": np.full(n, 3)})
+    ppu = fg.periods_per_unit(counts, n)
+    assert ppu.axes[0].get_xlim() == (0.4, n + 0.6)
+    assert len(fg.to_svg(ppu, name="p")) < 150_000

@@ -87,6 +87,7 @@ STYLE: dict[str, Any] = {
 }
 
 WIDTH = 9.0  # inches; the report's column width
+MAX_BARS = 120  # beyond this many bars a series is drawn as one filled area (small, fast SVG)
 _CONTROL = re.compile(r"[\x00-\x1f\x7f-\x9f]")
 
 
@@ -254,6 +255,8 @@ def periods_per_unit(obs_per_unit: pl.DataFrame, n_periods: int) -> Figure:
     in every period in blue. Returns the Figure; x runs over 1..``n_periods``.
     """
     _mpl()
+    import numpy as np
+
     title = "In how many periods is each unit observed?"
     fig = _new_figure(3.0)
     ax = fig.axes[0]
@@ -261,9 +264,17 @@ def periods_per_unit(obs_per_unit: pl.DataFrame, n_periods: int) -> Figure:
         return _empty(fig, ax, title, "no units")
     t = obs_per_unit["t_i"].cast(pl.Int64).to_numpy()
     u = obs_per_unit["units"].cast(pl.Int64).to_numpy()
-    colours = [VERMILLION if ti == 1 else (BLUE if ti == n_periods else SKY) for ti in t.tolist()]
-    ax.bar(t, u, width=0.8, color=colours, linewidth=0)
     top = max(n_periods, int(t.max()))
+    if t.size <= MAX_BARS:
+        colours = [VERMILLION if ti == 1 else (BLUE if ti == n_periods else SKY) for ti in t.tolist()]
+        ax.bar(t, u, width=0.8, color=colours, linewidth=0)
+    else:  # many distinct counts: one filled area instead of a bar each
+        heights = np.zeros(top)
+        heights[t - 1] = u
+        ax.fill_between(np.arange(1, top + 1), heights, step="mid", color=SKY, linewidth=0, rasterized=True)
+        for ti, colour in ((1, VERMILLION), (n_periods, BLUE)):
+            if heights[ti - 1]:
+                ax.bar([ti], [heights[ti - 1]], width=max(1.0, top / 150), color=colour, linewidth=0)
     ax.set_xlim(0.4, top + 0.6)
     ax.set_xticks(_tick_positions_from_one(top))
     ax.set_xlabel("periods observed (T_i)")
@@ -319,8 +330,10 @@ def entry_exit(attrition: Sequence[Mapping[str, Any]]) -> Figure:
     leaving = np.array([a.get("leaving", 0) or 0 for a in attrition], dtype=float)
     returning = np.array([a.get("returning", 0) or 0 for a in attrition], dtype=float)
 
-    top.fill_between(x, present, step=None, color=SKY, alpha=0.35, linewidth=0)
-    top.plot(x, present, color=BLUE, linewidth=1.6, marker="o" if n <= 40 else None, markersize=3)
+    many = n > MAX_BARS
+    top.fill_between(x, present, step=None, color=SKY, alpha=0.35, linewidth=0, rasterized=many)
+    top.plot(x, present, color=BLUE, linewidth=1.6, marker="o" if n <= 40 else None, markersize=3,
+             rasterized=many)
     top.set_ylim(0, max(present.max(), 1) * 1.12)
     top.set_ylabel("units present")
     top.yaxis.grid(True)
@@ -333,11 +346,18 @@ def entry_exit(attrition: Sequence[Mapping[str, Any]]) -> Figure:
     limit = max(up_inner.max(initial=0), down_inner.max(initial=0), returning.max(initial=0), 1.0) * 1.25
     edge_big = entering[0] > limit or leaving[-1] > limit
     w = 0.8 if n <= 60 else 1.0
-    low.bar(x, np.minimum(entering, limit), width=w, color=GREEN, linewidth=0, label="entering")
-    low.bar(x, np.minimum(returning, limit), width=w, bottom=np.minimum(entering, limit),
-            color=ORANGE, linewidth=0, label="returning after a gap")
-    low.bar(x, -np.minimum(leaving, limit), width=w, color=VERMILLION, linewidth=0,
-            label="leaving (last period seen)")
+    ent, ret, lea = np.minimum(entering, limit), np.minimum(returning, limit), np.minimum(leaving, limit)
+    if n <= MAX_BARS:
+        low.bar(x, ent, width=w, color=GREEN, linewidth=0, label="entering")
+        low.bar(x, ret, width=w, bottom=ent, color=ORANGE, linewidth=0, label="returning after a gap")
+        low.bar(x, -lea, width=w, color=VERMILLION, linewidth=0, label="leaving (last period seen)")
+    else:  # many periods: one filled area per series instead of a bar each
+        # (fill_between makes one polygon per series; its limits update fast)
+        low.fill_between(x, ent, step="mid", color=GREEN, linewidth=0, label="entering", rasterized=True)
+        low.fill_between(x, ent, ent + ret, step="mid", color=ORANGE, linewidth=0,
+                         label="returning after a gap", rasterized=True)
+        low.fill_between(x, -lea, step="mid", color=VERMILLION, linewidth=0,
+                         label="leaving (last period seen)", rasterized=True)
     low.axhline(0, color=INK, linewidth=0.6)
     if edge_big:
         low.set_ylim(-limit * 1.08, limit * 1.08)
