@@ -130,6 +130,7 @@ def group_stats(
     keys: Sequence[str] | None = None,
     integral: Sequence[bool] | None = None,
     shifts: Sequence[float] | None = None,
+    engine: str = "auto",
 ) -> GroupStats:
     """Per-group sufficient statistics of numeric ``columns``, in one grouped pass.
 
@@ -138,7 +139,8 @@ def group_stats(
     files whose schemas differ). ``integral`` (default: from the frame's types) says
     which columns change by any difference rather than by the float tolerance;
     ``shifts`` (default: a value of each column read from the first rows) are the
-    values the stored means are relative to. Returns a :class:`GroupStats`; counts are rows, means in the column's units, M2 in
+    values the stored means are relative to; ``engine`` is the polars engine of the
+    grouped pass ("streaming" keeps memory bounded on large scans). Returns a :class:`GroupStats`; counts are rows, means in the column's units, M2 in
     squared units.
     """
     lf = frame.lazy()
@@ -172,7 +174,7 @@ def group_stats(
             _usable(c, here).min().alias(_field(j, "min")),
             _usable(c, here).max().alias(_field(j, "max")),
         ]
-    table = lf.group_by(by).agg(aggs).collect()
+    table = lf.group_by(by).agg(aggs).collect(engine=engine)
     table = _null_empty_m2(table, len(columns))
     return GroupStats(tuple(by), tuple(columns), tuple(flags), tuple(shift), table)
 
@@ -449,3 +451,202 @@ def column_figures(summary: ShardSummary | GroupStats, *, tolerance: float = 1e-
             }
         )
     return pl.DataFrame(rows, schema=FIGURES_SCHEMA)
+
+
+# --- column-level moments: merging disjoint groups of units --------------------------------
+
+MOMENTS: tuple[str, ...] = (
+    "rows",
+    "n",
+    "missing",
+    "nonfinite",
+    "units",
+    "twice",
+    "changing",
+    "mean",
+    "tss",
+    "wss",
+    "umean",
+    "um2",
+)
+
+
+@dataclass(frozen=True)
+class ColumnMoments:
+    """Column-level sufficient statistics of a set of whole units (no unit split across sets).
+
+    ``table`` has one row per column: ``rows`` (keyed rows), ``n`` (usable values),
+    ``missing``, ``nonfinite``, ``units`` (units with a value), ``twice`` (units with two
+    or more), ``changing`` (units that change), ``mean`` (minus ``shift``), ``tss`` (sum
+    of squares about that mean), ``wss`` (within sum of squares), ``umean`` and ``um2``
+    (mean, minus ``shift``, and centred sum of squares of the unit means). Two sets of
+    distinct units merge exactly by the Chan et al. update applied to (n, mean, tss) and
+    to (units, umean, um2).
+    """
+
+    columns: tuple[str, ...]
+    shifts: tuple[float, ...]
+    table: pl.DataFrame
+
+
+def column_moments(stats: GroupStats, *, tolerance: float = 1e-9) -> ColumnMoments:
+    """Reduce per-unit statistics of whole units to column-level moments (one row per column)."""
+    t = stats.table
+    exprs: list[pl.Expr] = []
+    for j, _c in enumerate(stats.columns):
+        n, m, m2 = (pl.col(_field(j, s)) for s in ("n", "mean", "m2"))
+        nf = n.cast(pl.Float64)
+        big_n = n.sum()
+        grand = (nf * m).sum() / big_n
+        exprs.append(
+            pl.struct(
+                pl.col(ROWS).sum().alias("rows"),
+                big_n.alias("n"),
+                pl.col(_field(j, "missing")).sum().alias("missing"),
+                pl.col(_field(j, "nonfinite")).sum().alias("nonfinite"),
+                (n > 0).sum().cast(pl.UInt64).alias("units"),
+                (n >= 2).sum().cast(pl.UInt64).alias("twice"),
+                _changes(stats, j, tolerance).sum().cast(pl.UInt64).alias("changing"),
+                grand.alias("mean"),
+                (m2.sum() + (nf * (m - grand) ** 2).sum()).alias("tss"),
+                m2.sum().alias("wss"),
+                m.mean().alias("umean"),
+                ((m - m.mean()) ** 2).sum().alias("um2"),
+            ).alias(str(j))
+        )
+    row = t.select(exprs).row(0, named=True)
+    records = []
+    for j, c in enumerate(stats.columns):
+        rec = dict(row[str(j)])
+        if not rec["n"]:
+            rec.update(mean=None, tss=None, wss=None, umean=None, um2=None)
+        records.append({"name": c, **rec})
+    return ColumnMoments(stats.columns, stats.shifts, pl.DataFrame(records, schema=_MOMENT_SCHEMA))
+
+
+_MOMENT_SCHEMA: dict[str, Any] = {
+    "name": pl.String,
+    **{k: pl.UInt64 for k in ("rows", "n", "missing", "nonfinite", "units", "twice", "changing")},
+    **{k: pl.Float64 for k in ("mean", "tss", "wss", "umean", "um2")},
+}
+
+
+def _chan(
+    parts: list[tuple[float, float | None, float | None]],
+) -> tuple[float, float | None, float | None]:
+    # (count, mean, centred sum of squares) of several parts -> of their union.
+    total = sum(k for k, _, _ in parts)
+    live = [(k, m, q) for k, m, q in parts if k and m is not None]
+    if not total or not live:
+        return total, None, None
+    mean = sum(k * m for k, m, _ in live) / total
+    m2 = sum(q for _, _, q in live) + sum(k * (m - mean) ** 2 for k, m, _ in live)
+    return total, mean, m2
+
+
+def merge_column_moments(parts: Iterable[ColumnMoments]) -> ColumnMoments:
+    """Combine the moments of disjoint sets of units exactly (Chan et al. update).
+
+    Every part must hold the same columns; means are re-based on the first part's shifts.
+    """
+    parts = list(parts)
+    if not parts:
+        raise ValueError("nothing to merge")
+    columns, shifts = parts[0].columns, parts[0].shifts
+    if any(p.columns != columns for p in parts):
+        raise ValueError("parts hold different columns")
+    records = []
+    for j, c in enumerate(columns):
+        recs = []
+        for p in parts:
+            r = p.table.row(j, named=True)
+            rebase = p.shifts[j] - shifts[j]
+            if r["mean"] is not None:
+                r["mean"] += rebase
+                r["umean"] += rebase
+            recs.append(r)
+        n, mean, tss = _chan([(r["n"], r["mean"], r["tss"]) for r in recs])
+        units, umean, um2 = _chan([(r["units"], r["umean"], r["um2"]) for r in recs])
+        live = [r["wss"] for r in recs if r["wss"] is not None]
+        rec = {
+            k: sum(r[k] for r in recs)
+            for k in ("rows", "missing", "nonfinite", "twice", "changing")
+        }
+        rec.update(n=n, units=units, mean=mean, tss=tss, wss=sum(live) if live else None)
+        rec.update(umean=umean, um2=um2)
+        records.append({"name": c, **rec})
+    return ColumnMoments(columns, shifts, pl.DataFrame(records, schema=_MOMENT_SCHEMA))
+
+
+def figures_from_moments(moments: ColumnMoments) -> pl.DataFrame:
+    """The column-level figures (as :func:`column_figures`) from merged column moments.
+
+    ``distinct``, ``dominant_share`` and ``periods_varying`` need the whole column or
+    the periods and are null here.
+    """
+    rows = []
+    for j, r in enumerate(moments.table.iter_rows(named=True)):
+        big_n, units, tss, wss = r["n"], r["units"], r["tss"], r["wss"]
+        rows.append(
+            {
+                "name": r["name"],
+                "observations": big_n,
+                "units": units,
+                "missing_share": r["missing"] / r["rows"] if r["rows"] else None,
+                "non_finite": r["nonfinite"],
+                "distinct": None,
+                "dominant_share": None,
+                "units_changing": r["changing"],
+                "units_observed_twice": r["twice"],
+                "mean": r["mean"] + moments.shifts[j] if big_n else None,
+                "overall_sd": (tss / (big_n - 1)) ** 0.5 if big_n > 1 else None,
+                "between_sd": (r["um2"] / (units - 1)) ** 0.5 if units > 1 else None,
+                "within_sd": (wss / (big_n - units)) ** 0.5 if big_n > units else None,
+                "within_share": (wss / tss) if tss else None,
+                "total_ss": tss,
+                "within_ss": wss,
+                "between_ss": (tss - wss) if big_n else None,
+                "periods_varying": None,
+            }
+        )
+    return pl.DataFrame(rows, schema=FIGURES_SCHEMA)
+
+
+def partitioned_figures(
+    source: pl.DataFrame | pl.LazyFrame,
+    *,
+    unit: str | Sequence[str],
+    time: str,
+    columns: Sequence[str],
+    parts: int,
+    tolerance: float = 1e-9,
+    engine: str = "streaming",
+) -> pl.DataFrame:
+    """Column figures in ``parts`` passes, each over the units of one hash partition.
+
+    Each pass holds the per-unit statistics of about 1/parts of the units, so memory is
+    bounded by the largest partition, at the cost of reading the input ``parts`` times;
+    the partitions' column moments are merged exactly. Returns :func:`figures_from_moments`.
+    """
+    unit_cols = [unit] if isinstance(unit, str) else list(unit)
+    keys = [*unit_cols, time]
+    lf = source.lazy()
+    schema = lf.collect_schema()
+    present = [c in schema for c in columns]
+    shifts = _shifts(lf, columns, present)
+    integral = _numeric_schema(schema, columns)
+    key = pl.struct(unit_cols) if len(unit_cols) > 1 else pl.col(unit_cols[0])
+    bucket = key.hash(seed=7) % parts
+    moments = []
+    for k in range(parts):
+        stats = group_stats(
+            lf.filter(bucket == k),
+            unit_cols,
+            columns,
+            keys=keys,
+            integral=integral,
+            shifts=shifts,
+            engine=engine,
+        )
+        moments.append(column_moments(stats, tolerance=tolerance))
+    return figures_from_moments(merge_column_moments(moments))
