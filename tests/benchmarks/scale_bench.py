@@ -25,6 +25,7 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
+import polars as pl  # noqa: E402
 from profile_bench import (  # noqa: E402
     NUMERIC,
     TEXT,
@@ -38,6 +39,7 @@ from profile_bench import (  # noqa: E402
     last_line,
     line,
     machine_line,
+    run_child,
     write_panel,
     write_pieces,
 )
@@ -92,27 +94,59 @@ def scale_runs(folder: Path, sizes: list[float], periods: int, repeat: int) -> N
             print(line(f"    floor {m:g}M / {m0:g}M", f"{f / f0:.2f}x"))
 
 
-def big_run(folder: Path, millions: float, periods: int) -> None:
+PARTITIONED_SCRIPT = """
+import sys, time
+import polars as pl
+from auditor.merge import partitioned_figures
+source, unit, period, numeric, parts = sys.argv[1:6]
+start = time.perf_counter()
+fig = partitioned_figures(pl.scan_parquet(source), unit=unit, time=period,
+                          columns=numeric.split(","), parts=int(parts))
+print(time.perf_counter() - start, fig.height)
+"""
+
+
+def big_run(folder: Path, millions: float, periods: int, parts: int, skip_profile: bool) -> None:
     pieces = folder / "waves"
     t0 = time.perf_counter()
-    rows = write_pieces(pieces, units_for(millions * 1e6, periods), periods)
-    size = sum(p.stat().st_size for p in pieces.iterdir()) / 2**30
+    if pieces.is_dir() and any(pieces.glob("*.parquet")):
+        rows = sum(pl.scan_parquet(p).select(pl.len()).collect().item() for p in pieces.glob("*.parquet"))
+        how = "reused"
+    else:
+        rows = write_pieces(pieces, units_for(millions * 1e6, periods), periods)
+        how = f"written in {time.perf_counter() - t0:.0f} s"
+    files = sorted(pieces.glob("*.parquet"))
+    size = sum(p.stat().st_size for p in files) / 2**30
     print(
-        f"larger-than-memory run: {rows:,} rows in {periods} Parquet pieces "
-        f"({size:.1f} GiB on disk, written in {time.perf_counter() - t0:.0f} s), "
-        f"{len(NUMERIC)} numeric + {len(TEXT)} text columns"
+        f"larger-than-memory run: {rows:,} rows in {len(files)} Parquet pieces "
+        f"({size:.1f} GiB on disk, {how}), {len(NUMERIC)} numeric + {len(TEXT)} text columns"
     )
-    a = best(profile_argv(pieces, "--streaming"), 1)
-    if a.code not in (0, 1):
-        print(f"  profile --streaming failed (exit {a.code}): {last_line(a.stderr)}")
-        return
-    floor_s, floor = floor_run(str(pieces / "*.parquet"), 1)
     limit = 4 * 1024
-    print(line("  profile --streaming (folder input)", fmt_s(a.seconds)))
+    floor_s, floor = floor_run(str(pieces / "*.parquet"), 1)
     print(line("  one-pass floor (same folder)", fmt_s(floor_s)))
-    print(line("  profile / floor", f"{a.seconds / floor_s:.2f}x", "<= 3x", a.seconds / floor_s <= 3))
-    print(line("  peak RSS profile", fmt_mib(a.rss_mib), "< 4,096 MiB", a.rss_mib < limit))
     print(line("  peak RSS floor", fmt_mib(floor.rss_mib)))
+    if not skip_profile:
+        a = best(profile_argv(pieces, "--streaming"), 1)
+        if a.code not in (0, 1):
+            print(f"  profile --streaming failed (exit {a.code}): {last_line(a.stderr)}")
+        else:
+            ratio = a.seconds / floor_s
+            print(line("  profile --streaming (folder input)", fmt_s(a.seconds)))
+            print(line("  profile / floor", f"{ratio:.2f}x", "<= 3x", ratio <= 3))
+            print(line("  peak RSS profile", fmt_mib(a.rss_mib), "< 4,096 MiB", a.rss_mib < limit))
+    # The mergeable statistics of auditor.merge, one streaming pass per unit partition:
+    # numeric column figures only (no distinct counts, kinds or structure).
+    m = run_child(
+        [sys.executable, "-c", PARTITIONED_SCRIPT, str(pieces / "*.parquet"), UNIT, TIME,
+         ",".join(NUMERIC), str(parts)]
+    )
+    if m.code != 0:
+        print(f"  partitioned merge pass failed: {last_line(m.stderr)}")
+        return
+    inner = float(m.stdout.split()[0])
+    print(line(f"  merge.partitioned_figures, {parts} unit partitions", fmt_s(inner)))
+    print(line("    / floor", f"{inner / floor_s:.2f}x"))
+    print(line("    peak RSS", fmt_mib(m.rss_mib), "< 4,096 MiB", m.rss_mib < limit))
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -123,14 +157,20 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--big", action="store_true", help="also the ~50M-row run from pieces")
     ap.add_argument("--big-rows", type=float, default=50, help="millions of rows of the big run")
     ap.add_argument("--only-big", action="store_true", help="skip the 1/4/16M sizes")
+    ap.add_argument("--parts", type=int, default=8, help="unit partitions of the merge pass")
+    ap.add_argument("--keep", metavar="DIR", help="write (or reuse) the data here and keep it")
+    ap.add_argument("--skip-profile", action="store_true", help="big run: floor and merge pass only")
     args = ap.parse_args(argv)
     print(machine_line())
-    with tempfile.TemporaryDirectory(prefix="pa-scale-") as tmp:
-        folder = Path(tmp)
-        if not args.only_big:
-            scale_runs(folder, [float(s) for s in args.sizes.split(",")], args.periods, args.repeat)
-        if args.big or args.only_big:
-            big_run(folder, args.big_rows, args.periods)
+    tmp = None if args.keep else tempfile.TemporaryDirectory(prefix="pa-scale-")
+    folder = Path(args.keep) if args.keep else Path(tmp.name)
+    folder.mkdir(parents=True, exist_ok=True)
+    if not args.only_big:
+        scale_runs(folder, [float(s) for s in args.sizes.split(",")], args.periods, args.repeat)
+    if args.big or args.only_big:
+        big_run(folder, args.big_rows, args.periods, args.parts, args.skip_profile)
+    if tmp is not None:
+        tmp.cleanup()
     return 0
 
 
