@@ -14,6 +14,7 @@ means (methods.md, section 2).
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -102,16 +103,20 @@ def _orderable(dtype: pl.DataType) -> bool:
     return not isinstance(dtype, pl.List | pl.Array | pl.Struct | pl.Object | pl.Null)
 
 
-def prepared(panel: Panel) -> pl.LazyFrame:
+def prepared(
+    panel: Panel, only: Sequence[str] | None = None, names: dict[str, str] | None = None
+) -> pl.LazyFrame:
     """The panel with helper columns so every grouped aggregation is a plain one.
 
     For column alias ``a``: ``a:v`` the values with NaN as missing (infinities kept),
     ``a:x`` the finite values as Float64 (numeric columns), ``a:t`` text for
-    categoricals.
+    categoricals. ``only`` limits the helper columns to those of the named columns
+    (a small plan for a one-column query on a wide panel); ``names`` are the
+    column aliases when the caller has them already.
     """
-    names = column_aliases(panel)
+    names = names or column_aliases(panel)
     exprs: list[pl.Expr] = []
-    for c in panel.columns:
+    for c in panel.columns if only is None else only:
         a, dt = names[c], panel.schema[c]
         if dt.is_float():
             exprs.append(pl.when(pl.col(c).is_nan()).then(None).otherwise(pl.col(c)).alias(f"{a}:v"))
@@ -271,7 +276,7 @@ def run_passes(panel: Panel, extra_unit: list[pl.Expr] | None = None) -> Passes:
         v = pl.col(f"{a}:v")
         if not _orderable(dt):
             counted.append(c)
-            queries.append(prep.select(v.n_unique().alias("d"), pl.lit(0).alias("top")))
+            queries.append(prepared(panel, [c], names).select(v.n_unique().alias("d"), pl.lit(0).alias("top")))
             continue
         present = n_keyed - int(g[f"{a}:null"]) - int(g.get(f"{a}:nan") or 0)
         distinct = int(g[f"{a}:distinct"])
@@ -280,7 +285,9 @@ def run_passes(panel: Panel, extra_unit: list[pl.Expr] | None = None) -> Passes:
             continue
         counted.append(c)
         queries.append(
-            prep.select(v).filter(v.is_not_null()).group_by(v).len().select(pl.len().alias("d"), pl.col("len").max().alias("top"))
+            # a one-column plan: planning the full 'prep' once per column is quadratic in
+            # the number of columns (2,000 columns took minutes)
+            prepared(panel, [c], names).select(v).filter(v.is_not_null()).group_by(v).len().select(pl.len().alias("d"), pl.col("len").max().alias("top"))
         )
     engine = "streaming" if panel.streaming else "auto"
     results = pl.collect_all(queries, engine=engine)
