@@ -690,7 +690,7 @@ CSS = """
 .pa-report{--ink:#1F2430;--muted:#5F6673;--rule:#DDE1E7;--wash:#F5F7FA;--blue:#0072B2;--sky:#56B4E9;
 --green:#009E73;--orange:#E69F00;--verm:#D55E00;--purple:#CC79A7;
 font:15px/1.5 system-ui,-apple-system,"Segoe UI",Roboto,"Noto Sans","DejaVu Sans",sans-serif;color:var(--ink);
-max-width:1040px;margin:0 auto;padding:0 20px 48px}
+max-width:1040px;margin:0 auto;padding:0 20px 48px;background:#fff}
 .pa-report *{box-sizing:border-box}
 .pa-report header{border-bottom:3px solid var(--ink);padding:26px 0 12px;margin-bottom:8px}
 .pa-report h1{font-size:26px;margin:0;letter-spacing:-.01em}
