@@ -277,6 +277,10 @@ def _plural(n: int, one: str, many: str | None = None) -> str:
     return f"{n} {one}" if n == 1 else f"{n} {many or one + 's'}"
 
 
+def _verb(n: int, one: str, many: str) -> str:
+    return one if n == 1 else many
+
+
 def _labels_text(labels: Sequence[Any]) -> str:
     return short_list([str(v) for v in labels], 6)
 
@@ -594,7 +598,8 @@ class _Comparison:
             ]
             self.add(
                 "returning-after-absence",
-                f"{_plural(after_gap.height, 'returning unit')} were absent from the base's last period "
+                f"{_plural(after_gap.height, 'returning unit')} {'was' if after_gap.height == 1 else 'were'} "
+                "absent from the base's last period "
                 f"{self._lab(self.last_pos)}; their gap stays in the panel: check they are the same units "
                 "(not re-used ids) before appending",
                 count=after_gap.height,
@@ -651,7 +656,8 @@ class _Comparison:
                 ]
                 self.add(
                     "overlapping-periods",
-                    f"{_plural(colliding, '(unit, period) key')} of the new wave are already in the base "
+                    f"{_plural(colliding, '(unit, period) key')} of the new wave {'is' if colliding == 1 else 'are'} "
+                "already in the base "
                     f"(period {_labels_text(labels)}); appending would duplicate them: drop or re-key the "
                     f"{_labels_text(labels)} rows of the new wave before appending, or replace the base's "
                     "rows on purpose",
@@ -664,7 +670,7 @@ class _Comparison:
             if late:
                 self.add(
                     "backfilled-rows",
-                    f"{_plural(late, 'row')} of the new wave fall in periods the base already holds "
+                    f"{_plural(late, 'row')} of the new wave {_verb(late, 'falls', 'fall')} in periods the base already holds "
                     f"({_labels_text([self._lab(p) for p in overlap])}) without colliding with its keys; "
                     "appending backfills those periods: check this is intended",
                     count=late,
@@ -681,7 +687,7 @@ class _Comparison:
             ]
             self.add(
                 "duplicate-keys",
-                f"{_plural(extra, 'row')} of the new wave repeat a (unit, period) key already used in the "
+                f"{_plural(extra, 'row')} of the new wave {_verb(extra, 'repeats', 'repeat')} a (unit, period) key already used in the "
                 "wave; keep one row per key before appending",
                 count=extra,
                 examples=examples,
@@ -689,7 +695,7 @@ class _Comparison:
         if self.np.missing_keys:
             self.add(
                 "missing-keys",
-                f"{_plural(self.np.missing_keys, 'row')} of the new wave have no unit or no period; they "
+                f"{_plural(self.np.missing_keys, 'row')} of the new wave {_verb(self.np.missing_keys, 'has', 'have')} no unit or no period; they "
                 "cannot be appended: fill in their keys or drop them",
                 count=self.np.missing_keys,
                 examples=self.np.missing_key_examples[: self.examples],
@@ -855,7 +861,7 @@ class _Comparison:
             self.add(
                 "invariant-changed",
                 f"'{c}' does not change within units in the base, but {_plural(n, 'returning unit')} "
-                "report a value in the new wave they never reported before; a fixed-effects model would "
+                f"{_verb(n, 'reports', 'report')} a value in the new wave they never reported before; a fixed-effects model would "
                 "read these as real changes: confirm them with the source or keep the base value",
                 column=c,
                 count=n,

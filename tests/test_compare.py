@@ -566,3 +566,15 @@ def test_composite_unit_keys_match_across_types():
     res = compare(base, new, unit="farm,plot", time="year")
     assert res.units["returning"] == 6 and res.units["entering"] == 0
     assert _one(res, "type-changed", "farm").severity == "error"
+
+
+def test_shuffling_the_rows_of_either_input_changes_nothing():
+    # invariant (style.md): row order carries no meaning in a panel
+    from auditor.demo_data import make_next_season, make_orchards
+
+    base = make_orchards()
+    new = make_next_season(base)
+    a = compare(base, new, unit="orchard_id", time="season").to_dict()
+    b = compare(base.sample(fraction=1.0, shuffle=True, seed=5), new.sample(fraction=1.0, shuffle=True, seed=6),
+                unit="orchard_id", time="season").to_dict()
+    assert a == b
