@@ -578,3 +578,9 @@ def test_shuffling_the_rows_of_either_input_changes_nothing():
     b = compare(base.sample(fraction=1.0, shuffle=True, seed=5), new.sample(fraction=1.0, shuffle=True, seed=6),
                 unit="orchard_id", time="season").to_dict()
     assert a == b
+
+
+def test_a_base_without_the_key_raises_the_compare_error_naming_the_base():
+    with pytest.raises(AuditError) as e:
+        compare(_small_base().rename({"id": "code"}), _small_new(), **KEYS)
+    assert e.value.code == "compare-key-missing" and "the base has no key column 'id'" in e.value.message
