@@ -187,10 +187,10 @@ def unit_moments(
             else:
                 uu, xx = u[keep], x[keep] - shift[c]
             n = np.bincount(uu, minlength=n_units).astype(np.float64)
-            sums = np.bincount(uu, weights=xx, minlength=n_units)
-            mean = np.divide(sums, n, out=np.zeros_like(sums), where=n > 0)
+            sums = np.bincount(uu, weights=xx, minlength=n_units).astype(np.float64)
+            mean = np.divide(sums, n, out=np.zeros(n_units), where=n > 0)
             dev = xx - mean[uu]
-            m2 = np.bincount(uu, weights=dev * dev, minlength=n_units)
+            m2 = np.bincount(uu, weights=dev * dev, minlength=n_units).astype(np.float64)
             acc[c] = (n, mean, m2) if c not in acc else merge_moments(acc[c], (n, mean, m2))
     return acc
 
@@ -603,7 +603,7 @@ def time_r2(
     """Share of the within variation of ``x`` explained by period effects (None when WSS = 0)."""
     t_i = np.bincount(u, minlength=n_units).astype(np.float64)
     sums = np.bincount(u, weights=x, minlength=n_units)
-    means = np.divide(sums, t_i, out=np.zeros_like(sums), where=t_i > 0)
+    means = np.divide(sums, t_i, out=np.zeros(sums.shape), where=t_i > 0)
     xt = x - means[u]
     wss = float(xt @ xt)
     if not wss > 0:
