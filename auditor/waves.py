@@ -419,6 +419,7 @@ class _Comparison:
         self.nkeys = [_key(j) for j in range(len(self.units))]
         self.examples = int(settings.get("profile", "examples"))
         self.findings: list[Finding] = []
+        self._counts: dict[tuple[str, str], pl.DataFrame] = {}
 
     def get(self, key: str) -> Any:
         return self.s.get(SECTION, key)
@@ -566,15 +567,21 @@ class _Comparison:
     def _lab(self, pos: int) -> Any:
         return _label_at(pos, self.scale.frequency)
 
-    def _unit_examples(self, table: pl.DataFrame, extra: Sequence[str] = ()) -> list[dict[str, Any]]:
-        """Examples from a table holding the text keys (and ``extra`` columns)."""
-        out = []
-        for r in table.head(self.examples).iter_rows(named=True):
-            d = {u: r[k] for u, k in zip(self.units, self.nkeys, strict=True)}
-            for e in extra:
-                d[e] = _json_value(r[e])
-            out.append(d)
-        return out
+    def _keys_of(self, row: dict[str, Any]) -> dict[str, Any]:
+        """The unit key of a row holding the text keys, by the user's column names."""
+        return {u: row[k] for u, k in zip(self.units, self.nkeys, strict=True)}
+
+    def _unit_examples(self, table: pl.DataFrame) -> list[dict[str, Any]]:
+        """The first units of a table holding the text keys, as examples."""
+        return [self._keys_of(r) for r in table.head(self.examples).iter_rows(named=True)]
+
+    def _level_counts(self, side: str, c: str) -> pl.DataFrame:
+        """Rows per non-missing level of ``c`` in the base reference (``ref``) or the new wave (``new``)."""
+        key = (side, c)
+        if key not in self._counts:
+            frame = self.ref if side == "ref" else self.N
+            self._counts[key] = frame.group_by(c).agg(pl.len().alias("n")).filter(pl.col(c).is_not_null())
+        return self._counts[key]
 
     # -- units ----------------------------------------------------------------------------
     def _units(self) -> dict[str, Any]:
@@ -589,12 +596,9 @@ class _Comparison:
             .sort(self.nkeys)
         )
         if after_gap.height:
-            ex = after_gap
             examples = [
-                {**e, "last_base_period": self._lab(int(p))}
-                for e, p in zip(
-                    self._unit_examples(ex), ex.get_column("__pa_last").head(self.examples).to_list(), strict=True
-                )
+                {**self._keys_of(r), "last_base_period": self._lab(int(r["__pa_last"]))}
+                for r in after_gap.head(self.examples).iter_rows(named=True)
             ]
             self.add(
                 "returning-after-absence",
@@ -651,7 +655,7 @@ class _Comparison:
                     .sort(keys)
                 )
                 examples = [
-                    {**{u: r[k] for u, k in zip(self.units, self.nkeys, strict=True)}, self.time: self._lab(r[POS])}
+                    {**self._keys_of(r), self.time: self._lab(r[POS])}
                     for r in ex.iter_rows(named=True)
                 ]
                 self.add(
@@ -681,7 +685,7 @@ class _Comparison:
             extra = int((dup.get_column("__pa_n") - 1).sum())
             ex = dup.sort(UNIT_ID, POS).head(self.examples).join(self.nunits, on=UNIT_ID, how="left")
             examples = [
-                {**{u: r[k] for u, k in zip(self.units, self.nkeys, strict=True)}, self.time: self._lab(r[POS]),
+                {**self._keys_of(r), self.time: self._lab(r[POS]),
                  "rows": int(r["__pa_n"])}
                 for r in ex.iter_rows(named=True)
             ]
@@ -854,7 +858,7 @@ class _Comparison:
             if not n:
                 continue
             examples = [
-                {**{u: r[k] for u, k in zip(self.units, self.nkeys, strict=True)},
+                {**self._keys_of(r),
                  "base": _json_value(r[f"{c}\x00base"]), "new": _json_value(r[c])}
                 for r in changed.head(self.examples).iter_rows(named=True)
             ]
@@ -889,7 +893,7 @@ class _Comparison:
                     continue
                 ex = hit.sort(f"{c}\x00z", descending=True).head(self.examples)
                 examples = [
-                    {**{u: r[k] for u, k in zip(self.units, self.nkeys, strict=True)},
+                    {**self._keys_of(r),
                      "base": _json_value(r[f"{c}\x00base"]), "new": _json_value(r[c]),
                      "robust_z": round(float(r[f"{c}\x00z"]), 2)}
                     for r in ex.iter_rows(named=True)
@@ -919,9 +923,9 @@ class _Comparison:
             if nb > max_levels:
                 info[c] = {"levels_checked": False}
                 continue
-            new_counts = self.N.group_by(c).agg(pl.len().alias("n")).filter(pl.col(c).is_not_null())
+            new_counts = self._level_counts("new", c)
             fresh = new_counts.filter(~pl.col(c).is_in(base_levels.implode())).sort("n", c, descending=[True, False])
-            ref_counts = self.ref.group_by(c).agg(pl.len().alias("n")).filter(pl.col(c).is_not_null())
+            ref_counts = self._level_counts("ref", c)
             ref_total = max(int(ref_counts.get_column("n").sum()), 1)
             gone = (
                 ref_counts.filter(~pl.col(c).is_in(new_counts.get_column(c).implode()))
@@ -974,8 +978,7 @@ class _Comparison:
             kind_cmp = "numeric"
             nb, nn = a.size, b.size
         else:
-            bc = self.ref.group_by(c).agg(pl.len().alias("n")).filter(pl.col(c).is_not_null())
-            nc = self.N.group_by(c).agg(pl.len().alias("n")).filter(pl.col(c).is_not_null())
+            bc, nc = self._level_counts("ref", c), self._level_counts("new", c)
             bd = dict(zip(bc[c].to_list(), bc["n"].to_list(), strict=True))
             nd = dict(zip(nc[c].to_list(), nc["n"].to_list(), strict=True))
             max_levels = int(self.get("category_max_levels"))
