@@ -204,6 +204,46 @@ def ols(
     return Fit(tuple(names), coef, cov, cov_cl, sigma2, int(dfr), nobs), e
 
 
+def _solve_sym(m: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Solve m x = b for a symmetric positive semi-definite m, equilibrated by its diagonal."""
+    d = np.sqrt(np.clip(np.diag(m), 0.0, None))
+    d = np.where(d > 0, 1.0 / np.where(d > 0, d, 1.0), 1.0)
+    ms = m * d[:, None] * d[None, :]
+    bs = b * (d[:, None] if b.ndim == 2 else d)
+    try:
+        xs = np.linalg.solve(ms, bs)
+    except np.linalg.LinAlgError:
+        xs = np.linalg.pinv(ms) @ bs
+    return xs * (d[:, None] if b.ndim == 2 else d)
+
+
+@dataclass(frozen=True)
+class _GramIV:
+    """2SLS pieces from one cross-product matrix of [instruments, design, y]."""
+
+    coef: np.ndarray
+    proj: np.ndarray  # instruments -> fitted design (L, K)
+    bread: np.ndarray  # (W'P W)^-1
+    e_pa_e: float  # e' P_A e
+    e_e: float  # e' e
+
+
+def _gram_iv(g: np.ndarray, ia: list[int], iw: list[int], iy: int) -> _GramIV:
+    saa = g[np.ix_(ia, ia)]
+    saw = g[np.ix_(ia, iw)]
+    say = g[ia, iy]
+    proj = _solve_sym(saa, saw)
+    wpw = saw.T @ proj
+    wpw = (wpw + wpw.T) / 2.0
+    bread = _inv(wpw)
+    coef = bread @ (proj.T @ say)
+    ae = say - saw @ coef
+    e_pa_e = float(ae @ _solve_sym(saa, ae))
+    sww = g[np.ix_(iw, iw)]
+    e_e = float(g[iy, iy] - 2.0 * coef @ g[iw, iy] + coef @ sww @ coef)
+    return _GramIV(coef, proj, bread, e_pa_e, max(e_e, 0.0))
+
+
 def tsls(
     design: np.ndarray,
     instruments: np.ndarray,
@@ -211,21 +251,28 @@ def tsls(
     names: tuple[str, ...] | list[str],
     codes: np.ndarray,
     n: int,
+    *,
+    gram: np.ndarray | None = None,
 ) -> tuple[Fit, np.ndarray]:
     """Two-stage least squares of ``y`` on ``design`` with ``instruments``; returns (Fit, residuals).
 
+    Works from the cross-product matrix of [instruments, design, y] (pass it as
+    ``gram`` when already computed) plus one pass for residuals and clustered scores.
     Residual variance e'e / (N - K), e the structural residuals.
     """
     nobs, k = design.shape
-    proj, *_ = np.linalg.lstsq(instruments, design, rcond=None)
-    fitted = instruments @ proj
-    bread = _inv(fitted.T @ fitted)
-    coef = bread @ (fitted.T @ y)
+    L = instruments.shape[1]
+    if gram is None:
+        full = np.column_stack([instruments, design, y])
+        gram = full.T @ full
+    piv = _gram_iv(gram, list(range(L)), list(range(L, L + k)), L + k)
+    coef = piv.coef
     e = y - design @ coef
+    fitted = instruments @ piv.proj
     dfr = nobs - k
     sigma2 = float(e @ e) / max(dfr, 1)
-    cov = sigma2 * bread
-    cov_cl = _cluster_cov(bread, fitted * e[:, None], codes, n, nobs)
+    cov = sigma2 * piv.bread
+    cov_cl = _cluster_cov(piv.bread, fitted * e[:, None], codes, n, nobs)
     return Fit(tuple(names), coef, cov, cov_cl, sigma2, int(dfr), nobs), e
 
 
@@ -430,12 +477,20 @@ def hausman_within_random(wf: Fit, re: Fit, columns: list[str] | None = None) ->
 
 @dataclass(frozen=True)
 class HausmanTaylor:
-    """The Hausman-Taylor (1981) fit, its variance components and over-identification tests."""
+    """The Hausman-Taylor (1981) fit, its variance components and over-identification tests.
+
+    ``c_tests`` holds, per X1 mean instrument, the difference-in-Sargan (C) test of that
+    mean: C = (e'P_A e - e_r'P_Ar e_r) / (e'e / N), the full instrument set A against A
+    without that mean at the same theta, scaled by the full model's residual variance
+    (Eichenbaum, Hansen and Singleton 1988; Hayashi 2000, section 3.6), chi-square 1 df;
+    None when dropping the mean leaves fewer X1 means than Z2 columns.
+    """
 
     fit: Fit
     components: Components
     sargan: WaldTest | None
     hausman_within: WaldTest | None
+    c_tests: dict[str, WaldTest | None] = field(default_factory=dict)
 
 
 def hausman_taylor(
@@ -473,59 +528,47 @@ def hausman_taylor(
     _, r = tsls(design_u, instr_u, d, (CONST, *z1, *z2), unit_codes, sub.n)
     sigma2_u = max(0.0, float(np.mean(r**2)) - sigma2_e * float(np.mean(1.0 / sub.counts)))
     theta = _theta(sigma2_e, sigma2_u, sub.counts)
-    fit, e, explained = _ht_final(sub, x1, x2, z1, z2, means, theta)
+    design, ys, instr = _ht_arrays(sub, x1, x2, z1, z2, means, theta)
+    full = np.column_stack([instr, design, ys])
+    gram = full.T @ full
+    del full
+    names = (*x1, *x2, CONST, *z1, *z2)
+    fit, _ = tsls(design, instr, ys, names, sub.codes, sub.n, gram=gram)
+    L, K = instr.shape[1], design.shape[1]
+    ia, iw, iy = list(range(L)), list(range(L, L + K)), L + K
+    base = _gram_iv(gram, ia, iw, iy)
     sargan = hw = None
     if k1 > g2:
-        stat = float(sub.nobs * (explained @ explained) / (e @ e))
+        stat = float(sub.nobs * base.e_pa_e / base.e_e)
         dof = k1 - g2
         sargan = WaldTest(stat, dof, float(stats.chi2.sf(stat, dof)))
         idx = list(range(nx))
         hw = contrast(fit.coef[idx], fit.cov[np.ix_(idx, idx)], wf.coef, wf.cov, df=dof)
-    return HausmanTaylor(fit, Components(sigma2_u, sigma2_e, theta), sargan, hw)
+    c_tests: dict[str, WaldTest | None] = {}
+    # the unit means sit after the len(x1) + len(x2) within deviations in the instruments
+    first_mean = nx
+    scale = base.e_e / sub.nobs
+    for j, c in enumerate(means):  # loop over the few X1 means
+        if len(means) - 1 < g2:
+            c_tests[c] = None
+            continue
+        keep = [i for i in ia if i != first_mean + j]
+        restricted = _gram_iv(gram, keep, iw, iy)
+        stat = max(0.0, (base.e_pa_e - restricted.e_pa_e) / scale)
+        c_tests[c] = WaldTest(stat, 1, float(stats.chi2.sf(stat, 1)))
+    return HausmanTaylor(fit, Components(sigma2_u, sigma2_e, theta), sargan, hw, c_tests)
 
 
-def _ht_final(
+def _ht_arrays(
     sub: PanelArrays, x1: list[str], x2: list[str], z1: list[str], z2: list[str], means: list[str],
     theta: np.ndarray,
-) -> tuple[Fit, np.ndarray, np.ndarray]:
-    """Steps 3-4 of Hausman-Taylor: (fit, residuals, residuals projected on the instruments)."""
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Steps 3-4 of Hausman-Taylor: the transformed design (X1, X2, const, Z1, Z2), outcome and
+    the instruments A = [X - X means, X1 means, 1, Z1]."""
     nx = len(x1) + len(x2)
     design, ys = _quasi_demean(sub, theta)
-    # reorder to X1, X2, const, Z1, Z2
     design = np.column_stack([design[:, 1 : 1 + nx], design[:, :1], design[:, 1 + nx :]])
     xw = sub.x - sub.xbar[sub.codes]
     xbar1 = sub.xbar[:, [sub.x_names.index(c) for c in means]]
     instr = np.column_stack([xw, xbar1[sub.codes], np.ones(sub.nobs), sub.z[:, : len(z1)]])
-    names = (*x1, *x2, CONST, *z1, *z2)
-    fit, e = tsls(design, instr, ys, names, sub.codes, sub.n)
-    proj, *_ = np.linalg.lstsq(instr, e, rcond=None)
-    return fit, e, instr @ proj
-
-
-def instrument_difference(
-    pa: PanelArrays,
-    x1: list[str],
-    x2: list[str],
-    z1: list[str],
-    z2: list[str],
-    means: list[str],
-    candidate: str,
-    theta: np.ndarray,
-) -> WaldTest | None:
-    """Difference-in-Sargan (C) test of the unit mean of ``candidate`` as an instrument.
-
-    C = (e'P_A e - e_r'P_Ar e_r) / (e'e / N): the full Hausman-Taylor instrument set A
-    against the set without that mean, both at the full model's ``theta`` and scaled
-    by the full model's residual variance (Eichenbaum, Hansen and Singleton 1988;
-    Hayashi 2000, section 3.6); chi-square with 1 df. None when dropping the mean
-    leaves fewer instruments than Z2 columns (the restriction cannot be tested).
-    """
-    rest = [c for c in means if c != candidate]
-    if len(rest) < len(z2) or candidate not in means:
-        return None
-    sub = pa.select(x1 + x2, z1 + z2)
-    _, e, ex = _ht_final(sub, x1, x2, z1, z2, means, theta)
-    _, er, exr = _ht_final(sub, x1, x2, z1, z2, rest, theta)
-    scale = float(e @ e) / sub.nobs
-    stat = max(0.0, float(ex @ ex - exr @ exr) / scale)
-    return WaldTest(stat, 1, float(stats.chi2.sf(stat, 1)))
+    return design, ys, instr

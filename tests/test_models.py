@@ -238,3 +238,33 @@ def test_unit_means_match_pandas_groupby():
     pa = _sim_arrays(d)
     ref = d.groupby("unit")[["x1a", "x1b", "x2"]].mean().to_numpy()
     np.testing.assert_allclose(pa.xbar, ref, rtol=1e-12)
+
+
+def test_difference_in_sargan_matches_statsmodels_iv2sls_fits():
+    # oracle: C = (e'P_A e - e_r'P_Ar e_r) / (e'e / N) (Hayashi 2000, section 3.6) with both 2SLS
+    # fits by statsmodels IV2SLS on the quasi-demeaned data, and e'P e from statsmodels OLS of the
+    # residuals on the instruments (uncentred explained sum of squares)
+    from statsmodels.sandbox.regression.gmm import IV2SLS
+
+    d = simulate(seed=8)
+    pa = _sim_arrays(d)
+    ht = models.hausman_taylor(pa, ["x1a", "x1b"], ["x2"], ["z1"], ["z2"])
+    th = pd.Series(ht.components.theta)[d["unit"]].to_numpy()
+    mean = d.groupby("unit")[["y", "x1a", "x1b", "x2", "z1", "z2"]].transform("mean")
+    cols = ["x1a", "x1b", "x2", "z1", "z2"]
+    star = d[cols] - th[:, None] * mean[cols]
+    star.insert(3, "const", 1 - th)
+    ystar = d["y"] - th * mean["y"]
+    a = pd.DataFrame({"wa": d["x1a"] - mean["x1a"], "wb": d["x1b"] - mean["x1b"], "w2": d["x2"] - mean["x2"],
+                      "ma": mean["x1a"], "mb": mean["x1b"], "one": 1.0, "z1": d["z1"]})
+
+    def epe(instr):
+        fit = IV2SLS(ystar, star, instr).fit()
+        e = ystar - star @ fit.params.to_numpy()
+        return float(sm.OLS(e, instr).fit().fittedvalues.pow(2).sum()), float(e @ e)
+
+    full, ee = epe(a)
+    restricted, _ = epe(a.drop(columns=["ma"]))
+    c = (full - restricted) / (ee / len(d))
+    assert ht.c_tests["x1a"].statistic == pytest.approx(c, rel=1e-6)
+    assert ht.sargan.statistic == pytest.approx(len(d) * full / ee, rel=1e-8)
