@@ -156,3 +156,23 @@ def test_check_does_import_great_expectations(orchard_files, drafted):
     )
     run = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=ROOT, timeout=300)
     assert run.stdout.strip().endswith("LOADED")
+
+
+def test_a_contract_serves_as_the_thresholds_file_of_profile(tmp_path):
+    # labour_days is 25% missing in the next season (auditor/demo_data.py NEXT_LABOUR_MISSING):
+    # high-missing under the default ceiling (0.20), not under a contract that raises it to 0.30
+    text = (ROOT / "examples" / "orchards_contract.yaml").read_text(encoding="utf-8")
+    assert "high_missing_share: 0.10" in text
+    contract = tmp_path / "lenient.yaml"
+    contract.write_text(text.replace("high_missing_share: 0.10", "high_missing_share: 0.30"), encoding="utf-8")
+    data = str(ROOT / "examples" / "orchards_next_season.csv")
+    keys = ["--unit", "orchard_id", "--time", "season", "--json", "--fail-on", "never"]
+
+    def flagged(*extra: str) -> bool:
+        run = run_cli("profile", data, *keys, *extra)
+        assert run.returncode == 0, run.stderr
+        doc = json.loads(run.stdout)
+        return any(f["check"] == "high-missing" and f["column"] == "labour_days" for f in doc["findings"])
+
+    assert flagged()
+    assert not flagged("--rules", str(contract))

@@ -481,3 +481,43 @@ def test_shuffled_rows_and_pandas_input_give_the_same_results(random_panel, tmp_
 
     assert strip(shuffled) == strip(base)
     assert strip(from_pandas) == strip(base)
+
+
+def test_draft_passes_on_composite_keys_monthly_dates_and_gaps(tmp_path):
+    # a hand-built panel exercising every column type the draft writes; the claim is the
+    # issue's: the data a contract was drafted from passes it
+    rng = np.random.default_rng(11)
+    months = pl.date_range(dt.date(2020, 1, 1), dt.date(2021, 12, 1), "1mo", eager=True)
+    frame = (
+        pl.DataFrame({"region": ["N", "S", "E"]})
+        .join(pl.DataFrame({"farm": list(range(40))}), how="cross")
+        .join(pl.DataFrame({"month": months}), how="cross")
+    )
+    n = frame.height
+    frame = frame.with_columns(
+        pl.Series("price", np.where(rng.random(n) < 0.1, np.nan, rng.normal(3, 1, n))),
+        pl.Series("herd", rng.integers(0, 400, n)),
+        pl.Series("certified", rng.random(n) < 0.3),
+        pl.Series("grade", rng.choice(["a", "b", None], n)),
+        (pl.col("month") + pl.duration(days=pl.col("farm") % 20)).alias("visited"),
+        pl.col("month").cast(pl.Datetime("us")).alias("stamp"),
+        (pl.col("farm") * 3 + 10).alias("founded"),
+    ).filter(pl.Series(rng.random(n) > 0.07))
+    text = draft(frame, unit=["region", "farm"], time="month")
+    doc = yaml.safe_load(text)
+    assert doc["panel"]["unit"] == ["region", "farm"]
+    assert doc["panel"]["periods"][0] == "2020-01"
+    assert doc["columns"]["founded"]["invariant"] is True
+    assert doc["columns"]["certified"]["allowed"] == [False, True]
+    assert doc["columns"]["visited"]["min"] == dt.date(2020, 1, 1)
+    path = tmp_path / "c.yaml"
+    path.write_text(text, encoding="utf-8")
+    res = check(frame, rules=path)
+    assert res.passed, [r for r in res.rules if not r.passed]
+    # and a changed delivery breaks it: one herd out of range, one founding year changed
+    worse = frame.with_columns(
+        pl.when(pl.int_range(pl.len()) == 5).then(10_000).otherwise(pl.col("herd")).alias("herd"),
+        pl.when(pl.int_range(pl.len()) == 0).then(999).otherwise(pl.col("founded")).alias("founded"),
+    )
+    failed = {(r.rule, r.column): r.failing for r in check(worse, rules=path).failed}
+    assert failed == {("max", "herd"): 1, ("invariant", "founded"): 1, ("max", "founded"): 1}
