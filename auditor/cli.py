@@ -263,8 +263,9 @@ def _cmd_demo(args: argparse.Namespace) -> int:
     run = run_demo(Path(args.out) if args.out else None)
     sys.stdout.write(render(run.profile, width=terminal_width(), colour=use_colour(sys.stdout)))
     sys.stdout.write("\nfiles written:\n")
+    pad = max((len(name) for name in run.paths), default=0)
     for name, path in run.paths.items():
-        sys.stdout.write(f"  {name:<10} {path}\n")
+        sys.stdout.write(f"  {name:<{pad}}  {path}\n")
     return 0
 
 

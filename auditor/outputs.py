@@ -50,6 +50,9 @@ def write_atomic(
     except OSError as exc:
         raise fail("output-unwritable", path=path, reason=exc.strerror or str(exc)) from None
     try:
+        umask = os.umask(0)
+        os.umask(umask)
+        os.chmod(tmp, 0o666 & ~umask)  # mkstemp creates 0600; give the usual permissions
         with os.fdopen(fd, "wb") as fh:
             fh.write(payload)
             fh.flush()

@@ -129,8 +129,8 @@ def findings_block(findings: Sequence[Finding], width: int, colour: bool, exampl
         where = f" [{safe(f.column)}]" if f.column else ""
         first = f"  {tag} {f.check}{where}"
         lines.append(first)
-        for part in wrap(safe(f.message), width - 12, 12):
-            lines.append(" " * 12 + part.lstrip())
+        for part in wrap(safe(f.message), width - 12, 0):
+            lines.append(" " * 12 + part)
         for ex in f.examples[:examples]:
             lines.append(paint(clip(" " * 12 + "e.g. " + example_text(dict(ex)), width), "dim", colour))
     return lines
