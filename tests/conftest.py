@@ -5,6 +5,7 @@ from __future__ import annotations
 import os
 import subprocess
 import sys
+import types
 from pathlib import Path
 
 import pytest
@@ -19,7 +20,7 @@ def run_cli(*args: str, timeout: float = 120, env: dict[str, str] | None = None)
     full_env["PYTHONPATH"] = str(ROOT) + os.pathsep + full_env.get("PYTHONPATH", "")
     if env:
         full_env.update(env)
-    return subprocess.run(
+    proc = subprocess.run(
         [sys.executable, "-m", "auditor.cli", *args],
         capture_output=True,
         text=True,
@@ -27,9 +28,50 @@ def run_cli(*args: str, timeout: float = 120, env: dict[str, str] | None = None)
         env=full_env,
         cwd=ROOT,
     )
+    if proc.returncode == 2:
+        CLI_ERROR_LINES.extend(line for line in proc.stderr.splitlines() if line.startswith("panel-audit: error:"))
+    return proc
 
 
 @pytest.fixture
 def cli():
     """The :func:`run_cli` helper as a fixture."""
     return run_cli
+
+
+# --- error catalogue coverage (tests/test_error_catalogue.py) -----------------------------
+# Codes raised in this process and error lines printed by CLI subprocesses, collected over
+# the whole session; the coverage tests run last and judge them when the full suite ran.
+# One shared record even when this file is imported twice (as 'conftest' by pytest and as
+# 'tests.conftest' by a test module).
+_STATE = sys.modules.setdefault("_panel_audit_test_record", types.ModuleType("_panel_audit_test_record"))
+if not hasattr(_STATE, "codes"):
+    _STATE.codes, _STATE.lines, _STATE.session = set(), [], {"full_suite": False}
+TRIGGERED_CODES: set[str] = _STATE.codes
+CLI_ERROR_LINES: list[str] = _STATE.lines
+SESSION: dict[str, bool] = _STATE.session
+COVERAGE_TESTS = ("test_every_catalogue_entry_is_triggered", "test_every_cli_error_line_is_in_the_catalogue")
+
+
+@pytest.fixture(autouse=True, scope="session")
+def _record_error_codes():
+    from auditor import errors
+
+    original = errors.AuditError.__init__
+
+    def recording(self, code, message):
+        TRIGGERED_CODES.add(code)
+        original(self, code, message)
+
+    errors.AuditError.__init__ = recording
+    yield
+    errors.AuditError.__init__ = original
+
+
+def pytest_collection_modifyitems(session, config, items):
+    last = [i for i in items if i.name in COVERAGE_TESTS]
+    items[:] = [i for i in items if i.name not in COVERAGE_TESTS] + last
+    collected = {Path(str(i.fspath)).name for i in items}
+    every = {p.name for p in (ROOT / "tests").glob("test_*.py")}
+    deselect = config.getoption("-k") or config.getoption("-m")
+    SESSION["full_suite"] = every <= collected and not deselect
