@@ -28,24 +28,56 @@ CONST = "const"
 # --------------------------------------------------------------------------- arrays
 
 
+class UnitGrouper:
+    """Sums over units as one sparse product: an n x N indicator matrix built once per codes array."""
+
+    def __init__(self, codes: np.ndarray, n: int) -> None:
+        from scipy import sparse
+
+        codes = np.asarray(codes)
+        self.n = n
+        self.nobs = codes.shape[0]
+        self.order = np.argsort(codes, kind="stable")
+        counts = np.bincount(codes, minlength=n)
+        self.indptr = np.concatenate([[0], np.cumsum(counts)]).astype(np.int64)
+        self._sparse = sparse
+        self.indicator = sparse.csr_matrix((np.ones(self.nobs), self.order, self.indptr), shape=(n, self.nobs))
+
+    def sums(self, values: np.ndarray) -> np.ndarray:
+        """Per-unit sums of ``values`` ((N,) or (N, k)); returns (n,) or (n, k)."""
+        return np.asarray(self.indicator @ values)
+
+    def weighted_sums(self, weights: np.ndarray, values: np.ndarray) -> np.ndarray:
+        """Per-unit sums of ``weights * values`` without forming the N x k product."""
+        m = self._sparse.csr_matrix((weights[self.order], self.order, self.indptr), shape=(self.n, self.nobs))
+        return np.asarray(m @ values)
+
+
+_GROUPERS: list[tuple[np.ndarray, int, UnitGrouper]] = []
+
+
+def grouper(codes: np.ndarray, n: int) -> UnitGrouper:
+    """The UnitGrouper of ``codes`` (the same array object reuses the last few built)."""
+    for arr, size, g in _GROUPERS:
+        if arr is codes and size == n:
+            return g
+    g = UnitGrouper(codes, n)
+    _GROUPERS.insert(0, (codes, n, g))
+    del _GROUPERS[4:]
+    return g
+
+
 def unit_means(codes: np.ndarray, n: int, values: np.ndarray, counts: np.ndarray | None = None) -> np.ndarray:
     """Per-unit means of ``values`` ((N,) or (N, k)); returns (n,) or (n, k) in the values' units."""
     if counts is None:
         counts = np.bincount(codes, minlength=n).astype(float)
-    if values.ndim == 1:
-        return np.bincount(codes, weights=values, minlength=n) / counts
-    out = np.empty((n, values.shape[1]))
-    for j in range(values.shape[1]):  # loop over columns, never over units
-        out[:, j] = np.bincount(codes, weights=values[:, j], minlength=n)
-    return out / counts[:, None]
+    sums = grouper(codes, n).sums(values)
+    return sums / (counts if values.ndim == 1 else counts[:, None])
 
 
 def unit_sums(codes: np.ndarray, n: int, values: np.ndarray) -> np.ndarray:
     """Per-unit sums of the columns of ``values`` (N, k); returns (n, k)."""
-    out = np.empty((n, values.shape[1]))
-    for j in range(values.shape[1]):
-        out[:, j] = np.bincount(codes, weights=values[:, j], minlength=n)
-    return out
+    return grouper(codes, n).sums(values)
 
 
 @dataclass(frozen=True)
@@ -109,7 +141,15 @@ class PanelArrays:
         """The same panel with only the named X and Z columns (in the given order)."""
         xi = [self.x_names.index(c) for c in x_cols]
         zi = [self.z_names.index(c) for c in z_cols]
-        return PanelArrays(self.codes, self.n, self.y, self.x[:, xi], tuple(x_cols), self.z[:, zi], tuple(z_cols))
+        out = object.__new__(PanelArrays)
+        values = {
+            "codes": self.codes, "n": self.n, "y": self.y, "x": self.x[:, xi], "x_names": tuple(x_cols),
+            "z": self.z[:, zi], "z_names": tuple(z_cols), "counts": self.counts, "ybar": self.ybar,
+            "xbar": self.xbar[:, xi], "zbar": self.zbar[:, zi],
+        }
+        for key, value in values.items():  # the unit means are reused, not recomputed
+            object.__setattr__(out, key, value)
+        return out
 
 
 def _two_d(a: np.ndarray) -> np.ndarray:
@@ -159,9 +199,10 @@ def _num(v: float) -> float | None:
     return v if np.isfinite(v) else None
 
 
-def _cluster_cov(bread: np.ndarray, scores: np.ndarray, codes: np.ndarray, n: int, nobs: int) -> np.ndarray:
+def _cluster_cov(bread: np.ndarray, design: np.ndarray, e: np.ndarray, codes: np.ndarray, n: int,
+                 nobs: int) -> np.ndarray:
     k = bread.shape[0]
-    g = unit_sums(codes, n, scores)
+    g = grouper(codes, n).weighted_sums(e, design)  # per-unit sums of design * e
     meat = g.T @ g
     factor = (n / (n - 1.0)) * ((nobs - 1.0) / max(nobs - k, 1)) if n > 1 else np.nan
     return factor * (bread @ meat @ bread)
@@ -200,7 +241,7 @@ def ols(
     dfr = nobs - k if df_resid is None else df_resid
     sigma2 = float(e @ e) / max(dfr, 1)
     cov = sigma2 * bread
-    cov_cl = _cluster_cov(bread, design * e[:, None], codes, n, nobs)
+    cov_cl = _cluster_cov(bread, design, e, codes, n, nobs)
     return Fit(tuple(names), coef, cov, cov_cl, sigma2, int(dfr), nobs), e
 
 
@@ -272,7 +313,7 @@ def tsls(
     dfr = nobs - k
     sigma2 = float(e @ e) / max(dfr, 1)
     cov = sigma2 * piv.bread
-    cov_cl = _cluster_cov(piv.bread, fitted * e[:, None], codes, n, nobs)
+    cov_cl = _cluster_cov(piv.bread, fitted, e, codes, n, nobs)
     return Fit(tuple(names), coef, cov, cov_cl, sigma2, int(dfr), nobs), e
 
 
@@ -323,9 +364,23 @@ def _theta(sigma2_e: float, sigma2_u: float, counts: np.ndarray) -> np.ndarray:
         return np.where(total > 0, 1.0 - np.sqrt(sigma2_e / total), 0.0)
 
 
-def _quasi_demean(pa: PanelArrays, theta: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def _quasi_demean(pa: PanelArrays, theta: np.ndarray, out: np.ndarray | None = None,
+                  order: list[int] | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """[1, X, Z] and y transformed to w - theta_i w_bar_i, filled column by column.
+
+    ``out`` (N, 1 + kx + kz) receives the design (columns placed at ``order``, default
+    in the order const, X, Z) so that no extra N x K copy is made.
+    """
     th = theta[pa.codes]
-    design = np.column_stack([1.0 - th, pa.x - th[:, None] * pa.xbar[pa.codes], pa.z - th[:, None] * pa.zbar[pa.codes]])
+    kx, kz = pa.x.shape[1], pa.z.shape[1]
+    k = 1 + kx + kz
+    design = np.empty((pa.nobs, k)) if out is None else out
+    pos = list(range(k)) if order is None else order
+    design[:, pos[0]] = 1.0 - th
+    for j in range(kx):  # loop over columns, never over units
+        design[:, pos[1 + j]] = pa.x[:, j] - th * pa.xbar[pa.codes, j]
+    for j in range(kz):
+        design[:, pos[1 + kx + j]] = pa.z[:, j] - th * pa.zbar[pa.codes, j]
     return design, pa.y - th * pa.ybar[pa.codes]
 
 
@@ -493,6 +548,15 @@ class HausmanTaylor:
     c_tests: dict[str, WaldTest | None] = field(default_factory=dict)
 
 
+def _reorder(fit: Fit, names: list[str]) -> Fit | None:
+    """``fit`` with its coefficients in the order ``names`` (None when the sets differ)."""
+    if sorted(fit.names) != sorted(names):
+        return None
+    i = fit.index(names)
+    return Fit(tuple(names), fit.coef[i], fit.cov[np.ix_(i, i)], fit.cov_cluster[np.ix_(i, i)], fit.sigma2,
+               fit.df_resid, fit.nobs)
+
+
 def hausman_taylor(
     pa: PanelArrays,
     x1: list[str],
@@ -515,7 +579,9 @@ def hausman_taylor(
     if k1 < g2:
         return None
     sub = pa.select(x1 + x2, z1 + z2)
-    wf = within_fit if within_fit is not None and list(within_fit.names) == x1 + x2 else within(sub)[0]
+    wf = _reorder(within_fit, x1 + x2) if within_fit is not None else None
+    if wf is None:
+        wf = within(sub)[0]
     sigma2_e = wf.sigma2
     nx = len(x1) + len(x2)
     xbar1 = sub.xbar[:, [sub.x_names.index(c) for c in means]]
@@ -528,13 +594,13 @@ def hausman_taylor(
     _, r = tsls(design_u, instr_u, d, (CONST, *z1, *z2), unit_codes, sub.n)
     sigma2_u = max(0.0, float(np.mean(r**2)) - sigma2_e * float(np.mean(1.0 / sub.counts)))
     theta = _theta(sigma2_e, sigma2_u, sub.counts)
-    design, ys, instr = _ht_arrays(sub, x1, x2, z1, z2, means, theta)
-    full = np.column_stack([instr, design, ys])
+    full = _ht_arrays(sub, x1, x2, z1, z2, means, theta)
+    L = sub.x.shape[1] + len(means) + 1 + len(z1)
+    K = 1 + sub.x.shape[1] + sub.z.shape[1]
+    instr, design, ys = full[:, :L], full[:, L : L + K], full[:, L + K]
     gram = full.T @ full
-    del full
     names = (*x1, *x2, CONST, *z1, *z2)
     fit, _ = tsls(design, instr, ys, names, sub.codes, sub.n, gram=gram)
-    L, K = instr.shape[1], design.shape[1]
     ia, iw, iy = list(range(L)), list(range(L, L + K)), L + K
     base = _gram_iv(gram, ia, iw, iy)
     sargan = hw = None
@@ -562,13 +628,25 @@ def hausman_taylor(
 def _ht_arrays(
     sub: PanelArrays, x1: list[str], x2: list[str], z1: list[str], z2: list[str], means: list[str],
     theta: np.ndarray,
-) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Steps 3-4 of Hausman-Taylor: the transformed design (X1, X2, const, Z1, Z2), outcome and
-    the instruments A = [X - X means, X1 means, 1, Z1]."""
+) -> np.ndarray:
+    """Steps 3-4 of Hausman-Taylor in one (N, L + K + 1) array: the instruments
+    A = [X - X means, X1 means, 1, Z1], the transformed design (X1, X2, const, Z1, Z2)
+    and the transformed outcome, filled column by column."""
     nx = len(x1) + len(x2)
-    design, ys = _quasi_demean(sub, theta)
-    design = np.column_stack([design[:, 1 : 1 + nx], design[:, :1], design[:, 1 + nx :]])
-    xw = sub.x - sub.xbar[sub.codes]
-    xbar1 = sub.xbar[:, [sub.x_names.index(c) for c in means]]
-    instr = np.column_stack([xw, xbar1[sub.codes], np.ones(sub.nobs), sub.z[:, : len(z1)]])
-    return design, ys, instr
+    nz = sub.z.shape[1]
+    L = nx + len(means) + 1 + len(z1)
+    K = 1 + nx + nz
+    full = np.empty((sub.nobs, L + K + 1))
+    codes = sub.codes
+    for j in range(nx):  # loop over columns, never over units
+        full[:, j] = sub.x[:, j] - sub.xbar[codes, j]
+    for m, c in enumerate(means):
+        full[:, nx + m] = sub.xbar[codes, sub.x_names.index(c)]
+    full[:, nx + len(means)] = 1.0
+    for j in range(len(z1)):
+        full[:, nx + len(means) + 1 + j] = sub.z[:, j]
+    # design order X1, X2, const, Z1, Z2 from the const, X, Z order of _quasi_demean
+    order = [L + nx] + [L + j for j in range(nx)] + [L + nx + 1 + j for j in range(nz)]
+    _, ys = _quasi_demean(sub, theta, out=full[:, L : L + K], order=[o - L for o in order])
+    full[:, L + K] = ys
+    return full

@@ -520,7 +520,7 @@ def _run(panel: Panel, outcome: str, regs: list[str], corr: list[str] | None, pe
     # ---- Hausman-Taylor
     ht = None
     if order_met and comp is not None and not too_few:
-        ht = models.hausman_taylor(pa, x1, x2, z1, z2, mean_instruments=mean_instr)
+        ht = models.hausman_taylor(pa, x1, x2, z1, z2, within_fit=wf, mean_instruments=mean_instr)
     if ht is not None:
         estimates["hausman_taylor"] = ht.fit.to_dict()
         if ht.sargan is not None:
