@@ -313,6 +313,25 @@ def period_order(v: Any) -> tuple[int, Any]:
     return (1, period_text(v))
 
 
+def _refuse_repeated_keys(root: Any, path: str | Path) -> None:
+    """A key written twice in one mapping is an error (YAML loaders silently keep the last)."""
+    import yaml
+
+    stack = [(root, "the top level")]
+    while stack:
+        node, where = stack.pop()
+        if isinstance(node, yaml.MappingNode):
+            seen: set[str] = set()
+            for k, v in node.value:
+                key = str(getattr(k, "value", k))
+                if key in seen:
+                    raise fail("contract-repeated-key", path=path, line=k.start_mark.line + 1, key=key, where=where)
+                seen.add(key)
+                stack.append((v, key if where == "the top level" else f"{where}.{key}"))
+        elif isinstance(node, yaml.SequenceNode):
+            stack.extend((v, where) for v in node.value)
+
+
 def parse_contract(data: dict[str, Any], path: str | Path, root: Any) -> Contract:
     """Validate the ``panel`` and ``columns`` parts of ``data`` (a rules file's top mapping).
 
@@ -320,6 +339,7 @@ def parse_contract(data: dict[str, Any], path: str | Path, root: Any) -> Contrac
     was expected on the first problem. Other top-level parts are left to
     :func:`auditor.config.load_settings`.
     """
+    _refuse_repeated_keys(root, path)
     reader = _Reader(path, root)
     panel = reader.panel(data.get("panel"))
     columns = reader.columns(data.get("columns"))

@@ -90,6 +90,7 @@ CATALOGUE: dict[str, str] = {
         "rules file '{path}' line {line}: rule '{key}' of column '{column}' needs {expected}, "
         "but the column holds {dtype}"
     ),
+    "contract-repeated-key": "rules file '{path}' line {line}: key '{key}' appears twice in {where}; keep one",
     "contract-engine": (
         "great-expectations could not evaluate rule '{rule}' of column '{column}': {reason}"
     ),

@@ -183,23 +183,21 @@ def run_contract(
     clock = _time.perf_counter()
     out.extend(_panel_rules(contract.panel, contract, panel, limit))
     present = [c for c in contract.columns if c.name in schema]
-    for col in contract.columns:
-        if col.name not in schema and col.required:
-            out.append(
-                RuleResult(
-                    "present",
-                    "row",
-                    col.name,
-                    False,
-                    panel.frame.height,
-                    f"the column is missing from the data, so none of its {panel.frame.height} rows carries it",
-                )
-            )
     within = _within_rules(present, panel, settings, limit)
     timings["panel_rules"] = _time.perf_counter() - clock
 
     row = _row_rules_gx(present, panel, limit, timings)
-    for col in present:
+    rows = panel.frame.height
+    for col in contract.columns:
+        if col.name not in schema:
+            if col.required:
+                out.append(
+                    RuleResult(
+                        "present", "row", col.name, False, rows,
+                        f"the column is not in the data; the contract requires it (all {rows} rows lack it)",
+                    )
+                )
+            continue
         if col.type is not None:
             out.append(_type_rule(col, panel))
         out.extend(row.get(col.name, []))
@@ -444,9 +442,8 @@ def _row_rules_gx(
     for e in expectations:
         col, rule = e.meta["column"], e.meta["rule"]
         res = by_rule[(col, rule)]
-        info = res.exception_info or {}
-        if info.get("raised_exception"):
-            reason = str(info.get("exception_message") or "unknown error").splitlines()[0][:200]
+        reason = _gx_exception(res.exception_info)
+        if reason is not None:
             raise fail("contract-engine", column=col, rule=rule, reason=reason)
         r = res.result
         failing = int(r.get("unexpected_count") or 0)
@@ -457,6 +454,22 @@ def _row_rules_gx(
         passed = bool(res.success)
         out.setdefault(col, []).append(RuleResult(rule, "row", col, passed, failing, message, GX_ENGINE, examples))
     return out
+
+
+def _gx_exception(info: Any) -> str | None:
+    """The first line of an exception great-expectations reports for a result, or None.
+
+    The library reports either one ``{"raised_exception": ...}`` mapping or one
+    such mapping per metric that failed to compute.
+    """
+    if not isinstance(info, dict):
+        return None
+    entries = [info] if "raised_exception" in info else [v for v in info.values() if isinstance(v, dict)]
+    for entry in entries:
+        if entry.get("raised_exception") or entry.get("exception_message"):
+            text = str(entry.get("exception_message") or "unknown error").strip()
+            return (text.splitlines() or ["unknown error"])[0][:200]
+    return None
 
 
 def _row_examples(panel: Panel, column: str, rows: list[int]) -> tuple[dict[str, Any], ...]:

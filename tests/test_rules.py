@@ -371,6 +371,7 @@ def test_export_is_a_suite_great_expectations_reruns_with_polars_counts(random_p
         ("panel: !!python/object/apply:os.system ['true']\n", "rules-tag", ["line 1", "python/object"]),
         ("thresholds: {}\n", "contract-empty", ["no 'panel' or 'columns'"]),
         ("columns:\n  x: {min: 0}\n", "contract-no-keys", ["--unit"]),
+        ("panel: {unit: u, time: t}\ncolumns:\n  x: {min: 0}\n  x: {max: 1}\n", "contract-repeated-key", ["'x'", "line 4", "columns"]),
     ],
 )
 def test_invalid_contract_names_the_problem(tmp_path, text, code, needles):
@@ -521,3 +522,23 @@ def test_draft_passes_on_composite_keys_monthly_dates_and_gaps(tmp_path):
     )
     failed = {(r.rule, r.column): r.failing for r in check(worse, rules=path).failed}
     assert failed == {("max", "herd"): 1, ("invariant", "founded"): 1, ("max", "founded"): 1}
+
+
+def test_an_exception_inside_great_expectations_is_exit_2_naming_the_rule(tmp_path, monkeypatch):
+    # hand the library a column it cannot compare with a number: it reports an exception
+    import auditor.rules as rules_mod
+
+    real = rules_mod.to_pandas_once
+
+    def mixed(frame):
+        pdf = real(frame)
+        pdf["age"] = pdf["age"].astype(object)
+        pdf.loc[0, "age"] = "ten"
+        return pdf
+
+    monkeypatch.setattr(rules_mod, "to_pandas_once", mixed)
+    path = write(tmp_path, "panel: {unit: u, time: t}\ncolumns:\n  age: {min: 0}\n")
+    with pytest.raises(AuditError) as info:
+        check(_hand_panel(), rules=path)
+    assert info.value.code == "contract-engine"
+    assert "'min'" in info.value.message and "'age'" in info.value.message
