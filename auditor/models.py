@@ -604,10 +604,13 @@ def hausman_taylor(
     ia, iw, iy = list(range(L)), list(range(L, L + K)), L + K
     base = _gram_iv(gram, ia, iw, iy)
     sargan = hw = None
+    # an exact fit (no residual variation, e.g. a tiny panel) leaves both statistics undefined
+    exact = not base.e_e > 0
     if k1 > g2:
-        stat = float(sub.nobs * base.e_pa_e / base.e_e)
         dof = k1 - g2
-        sargan = WaldTest(stat, dof, float(stats.chi2.sf(stat, dof)))
+        if not exact:
+            stat = float(sub.nobs * base.e_pa_e / base.e_e)
+            sargan = WaldTest(stat, dof, float(stats.chi2.sf(stat, dof)))
         idx = list(range(nx))
         hw = contrast(fit.coef[idx], fit.cov[np.ix_(idx, idx)], wf.coef, wf.cov, df=dof)
     c_tests: dict[str, WaldTest | None] = {}
@@ -615,7 +618,7 @@ def hausman_taylor(
     first_mean = nx
     scale = base.e_e / sub.nobs
     for j, c in enumerate(means):  # loop over the few X1 means
-        if len(means) - 1 < g2:
+        if len(means) - 1 < g2 or exact:
             c_tests[c] = None
             continue
         keep = [i for i in ia if i != first_mean + j]
