@@ -80,11 +80,8 @@ class Panel:
 
     def unit_labels(self, codes: Sequence[int]) -> list[dict[str, Any]]:
         """Key values of the units with the given codes, as dicts (for examples)."""
-        if not codes:
-            return []
-        wanted = pl.DataFrame({UNIT_ID: pl.Series(list(codes), dtype=pl.UInt32)})
-        rows = wanted.join(self.units, on=UNIT_ID, how="left", maintain_order="left")
-        return [{k: r[k] for k in self.unit} for r in rows.iter_rows(named=True)]
+        # ``units`` holds one row per code, sorted, so a code is its row number.
+        return [{k: v for k, v in self.units.row(int(c), named=True).items() if k in self.unit} for c in codes]
 
 
 def panel_units(coded: pl.LazyFrame, units: Sequence[str], engine: str) -> pl.DataFrame:

@@ -209,6 +209,17 @@ def merge_moments(
     return n, mean, m2
 
 
+SELECT_CHUNK = 400  # expressions per query: polars plans very long selections slowly
+
+
+def select_row(panel: Panel, exprs: list[pl.Expr]) -> dict[str, Any]:
+    """One row of scalar aggregations, in queries of at most SELECT_CHUNK expressions."""
+    out: dict[str, Any] = {}
+    for start in range(0, len(exprs), SELECT_CHUNK):
+        out.update(panel.collect(panel.lazy.select(exprs[start : start + SELECT_CHUNK])).row(0, named=True))
+    return out
+
+
 @dataclass(frozen=True)
 class Passes:
     """The tables of the three passes: ``scalars`` (one row as a dict), ``per_unit``,
@@ -247,7 +258,7 @@ def run_passes(panel: Panel, extra_unit: list[pl.Expr] | None = None) -> Passes:
         if _orderable(dt):
             v = pl.col(c).fill_nan(None) if dt.is_float() else pl.col(c)
             scalar.append(v.drop_nulls().n_unique().alias(f"{a}:distinct"))
-    g = panel.collect(panel.lazy.select(scalar)).row(0, named=True)
+    g = select_row(panel, scalar)
     n_keyed = int(g["__rows"])
     shift = {c: float(g.get(f"{names[c]}:shift") or 0.0) for c in numeric}
 
@@ -329,6 +340,7 @@ def compute_variation(panel: Panel, settings: Settings, passes: Passes | None = 
     names = column_aliases(panel)
     passes = passes if passes is not None else run_passes(panel)
     g, pu, pp = passes.scalars, passes.per_unit, passes.per_period
+    pu_cols, pp_cols = set(pu.columns), set(pp.columns)
     shift = passes.shift
 
     # --- arithmetic on the small tables ------------------------------------------------
@@ -383,7 +395,7 @@ def compute_variation(panel: Panel, settings: Settings, passes: Passes | None = 
                 changing = seen & (hi != lo)
             gmin, gmax = g.get(f"{a}:min"), g.get(f"{a}:max")
             rec["binary"] = bool(distinct == 2 and gmin == 0.0 and gmax == 1.0)
-        elif f"{a}:tmin" in pu.columns:
+        elif f"{a}:tmin" in pu_cols:
             tmin, tmax = pu[f"{a}:tmin"], pu[f"{a}:tmax"]
             changing = (tmin.is_not_null() & (tmin != tmax)).fill_null(False).to_numpy()
         else:
@@ -399,7 +411,7 @@ def compute_variation(panel: Panel, settings: Settings, passes: Passes | None = 
                     {**lab, "min": float(lo[i]), "max": float(hi[i])}
                     for lab, i in zip(labels, idx, strict=True)
                 ]
-            elif f"{a}:tmin" in pu.columns:
+            elif f"{a}:tmin" in pu_cols:
                 exs = [
                     {**lab, "min": str(pu[f"{a}:tmin"][int(i)]), "max": str(pu[f"{a}:tmax"][int(i)])}
                     for lab, i in zip(labels, idx, strict=True)
@@ -408,7 +420,7 @@ def compute_variation(panel: Panel, settings: Settings, passes: Passes | None = 
                 exs = [{**lab, "distinct_values": int(pu[f"{a}:nu"][int(i)])} for lab, i in zip(labels, idx, strict=True)]
             changing_examples[c] = tuple(exs)
         # per period: one value per period (period-only) and missing data
-        if f"{a}:pmin" in pp.columns:
+        if f"{a}:pmin" in pp_cols:
             pmin, pmax = pp[f"{a}:pmin"], pp[f"{a}:pmax"]
             one_value = bool((pmin.is_null() | (pmin == pmax)).fill_null(True).all())
         else:
