@@ -223,10 +223,12 @@ def ols(
     n: int,
     *,
     df_resid: int | None = None,
+    bread: np.ndarray | None = None,
 ) -> tuple[Fit, np.ndarray]:
     """Least squares of ``y`` on ``design`` (N, K); returns (Fit, residuals).
 
-    ``df_resid`` overrides N - K (the within fit uses N - n - K).
+    ``df_resid`` overrides N - K (the within fit uses N - n - K); ``bread`` is
+    (design' design)^-1 when already known (several outcomes on one design).
     """
     nobs, k = design.shape
     if k == 0:
@@ -234,8 +236,8 @@ def ols(
         dfr = nobs if df_resid is None else df_resid
         empty = np.zeros((0, 0))
         return Fit(tuple(names), np.zeros(0), empty, empty, float(e @ e / max(dfr, 1)), dfr, nobs), e
-    xtx = design.T @ design
-    bread = _inv(xtx)
+    if bread is None:
+        bread = _inv(design.T @ design)
     coef = bread @ (design.T @ y)
     e = y - design @ coef
     dfr = nobs - k if df_resid is None else df_resid
@@ -501,7 +503,7 @@ def mundlak(pa: PanelArrays, mean_columns: list[str] | None = None, tested: list
     tested_cols = cols if tested is None else [c for c in tested if c in cols]
     xi = [pa.x_names.index(c) for c in cols]
     mean_names = tuple(f"mean({c})" for c in cols)
-    design = np.column_stack([np.ones(pa.nobs), pa.x, pa.z, pa.xbar[pa.codes][:, xi]])
+    design = np.column_stack([np.ones(pa.nobs), pa.x, pa.z, pa.xbar[:, xi][pa.codes]])
     fit, _ = ols(design, pa.y, (CONST, *pa.x_names, *pa.z_names, *mean_names), pa.codes, pa.n)
     idx = fit.index([f"mean({c})" for c in tested_cols])
     b = fit.coef[idx]

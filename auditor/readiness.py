@@ -364,6 +364,7 @@ def _run(panel: Panel, outcome: str, regs: list[str], corr: list[str] | None, pe
         centred = xmat - xmat.mean(axis=0)
         tss = np.einsum("ij,ij->j", centred, centred)
         wss = np.einsum("ij,ij->j", xw, xw)
+        share_of = {c: (float(w / t) if t > 0 else None) for c, w, t in zip(order, wss, tss, strict=True)}
         gram = xw.T @ xw
         no_within = [j for j in range(len(order)) if tss[j] > 0 and wss[j] <= tol * tss[j]]
         for j in no_within:
@@ -372,6 +373,7 @@ def _run(panel: Panel, outcome: str, regs: list[str], corr: list[str] | None, pe
         kept, dep = sequential_rank(gram, tol)
     else:
         kept, dep, no_within = [], {}, []
+        share_of = {}
     moved_to_z = [order[j] for j in no_within if order[j] in user_x]
     for j, with_ in dep.items():
         name = order[j]
@@ -590,7 +592,7 @@ def _run(panel: Panel, outcome: str, regs: list[str], corr: list[str] | None, pe
         cands, sugg = strength.candidates(pa, mean_instr, z1, z2, mundlak_p, alpha=alpha, size=size,
                                           rule_of_thumb=thumb, max_exhaustive=int(get("exhaustive_candidates")),
                                           validity_p=c_tests)
-    within_share = _within_share(pa)
+    within_share = {c: share_of.get(c) for c in pa.x_names}
     if x2 and ht is not None:
         x2_rows = strength.x2_first_stage(pa, x1, x2, z1, ht.components.theta, means=mean_instr)
         for r in x2_rows:
@@ -642,16 +644,6 @@ def _run(panel: Panel, outcome: str, regs: list[str], corr: list[str] | None, pe
         findings=sort_findings(findings),
         source=panel.source,
     )
-
-
-def _within_share(pa: models.PanelArrays) -> dict[str, float | None]:
-    if not pa.x_names:
-        return {}
-    xw = pa.x - pa.xbar[pa.codes]
-    centred = pa.x - pa.x.mean(axis=0)
-    wss = np.einsum("ij,ij->j", xw, xw)
-    tss = np.einsum("ij,ij->j", centred, centred)
-    return {c: (float(w / t) if t > 0 else None) for c, w, t in zip(pa.x_names, wss, tss, strict=True)}
 
 
 def _not_identified_message(item: dict[str, Any]) -> str:

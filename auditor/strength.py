@@ -238,17 +238,18 @@ def x2_first_stage(
     th = theta[pa.codes]
     xcols = x1 + x2
     xi = [pa.x_names.index(c) for c in xcols]
-    xw = pa.x[:, xi] - pa.xbar[pa.codes][:, xi]
+    xw = pa.x[:, xi] - pa.xbar[:, xi][pa.codes]
     zi1 = [pa.z_names.index(c) for c in z1]
-    a = np.column_stack([xw, pa.xbar[pa.codes][:, [pa.x_names.index(c) for c in mean_cols]], np.ones(pa.nobs),
-                         pa.zbar[pa.codes][:, zi1]])
+    a = np.column_stack([xw, pa.xbar[:, [pa.x_names.index(c) for c in mean_cols]][pa.codes], np.ones(pa.nobs),
+                         pa.zbar[:, zi1][pa.codes]])
     names = [f"dev({c})" for c in xcols] + [f"mean({c})" for c in mean_cols] + ["const"] + list(z1)
     other = [f"mean({c})" for c in mean_cols] + list(z1)
     out = []
+    bread = np.linalg.pinv(a.T @ a)
     for c in x2:  # loop over the few X2 columns
         j = pa.x_names.index(c)
         target = pa.x[:, j] - th * pa.xbar[pa.codes, j]
-        fit, e = models.ols(a, target, names, pa.codes, pa.n)
+        fit, e = models.ols(a, target, names, pa.codes, pa.n, bread=bread)
         own = fit.index([f"dev({c})"])
         rest = fit.index(other)
         own_t = fit.coef[own[0]] / fit.se[own[0]] if fit.se[own[0]] > 0 else np.inf
