@@ -262,3 +262,24 @@ def test_hostile_column_names_and_ids():
     leaked = {ch for ch in text.stdout if ch in CONTROL}
     assert not leaked, f"control characters reached the terminal: {sorted(map(ord, leaked))}"
     assert "<script>" in text.stdout  # shown as plain text, not removed
+
+
+def test_int64_ids_beyond_2_to_the_53_in_parquet_keep_their_exact_value(tmp_path):
+    # Binary formats keep stored types: int64 ids 2**53 and 2**53 + 1 are two units, and
+    # JSON (which allows integers of any size) shows the duplicate's id exactly.
+    import polars as pl
+
+    path = tmp_path / "big_ids.parquet"
+    pl.DataFrame({
+        "orchard_id": [2**53, 2**53, 2**53 + 1, 2**53 + 1, 2**53 + 1],
+        "season": [2020, 2021, 2020, 2021, 2021],
+        "yield_t": [1.0, 2.0, 3.0, 4.0, 5.0],
+    }).write_parquet(path)
+    before = path.read_bytes()
+    proc = run_cli("profile", str(path), *KEYS, "--json", timeout=60)
+    assert proc.returncode == 1 and "Traceback" not in proc.stderr
+    assert path.read_bytes() == before
+    doc = _strict_json(proc.stdout)
+    assert doc["panel"]["units"] == 2
+    dup = _checks(doc)[("duplicate-keys", None)]
+    assert dup["examples"][0]["orchard_id"] == 9007199254740993

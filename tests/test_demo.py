@@ -8,7 +8,6 @@ generator documents in examples/README.md.
 
 from __future__ import annotations
 
-import importlib.util
 from pathlib import Path
 
 import numpy as np
@@ -207,11 +206,6 @@ def test_next_season_rainfall_shifted_and_labour_missing_jumped(base_pd, next_pd
 
 # --- the profile finds every planted fault --------------------------------------------
 
-needs_profile = pytest.mark.skipif(
-    importlib.util.find_spec("auditor.profile") is None, reason="auditor.profile not on main yet"
-)
-
-
 @pytest.fixture(scope="module")
 def demo_profile():
     from auditor.profile import profile
@@ -229,7 +223,6 @@ def _column_row(result, name: str) -> dict:
     return rows[0]
 
 
-@needs_profile
 def test_profile_panel_facts_match_the_planted_sizes(demo_profile):
     p = demo_profile.panel
     assert p["rows"] == 7882
@@ -243,7 +236,6 @@ def test_profile_panel_facts_match_the_planted_sizes(demo_profile):
     assert p["balanced"] is False
 
 
-@needs_profile
 def test_profile_finds_duplicates_and_missing_keys_with_exact_counts(demo_profile):
     (dup,) = _findings(demo_profile, "duplicate-keys")
     assert dup.count == 6 and dup.severity == "error"
@@ -253,7 +245,6 @@ def test_profile_finds_duplicates_and_missing_keys_with_exact_counts(demo_profil
     assert gaps.count == 30
 
 
-@needs_profile
 @pytest.mark.parametrize(
     ("check", "column"),
     [
@@ -268,7 +259,6 @@ def test_profile_finds_each_planted_column_fault(demo_profile, check, column):
     assert column in {f.column for f in _findings(demo_profile, check)}
 
 
-@needs_profile
 def test_profile_column_kinds_follow_the_truth(demo_profile):
     kinds = dict(zip(demo_profile.columns["name"], demo_profile.columns["kind"], strict=True))
     assert kinds["altitude_m"] == "time-invariant"
@@ -283,7 +273,6 @@ def test_profile_column_kinds_follow_the_truth(demo_profile):
     assert _column_row(demo_profile, "rainfall_mm")["absorbed_by_time"] is False
 
 
-@needs_profile
 def test_profile_raises_no_fault_that_was_not_planted(demo_profile):
     assert not _findings(demo_profile, "irregular-periods")
     assert not _findings(demo_profile, "constant-column")
@@ -295,7 +284,6 @@ def test_profile_raises_no_fault_that_was_not_planted(demo_profile):
     assert {f.column for f in _findings(demo_profile, "near-constant")} <= {"quarantine_flag"}
 
 
-@needs_profile
 def test_profile_dominant_share_of_the_flag_matches_pandas(demo_profile, base_pd):
     # Oracle: pandas share of the most common value among non-missing keyed rows.
     keyed = base_pd.dropna(subset=KEYS)
@@ -307,7 +295,6 @@ def test_profile_dominant_share_of_the_flag_matches_pandas(demo_profile, base_pd
 # --- run_demo ------------------------------------------------------------------------
 
 
-@needs_profile
 def test_run_demo_writes_the_files_and_refuses_to_overwrite(tmp_path):
     from auditor.demo import run_demo
     from auditor.errors import AuditError
