@@ -594,23 +594,31 @@ def _absorbed(
     return basis
 
 
-def _period_system(u: np.ndarray, t: np.ndarray, n_units: int, n_periods: int) -> np.ndarray:
-    """D' M_U D for period dummies D after demeaning by unit (P x P)."""
-    from scipy import sparse
+DENSE_CELLS = 50_000_000  # units x periods up to which the incidence matrix is held dense
 
-    counts = sparse.coo_matrix(
-        (np.ones(u.size), (u, t)), shape=(n_units, n_periods)
-    ).tocsr()
-    t_i = np.asarray(counts.sum(axis=1)).ravel()
-    w = np.divide(1.0, t_i, out=np.zeros_like(t_i), where=t_i > 0)
-    weighted = sparse.diags(w) @ counts
-    cwc = (counts.T @ weighted).toarray()
-    n_t = np.asarray(counts.sum(axis=0)).ravel()
-    return np.diag(n_t) - cwc
+
+def _period_system(u: np.ndarray, t: np.ndarray, n_units: int, n_periods: int) -> tuple[np.ndarray, np.ndarray]:
+    """Eigen-decomposition (values, vectors) of D' M_U D, period dummies D after unit demeaning."""
+    if n_units * n_periods <= DENSE_CELLS:
+        counts = np.bincount(u * n_periods + t, minlength=n_units * n_periods).astype(np.float64)
+        counts = counts.reshape(n_units, n_periods)
+        t_i = counts.sum(axis=1)
+        w = np.divide(1.0, t_i, out=np.zeros(n_units), where=t_i > 0)
+        cwc = counts.T @ (counts * w[:, None])
+        n_t = counts.sum(axis=0)
+    else:
+        from scipy import sparse
+
+        c = sparse.coo_matrix((np.ones(u.size), (u, t)), shape=(n_units, n_periods)).tocsr()
+        t_i = np.asarray(c.sum(axis=1)).ravel()
+        w = np.divide(1.0, t_i, out=np.zeros(n_units), where=t_i > 0)
+        cwc = (c.T @ (sparse.diags(w) @ c)).toarray()
+        n_t = np.asarray(c.sum(axis=0)).ravel()
+    return np.linalg.eigh(np.diag(n_t) - cwc)
 
 
 def time_r2(
-    u: np.ndarray, t: np.ndarray, x: np.ndarray, n_units: int, n_periods: int, system: np.ndarray
+    u: np.ndarray, t: np.ndarray, x: np.ndarray, n_units: int, n_periods: int, system: tuple[np.ndarray, np.ndarray]
 ) -> float | None:
     """Share of the within variation of ``x`` explained by period effects (None when WSS = 0)."""
     t_i = np.bincount(u, minlength=n_units).astype(np.float64)
@@ -621,7 +629,7 @@ def time_r2(
     if not wss > 0:
         return None
     rhs = np.bincount(t, weights=xt, minlength=n_periods)
-    vals, vecs = np.linalg.eigh(system)
+    vals, vecs = system
     keep = vals > max(vals.max(), 0.0) * 1e-12 * n_periods
     proj = vecs[:, keep].T @ rhs
     explained = float((proj**2 / vals[keep]).sum())
