@@ -303,15 +303,14 @@ def main(argv: Sequence[str] | None = None) -> int:
 
         if debug:
             raise
-        if isinstance(exc, AuditError):
-            sys.stderr.write(f"{PROG}: error: {_one_line(exc.message)}\n")
-        elif isinstance(exc, MemoryError):
-            sys.stderr.write(f"{PROG}: error: the data does not fit in memory; try --streaming on Parquet input\n")
-        else:
-            sys.stderr.write(
-                f"{PROG}: error: internal problem ({type(exc).__name__}: {_one_line(str(exc))[:300]}); "
-                "rerun with --debug and report it\n"
-            )
+        from auditor.errors import fail
+
+        if not isinstance(exc, AuditError):
+            if isinstance(exc, MemoryError):
+                exc = fail("out-of-memory")
+            else:
+                exc = fail("internal-problem", kind=type(exc).__name__, detail=_one_line(str(exc))[:300])
+        sys.stderr.write(f"{PROG}: error: {_one_line(exc.message)}\n")
         return 2
 
 

@@ -37,6 +37,8 @@ CATALOGUE: dict[str, str] = {
     "duplicate-column-names": "the file has more than one column named {names}; rename them first",
     "no-glob-match": "no files match '{pattern}'",
     "too-large": "'{path}' ({size}) does not fit in memory here and cannot be streamed: {reason}",
+    "out-of-memory": "the data does not fit in memory; use Parquet input with --streaming",
+    "internal-problem": "internal problem ({kind}: {detail}); rerun with --debug and report it",
     # --- rule and threshold files ---------------------------------------------
     "rules-not-found": "rules file '{path}' not found",
     "rules-too-large": "rules file '{path}' is {size} bytes; the limit is {limit} bytes",

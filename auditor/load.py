@@ -115,7 +115,7 @@ def memory_bytes() -> int:
 
 
 def _to_lazy(
-    data: Any, text_columns: Sequence[str]
+    data: Any, text_columns: Sequence[str], settings: Any = None
 ) -> tuple[pl.LazyFrame, str, tuple[Path, ...], list[Any], bool]:
     """(lazy frame, description, input paths, load findings, scanned binary file)."""
     import importlib
@@ -139,7 +139,7 @@ def _to_lazy(
     from auditor.sources import resolve_inputs, scan_inputs
 
     paths = resolve_inputs(data)
-    lf, findings, binary = scan_inputs(paths, text_columns)
+    lf, findings, binary = scan_inputs(paths, text_columns, settings)
     desc = str(paths[0]) if len(paths) == 1 else f"{len(paths)} files ({paths[0].parent})"
     return lf, desc, tuple(paths), findings, binary
 
@@ -176,7 +176,7 @@ def load_panel(
                 raise fail("unit-is-time", column=k)
             raise fail("key-repeated", column=k)
 
-    lf, source, inputs, load_findings, binary = _to_lazy(data, units)
+    lf, source, inputs, load_findings, binary = _to_lazy(data, units, settings)
     try:
         schema = dict(lf.collect_schema())
     except pl.exceptions.PolarsError as exc:

@@ -159,6 +159,24 @@ def _read_jsonl(path: Path, gz: bool, text_columns: Sequence[str]) -> pl.DataFra
     return df.with_columns(casts) if casts else df
 
 
+TEXT_MEMORY_SHARE = 0.5  # a text file is read whole: refuse one larger than this share of memory
+GZIP_EXPANSION = 5  # a gzipped text file is taken to hold this many times its size
+
+
+def _refuse_if_too_large(path: Path, gz: bool) -> None:
+    from auditor.load import memory_bytes
+
+    size = path.stat().st_size * (GZIP_EXPANSION if gz else 1)
+    mem = memory_bytes()
+    if mem and size > TEXT_MEMORY_SHARE * mem:
+        raise fail(
+            "too-large",
+            path=path,
+            size=f"{size / 2**30:.1f} GiB of text",
+            reason="text files are read whole; convert it to Parquet, which is streamed",
+        )
+
+
 def scan_source(path: str | Path, text_columns: Sequence[str] = ()) -> pl.LazyFrame:
     """A lazy frame over one data file; text formats are read eagerly with keys as text.
 
@@ -171,6 +189,8 @@ def scan_source(path: str | Path, text_columns: Sequence[str] = ()) -> pl.LazyFr
     if p.is_dir():
         raise fail("not-a-file", path=path)
     fmt, gz = file_format(p)
+    if fmt in ("csv", "jsonl"):
+        _refuse_if_too_large(p, gz)
     if fmt == "csv":
         sep = TEXT_SUFFIXES.get([s.lower() for s in p.suffixes][-2 if gz else -1])
         return _read_text(p, gz, sep, text_columns).lazy()

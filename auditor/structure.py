@@ -311,7 +311,7 @@ def structure_findings(panel: Panel, s: Structure, settings: Settings) -> list[F
             make(
                 "unbalanced",
                 settings,
-                f"units are seen in {d['obs_per_unit']['min']} to {d['obs_per_unit']['max']} periods "
+                f"units have {d['obs_per_unit']['min']} to {d['obs_per_unit']['max']} rows each "
                 f"(Ahrens-Pincus unbalancedness {d['unbalancedness']:.3f}); estimators weight units "
                 "by their number of observations.",
                 count=d["units"],

@@ -24,9 +24,7 @@ GOOD = AWKWARD / "bom.csv"  # a small valid panel keyed orchard_id / season
 
 # Entries that no code path can raise today. Each is a finding reported on issue 8; when
 # one becomes reachable (or is removed), this set must change with it.
-UNREACHABLE = {
-    "too-large": "no code raises it: large inputs are streamed or fail as MemoryError",
-}
+UNREACHABLE: dict[str, str] = {}
 
 
 def _code(action) -> str:
@@ -52,6 +50,33 @@ def _small() -> pl.DataFrame:
 
 
 # --- arguments and loading -----------------------------------------------------------------
+
+
+def test_too_large_text_file_is_refused(monkeypatch, tmp_path):
+    # a machine with 1 KiB of memory: the small CSV counts as larger than half of it
+    import auditor.load
+
+    monkeypatch.setattr(auditor.load, "memory_bytes", lambda: 1024)
+    p = tmp_path / "big.csv"
+    p.write_text("orchard_id,season,y\n" + "a,1,1.0\n" * 200)
+    assert _code(lambda: _profile(p)) == "too-large"
+
+
+def test_internal_problem_and_out_of_memory_lines(monkeypatch, capsys):
+    # the catch-all lines of the CLI are catalogue entries too
+    import sys
+
+    import auditor.cli
+
+    profile_module = sys.modules["auditor.profile"]
+    for exc, code_text in ((RuntimeError("boom"), "internal problem (RuntimeError: boom)"), (MemoryError(), "does not fit in memory")):
+        def broken(*a, _exc=exc, **k):
+            raise _exc
+
+        monkeypatch.setattr(profile_module, "profile", broken)
+        rc = auditor.cli.main(["profile", str(GOOD), "--unit", "orchard_id", "--time", "season"])
+        err = capsys.readouterr().err
+        assert rc == 2 and err.startswith("panel-audit: error:") and code_text in err
 
 
 def test_bad_argument_empty_unit():

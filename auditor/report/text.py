@@ -148,7 +148,7 @@ def render(result: ProfileResult, width: int | None = None, colour: bool = False
         paint(f"panel-audit profile · {safe(result.data.source)}", "bold", colour),
         f"  units {fmt_num(p['units'])} · periods {p['periods']} ({span}{step}) · rows {fmt_num(p['rows'])}"
         f" · {'balanced' if p['balanced'] else 'unbalanced'} (Ahrens-Pincus {p['unbalancedness']:.3f})",
-        f"  periods per unit: {obs['min']} to {obs['max']}, median {fmt_num(obs['median'])}, harmonic mean "
+        f"  rows per unit (duplicates included): {obs['min']} to {obs['max']}, median {fmt_num(obs['median'])}, harmonic mean "
         f"{obs['harmonic_mean']:.2f}",
         f"  keys: {fmt_num(p['duplicate_keys'])} duplicate rows · {fmt_num(p['missing_keys'])} rows missing a key · "
         f"{fmt_num(p['units_with_gaps'])} units with gaps ({fmt_num(p['gap_periods'])} periods) · "
