@@ -11,7 +11,6 @@ from __future__ import annotations
 import copy
 from dataclasses import dataclass, field
 from functools import lru_cache
-from importlib import resources
 from pathlib import Path
 from typing import Any
 
@@ -22,11 +21,16 @@ CONTRACT_PARTS = ("panel", "columns")
 
 
 def rules_dir() -> Path:
-    """The folder holding defaults.yaml and stock_yogo.csv (the repository's rules/)."""
-    try:
-        return Path(str(resources.files("auditor.rules_data")))
-    except ModuleNotFoundError:  # pragma: no cover - running from a source tree without install
-        return Path(__file__).resolve().parent.parent / "rules"
+    """The folder holding defaults.yaml and stock_yogo.csv.
+
+    Installed, it is the package's ``rules_data`` folder (a copy of the repository's
+    ``rules/``); in a source tree, ``rules/`` itself.
+    """
+    here = Path(__file__).resolve().parent
+    installed = here / "rules_data"
+    if (installed / "defaults.yaml").is_file():
+        return installed
+    return here.parent / "rules"
 
 
 def read_yaml(path: str | Path) -> tuple[Any, Any]:
