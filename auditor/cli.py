@@ -121,6 +121,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("demo", help="write the invented orchard panel and its report, print the profile")
     p.add_argument("--out", metavar="DIR", help="folder for the demo files (default: a new temporary folder)")
+    p.add_argument("--force", action="store_true", help="replace demo files already in --out")
     p.add_argument("--debug", action="store_true")
     return parser
 
@@ -260,7 +261,7 @@ def _cmd_demo(args: argparse.Namespace) -> int:
     from auditor.demo import run_demo
     from auditor.report.text import render, terminal_width, use_colour
 
-    run = run_demo(Path(args.out) if args.out else None)
+    run = run_demo(Path(args.out) if args.out else None, force=args.force)
     sys.stdout.write(render(run.profile, width=terminal_width(), colour=use_colour(sys.stdout)))
     sys.stdout.write("\nfiles written:\n")
     pad = max((len(name) for name in run.paths), default=0)
