@@ -170,6 +170,7 @@ class Fit:
     sigma2: float
     df_resid: int
     nobs: int
+    bread: np.ndarray | None = field(default=None, repr=False)  # (X'X)^-1 of an OLS fit
 
     @property
     def se(self) -> np.ndarray:
@@ -244,7 +245,7 @@ def ols(
     sigma2 = float(e @ e) / max(dfr, 1)
     cov = sigma2 * bread
     cov_cl = _cluster_cov(bread, design, e, codes, n, nobs)
-    return Fit(tuple(names), coef, cov, cov_cl, sigma2, int(dfr), nobs), e
+    return Fit(tuple(names), coef, cov, cov_cl, sigma2, int(dfr), nobs, bread), e
 
 
 def _solve_sym(m: np.ndarray, b: np.ndarray) -> np.ndarray:
@@ -491,20 +492,72 @@ class Mundlak:
         return out
 
 
-def mundlak(pa: PanelArrays, mean_columns: list[str] | None = None, tested: list[str] | None = None) -> Mundlak:
+def mundlak(
+    pa: PanelArrays,
+    mean_columns: list[str] | None = None,
+    tested: list[str] | None = None,
+    within_fit: tuple[Fit, np.ndarray] | None = None,
+) -> Mundlak:
     """The Mundlak regression and its joint and per-column tests of the X-mean coefficients.
 
     ``mean_columns``: the X columns whose unit means enter (default every X; leave out
-    means collinear with the rest). ``tested``: the means in the joint test and the
-    per-column rows (default every mean that enters). Per-column t = coefficient /
-    clustered se, two-sided normal p.
+    only means that are exact linear combinations of [1, Z, the other means]).
+    ``tested``: the means in the joint test and the per-column rows (default every
+    mean that enters). Per-column t = coefficient / clustered se, two-sided normal p.
+    ``within_fit``: the (Fit, residuals) of :func:`within` on ``pa``, when known.
+
+    Computed without the N x K pooled design: since X - X means is orthogonal to every
+    unit-level column, the pooled OLS splits into the within fit and a T_i-weighted
+    regression of the unit means of y on U = [1, Z, X means], and the clustered scores
+    into the within scores and U_i T_i r_i (r_i the unit-level residual). The
+    coefficients and both covariances are mapped back to [1, X, Z, X means]; the
+    tests check them against statsmodels' pooled OLS.
     """
     cols = list(pa.x_names) if mean_columns is None else list(mean_columns)
     tested_cols = cols if tested is None else [c for c in tested if c in cols]
+    kx, kz = len(pa.x_names), len(pa.z_names)
+    wf, ew = within_fit if within_fit is not None else within(pa)
     xi = [pa.x_names.index(c) for c in cols]
+    u = np.column_stack([np.ones(pa.n), pa.zbar, pa.xbar[:, xi]])
+    p = u.shape[1]
+    t_i = pa.counts
+    utwu = u.T @ (t_i[:, None] * u)
+    bread_u = _inv(utwu)
+    delta = bread_u @ (u.T @ (t_i * pa.ybar))
+    r = pa.ybar - u @ delta
+    # J maps beta into U's coordinates: X means enter as X_bar beta = U J beta
+    jmat = np.zeros((p, kx))
+    for k, c in enumerate(pa.x_names):  # loop over the few columns
+        if c in cols:
+            jmat[1 + kz + cols.index(c), k] = 1.0
+        else:
+            jmat[:, k] = np.linalg.lstsq(u, pa.xbar[:, k], rcond=None)[0]
+    beta = wf.coef
+    c_vec = delta - jmat @ beta
+    nobs = pa.nobs
+    k_all = kx + p
+    dfr = nobs - k_all
+    ee = float(ew @ ew) + float(t_i @ (r**2))
+    sigma2 = ee / max(dfr, 1)
+    bread_w = wf.bread if wf.bread is not None else np.zeros((0, 0))
+    bread = np.zeros((k_all, k_all))
+    bread[:kx, :kx] = bread_w
+    bread[kx:, kx:] = bread_u
+    scores = np.column_stack([grouper(pa.codes, pa.n).weighted_sums(ew, pa.x), u * (t_i * r)[:, None]])
+    factor = (pa.n / (pa.n - 1.0)) * ((nobs - 1.0) / max(nobs - k_all, 1)) if pa.n > 1 else np.nan
+    cov_new = sigma2 * bread
+    cl_new = factor * (bread @ (scores.T @ scores) @ bread)
+    # from (beta, delta) to the output order (const, X, Z, means): c = delta - J beta
+    tmat = np.zeros((k_all, k_all))
+    tmat[1 : 1 + kx, :kx] = np.eye(kx)
+    rows_u = [0, *range(1 + kx, 1 + kx + kz), *range(1 + kx + kz, k_all)]
+    for a, row in enumerate(rows_u):
+        tmat[row, kx + a] = 1.0
+        tmat[row, :kx] = -jmat[a]
+    coef = np.concatenate([[c_vec[0]], beta, c_vec[1 : 1 + kz], c_vec[1 + kz :]])
     mean_names = tuple(f"mean({c})" for c in cols)
-    design = np.column_stack([np.ones(pa.nobs), pa.x, pa.z, pa.xbar[:, xi][pa.codes]])
-    fit, _ = ols(design, pa.y, (CONST, *pa.x_names, *pa.z_names, *mean_names), pa.codes, pa.n)
+    fit = Fit((CONST, *pa.x_names, *pa.z_names, *mean_names), coef, tmat @ cov_new @ tmat.T,
+              tmat @ cl_new @ tmat.T, sigma2, int(dfr), nobs)
     idx = fit.index([f"mean({c})" for c in tested_cols])
     b = fit.coef[idx]
     v = fit.cov_cluster[np.ix_(idx, idx)]
@@ -540,7 +593,11 @@ class HausmanTaylor:
     mean: C = (e'P_A e - e_r'P_Ar e_r) / (e'e / N), the full instrument set A against A
     without that mean at the same theta, scaled by the full model's residual variance
     (Eichenbaum, Hansen and Singleton 1988; Hayashi 2000, section 3.6), chi-square 1 df;
-    None when dropping the mean leaves fewer X1 means than Z2 columns.
+    None unless the remaining means still over-identify the model (with a single
+    over-identifying restriction every C equals the Sargan statistic and cannot say
+    which instrument is at fault). ``rest_sargan`` holds the Sargan statistic of the
+    instrument set without that mean: a C test is only meaningful when that rest is
+    itself accepted.
     """
 
     fit: Fit
@@ -548,6 +605,7 @@ class HausmanTaylor:
     sargan: WaldTest | None
     hausman_within: WaldTest | None
     c_tests: dict[str, WaldTest | None] = field(default_factory=dict)
+    rest_sargan: dict[str, WaldTest] = field(default_factory=dict)
 
 
 def _reorder(fit: Fit, names: list[str]) -> Fit | None:
@@ -616,18 +674,23 @@ def hausman_taylor(
         idx = list(range(nx))
         hw = contrast(fit.coef[idx], fit.cov[np.ix_(idx, idx)], wf.coef, wf.cov, df=dof)
     c_tests: dict[str, WaldTest | None] = {}
+    rest_sargan: dict[str, WaldTest] = {}
     # the unit means sit after the len(x1) + len(x2) within deviations in the instruments
     first_mean = nx
     scale = base.e_e / sub.nobs
     for j, c in enumerate(means):  # loop over the few X1 means
-        if len(means) - 1 < g2 or exact:
+        if len(means) - 1 <= g2 or exact:  # the rest just identified: every C would equal the Sargan
             c_tests[c] = None
             continue
         keep = [i for i in ia if i != first_mean + j]
         restricted = _gram_iv(gram, keep, iw, iy)
         stat = max(0.0, (base.e_pa_e - restricted.e_pa_e) / scale)
         c_tests[c] = WaldTest(stat, 1, float(stats.chi2.sf(stat, 1)))
-    return HausmanTaylor(fit, Components(sigma2_u, sigma2_e, theta), sargan, hw, c_tests)
+        if restricted.e_e > 0:
+            rest = float(sub.nobs * restricted.e_pa_e / restricted.e_e)
+            dof_r = len(means) - 1 - g2
+            rest_sargan[c] = WaldTest(rest, dof_r, float(stats.chi2.sf(rest, dof_r)))
+    return HausmanTaylor(fit, Components(sigma2_u, sigma2_e, theta), sargan, hw, c_tests, rest_sargan)
 
 
 def _ht_arrays(

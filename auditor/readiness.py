@@ -361,11 +361,11 @@ def _run(panel: Panel, outcome: str, regs: list[str], corr: list[str] | None, pe
     xbar = models.unit_means(codes, n, xmat, counts)
     xw = xmat - xbar[codes]
     if order:
-        centred = xmat - xmat.mean(axis=0)
-        tss = np.einsum("ij,ij->j", centred, centred)
-        wss = np.einsum("ij,ij->j", xw, xw)
-        share_of = {c: (float(w / t) if t > 0 else None) for c, w, t in zip(order, wss, tss, strict=True)}
         gram = xw.T @ xw
+        wss = np.diag(gram).copy()
+        overall = counts @ xbar / counts.sum()
+        tss = wss + counts @ ((xbar - overall) ** 2)  # TSS = WSS + BSS (methods.md section 2)
+        share_of = {c: (float(w / t) if t > 0 else None) for c, w, t in zip(order, wss, tss, strict=True)}
         no_within = [j for j in range(len(order)) if tss[j] > 0 and wss[j] <= tol * tss[j]]
         for j in no_within:
             gram[j, :] = 0.0
@@ -442,13 +442,14 @@ def _run(panel: Panel, outcome: str, regs: list[str], corr: list[str] | None, pe
     wf = bf = re = mu = None
     comp = None
     if not outcome_invariant:
-        wf, _ = models.within(pa)
+        wf, ew = models.within(pa)
         estimates["within"] = wf.to_dict()
     if not too_few:
         bf, _ = models.between(pa, mean_columns)
         estimates["between"] = bf.to_dict()
         mundlak_tested = [c for c in x_user if c in mean_columns]
-        mu = models.mundlak(pa, mean_columns, tested=mundlak_tested)
+        mu = models.mundlak(pa, mean_columns, tested=mundlak_tested,
+                            within_fit=(wf, ew) if wf is not None else None)
         tests["mundlak"] = {**mu.to_dict(), "alpha": alpha,
                             "flagged": [r["column"] for r in mu.per_column if r["p"] is not None and r["p"] < alpha]}
         estimates["mundlak"] = mu.fit.to_dict()
@@ -539,19 +540,25 @@ def _run(panel: Panel, outcome: str, regs: list[str], corr: list[str] | None, pe
                 ))
         components = {**(components or {}), "hausman_taylor": ht.components.to_dict()}
 
-    # validity of each X1 mean as an instrument: the difference-in-Sargan test where the
-    # model stays identified without it, else the Mundlak evidence
+    # validity of each X1 mean as an instrument: the difference-in-Sargan (C) test where
+    # the rest of the means still over-identify the model; a mean is invalid when its C
+    # test rejects and the Sargan test of the rest accepts (dropping it cures the
+    # rejection). Without a C test the Mundlak evidence decides.
     c_tests: dict[str, float | None] = {}
+    invalid: dict[str, bool] = {}
     if ht is not None and z2:
         for c in mean_instr:
-            t = ht.c_tests.get(c)
+            t, rest = ht.c_tests.get(c), ht.rest_sargan.get(c)
             c_tests[c] = None if t is None else t.p
+            if t is not None and t.p is not None and rest is not None and rest.p is not None:
+                invalid[c] = t.p < test_alpha and rest.p >= test_alpha
     if declared:
         for c in mean_instr:
             cp, mp = c_tests.get(c), mundlak_p.get(c)
-            if cp is not None and cp < alpha:
-                text = f"the difference-in-Sargan test of its unit mean gives p = {cp:.3g}"
-            elif cp is None and mp is not None and mp < alpha:
+            if invalid.get(c):
+                text = (f"the difference-in-Sargan test of its unit mean gives p = {cp:.3g} while the other "
+                        "instruments pass")
+            elif c not in invalid and mp is not None and mp < alpha:
                 text = f"its Mundlak p = {mp:.3g} says it is correlated with the unit effect"
             else:
                 continue
@@ -591,7 +598,7 @@ def _run(panel: Panel, outcome: str, regs: list[str], corr: list[str] | None, pe
                 ))
         cands, sugg = strength.candidates(pa, mean_instr, z1, z2, mundlak_p, alpha=alpha, size=size,
                                           rule_of_thumb=thumb, max_exhaustive=int(get("exhaustive_candidates")),
-                                          validity_p=c_tests)
+                                          c_p=c_tests, invalid=invalid)
     within_share = {c: share_of.get(c) for c in pa.x_names}
     if x2 and ht is not None:
         x2_rows = strength.x2_first_stage(pa, x1, x2, z1, ht.components.theta, means=mean_instr)

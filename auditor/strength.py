@@ -283,15 +283,16 @@ def candidates(
     size: int = 10,
     rule_of_thumb: float = 10.0,
     max_exhaustive: int = 12,
-    validity_p: dict[str, float | None] | None = None,
+    c_p: dict[str, float | None] | None = None,
+    invalid: dict[str, bool] | None = None,
 ) -> tuple[list[dict[str, Any]], list[dict[str, Any]]]:
     """Per (Z2, X1) the partial F of that X1 mean alone, its Mundlak p and whether it is usable;
     and per Z2 the suggested set.
 
     A candidate is unusable when its Mundlak p is below ``alpha`` (it behaves like X2,
-    so as an instrument it would be correlated with u_i). ``validity_p`` replaces the
-    Mundlak p for the columns it holds a value for (the caller passes the
-    difference-in-Sargan p there; rows then say ``usable_basis: "c-test"``). The suggestion is the set of
+    so as an instrument it would be correlated with u_i). ``invalid`` replaces that
+    rule for the columns it names (the caller's verdict from the difference-in-Sargan
+    test; rows then say ``usable_basis: "c-test"``); ``c_p`` is shown beside. The suggestion is the set of
     usable candidates whose joint partial F is largest relative to its critical value
     (Stock-Yogo for that many instruments, else the rule of thumb): every subset when
     there are at most ``max_exhaustive`` usable candidates, a greedy forward search
@@ -333,9 +334,11 @@ def candidates(
         usable_idx = []
         for i, x in enumerate(x1):
             p = mundlak_p.get(x)
-            cp = (validity_p or {}).get(x)
-            evidence, basis = (cp, "c-test") if cp is not None else (p, "mundlak")
-            usable = evidence is None or evidence >= alpha
+            cp = (c_p or {}).get(x)
+            if invalid is not None and x in invalid:
+                usable, basis = not invalid[x], "c-test"
+            else:
+                usable, basis = p is None or p >= alpha, "mundlak"
             if usable:
                 usable_idx.append(i)
             rows.append({"endogenous": col, "instrument": x, "partial_f": joint((i,)), "mundlak_p": p,

@@ -317,3 +317,35 @@ def test_cli_text_and_json(cli, sim_csv):
     text = cli(*args)
     assert "Hausman-Taylor" in text.stdout and "Stock-Yogo" in text.stdout
     assert "19.93" in text.stdout  # Stock-Yogo cell for 2 instruments (check-values.md)
+
+
+def test_an_x1_column_correlated_with_the_effect_is_caught_by_the_c_test():
+    # known truth: x1b gets 1.5 times the unit part of x2 (0.8 u_i + noise) added, but is declared
+    # exogenous; a third exogenous x1c keeps the model over-identified after any one mean is
+    # dropped. The Sargan test rejects; only dropping x1b's mean makes the rest pass, and its
+    # difference-in-Sargan test (Hayashi 2000, section 3.6) rejects, so x1b alone is marked
+    rng = np.random.default_rng(12)
+    d = simulate(seed=12, n=600)
+    u_proxy = d.groupby("unit")["x2"].transform("mean")
+    d["x1b"] = d["x1b"] + 1.5 * u_proxy + rng.normal(scale=0.01, size=len(d))
+    c_unit = rng.normal(size=600)[d["unit"].to_numpy()]
+    d["x1c"] = c_unit + rng.normal(size=len(d))
+    d["z2"] = d["z2"] + 0.7 * c_unit
+    d["y"] = d["y"] + 0.3 * 1.5 * u_proxy + 0.2 * d["x1c"] + 0.7 * c_unit
+    r = run(d, regressors=["x1a", "x1b", "x1c", "x2", "z1", "z2"], correlated=["x2", "z2"])
+    assert "overidentification-rejected" in checks(r)
+    invalid = [f.column for f in r.findings if f.check == "invalid-instrument"]
+    assert invalid == ["x1b"]
+    usable = {c["instrument"]: c["usable"] for c in r.candidates}
+    assert usable == {"x1a": True, "x1b": False, "x1c": True}
+
+
+def test_x2_with_little_within_variation_is_flagged():
+    # hand-built: x2's within share is far below the 5% threshold of rules/defaults.yaml
+    d = simulate(seed=5)
+    unit_part = d.groupby("unit")["x2"].transform("mean")
+    d["x2"] = 10 * unit_part + 0.05 * (d["x2"] - unit_part)
+    r = run(d, regressors=SIM_REGS, correlated=["x2", "z2"])
+    share = r.x2_strength[0]["within_share"]
+    assert share < 0.05
+    assert [f.column for f in r.findings if f.check == "weak-within-variation"] == ["x2"]

@@ -248,7 +248,8 @@ def test_difference_in_sargan_matches_statsmodels_iv2sls_fits():
 
     d = simulate(seed=8)
     pa = _sim_arrays(d)
-    ht = models.hausman_taylor(pa, ["x1a", "x1b"], ["x2"], ["z1"], ["z2"])
+    # no Z2, so dropping one of the two X1 means leaves the model over-identified
+    ht = models.hausman_taylor(pa, ["x1a", "x1b"], ["x2"], ["z1", "z2"], [])
     th = pd.Series(ht.components.theta)[d["unit"]].to_numpy()
     mean = d.groupby("unit")[["y", "x1a", "x1b", "x2", "z1", "z2"]].transform("mean")
     cols = ["x1a", "x1b", "x2", "z1", "z2"]
@@ -256,7 +257,7 @@ def test_difference_in_sargan_matches_statsmodels_iv2sls_fits():
     star.insert(3, "const", 1 - th)
     ystar = d["y"] - th * mean["y"]
     a = pd.DataFrame({"wa": d["x1a"] - mean["x1a"], "wb": d["x1b"] - mean["x1b"], "w2": d["x2"] - mean["x2"],
-                      "ma": mean["x1a"], "mb": mean["x1b"], "one": 1.0, "z1": d["z1"]})
+                      "ma": mean["x1a"], "mb": mean["x1b"], "one": 1.0, "z1": d["z1"], "z2": d["z2"]})
 
     def epe(instr):
         fit = IV2SLS(ystar, star, instr).fit()
@@ -268,3 +269,36 @@ def test_difference_in_sargan_matches_statsmodels_iv2sls_fits():
     c = (full - restricted) / (ee / len(d))
     assert ht.c_tests["x1a"].statistic == pytest.approx(c, rel=1e-6)
     assert ht.sargan.statistic == pytest.approx(len(d) * full / ee, rel=1e-8)
+
+
+def test_mundlak_classical_se_matches_statsmodels_pooled_ols(grunfeld10):
+    # oracle: statsmodels OLS (non-robust) of invest on [1, value, capital, firm means]
+    d = _unbalanced(grunfeld10).copy()
+    d["m_value"] = d.groupby("firm")["value"].transform("mean")
+    d["m_capital"] = d.groupby("firm")["capital"].transform("mean")
+    ref = sm.OLS(d["invest"], sm.add_constant(d[["value", "capital", "m_value", "m_capital"]])).fit()
+    mu = models.mundlak(_arrays(d))
+    np.testing.assert_allclose(mu.fit.coef, ref.params.to_numpy(), rtol=1e-8)
+    np.testing.assert_allclose(mu.fit.se, ref.bse.to_numpy(), rtol=1e-8)
+
+
+def test_mundlak_with_a_mean_left_out_matches_statsmodels(grunfeld10):
+    # oracle: statsmodels OLS clustered by firm of invest on [1, value, capital, year dummies,
+    # firm means of value and capital]; in a balanced panel the firm means of the year dummies are
+    # all 1/20, collinear with the constant, so they are left out (common practice)
+    d = grunfeld10.copy()
+    years = sorted(d["year"].unique())[1:]
+    names = []
+    for y in years:
+        name = f"period={int(y)}"
+        d[name] = (d["year"] == y).astype(float)
+        names.append(name)
+    d["m_value"] = d.groupby("firm")["value"].transform("mean")
+    d["m_capital"] = d.groupby("firm")["capital"].transform("mean")
+    codes = d["firm"].astype("category").cat.codes.to_numpy()
+    exog = sm.add_constant(d[["value", "capital", *names, "m_value", "m_capital"]])
+    ref = sm.OLS(d["invest"], exog).fit(cov_type="cluster", cov_kwds={"groups": codes})
+    pa = _arrays(d, x=("value", "capital", *names))
+    mu = models.mundlak(pa, mean_columns=["value", "capital"])
+    np.testing.assert_allclose(mu.fit.coef, ref.params.to_numpy(), rtol=1e-7, atol=1e-8)
+    np.testing.assert_allclose(mu.fit.se_cluster, ref.bse.to_numpy(), rtol=1e-7)
