@@ -56,7 +56,7 @@ CHECKS: dict[str, CheckSpec] = {
     ),
     "weak-instrument": CheckSpec("warning", "instruments", "a Z2 column whose first-stage F is below its critical value"),
     "invalid-instrument": CheckSpec(
-        "warning", "instruments", "an X1 column whose Mundlak coefficient says it is correlated with the unit effect"
+        "warning", "instruments", "an X1 mean rejected by its difference-in-Sargan test (else its Mundlak coefficient)"
     ),
     "overidentification-rejected": CheckSpec(
         "warning", "instruments", "the Sargan or within-vs-Hausman-Taylor test rejects the instruments"
