@@ -15,7 +15,7 @@ means (methods.md, section 2).
 from __future__ import annotations
 
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
@@ -179,14 +179,15 @@ def unit_moments(
     acc: dict[str, tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
     for frame in batches:
         u = frame[UNIT_ID].to_numpy().astype(np.intp)
+        full_n = np.bincount(u, minlength=n_units).astype(np.float64)
         for c in columns:
             x = frame[c].cast(pl.Float64).to_numpy()
             keep = np.isfinite(x)
             if keep.all():
-                uu, xx = u, x - shift[c]
+                uu, xx, n = u, x - shift[c], full_n
             else:
                 uu, xx = u[keep], x[keep] - shift[c]
-            n = np.bincount(uu, minlength=n_units).astype(np.float64)
+                n = np.bincount(uu, minlength=n_units).astype(np.float64)
             sums = np.bincount(uu, weights=xx, minlength=n_units).astype(np.float64)
             mean = np.divide(sums, n, out=np.zeros(n_units), where=n > 0)
             dev = xx - mean[uu]
@@ -230,6 +231,7 @@ class Passes:
     per_period: pl.DataFrame
     values: dict[str, tuple[int, int]]
     shift: dict[str, float]
+    unit_means: dict[str, np.ndarray] = field(default_factory=dict)
 
 
 def run_passes(panel: Panel, extra_unit: list[pl.Expr] | None = None) -> Passes:
@@ -317,7 +319,14 @@ def run_passes(panel: Panel, extra_unit: list[pl.Expr] | None = None) -> Passes:
     for c, res in zip(counted, results[2:], strict=True):
         row = res.row(0, named=True) if res.height else {"d": 0, "top": 0}
         values[names[c]] = (int(row["d"] or 0), int(row["top"] or 0))
-    return Passes(scalars=g, per_unit=pu, per_period=pp, values=values, shift=shift)
+    return Passes(
+        scalars=g,
+        per_unit=pu,
+        per_period=pp,
+        values=values,
+        shift=shift,
+        unit_means={c: moments[c][1] for c in numeric},
+    )
 
 
 def compute_variation(panel: Panel, settings: Settings, passes: Passes | None = None) -> Variation:
@@ -443,7 +452,7 @@ def compute_variation(panel: Panel, settings: Settings, passes: Passes | None = 
         )
         records.append(rec)
 
-    basis = _absorbed(panel, records, numeric, shift, settings)
+    basis = _absorbed(panel, records, numeric, shift, settings, passes.unit_means)
     table = _table(records)
     missing = pl.DataFrame(
         {
@@ -536,6 +545,7 @@ def _absorbed(
     numeric: list[str],
     shift: dict[str, float],
     settings: Settings,
+    unit_means: dict[str, np.ndarray] | None = None,
 ) -> dict[str, Any]:
     """Fill ``time_r2`` and ``absorbed_by_time`` in ``records``; return the basis used.
 
@@ -585,10 +595,11 @@ def _absorbed(
         mask = np.isfinite(x)
         key = b"all" if mask.all() else np.packbits(mask).tobytes()
         if key not in cache:
-            cache = {key: _period_system(u[mask], t[mask], n_units, n_periods)}
+            cache[key] = _period_system(u[mask], t[mask], n_units, n_periods)
         uu, tt = (u, t) if key == b"all" else (u[mask], t[mask])
         xm = x[mask] if key != b"all" else x
-        r2 = time_r2(uu, tt, xm, n_units, n_periods, cache[key])
+        means = unit_means.get(r["name"]) if unit_means is not None and basis["all_units"] else None
+        r2 = time_r2(uu, tt, xm, n_units, n_periods, cache[key], means)
         r["time_r2"] = r2
         r["absorbed_by_time"] = bool(r2 is not None and r2 >= cut)
     return basis
@@ -618,12 +629,22 @@ def _period_system(u: np.ndarray, t: np.ndarray, n_units: int, n_periods: int) -
 
 
 def time_r2(
-    u: np.ndarray, t: np.ndarray, x: np.ndarray, n_units: int, n_periods: int, system: tuple[np.ndarray, np.ndarray]
+    u: np.ndarray,
+    t: np.ndarray,
+    x: np.ndarray,
+    n_units: int,
+    n_periods: int,
+    system: tuple[np.ndarray, np.ndarray],
+    means: np.ndarray | None = None,
 ) -> float | None:
-    """Share of the within variation of ``x`` explained by period effects (None when WSS = 0)."""
-    t_i = np.bincount(u, minlength=n_units).astype(np.float64)
-    sums = np.bincount(u, weights=x, minlength=n_units)
-    means = np.divide(sums, t_i, out=np.zeros(sums.shape), where=t_i > 0)
+    """Share of the within variation of ``x`` explained by period effects (None when WSS = 0).
+
+    ``means`` are the unit means of ``x`` by unit code when already known.
+    """
+    if means is None:
+        t_i = np.bincount(u, minlength=n_units).astype(np.float64)
+        sums = np.bincount(u, weights=x, minlength=n_units)
+        means = np.divide(sums, t_i, out=np.zeros(sums.shape), where=t_i > 0)
     xt = x - means[u]
     wss = float(xt @ xt)
     if not wss > 0:
