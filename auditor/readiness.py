@@ -540,22 +540,28 @@ def _run(panel: Panel, outcome: str, regs: list[str], corr: list[str] | None, pe
                 ))
         components = {**(components or {}), "hausman_taylor": ht.components.to_dict()}
 
-    # validity of each X1 mean as an instrument: the difference-in-Sargan (C) test where
-    # the rest of the means still over-identify the model; a mean is invalid when its C
-    # test rejects and the Sargan test of the rest accepts (dropping it cures the
-    # rejection). Without a C test the Mundlak evidence decides.
+    # validity of each X1 mean as an instrument. With a Z2 column the Mundlak evidence is
+    # disturbed (Z2 is correlated with u_i and with the X1 means), so the over-identification
+    # tests decide: the difference-in-Sargan (C) test where the other means still
+    # over-identify the model (invalid when C rejects and the Sargan of the rest accepts);
+    # with one over-identifying restriction the Sargan test of the whole set, which cannot
+    # single a column out; just identified, nothing can be tested and validity is assumed.
     c_tests: dict[str, float | None] = {}
-    invalid: dict[str, bool] = {}
+    invalid: dict[str, tuple[bool, str]] = {}
     if ht is not None and z2:
         for c in mean_instr:
             t, rest = ht.c_tests.get(c), ht.rest_sargan.get(c)
             c_tests[c] = None if t is None else t.p
             if t is not None and t.p is not None and rest is not None and rest.p is not None:
-                invalid[c] = t.p < test_alpha and rest.p >= test_alpha
+                invalid[c] = (t.p < test_alpha and rest.p >= test_alpha, "c-test")
+            elif ht.sargan is not None:
+                invalid[c] = (False, "sargan" if ht.sargan.p >= test_alpha else "sargan rejects, column unknown")
+            else:
+                invalid[c] = (False, "just identified, assumed")
     if declared:
         for c in mean_instr:
             cp, mp = c_tests.get(c), mundlak_p.get(c)
-            if invalid.get(c):
+            if invalid.get(c, (False, ""))[0]:
                 text = (f"the difference-in-Sargan test of its unit mean gives p = {cp:.3g} while the other "
                         "instruments pass")
             elif c not in invalid and mp is not None and mp < alpha:

@@ -284,15 +284,15 @@ def candidates(
     rule_of_thumb: float = 10.0,
     max_exhaustive: int = 12,
     c_p: dict[str, float | None] | None = None,
-    invalid: dict[str, bool] | None = None,
+    invalid: dict[str, tuple[bool, str]] | None = None,
 ) -> tuple[list[dict[str, Any]], list[dict[str, Any]]]:
     """Per (Z2, X1) the partial F of that X1 mean alone, its Mundlak p and whether it is usable;
     and per Z2 the suggested set.
 
     A candidate is unusable when its Mundlak p is below ``alpha`` (it behaves like X2,
     so as an instrument it would be correlated with u_i). ``invalid`` replaces that
-    rule for the columns it names (the caller's verdict from the difference-in-Sargan
-    test; rows then say ``usable_basis: "c-test"``); ``c_p`` is shown beside. The suggestion is the set of
+    rule for the columns it names with the caller's (verdict, basis), for example from
+    the over-identification tests; ``c_p`` is shown beside. The suggestion is the set of
     usable candidates whose joint partial F is largest relative to its critical value
     (Stock-Yogo for that many instruments, else the rule of thumb): every subset when
     there are at most ``max_exhaustive`` usable candidates, a greedy forward search
@@ -336,7 +336,7 @@ def candidates(
             p = mundlak_p.get(x)
             cp = (c_p or {}).get(x)
             if invalid is not None and x in invalid:
-                usable, basis = not invalid[x], "c-test"
+                usable, basis = not invalid[x][0], invalid[x][1]
             else:
                 usable, basis = p is None or p >= alpha, "mundlak"
             if usable:

@@ -349,3 +349,14 @@ def test_x2_with_little_within_variation_is_flagged():
     share = r.x2_strength[0]["within_share"]
     assert share < 0.05
     assert [f.column for f in r.findings if f.check == "weak-within-variation"] == ["x2"]
+
+
+def test_with_one_overidentifying_restriction_the_sargan_test_decides_usability(sim_result):
+    # Hausman and Taylor (1981): k1 - g2 = 1 over-identifying restriction; leaving one mean out
+    # would just identify the model, so no per-column C test exists (Hayashi 2000, section 3.6)
+    # and the Mundlak p, disturbed by the correlated z2, is shown but does not decide
+    bases = {c["instrument"]: c["usable_basis"] for c in sim_result.candidates}
+    assert all(b.startswith("sargan") for b in bases.values())
+    assert all(c["c_p"] is None for c in sim_result.candidates)
+    sargan_accepts = sim_result.tests["overidentification"]["p"] >= 0.05
+    assert all(c["usable"] for c in sim_result.candidates) or not sargan_accepts
