@@ -379,12 +379,16 @@ def _quasi_demean(pa: PanelArrays, theta: np.ndarray, out: np.ndarray | None = N
     k = 1 + kx + kz
     design = np.empty((pa.nobs, k)) if out is None else out
     pos = list(range(k)) if order is None else order
-    design[:, pos[0]] = 1.0 - th
+    np.subtract(1.0, th, out=design[:, pos[0]])
+    buf = np.empty(pa.nobs)
     for j in range(kx):  # loop over columns, never over units
-        design[:, pos[1 + j]] = pa.x[:, j] - th * pa.xbar[pa.codes, j]
+        np.take(np.ascontiguousarray(theta * pa.xbar[:, j]), pa.codes, out=buf)
+        np.subtract(pa.x[:, j], buf, out=design[:, pos[1 + j]])
     for j in range(kz):
-        design[:, pos[1 + kx + j]] = pa.z[:, j] - th * pa.zbar[pa.codes, j]
-    return design, pa.y - th * pa.ybar[pa.codes]
+        np.take(np.ascontiguousarray(theta * pa.zbar[:, j]), pa.codes, out=buf)
+        np.subtract(pa.z[:, j], buf, out=design[:, pos[1 + kx + j]])
+    np.take(theta * pa.ybar, pa.codes, out=buf)
+    return design, pa.y - buf
 
 
 def random_effects(
@@ -706,10 +710,12 @@ def _ht_arrays(
     K = 1 + nx + nz
     full = np.empty((sub.nobs, L + K + 1))
     codes = sub.codes
+    buf = np.empty(sub.nobs)
     for j in range(nx):  # loop over columns, never over units
-        full[:, j] = sub.x[:, j] - sub.xbar[codes, j]
+        np.take(np.ascontiguousarray(sub.xbar[:, j]), codes, out=buf)
+        np.subtract(sub.x[:, j], buf, out=full[:, j])
     for m, c in enumerate(means):
-        full[:, nx + m] = sub.xbar[codes, sub.x_names.index(c)]
+        np.take(np.ascontiguousarray(sub.xbar[:, sub.x_names.index(c)]), codes, out=full[:, nx + m])
     full[:, nx + len(means)] = 1.0
     for j in range(len(z1)):
         full[:, nx + len(means) + 1 + j] = sub.z[:, j]

@@ -238,10 +238,18 @@ def x2_first_stage(
     th = theta[pa.codes]
     xcols = x1 + x2
     xi = [pa.x_names.index(c) for c in xcols]
-    xw = pa.x[:, xi] - pa.xbar[:, xi][pa.codes]
     zi1 = [pa.z_names.index(c) for c in z1]
-    a = np.column_stack([xw, pa.xbar[:, [pa.x_names.index(c) for c in mean_cols]][pa.codes], np.ones(pa.nobs),
-                         pa.zbar[:, zi1][pa.codes]])
+    # A = [X - X means, X1 means, 1, Z1], filled column by column
+    a = np.empty((pa.nobs, len(xi) + len(mean_cols) + 1 + len(zi1)))
+    for k, j in enumerate(xi):  # loop over columns, never over units
+        np.take(np.ascontiguousarray(pa.xbar[:, j]), pa.codes, out=a[:, k])
+        np.subtract(pa.x[:, j], a[:, k], out=a[:, k])
+    base = len(xi)
+    for k, c in enumerate(mean_cols):
+        np.take(np.ascontiguousarray(pa.xbar[:, pa.x_names.index(c)]), pa.codes, out=a[:, base + k])
+    a[:, base + len(mean_cols)] = 1.0
+    for k, j in enumerate(zi1):
+        np.take(np.ascontiguousarray(pa.zbar[:, j]), pa.codes, out=a[:, base + len(mean_cols) + 1 + k])
     names = [f"dev({c})" for c in xcols] + [f"mean({c})" for c in mean_cols] + ["const"] + list(z1)
     other = [f"mean({c})" for c in mean_cols] + list(z1)
     out = []
