@@ -60,6 +60,12 @@ class InstrumentsResult:
     findings: tuple[Finding, ...]
     source: str
 
+    def _repr_html_(self) -> str:
+        """The result as an HTML fragment for notebooks (the report's renderer)."""
+        from auditor.report.html import instruments_fragment
+
+        return instruments_fragment(self)
+
     def to_dict(self) -> dict[str, Any]:
         """The contract's ``instruments`` document (non-finite numbers as null)."""
         from auditor.profile import tool_info

@@ -96,6 +96,12 @@ class CompareResult:
         """``"wave"`` for this command's findings, ``"merged"`` for the merged profile's."""
         return "merged" if any(finding is f for f in self.merged_findings) else "wave"
 
+    def _repr_html_(self) -> str:
+        """The result as an HTML fragment for notebooks (the report's renderer)."""
+        from auditor.report.html import compare_fragment
+
+        return compare_fragment(self)
+
     def to_dict(self) -> dict[str, Any]:
         """The contract's JSON document (plus ``reference``, ``rows`` and a ``scope`` per finding)."""
         from auditor import __version__

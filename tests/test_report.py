@@ -408,3 +408,27 @@ def test_size_guard_lists_fewer_rows_until_the_page_fits(wide_profile, tmp_path)
                              settings=_settings(tmp_path, f"report:\n  max_bytes: {limit}\n"))
     assert len(cut.encode("utf-8")) <= limit < len(full.encode("utf-8"))
     assert "columns are shown" in cut and "columns are shown" not in full
+
+
+def test_every_result_renders_in_a_notebook() -> None:
+    # the profile, instruments and compare results share the report's renderer (_repr_html_)
+    import numpy as np
+    import polars as pl
+
+    import auditor
+
+    rng = np.random.default_rng(8)
+    n, periods = 60, 4
+    u = np.repeat(np.arange(n), periods)
+    t = np.tile(np.arange(2001, 2001 + periods), n)
+    df = pl.DataFrame(
+        {"u": u, "t": t, "x": rng.normal(size=n * periods), "z": np.repeat(rng.normal(size=n), periods)}
+    ).with_columns((pl.col("x") + pl.col("z") + rng.normal(size=n * periods)).alias("y"))
+    base, new = df.filter(pl.col("t") < 2004), df.filter(pl.col("t") == 2004)
+    for result in (
+        auditor.profile(df, "u", "t"),
+        auditor.instruments(df, unit="u", time="t", outcome="y", regressors=["x", "z"], correlated=[]),
+        auditor.compare(base, new, unit="u", time="t"),
+    ):
+        html = result._repr_html_()
+        assert html.lstrip().startswith("<") and "<script" not in html
