@@ -374,6 +374,16 @@ def _period_scale(
 # --- the comparison ---------------------------------------------------------------------
 
 
+def _preload_scipy_stats() -> None:
+    # scipy.stats (for the KS p-values) takes a second or more to import; start it in a
+    # thread so that it overlaps the base profile, whose polars work releases the GIL.
+    import sys
+    import threading
+
+    if "scipy.stats" not in sys.modules:
+        threading.Thread(target=__import__, args=("scipy.stats",), daemon=True).start()
+
+
 def compare(
     base: Any,
     new: Any,
@@ -392,6 +402,7 @@ def compare(
     fractions, the PSI and KS statistic dimensionless. Raises AuditError (exit 2)
     when a side cannot serve (no common keys, an empty new wave, unreadable files).
     """
+    _preload_scipy_stats()
     if settings is None:
         settings = load_settings(rules)
     units = parse_unit(unit)
