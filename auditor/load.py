@@ -118,7 +118,8 @@ def _to_lazy(
     data: Any, text_columns: Sequence[str], settings: Any = None
 ) -> tuple[pl.LazyFrame, str, tuple[Path, ...], list[Any], bool]:
     """(lazy frame, description, input paths, load findings, scanned binary file)."""
-    import importlib
+    import sys
+    from collections import Counter
 
     if isinstance(data, pl.LazyFrame):
         return data, "polars LazyFrame", (), [], False
@@ -126,12 +127,12 @@ def _to_lazy(
         if data.height == 0:
             raise fail("empty-frame")
         return data.lazy(), "polars DataFrame", (), [], False
-    pd = importlib.import_module("pandas") if "pandas" in _loaded_modules() else None
+    pd = sys.modules.get("pandas")  # a pandas frame can only exist once pandas is imported
     if pd is not None and isinstance(data, pd.DataFrame):
         if len(data) == 0:
             raise fail("empty-frame")
-        if len(set(map(str, data.columns))) != len(data.columns):
-            dup = sorted({str(c) for c in data.columns if list(map(str, data.columns)).count(str(c)) > 1})
+        dup = sorted(name for name, k in Counter(map(str, data.columns)).items() if k > 1)
+        if dup:
             raise fail("duplicate-column-names", names=", ".join(f"'{d}'" for d in dup))
         frame = data.reset_index(drop=True)
         frame.columns = [str(c) for c in frame.columns]
@@ -142,12 +143,6 @@ def _to_lazy(
     lf, findings, binary = scan_inputs(paths, text_columns, settings)
     desc = str(paths[0]) if len(paths) == 1 else f"{len(paths)} files ({paths[0].parent})"
     return lf, desc, tuple(paths), findings, binary
-
-
-def _loaded_modules() -> set[str]:
-    import sys
-
-    return set(sys.modules)
 
 
 def load_panel(

@@ -1,8 +1,9 @@
 """Panel structure: balance, duplicate and missing keys, gaps, patterns, attrition.
 
-Everything comes from two small tables computed in polars: the distinct
-(unit, period) cells with their row counts, and one row per unit (rows, first
-and last period, distinct periods, participation pattern).
+Everything comes from one row per unit, computed in the profile's shared grouped
+pass (rows, first and last period, the participation pattern as a bit mask of
+periods), and from the table of patterns. The (unit, period) cells are grouped
+only for the units holding duplicate keys, to show examples.
 """
 
 from __future__ import annotations

@@ -1,15 +1,15 @@
 """Within / between variation, column kinds and per-column signals.
 
-Three small passes over the rows, each one polars query for every column:
-a global pass (missing, non-finite, distinct values, dominant value), a grouped
-pass by unit (count, mean, centred sum of squares, min, max, distinct values)
-and a grouped pass by period (count, distinct values, for period-only columns
-and missing data by wave). Everything else is numpy arithmetic on those tables.
+A scalar pass (missing, non-finite, distinct values), then one ``collect_all`` with
+the grouped pass by unit (every column's count, min and max), the grouped pass by
+period (count, min and max, for period-only columns and missing data by wave) and
+value tables for columns with repeated values. Per-unit means and centred sums of
+squares come from an ordered numpy pass (:func:`unit_moments`). Everything else is
+numpy arithmetic on those small tables.
 
-Numerical stability: numeric columns are shifted by their first finite value
-before aggregation, per-unit sums of squares are centred within the unit
-(polars' grouped variance), and totals are combined as WSS + BSS from unit
-means (methods.md, section 2).
+Numerical stability: numeric columns are shifted by their first finite value,
+per-unit sums of squares are centred within the unit (two passes), and totals are
+combined as WSS + BSS from unit means (methods.md, section 2).
 """
 
 from __future__ import annotations
