@@ -14,6 +14,7 @@ from functools import cached_property
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 import polars as pl
 
 from auditor.errors import fail, short_list
@@ -92,6 +93,27 @@ def panel_units(coded: pl.LazyFrame, units: Sequence[str], engine: str) -> pl.Da
         .sort(UNIT_ID)
         .collect(engine=engine)
     )
+
+
+def _integer_codes(key: pl.Series) -> tuple[pl.Series, pl.Series] | None:
+    """Dense 0-based codes of an integer unit key, and the keys in code order, or None.
+
+    The same codes as a dense rank, found by one bincount over the key's range when
+    that range is at most a few times the number of rows (household or firm ids);
+    None for other keys, which are ranked.
+    """
+    if not key.dtype.is_integer() or key.len() == 0 or key.null_count():
+        return None
+    lo, hi = int(key.min()), int(key.max())
+    if hi - lo > 4 * key.len() + 1024:
+        return None
+    offset = (key.cast(pl.Int64) - lo).to_numpy() if hi < 2**63 else (key - lo).cast(pl.Int64).to_numpy()
+    present = np.zeros(hi - lo + 1, dtype=bool)
+    present[offset] = True
+    code_of = np.cumsum(present, dtype=np.int64) - 1
+    codes = pl.Series(UNIT_ID, code_of[offset].astype(np.uint32))
+    keys = (pl.Series(key.name, np.flatnonzero(present)) + lo).cast(key.dtype)
+    return codes, keys
 
 
 def parse_unit(unit: str | Sequence[str]) -> tuple[str, ...]:
@@ -249,17 +271,26 @@ def load_panel(
 
     # Unit codes: dense ranks of the key (composite keys rank as a struct), 0-based, in key order.
     key = pl.col(units[0]) if len(units) == 1 else pl.struct(list(units))
-    coded = keyed.with_columns(
-        (key.rank("dense") - 1).cast(pl.UInt32).alias(UNIT_ID),
-        pl.col(time)
-        .replace_strict(time_map[time], time_map[PERIOD_ID], return_dtype=pl.UInt32)
-        .alias(PERIOD_ID),
+    period_code = (
+        pl.col(time).replace_strict(time_map[time], time_map[PERIOD_ID], return_dtype=pl.UInt32).alias(PERIOD_ID)
     )
     eager = None
-    if not streaming:
-        eager = coded.collect()
+    if streaming:
+        coded = keyed.with_columns((key.rank("dense") - 1).cast(pl.UInt32).alias(UNIT_ID), period_code)
+        unit_table = panel_units(coded, units, engine)
+    else:
+        frame = lf.collect() if not missing else keyed.collect()  # no copy when no key is missing
+        fast = _integer_codes(frame[units[0]]) if len(units) == 1 else None
+        if fast is not None:
+            codes, unit_keys = fast
+            eager = frame.with_columns(codes, period_code)
+            unit_table = pl.DataFrame(
+                {UNIT_ID: pl.Series(UNIT_ID, np.arange(unit_keys.len(), dtype=np.uint32)), units[0]: unit_keys}
+            )
+        else:
+            eager = frame.with_columns((key.rank("dense") - 1).cast(pl.UInt32).alias(UNIT_ID), period_code)
+            unit_table = panel_units(eager.lazy(), units, engine)
         coded = eager.lazy()
-    unit_table = panel_units(coded, units, engine)
     columns = tuple(c for c in schema if c not in keys and c not in INTERNAL)
     return Panel(
         lazy=coded,

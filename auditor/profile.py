@@ -107,7 +107,7 @@ def profile_panel(panel: Panel, settings: Settings) -> ProfileResult:
     from auditor import progress
 
     with progress.step(f"grouped pass over {panel.rows:,} rows"):
-        passes = run_passes(panel, extra_unit=structure_unit_exprs(panel))
+        passes = run_passes(panel, settings, extra_unit=structure_unit_exprs(panel))
     with progress.step("structure and variation"):
         s = compute_structure(panel, settings, passes.per_unit)
         v = compute_variation(panel, settings, passes)

@@ -21,9 +21,11 @@ from typing import Any
 import numpy as np
 import polars as pl
 
+from auditor import unitpass
 from auditor.config import Settings
 from auditor.findings import Finding, make
 from auditor.load import PERIOD_ID, UNIT_ID, Panel
+from auditor.unitpass import DENSE_CELLS, ColumnStats
 
 KINDS = ("constant", "period-only", "time-invariant", "nearly-time-invariant", "time-varying")
 
@@ -131,14 +133,15 @@ def prepared(
     return panel.lazy.select(pl.col(UNIT_ID), pl.col(PERIOD_ID), *exprs)
 
 
-def unit_exprs(panel: Panel) -> list[pl.Expr]:
-    """Per-unit aggregations on :func:`prepared` columns: count, min and max of every column.
+def unit_exprs(panel: Panel, columns: Sequence[str] | None = None) -> list[pl.Expr]:
+    """Per-unit aggregations on :func:`prepared` columns: count, min and max of each column.
 
-    The sums (means and centred sums of squares) come from :func:`unit_moments`.
+    ``columns``: the columns to aggregate (default every non-key column). The sums
+    (means and centred sums of squares) come from :func:`unit_moments`.
     """
     names = column_aliases(panel)
     out: list[pl.Expr] = []
-    for c in panel.columns:
+    for c in panel.columns if columns is None else columns:
         a, dt = names[c], panel.schema[c]
         src = f"{a}:x" if is_numeric(dt) else f"{a}:v"
         if is_numeric(dt) or _orderable(dt):
@@ -223,23 +226,50 @@ def select_row(panel: Panel, exprs: list[pl.Expr]) -> dict[str, Any]:
 
 @dataclass(frozen=True)
 class Passes:
-    """The tables of the three passes: ``scalars`` (one row as a dict), ``per_unit``,
-    ``per_period`` (sorted by code), ``values`` (alias -> (distinct, dominant count)), ``shift``."""
+    """What the passes over the rows computed.
 
-    scalars: dict[str, Any]
-    per_unit: pl.DataFrame
-    per_period: pl.DataFrame
-    values: dict[str, tuple[int, int]]
-    shift: dict[str, float]
+    ``stats``: column name -> :class:`~auditor.unitpass.ColumnStats`. ``per_unit``:
+    the structure's per-unit table sorted by unit code (None when not asked for).
+    ``period_rows``: rows per period index. ``counts``: the dense unit x period row
+    counts (in-memory pass only). ``streaming``: the stats came from the polars
+    tables of a streaming pass (the period-effect R2 then reads the rows again).
+    """
+
+    stats: dict[str, ColumnStats]
+    per_unit: pl.DataFrame | None
+    period_rows: np.ndarray
+    counts: np.ndarray | None = None
+    streaming: bool = False
     unit_means: dict[str, np.ndarray] = field(default_factory=dict)
 
 
-def run_passes(panel: Panel, extra_unit: list[pl.Expr] | None = None) -> Passes:
-    """Run the scalar pass, then the per-unit, per-period and value-count queries together.
+def run_passes(panel: Panel, settings: Settings, extra_unit: list[pl.Expr] | None = None) -> Passes:
+    """Every column's statistics, and the per-unit aggregations ``extra_unit`` asks for.
 
-    ``extra_unit`` adds aggregations (e.g. the structure's) to the same grouped pass by unit.
+    In memory: the ordered numpy pass of :mod:`auditor.unitpass` (the structure's
+    per-unit fields come from its count matrix when the panel has at most 63
+    periods). Streaming: a scalar pass, then the grouped passes by unit and by
+    period in polars, and the per-unit moments merged across row batches.
     """
-    cols = list(panel.columns)
+    tol = float(settings.get("profile", "float_tolerance"))
+    k = int(settings.get("profile", "examples"))
+    if not unitpass.feasible(panel):
+        return _polars_passes(panel, list(panel.columns), tol, k, extra_unit)
+
+    def slow(p: Panel, column: str) -> ColumnStats:
+        return _polars_passes(p, [column], tol, k, None).stats[column]
+
+    up = unitpass.run(panel, examples=k, tolerance=tol, slow=slow)
+    per_unit = up.structure
+    if per_unit is None and extra_unit:
+        per_unit = panel.collect(panel.lazy.group_by(UNIT_ID).agg(extra_unit)).sort(UNIT_ID)
+    return Passes(stats=up.columns, per_unit=per_unit, period_rows=up.period_rows, counts=up.counts)
+
+
+def _polars_passes(
+    panel: Panel, cols: list[str], tol: float, k: int, extra_unit: list[pl.Expr] | None
+) -> Passes:
+    """The statistics of ``cols`` from polars queries (streaming, or columns numpy cannot code)."""
     schema = panel.schema
     names = column_aliases(panel)
     numeric = [c for c in cols if is_numeric(schema[c])]
@@ -275,9 +305,9 @@ def run_passes(panel: Panel, extra_unit: list[pl.Expr] | None = None) -> Passes:
             pl.col(f"{a}:v").min().alias(f"{a}:pmin"),
             pl.col(f"{a}:v").max().alias(f"{a}:pmax"),
         ]
-    prep = prepared(panel)
+    prep = prepared(panel, cols, names)
     queries = [
-        prep.group_by(UNIT_ID).agg([*unit_exprs(panel), *(extra_unit or [])]),
+        prep.group_by(UNIT_ID).agg([*unit_exprs(panel, cols), *(extra_unit or [])]),
         prep.group_by(PERIOD_ID).agg(per_period),
     ]
     # Distinct values and the most common value's count. When every present value is
@@ -306,38 +336,98 @@ def run_passes(panel: Panel, extra_unit: list[pl.Expr] | None = None) -> Passes:
     results = pl.collect_all(queries, engine=engine)
     pu = results[0].sort(UNIT_ID)
     pp = results[1].sort(PERIOD_ID)
-    moments = unit_moments(panel, numeric, shift)
-    codes = pu[UNIT_ID].to_numpy()
-    pu = pu.with_columns(
-        e
-        for c in numeric
-        for e in (
-            pl.Series(f"{names[c]}:mean", moments[c][1][codes]),
-            pl.Series(f"{names[c]}:m2", moments[c][2][codes]),
-        )
-    )
     for c, res in zip(counted, results[2:], strict=True):
         row = res.row(0, named=True) if res.height else {"d": 0, "top": 0}
         values[names[c]] = (int(row["d"] or 0), int(row["top"] or 0))
+    moments = unit_moments(panel, numeric, shift)
+    codes = pu[UNIT_ID].to_numpy()
+    stats = {
+        c: _stats_from_tables(c, names[c], schema[c], g, pu, pp, values[names[c]], moments.get(c), shift.get(c, 0.0), codes, tol, k)
+        for c in cols
+    }
+    structure_cols = [c for c in pu.columns if c.startswith("__") and c != UNIT_ID]
     return Passes(
-        scalars=g,
-        per_unit=pu,
-        per_period=pp,
-        values=values,
-        shift=shift,
+        stats=stats,
+        per_unit=pu.select(UNIT_ID, *structure_cols) if extra_unit else None,
+        period_rows=pp["rows"].to_numpy(),
+        streaming=True,
         unit_means={c: moments[c][1] for c in numeric},
+    )
+
+
+def _stats_from_tables(
+    c: str,
+    a: str,
+    dt: pl.DataType,
+    g: dict[str, Any],
+    pu: pl.DataFrame,
+    pp: pl.DataFrame,
+    values: tuple[int, int],
+    moments: tuple[np.ndarray, np.ndarray, np.ndarray] | None,
+    shift: float,
+    codes: np.ndarray,
+    tol: float,
+    k: int,
+) -> ColumnStats:
+    """One column's :class:`ColumnStats` from the polars tables of :func:`_polars_passes`."""
+    pu_cols, pp_cols = set(pu.columns), set(pp.columns)
+    n_i = pu[f"{a}:n"].to_numpy()
+    extra: dict[str, Any] = {}
+    if moments is not None:
+        mean_i = moments[1][codes]
+        lo, hi = pu[f"{a}:min"].to_numpy(), pu[f"{a}:max"].to_numpy()
+        seen = n_i > 0
+        if dt.is_float():
+            unit_mean_abs = np.abs(np.where(seen, mean_i, 0.0) + shift)
+            changing = seen & ((hi - lo) > tol * (1.0 + unit_mean_abs))
+        else:
+            changing = seen & (hi != lo)
+        idx = np.flatnonzero(changing)[:k]
+        examples = tuple((int(codes[i]), float(lo[i]), float(hi[i])) for i in idx)
+        extra = {
+            "shift": shift,
+            "vmin": g.get(f"{a}:min"),
+            "vmax": g.get(f"{a}:max"),
+            "mean_i": mean_i,
+            "m2_i": moments[2][codes],
+        }
+    elif f"{a}:tmin" in pu_cols:
+        tmin, tmax = pu[f"{a}:tmin"], pu[f"{a}:tmax"]
+        changing = (tmin.is_not_null() & (tmin != tmax)).fill_null(False).to_numpy()
+        idx = np.flatnonzero(changing)[:k]
+        examples = tuple((int(codes[i]), str(tmin[int(i)]), str(tmax[int(i)])) for i in idx)
+    else:
+        nu = pu[f"{a}:nu"].to_numpy()
+        changing = nu >= 2
+        idx = np.flatnonzero(changing)[:k]
+        examples = tuple((int(codes[i]), None, int(nu[i])) for i in idx)
+    if f"{a}:pmin" in pp_cols:
+        pmin, pmax = pp[f"{a}:pmin"], pp[f"{a}:pmax"]
+        one_value = bool((pmin.is_null() | (pmin == pmax)).fill_null(True).all())
+    else:
+        one_value = bool((pp[f"{a}:nu"].to_numpy() <= 1).all())
+    return ColumnStats(
+        nulls=int(g[f"{a}:null"]) + int(g.get(f"{a}:nan") or 0),
+        non_finite=int(g.get(f"{a}:inf") or 0),
+        distinct=values[0],
+        top=values[1],
+        n_i=n_i,
+        changing=np.asarray(changing, dtype=bool),
+        n_t=pp[f"{a}:n"].to_numpy(),
+        one_value=one_value,
+        examples=examples,
+        **extra,
     )
 
 
 def compute_variation(panel: Panel, settings: Settings, passes: Passes | None = None) -> Variation:
     """Kinds, shares and signals for every non-key column of ``panel``.
 
-    ``passes`` are the grouped tables from :func:`run_passes` (computed here when None).
+    ``passes`` are the statistics from :func:`run_passes` (computed here when None).
     """
     cols = list(panel.columns)
     schema = panel.schema
     n_rows = panel.rows - panel.missing_keys
-    tol = float(settings.get("profile", "float_tolerance"))
     if not cols:
         return Variation(
             columns=pl.DataFrame(schema={f: pl.Null for f in COLUMN_FIELDS}),
@@ -346,35 +436,27 @@ def compute_variation(panel: Panel, settings: Settings, passes: Passes | None = 
             changing_examples={},
         )
     numeric = [c for c in cols if is_numeric(schema[c])]
-    names = column_aliases(panel)
-    passes = passes if passes is not None else run_passes(panel)
-    g, pu, pp = passes.scalars, passes.per_unit, passes.per_period
-    pu_cols, pp_cols = set(pu.columns), set(pp.columns)
-    shift = passes.shift
+    passes = passes if passes is not None else run_passes(panel, settings)
 
     # --- arithmetic on the small tables ------------------------------------------------
     records: list[dict[str, Any]] = []
     changing_examples: dict[str, tuple[dict[str, Any], ...]] = {}
-    k_examples = int(settings.get("profile", "examples"))
-    period_rows = pp["rows"].to_numpy().astype(np.float64)
+    period_rows = passes.period_rows.astype(np.float64)
+    period_labels = list(panel.grid)
     miss_cols: list[str] = []
     miss_periods: list[Any] = []
     miss_shares: list[float] = []
-    period_labels = [panel.grid[int(i)] for i in pp[PERIOD_ID].to_list()]
     for c in cols:
-        a, dt = names[c], schema[c]
-        nulls = int(g[f"{a}:null"]) + int(g.get(f"{a}:nan") or 0)
-        non_finite = int(g.get(f"{a}:inf") or 0)
-        distinct, top = passes.values[a]
-        present_rows = n_rows - nulls
-        dominant = (top / present_rows) if present_rows and distinct and top else None
-        n_i = pu[f"{a}:n"].to_numpy()
-        observed_twice = int((n_i >= 2).sum())
+        st = passes.stats[c]
+        dt = schema[c]
+        present_rows = n_rows - st.nulls
+        dominant = (st.top / present_rows) if present_rows and st.distinct and st.top else None
+        observed_twice = int((st.n_i >= 2).sum())
         rec: dict[str, Any] = {
             "name": c,
             "dtype": dtype_name(dt),
-            "missing_share": nulls / n_rows if n_rows else None,
-            "distinct": distinct,
+            "missing_share": st.nulls / n_rows if n_rows else None,
+            "distinct": st.distinct,
             "units_observed_twice": observed_twice,
             "dominant_share": dominant,
             "mean": None,
@@ -384,67 +466,35 @@ def compute_variation(panel: Panel, settings: Settings, passes: Passes | None = 
             "within_share": None,
             "absorbed_by_time": None,
             "time_r2": None,
-            "non_finite": non_finite,
+            "non_finite": st.non_finite,
             "binary": False,
         }
-        if c in numeric:
-            mean_i = pu[f"{a}:mean"].to_numpy()
-            m2_i = pu[f"{a}:m2"].to_numpy()
-            lo = pu[f"{a}:min"].to_numpy()
-            hi = pu[f"{a}:max"].to_numpy()
-            seen = n_i > 0
-            stats = decompose(n_i[seen], mean_i[seen], m2_i[seen])
-            rec.update(stats)
+        if c in numeric and st.mean_i is not None and st.m2_i is not None:
+            seen = st.n_i > 0
+            rec.update(decompose(st.n_i[seen], st.mean_i[seen], st.m2_i[seen]))
             if rec["mean"] is not None:
-                rec["mean"] = rec["mean"] + shift[c]
-            unit_mean_abs = np.abs(np.where(seen, mean_i, 0.0) + shift[c])
-            if dt.is_float():
-                changing = seen & ((hi - lo) > tol * (1.0 + unit_mean_abs))
-            else:
-                changing = seen & (hi != lo)
-            gmin, gmax = g.get(f"{a}:min"), g.get(f"{a}:max")
-            rec["binary"] = bool(distinct == 2 and gmin == 0.0 and gmax == 1.0)
-        elif f"{a}:tmin" in pu_cols:
-            tmin, tmax = pu[f"{a}:tmin"], pu[f"{a}:tmax"]
-            changing = (tmin.is_not_null() & (tmin != tmax)).fill_null(False).to_numpy()
-        else:
-            changing = pu[f"{a}:nu"].to_numpy() >= 2
-        changing = np.asarray(changing, dtype=bool)
-        units_changing = int(changing.sum())
+                rec["mean"] = rec["mean"] + st.shift
+            rec["binary"] = bool(st.distinct == 2 and st.vmin == 0.0 and st.vmax == 1.0)
+        units_changing = int(st.changing.sum())
         rec["units_changing"] = units_changing
-        if units_changing:
-            idx = np.flatnonzero(changing)[:k_examples]
-            labels = panel.unit_labels([int(pu[UNIT_ID][int(i)]) for i in idx])
-            if c in numeric:
-                exs = [
-                    {**lab, "min": float(lo[i]), "max": float(hi[i])}
-                    for lab, i in zip(labels, idx, strict=True)
-                ]
-            elif f"{a}:tmin" in pu_cols:
-                exs = [
-                    {**lab, "min": str(pu[f"{a}:tmin"][int(i)]), "max": str(pu[f"{a}:tmax"][int(i)])}
-                    for lab, i in zip(labels, idx, strict=True)
-                ]
-            else:
-                exs = [{**lab, "distinct_values": int(pu[f"{a}:nu"][int(i)])} for lab, i in zip(labels, idx, strict=True)]
-            changing_examples[c] = tuple(exs)
-        # per period: one value per period (period-only) and missing data
-        if f"{a}:pmin" in pp_cols:
-            pmin, pmax = pp[f"{a}:pmin"], pp[f"{a}:pmax"]
-            one_value = bool((pmin.is_null() | (pmin == pmax)).fill_null(True).all())
-        else:
-            one_value = bool((pp[f"{a}:nu"].to_numpy() <= 1).all())
-        n_t = pp[f"{a}:n"].to_numpy().astype(np.float64)
+        if st.examples:
+            labels = panel.unit_labels([e[0] for e in st.examples])
+            changing_examples[c] = tuple(
+                {**lab, "distinct_values": hi} if lo is None else {**lab, "min": lo, "max": hi}
+                for lab, (_, lo, hi) in zip(labels, st.examples, strict=True)
+            )
+        # per period: missing data by wave
+        n_t = st.n_t.astype(np.float64)
         share_t = 1.0 - n_t / period_rows
         miss_cols += [c] * len(share_t)
         miss_periods += period_labels
         miss_shares += share_t.tolist()
         rec["periods_all_missing"] = [
             period_labels[i] for i in np.flatnonzero(n_t == 0)
-        ] if distinct else []
+        ] if st.distinct else []
         rec["kind"] = classify(
-            distinct=distinct,
-            period_only=bool(distinct > 1 and one_value),
+            distinct=st.distinct,
+            period_only=bool(st.distinct > 1 and st.one_value),
             units_changing=units_changing,
             units_observed_twice=observed_twice,
             within_share=rec["within_share"],
@@ -452,7 +502,7 @@ def compute_variation(panel: Panel, settings: Settings, passes: Passes | None = 
         )
         records.append(rec)
 
-    basis = _absorbed(panel, records, numeric, shift, settings, passes.unit_means)
+    basis = _absorbed(panel, records, numeric, passes, settings)
     table = _table(records)
     missing = pl.DataFrame(
         {
@@ -543,9 +593,8 @@ def _absorbed(
     panel: Panel,
     records: list[dict[str, Any]],
     numeric: list[str],
-    shift: dict[str, float],
+    passes: Passes,
     settings: Settings,
-    unit_means: dict[str, np.ndarray] | None = None,
 ) -> dict[str, Any]:
     """Fill ``time_r2`` and ``absorbed_by_time`` in ``records``; return the basis used.
 
@@ -553,10 +602,10 @@ def _absorbed(
     alternating projections of methods.md; it is computed here directly, from the
     normal equations of period dummies after the unit demeaning
     ((D' M_U D) b = D' M_U x, a P x P system), which gives the same projection
-    without iterating.
+    without iterating. In memory the right-hand sides (per-period sums of the
+    within deviations) come from the ordered pass; streaming reads the rows again.
     """
     cut = float(settings.get("profile", "absorbed_r2"))
-    max_rows = int(settings.get("profile", "absorbed_max_rows"))
     todo = [
         r for r in records
         if r["name"] in numeric and r["kind"] in ("time-varying", "nearly-time-invariant")
@@ -569,12 +618,51 @@ def _absorbed(
     basis = {"rows": n_keyed, "units": panel.n_units, "all_units": True}
     if not todo:
         return basis
+    if passes.streaming:
+        return _absorbed_streaming(panel, todo, passes, settings, cut)
+    frame = panel.eager
+    assert frame is not None
+    u = frame[UNIT_ID].to_numpy().astype(np.intp)
+    t = frame[PERIOD_ID].to_numpy().astype(np.intp)
+    cache: dict[bytes, tuple[np.ndarray, np.ndarray]] = {}
+    for r in todo:
+        st = passes.stats[r["name"]]
+        if st.rhs is None or st.wss is None:
+            continue
+        if st.nulls + st.non_finite == 0:
+            key = b"all"
+            if key not in cache:
+                cache[key] = (
+                    _dense_system(passes.counts)
+                    if passes.counts is not None
+                    else _period_system(u, t, panel.n_units, panel.n_periods)
+                )
+        else:
+            mask = np.isfinite(frame[r["name"]].cast(pl.Float64).to_numpy())
+            key = np.packbits(mask).tobytes()
+            if key not in cache:
+                cache[key] = _period_system(u[mask], t[mask], panel.n_units, panel.n_periods)
+        r2 = _explained(st.rhs, st.wss, cache[key])
+        r["time_r2"] = r2
+        r["absorbed_by_time"] = bool(r2 is not None and r2 >= cut)
+    return basis
+
+
+def _absorbed_streaming(
+    panel: Panel, todo: list[dict[str, Any]], passes: Passes, settings: Settings, cut: float
+) -> dict[str, Any]:
+    """The period-effect R2 of ``todo`` columns from the rows read again (a fixed subset of
+    units when there are more than ``absorbed_max_rows`` rows)."""
+    max_rows = int(settings.get("profile", "absorbed_max_rows"))
+    n_keyed = panel.rows - panel.missing_keys
+    basis: dict[str, Any] = {"rows": n_keyed, "units": panel.n_units, "all_units": True}
     lf = panel.lazy
     if n_keyed > max_rows:
         k = int(np.ceil(n_keyed / max_rows))
         lf = lf.filter((pl.col(UNIT_ID) % k) == 0)
         basis = {"all_units": False, "every_kth_unit": k}
     schema = panel.schema
+    shift = {r["name"]: passes.stats[r["name"]].shift for r in todo}
     sub = panel.collect(
         lf.select(
             pl.col(UNIT_ID),
@@ -598,33 +686,34 @@ def _absorbed(
             cache[key] = _period_system(u[mask], t[mask], n_units, n_periods)
         uu, tt = (u, t) if key == b"all" else (u[mask], t[mask])
         xm = x[mask] if key != b"all" else x
-        means = unit_means.get(r["name"]) if unit_means is not None and basis["all_units"] else None
+        means = passes.unit_means.get(r["name"]) if basis["all_units"] else None
         r2 = time_r2(uu, tt, xm, n_units, n_periods, cache[key], means)
         r["time_r2"] = r2
         r["absorbed_by_time"] = bool(r2 is not None and r2 >= cut)
     return basis
 
 
-DENSE_CELLS = 50_000_000  # units x periods up to which the incidence matrix is held dense
+def _dense_system(counts: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Eigen-decomposition of D' M_U D from the (units x periods) row-count matrix."""
+    counts = counts.astype(np.float64)
+    t_i = counts.sum(axis=1)
+    w = np.divide(1.0, t_i, out=np.zeros(t_i.size), where=t_i > 0)
+    cwc = counts.T @ (counts * w[:, None])
+    return np.linalg.eigh(np.diag(counts.sum(axis=0)) - cwc)
 
 
 def _period_system(u: np.ndarray, t: np.ndarray, n_units: int, n_periods: int) -> tuple[np.ndarray, np.ndarray]:
     """Eigen-decomposition (values, vectors) of D' M_U D, period dummies D after unit demeaning."""
     if n_units * n_periods <= DENSE_CELLS:
-        counts = np.bincount(u * n_periods + t, minlength=n_units * n_periods).astype(np.float64)
-        counts = counts.reshape(n_units, n_periods)
-        t_i = counts.sum(axis=1)
-        w = np.divide(1.0, t_i, out=np.zeros(n_units), where=t_i > 0)
-        cwc = counts.T @ (counts * w[:, None])
-        n_t = counts.sum(axis=0)
-    else:
-        from scipy import sparse
+        counts = np.bincount(u * n_periods + t, minlength=n_units * n_periods)
+        return _dense_system(counts.reshape(n_units, n_periods))
+    from scipy import sparse
 
-        c = sparse.coo_matrix((np.ones(u.size), (u, t)), shape=(n_units, n_periods)).tocsr()
-        t_i = np.asarray(c.sum(axis=1)).ravel()
-        w = np.divide(1.0, t_i, out=np.zeros(n_units), where=t_i > 0)
-        cwc = (c.T @ (sparse.diags(w) @ c)).toarray()
-        n_t = np.asarray(c.sum(axis=0)).ravel()
+    c = sparse.coo_matrix((np.ones(u.size), (u, t)), shape=(n_units, n_periods)).tocsr()
+    t_i = np.asarray(c.sum(axis=1)).ravel()
+    w = np.divide(1.0, t_i, out=np.zeros(n_units), where=t_i > 0)
+    cwc = (c.T @ (sparse.diags(w) @ c)).toarray()
+    n_t = np.asarray(c.sum(axis=0)).ravel()
     return np.linalg.eigh(np.diag(n_t) - cwc)
 
 
@@ -646,11 +735,15 @@ def time_r2(
         sums = np.bincount(u, weights=x, minlength=n_units)
         means = np.divide(sums, t_i, out=np.zeros(sums.shape), where=t_i > 0)
     xt = x - means[u]
-    wss = float(xt @ xt)
+    return _explained(np.bincount(t, weights=xt, minlength=n_periods), float(xt @ xt), system)
+
+
+def _explained(rhs: np.ndarray, wss: float, system: tuple[np.ndarray, np.ndarray]) -> float | None:
+    """R2 of period effects from the per-period sums of within deviations ``rhs`` and WSS."""
     if not wss > 0:
         return None
-    rhs = np.bincount(t, weights=xt, minlength=n_periods)
     vals, vecs = system
+    n_periods = vals.size
     keep = vals > max(vals.max(), 0.0) * 1e-12 * n_periods
     proj = vecs[:, keep].T @ rhs
     explained = float((proj**2 / vals[keep]).sum())
