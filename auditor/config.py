@@ -116,8 +116,9 @@ def node_line(root: Any, *keys: str) -> int | str:
 def _defaults() -> dict[str, Any]:
     import yaml
 
+    loader = getattr(yaml, "CSafeLoader", yaml.SafeLoader)  # libyaml when present: 10x faster
     with open(rules_dir() / "defaults.yaml", encoding="utf-8") as fh:
-        return yaml.safe_load(fh)
+        return yaml.load(fh, Loader=loader)
 
 
 @dataclass(frozen=True)

@@ -107,13 +107,29 @@ def _integer_codes(key: pl.Series) -> tuple[pl.Series, pl.Series] | None:
     lo, hi = int(key.min()), int(key.max())
     if hi - lo > 4 * key.len() + 1024:
         return None
-    offset = (key.cast(pl.Int64) - lo).to_numpy() if hi < 2**63 else (key - lo).cast(pl.Int64).to_numpy()
+    raw = key.to_numpy()
+    offset = (raw - raw.dtype.type(lo)).astype(np.intp)  # in the key's own type: no overflow
     present = np.zeros(hi - lo + 1, dtype=bool)
     present[offset] = True
     code_of = np.cumsum(present, dtype=np.int64) - 1
     codes = pl.Series(UNIT_ID, code_of[offset].astype(np.uint32))
     keys = (pl.Series(key.name, np.flatnonzero(present)) + lo).cast(key.dtype)
     return codes, keys
+
+
+def _integer_lookup(values: pl.Series, keys: pl.Series, codes: pl.Series) -> pl.Series | None:
+    """``values`` replaced by ``codes`` through a table indexed by the integer ``keys``
+    (one gather, for integer periods), or None when the keys are not compact integers."""
+    if not values.dtype.is_integer() or values.null_count() or keys.len() == 0:
+        return None
+    lo, hi = int(keys.min()), int(keys.max())
+    if hi - lo > 4 * values.len() + 1024:
+        return None
+    table = np.zeros(hi - lo + 1, dtype=np.uint32)
+    k = keys.to_numpy()
+    table[(k - k.dtype.type(lo)).astype(np.intp)] = codes.to_numpy()
+    raw = values.to_numpy()
+    return pl.Series(codes.name, table[(raw - raw.dtype.type(lo)).astype(np.intp)])
 
 
 def parse_unit(unit: str | Sequence[str]) -> tuple[str, ...]:
@@ -281,14 +297,16 @@ def load_panel(
     else:
         frame = lf.collect() if not missing else keyed.collect()  # no copy when no key is missing
         fast = _integer_codes(frame[units[0]]) if len(units) == 1 else None
+        looked_up = _integer_lookup(frame[time], time_map[time], time_map[PERIOD_ID])
+        period = period_code if looked_up is None else looked_up
         if fast is not None:
             codes, unit_keys = fast
-            eager = frame.with_columns(codes, period_code)
+            eager = frame.with_columns(codes, period)
             unit_table = pl.DataFrame(
                 {UNIT_ID: pl.Series(UNIT_ID, np.arange(unit_keys.len(), dtype=np.uint32)), units[0]: unit_keys}
             )
         else:
-            eager = frame.with_columns((key.rank("dense") - 1).cast(pl.UInt32).alias(UNIT_ID), period_code)
+            eager = frame.with_columns((key.rank("dense") - 1).cast(pl.UInt32).alias(UNIT_ID), period)
             unit_table = panel_units(eager.lazy(), units, engine)
         coded = eager.lazy()
     columns = tuple(c for c in schema if c not in keys and c not in INTERNAL)

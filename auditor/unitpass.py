@@ -26,8 +26,8 @@ dummies' system for ``absorbed_by_time`` (variation.py).
 from __future__ import annotations
 
 from collections.abc import Callable
-from concurrent.futures import Future, ThreadPoolExecutor
-from dataclasses import dataclass
+from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import numpy as np
@@ -116,25 +116,32 @@ def run(panel: Panel, examples: int, tolerance: float, slow: Callable[[Panel, st
         counts = np.bincount(u * n_periods + t, minlength=n * n_periods).reshape(n, n_periods)
     structure = _structure(counts, unit_rows) if counts is not None and n_periods <= BITMASK_PERIODS else None
 
-    ctx = _Context(u, t, n, n_periods, unit_rows, period_rows, examples, tolerance)
-    # exact distinct counts of number columns: hashing in polars, in a background thread
-    numeric = [c for c in panel.columns if _is_number(panel.schema[c])]
-    pool = ThreadPoolExecutor(max_workers=1)
-    pending: dict[str, Future[tuple[int, int]]] = {
-        c: pool.submit(_distinct_numbers, frame[c]) for c in numeric if not _compact_integers(frame[c])
-    }
+    ctx = _Context(u, t, n, n_periods, unit_rows, period_rows, examples, tolerance, np.empty(u.size), np.empty(u.size))
+    # Hashing work runs in a background thread while numpy works here: text is coded
+    # first (this thread needs the codes), then the exact distinct counts of numbers.
+    columns = list(panel.columns)
+    numbers = [c for c in columns if _is_number(panel.schema[c])]
+    others = [c for c in columns if c not in set(numbers)]
     out: dict[str, ColumnStats] = {}
-    try:
-        for c in panel.columns:
-            dt = panel.schema[c]
-            if _is_number(dt):
-                out[c] = _number(ctx, frame[c], pending.get(c))
-            else:
-                codes = _codes(frame[c])
-                out[c] = slow(panel, c) if codes is None else _coded(ctx, frame[c], *codes)
-    finally:
-        pool.shutdown(wait=True)
-    return UnitPass(columns=out, period_rows=period_rows, unit_rows=unit_rows, counts=counts, structure=structure)
+    with ThreadPoolExecutor(max_workers=1) as pool:
+        coding = {c: pool.submit(_codes, frame[c]) for c in others}
+        compact = {c for c in numbers if _compact_integers(frame[c])}
+        counting = {c: pool.submit(_distinct_numbers, frame[c]) for c in numbers if c not in compact}
+        for c in numbers:
+            out[c] = _number(ctx, frame[c], c in compact)
+        for c in others:
+            codes = coding[c].result()
+            out[c] = slow(panel, c) if codes is None else _coded(ctx, frame[c], *codes)
+        for c, fut in counting.items():
+            distinct, top = fut.result()
+            out[c] = replace(out[c], distinct=distinct, top=top)
+    return UnitPass(
+        columns={c: out[c] for c in columns},
+        period_rows=period_rows,
+        unit_rows=unit_rows,
+        counts=counts,
+        structure=structure,
+    )
 
 
 @dataclass(frozen=True)
@@ -147,6 +154,9 @@ class _Context:
     period_rows: np.ndarray
     examples: int
     tolerance: float
+    buf_a: np.ndarray  # two row-length work buffers (this thread only)
+    buf_b: np.ndarray
+    rows_of: dict[str, Any] = field(default_factory=dict)  # see _example_rows
 
 
 def _is_number(dt: pl.DataType) -> bool:
@@ -189,52 +199,72 @@ def _compact_integers(s: pl.Series) -> bool:
 
 
 def _distinct_numbers(s: pl.Series) -> tuple[int, int]:
-    """(distinct values, rows of the most common one) of a number column, NaN as missing."""
-    v = s.fill_nan(None) if s.dtype.is_float() else s
-    v = v.drop_nulls()
+    """(distinct values, rows of the most common one) of a number column, NaN as missing.
+
+    Floats and integers are sorted with numpy, which releases the interpreter lock
+    (this runs beside the main pass); equal neighbours are one value, and the
+    longest run is the most common value. Decimals are hashed by polars.
+    """
+    if s.dtype.is_decimal():
+        v = s.drop_nulls()
+        if v.len() == 0:
+            return 0, 0
+        distinct = v.n_unique()
+        return (distinct, 1) if distinct == v.len() else (distinct, int(v.unique_counts().max()))
+    v = (s.fill_nan(None) if s.dtype.is_float() else s).drop_nulls()
     if v.len() == 0:
         return 0, 0
-    distinct = v.n_unique()
-    if distinct == v.len():  # continuous: every value once, no value table needed
+    x = np.sort(v.cast(pl.Float64 if s.dtype == pl.Boolean else v.dtype).to_numpy())
+    change = x[1:] != x[:-1]
+    distinct = int(np.count_nonzero(change)) + 1
+    if distinct == x.size:  # continuous: every value once
         return distinct, 1
-    return distinct, int(v.unique_counts().max())
+    edges = np.flatnonzero(change)
+    return distinct, int(np.diff(edges, prepend=-1, append=x.size - 1).max())
 
 
-def _number(ctx: _Context, s: pl.Series, distinct: Future[tuple[int, int]] | None) -> ColumnStats:
+def _number(ctx: _Context, s: pl.Series, compact: bool) -> ColumnStats:
+    """A number column's statistics; ``distinct`` and ``top`` only when ``compact`` (integers
+    of a small range; the caller fills them in from the background count otherwise)."""
     x = s.cast(pl.Float64).to_numpy()
-    missing = np.isnan(x)
-    nulls = int(missing.sum())
-    finite = np.isfinite(x)
-    all_finite = bool(finite.all())
-    non_finite = 0 if all_finite else int((~finite).sum()) - nulls
+    if s.dtype.is_float():
+        finite = np.isfinite(x)
+        all_finite = bool(finite.all())
+        nulls = 0 if all_finite else int(np.isnan(x).sum())
+    else:  # integers and booleans: only nulls (NaN after the cast) are not finite
+        all_finite = s.null_count() == 0
+        finite = np.ones(0, dtype=bool) if all_finite else ~np.isnan(x)
+        nulls = int(s.null_count())
+    non_finite = 0 if all_finite else int(finite.size - finite.sum()) - nulls
+    present = None if nulls == 0 else ~np.isnan(x)
     if all_finite:
         uu, tt, xf = ctx.u, ctx.t, x
         n_i = ctx.unit_rows
+        buf_a, buf_b = ctx.buf_a, ctx.buf_b
     else:
         uu, tt, xf = ctx.u[finite], ctx.t[finite], x[finite]
         n_i = np.bincount(uu, minlength=ctx.n_units)
+        buf_a, buf_b = ctx.buf_a[: xf.size], ctx.buf_b[: xf.size]
+    d, top = _count_values(s) if compact else (0, 0)
+    common = {
+        "nulls": nulls,
+        "non_finite": non_finite,
+        "distinct": d,
+        "top": top,
+        "n_i": n_i,
+        "n_t": _per_period(ctx, present),
+        "one_value": _one_value(ctx, x, present),
+    }
     if xf.size == 0:
         z = np.zeros(ctx.n_units)
-        d, top = _count_values(s, distinct)
-        return ColumnStats(
-            nulls=nulls,
-            non_finite=non_finite,
-            distinct=d,
-            top=top,
-            n_i=n_i,
-            changing=np.zeros(ctx.n_units, dtype=bool),
-            n_t=_per_period(ctx, ~missing, nulls),
-            one_value=_one_value(ctx, x, ~missing, nulls),
-            mean_i=z,
-            m2_i=z,
-        )
+        return ColumnStats(changing=np.zeros(ctx.n_units, dtype=bool), mean_i=z, m2_i=z, **common)
     shift = float(xf[0])
     vmin, vmax = float(xf.min()), float(xf.max())
-    xx = xf - shift
+    xx = np.subtract(xf, shift, out=buf_a)
     sums = np.bincount(uu, weights=xx, minlength=ctx.n_units)
     mean_i = np.divide(sums, n_i, out=np.zeros(ctx.n_units), where=n_i > 0)
-    dev = xx - mean_i[uu]
-    m2_i = np.bincount(uu, weights=dev * dev, minlength=ctx.n_units)
+    dev = np.subtract(xx, mean_i[uu], out=buf_b)
+    m2_i = np.bincount(uu, weights=np.multiply(dev, dev, out=buf_a), minlength=ctx.n_units)
 
     whole = s.dtype.is_integer() or s.dtype == pl.Boolean
     if whole and max(abs(vmin), abs(vmax)) < 2.0**52:
@@ -245,18 +275,9 @@ def _number(ctx: _Context, s: pl.Series, distinct: Future[tuple[int, int]] | Non
     if changing.any():
         rhs = np.bincount(tt, weights=dev, minlength=ctx.n_periods)
         wss = float(dev @ dev)
-    present = ~missing
-    d, top = _count_values(s, distinct)
     return ColumnStats(
-        nulls=nulls,
-        non_finite=non_finite,
-        distinct=d,
-        top=top,
-        n_i=n_i,
         changing=changing,
-        n_t=_per_period(ctx, present, nulls),
-        one_value=_one_value(ctx, x, present, nulls),
-        examples=_number_examples(ctx, x, finite, changing),
+        examples=_number_examples(ctx, x, finite, all_finite, changing),
         shift=shift,
         vmin=vmin,
         vmax=vmax,
@@ -264,13 +285,12 @@ def _number(ctx: _Context, s: pl.Series, distinct: Future[tuple[int, int]] | Non
         m2_i=m2_i,
         rhs=rhs,
         wss=wss,
+        **common,
     )
 
 
-def _count_values(s: pl.Series, pending: Future[tuple[int, int]] | None) -> tuple[int, int]:
-    if pending is not None:
-        return pending.result()
-    # integers of a compact range: count every value with bincount
+def _count_values(s: pl.Series) -> tuple[int, int]:
+    """(distinct values, rows of the most common one) of integers of a compact range."""
     v = s.drop_nulls()
     if v.len() == 0:
         return 0, 0
@@ -321,32 +341,48 @@ def _unit_extremes(
     return lo, hi
 
 
-def _first_units(changing: np.ndarray, k: int) -> np.ndarray:
-    idx = np.flatnonzero(changing)[:k]
-    mark = np.zeros(changing.size, dtype=bool)
-    mark[idx] = True
-    return mark
+def _example_rows(ctx: _Context, changing: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(unit codes, row numbers) of the first ``ctx.examples`` changing units.
+
+    Columns often share their first changing units, so the rows of the last set asked
+    for are kept.
+    """
+    units = np.flatnonzero(changing)[: ctx.examples]
+    key = units.tobytes()
+    if ctx.rows_of.get("key") != key:
+        mark = np.zeros(changing.size, dtype=bool)
+        mark[units] = True
+        ctx.rows_of.clear()
+        ctx.rows_of.update(key=key, rows=np.flatnonzero(mark[ctx.u]))
+    return units, ctx.rows_of["rows"]
 
 
 def _number_examples(
-    ctx: _Context, x: np.ndarray, finite: np.ndarray, changing: np.ndarray
+    ctx: _Context, x: np.ndarray, finite: np.ndarray, all_finite: bool, changing: np.ndarray
 ) -> tuple[tuple[int, Any, Any], ...]:
     if ctx.examples <= 0 or not changing.any():
         return ()
-    mark = _first_units(changing, ctx.examples)
-    lo, hi = _unit_extremes(ctx, x, finite, False, mark)
-    return tuple((int(i), float(lo[i]), float(hi[i])) for i in np.flatnonzero(mark))
+    units, rows = _example_rows(ctx, changing)
+    if not all_finite:
+        rows = rows[finite[rows]]
+    uu, xs = ctx.u[rows], x[rows]
+    lo = np.full(ctx.n_units, np.inf)
+    hi = np.full(ctx.n_units, -np.inf)
+    np.minimum.at(lo, uu, xs)
+    np.maximum.at(hi, uu, xs)
+    return tuple((int(i), float(lo[i]), float(hi[i])) for i in units)
 
 
-def _per_period(ctx: _Context, present: np.ndarray, nulls: int) -> np.ndarray:
-    if nulls == 0:
+def _per_period(ctx: _Context, present: np.ndarray | None) -> np.ndarray:
+    """Non-missing values per period (``present`` None: every row has one)."""
+    if present is None:
         return ctx.period_rows
     return np.bincount(ctx.t[present], minlength=ctx.n_periods)
 
 
-def _one_value(ctx: _Context, v: np.ndarray, present: np.ndarray, nulls: int) -> bool:
+def _one_value(ctx: _Context, v: np.ndarray, present: np.ndarray | None) -> bool:
     """Whether every period holds at most one distinct non-missing value of ``v``."""
-    if nulls:
+    if present is not None:
         v, tt = v[present], ctx.t[present]
     else:
         tt = ctx.t
@@ -410,8 +446,8 @@ def _coded(ctx: _Context, s: pl.Series, codes: np.ndarray, present: np.ndarray, 
         top=top,
         n_i=n_i,
         changing=changing,
-        n_t=_per_period(ctx, present, nulls),
-        one_value=_one_value(ctx, codes, present, nulls),
+        n_t=_per_period(ctx, present if nulls else None),
+        one_value=_one_value(ctx, codes, present if nulls else None),
         examples=_coded_examples(ctx, s, changing),
     )
 
@@ -419,9 +455,8 @@ def _coded(ctx: _Context, s: pl.Series, codes: np.ndarray, present: np.ndarray, 
 def _coded_examples(ctx: _Context, s: pl.Series, changing: np.ndarray) -> tuple[tuple[int, Any, Any], ...]:
     if ctx.examples <= 0 or not changing.any():
         return ()
-    mark = _first_units(changing, ctx.examples)
-    rows = mark[ctx.u]
-    v = s.filter(pl.Series(rows))
+    _, rows = _example_rows(ctx, changing)
+    v = s.gather(rows)
     if isinstance(v.dtype, pl.Categorical | pl.Enum):
         v = v.cast(pl.String)
     ext = (
