@@ -34,8 +34,10 @@ class Panel:
     present: every original column plus ``__pa_unit`` (UInt32 unit code 0..n-1,
     units in sorted key order), ``__pa_period`` (UInt32 index into ``grid``) and
     ``__pa_row`` (UInt64 row number in the input). ``units`` maps unit codes to
-    key values. ``grid`` holds the period labels (JSON values) and
-    ``grid_position`` their positions on the ``frequency`` scale.
+    key values. Streaming panels also keep ``by_period``: the same rows with
+    ``__pa_period`` but no unit code, to be read a partition of units at a time.
+    ``grid`` holds the period labels (JSON values) and ``grid_position`` their
+    positions on the ``frequency`` scale.
     """
 
     lazy: pl.LazyFrame
@@ -57,6 +59,7 @@ class Panel:
     streaming: bool = False
     load_findings: tuple[Any, ...] = field(default_factory=tuple)
     eager: pl.DataFrame | None = None
+    by_period: pl.LazyFrame | None = None
 
     @property
     def n_units(self) -> int:
@@ -291,9 +294,15 @@ def load_panel(
         pl.col(time).replace_strict(time_map[time], time_map[PERIOD_ID], return_dtype=pl.UInt32).alias(PERIOD_ID)
     )
     eager = None
+    by_period = None
     if streaming:
+        # codes by a dense rank of the whole column only when a query needs them; the
+        # profile reads partitions of units from ``by_period`` and codes them there
+        by_period = keyed.with_columns(period_code)
         coded = keyed.with_columns((key.rank("dense") - 1).cast(pl.UInt32).alias(UNIT_ID), period_code)
-        unit_table = panel_units(coded, units, engine)
+        unit_table = (
+            keyed.select(*units).unique().sort(list(units)).collect(engine=engine).with_row_index(UNIT_ID)
+        ).with_columns(pl.col(UNIT_ID).cast(pl.UInt32))
     else:
         frame = lf.collect() if not missing else keyed.collect()  # no copy when no key is missing
         fast = _integer_codes(frame[units[0]]) if len(units) == 1 else None
@@ -330,4 +339,5 @@ def load_panel(
         streaming=bool(streaming),
         load_findings=tuple(load_findings),
         eager=eager,
+        by_period=by_period,
     )

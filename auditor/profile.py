@@ -109,7 +109,7 @@ def profile_panel(panel: Panel, settings: Settings) -> ProfileResult:
     with progress.step(f"grouped pass over {panel.rows:,} rows"):
         passes = run_passes(panel, settings, extra_unit=structure_unit_exprs(panel))
     with progress.step("structure and variation"):
-        s = compute_structure(panel, settings, passes.per_unit)
+        s = compute_structure(panel, settings, passes.per_unit, passes.duplicate_cells)
         v = compute_variation(panel, settings, passes)
     findings = [*panel.load_findings, *structure_findings(panel, s, settings), *variation_findings(panel, v, settings)]
     return ProfileResult(

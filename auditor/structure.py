@@ -99,11 +99,17 @@ def _decode(patterns: pl.Series, n_periods: int) -> np.ndarray:
 LABELLED_PATTERNS = 1000  # patterns given a text label; rarer ones keep only their periods
 
 
-def compute_structure(panel: Panel, settings: Settings, unit_table: pl.DataFrame | None = None) -> Structure:
+def compute_structure(
+    panel: Panel,
+    settings: Settings,
+    unit_table: pl.DataFrame | None = None,
+    duplicate_cells: pl.DataFrame | None = None,
+) -> Structure:
     """Structure of ``panel``: every field of the contract's ``panel`` object.
 
     ``unit_table`` is the shared grouped pass by unit holding :func:`unit_exprs`
-    (computed here when None).
+    (computed here when None); ``duplicate_cells`` the first (unit, period, rows)
+    cells holding several rows when already known (found here otherwise).
     """
     n_periods = panel.n_periods
     if unit_table is None:
@@ -189,7 +195,9 @@ def compute_structure(panel: Panel, settings: Settings, unit_table: pl.DataFrame
         for t in range(n_periods)
     ]
 
-    if duplicate_keys:
+    if duplicate_cells is not None:
+        dup_cells = duplicate_cells
+    elif duplicate_keys:
         doubled = per_unit.filter(pl.col("rows") > pl.col("periods_seen"))[UNIT_ID]
         dup_cells = panel.collect(
             panel.lazy.filter(pl.col(UNIT_ID).is_in(doubled.implode()))

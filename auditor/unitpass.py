@@ -55,7 +55,8 @@ class ColumnStats:
     value), ``vmin`` / ``vmax`` (finite extremes), per-unit ``mean_i`` (less
     ``shift``) and ``m2_i`` (centred sum of squares), and, where units change,
     ``rhs`` (per-period sums of the within deviations) and ``wss`` (their sum of
-    squares), the inputs of the period-effect R2.
+    squares), the inputs of the period-effect R2, with ``system`` the
+    :func:`period_matrix` of the rows holding a value when some rows do not.
     """
 
     nulls: int
@@ -74,6 +75,7 @@ class ColumnStats:
     m2_i: np.ndarray | None = None
     rhs: np.ndarray | None = None
     wss: float | None = None
+    system: np.ndarray | None = None
 
 
 @dataclass(frozen=True)
@@ -82,7 +84,8 @@ class UnitPass:
 
     ``counts`` is the dense (units x periods) row-count matrix, or None when it
     would exceed :data:`DENSE_CELLS` (callers then use polars for the structure).
-    ``structure`` holds the per-unit fields the structure module reads.
+    ``structure`` holds the per-unit fields the structure module reads; ``system``
+    the :func:`period_matrix` of every row.
     """
 
     columns: dict[str, ColumnStats]
@@ -90,6 +93,7 @@ class UnitPass:
     unit_rows: np.ndarray
     counts: np.ndarray | None
     structure: pl.DataFrame | None
+    system: np.ndarray | None = None
 
 
 def feasible(panel: Panel) -> bool:
@@ -104,9 +108,39 @@ def run(panel: Panel, examples: int, tolerance: float, slow: Callable[[Panel, st
     the relative float tolerance of methods.md; ``slow`` computes a column this pass
     cannot code (lists, structs, objects) with polars.
     """
-    frame = panel.eager
-    assert frame is not None
-    n, n_periods = panel.n_units, panel.n_periods
+    assert panel.eager is not None
+    return run_frame(
+        panel.eager,
+        panel.n_units,
+        panel.n_periods,
+        list(panel.columns),
+        examples=examples,
+        tolerance=tolerance,
+        slow=lambda c: slow(panel, c),
+    )
+
+
+def run_frame(
+    frame: pl.DataFrame,
+    n_units: int,
+    n_periods: int,
+    columns: list[str],
+    *,
+    examples: int,
+    tolerance: float,
+    slow: Callable[[str], ColumnStats],
+    shifts: dict[str, float] | None = None,
+) -> UnitPass:
+    """Statistics of ``columns`` of ``frame``, whose rows carry unit codes 0..n_units-1.
+
+    ``frame`` holds every row of each of its units: the whole panel, or, when
+    ``shifts`` (each number column's first finite value in the whole panel) is
+    given, a partition of its units. A partition's results add up with the
+    others': ``distinct`` and ``top`` are left at 0 (values are counted over the
+    whole panel) and the inputs of the period-effect R2 are always filled in.
+    """
+    count_values = shifts is None
+    n = n_units
     u = frame[UNIT_ID].to_numpy().astype(np.intp)
     t = frame[PERIOD_ID].to_numpy().astype(np.intp)
     unit_rows = np.bincount(u, minlength=n)
@@ -115,23 +149,26 @@ def run(panel: Panel, examples: int, tolerance: float, slow: Callable[[Panel, st
     if n * n_periods <= DENSE_CELLS:
         counts = np.bincount(u * n_periods + t, minlength=n * n_periods).reshape(n, n_periods)
     structure = _structure(counts, unit_rows) if counts is not None and n_periods <= BITMASK_PERIODS else None
+    system = period_matrix(u, t, n, n_periods, counts)
 
     ctx = _Context(u, t, n, n_periods, unit_rows, period_rows, examples, tolerance, np.empty(u.size), np.empty(u.size))
     # Hashing work runs in a background thread while numpy works here: text is coded
     # first (this thread needs the codes), then the exact distinct counts of numbers.
-    columns = list(panel.columns)
-    numbers = [c for c in columns if _is_number(panel.schema[c])]
+    schema = frame.schema
+    numbers = [c for c in columns if _is_number(schema[c])]
     others = [c for c in columns if c not in set(numbers)]
     out: dict[str, ColumnStats] = {}
     with ThreadPoolExecutor(max_workers=1) as pool:
         coding = {c: pool.submit(_codes, frame[c]) for c in others}
-        compact = {c for c in numbers if _compact_integers(frame[c])}
-        counting = {c: pool.submit(_distinct_numbers, frame[c]) for c in numbers if c not in compact}
+        compact = {c for c in numbers if count_values and _compact_integers(frame[c])}
+        counting = {
+            c: pool.submit(distinct_numbers, frame[c]) for c in numbers if count_values and c not in compact
+        }
         for c in numbers:
-            out[c] = _number(ctx, frame[c], c in compact)
+            out[c] = _number(ctx, frame[c], c in compact, None if shifts is None else shifts[c])
         for c in others:
             codes = coding[c].result()
-            out[c] = slow(panel, c) if codes is None else _coded(ctx, frame[c], *codes)
+            out[c] = slow(c) if codes is None else _coded(ctx, frame[c], *codes, count_values=count_values)
         for c, fut in counting.items():
             distinct, top = fut.result()
             out[c] = replace(out[c], distinct=distinct, top=top)
@@ -141,7 +178,32 @@ def run(panel: Panel, examples: int, tolerance: float, slow: Callable[[Panel, st
         unit_rows=unit_rows,
         counts=counts,
         structure=structure,
+        system=system,
     )
+
+
+def period_matrix(
+    u: np.ndarray, t: np.ndarray, n_units: int, n_periods: int, counts: np.ndarray | None = None
+) -> np.ndarray:
+    """D' M_U D (periods x periods): period dummies after unit demeaning, from row codes.
+
+    It is diag(n_t) - C' W C with C the unit x period row counts and W = diag(1/T_i);
+    a sum over units, so the matrices of disjoint sets of units add up.
+    """
+    if counts is None and n_units * n_periods <= DENSE_CELLS:
+        counts = np.bincount(u * n_periods + t, minlength=n_units * n_periods).reshape(n_units, n_periods)
+    if counts is not None:
+        c = counts.astype(np.float64)
+        t_i = c.sum(axis=1)
+        w = np.divide(1.0, t_i, out=np.zeros(t_i.size), where=t_i > 0)
+        return np.diag(c.sum(axis=0)) - c.T @ (c * w[:, None])
+    from scipy import sparse
+
+    m = sparse.coo_matrix((np.ones(u.size), (u, t)), shape=(n_units, n_periods)).tocsr()
+    t_i = np.asarray(m.sum(axis=1)).ravel()
+    w = np.divide(1.0, t_i, out=np.zeros(n_units), where=t_i > 0)
+    cwc = (m.T @ (sparse.diags(w) @ m)).toarray()
+    return np.diag(np.asarray(m.sum(axis=0)).ravel()) - cwc
 
 
 @dataclass(frozen=True)
@@ -198,7 +260,7 @@ def _compact_integers(s: pl.Series) -> bool:
     return int(hi) - int(lo) <= 4 * s.len() + 1024
 
 
-def _distinct_numbers(s: pl.Series) -> tuple[int, int]:
+def distinct_numbers(s: pl.Series) -> tuple[int, int]:
     """(distinct values, rows of the most common one) of a number column, NaN as missing.
 
     Floats and integers are sorted with numpy, which releases the interpreter lock
@@ -223,9 +285,12 @@ def _distinct_numbers(s: pl.Series) -> tuple[int, int]:
     return distinct, int(np.diff(edges, prepend=-1, append=x.size - 1).max())
 
 
-def _number(ctx: _Context, s: pl.Series, compact: bool) -> ColumnStats:
+def _number(ctx: _Context, s: pl.Series, compact: bool, shift: float | None = None) -> ColumnStats:
     """A number column's statistics; ``distinct`` and ``top`` only when ``compact`` (integers
-    of a small range; the caller fills them in from the background count otherwise)."""
+    of a small range; the caller fills them in from the background count otherwise).
+
+    ``shift``: the value subtracted before summing (default: the first finite value);
+    given, the column is part of a partition and the R2 inputs are always computed."""
     x = s.cast(pl.Float64).to_numpy()
     if s.dtype.is_float():
         finite = np.isfinite(x)
@@ -258,7 +323,8 @@ def _number(ctx: _Context, s: pl.Series, compact: bool) -> ColumnStats:
     if xf.size == 0:
         z = np.zeros(ctx.n_units)
         return ColumnStats(changing=np.zeros(ctx.n_units, dtype=bool), mean_i=z, m2_i=z, **common)
-    shift = float(xf[0])
+    partial = shift is not None
+    shift = float(xf[0]) if shift is None else shift
     vmin, vmax = float(xf.min()), float(xf.max())
     xx = np.subtract(xf, shift, out=buf_a)
     sums = np.bincount(uu, weights=xx, minlength=ctx.n_units)
@@ -271,10 +337,12 @@ def _number(ctx: _Context, s: pl.Series, compact: bool) -> ColumnStats:
         changing = m2_i > 0
     else:
         changing = _float_changing(x, finite, all_finite, ctx, n_i, mean_i, m2_i, shift, vmin, vmax)
-    rhs = wss = None
-    if changing.any():
+    rhs = wss = system = None
+    if partial or changing.any():
         rhs = np.bincount(tt, weights=dev, minlength=ctx.n_periods)
         wss = float(dev @ dev)
+        if not all_finite:
+            system = period_matrix(uu, tt, ctx.n_units, ctx.n_periods)
     return ColumnStats(
         changing=changing,
         examples=_number_examples(ctx, x, finite, all_finite, changing),
@@ -285,6 +353,7 @@ def _number(ctx: _Context, s: pl.Series, compact: bool) -> ColumnStats:
         m2_i=m2_i,
         rhs=rhs,
         wss=wss,
+        system=system,
         **common,
     )
 
@@ -423,7 +492,9 @@ def _codes(s: pl.Series) -> tuple[np.ndarray, np.ndarray, int] | None:
     return codes, present, int(codes.max()) + 1 if codes.size else 0
 
 
-def _coded(ctx: _Context, s: pl.Series, codes: np.ndarray, present: np.ndarray, width: int) -> ColumnStats:
+def _coded(
+    ctx: _Context, s: pl.Series, codes: np.ndarray, present: np.ndarray, width: int, *, count_values: bool = True
+) -> ColumnStats:
     nulls = int(s.null_count())
     if nulls:
         uu, cc = ctx.u[present], codes[present]
@@ -431,9 +502,11 @@ def _coded(ctx: _Context, s: pl.Series, codes: np.ndarray, present: np.ndarray, 
     else:
         uu, cc = ctx.u, codes
         n_i = ctx.unit_rows
-    tally = np.bincount(cc, minlength=width)
-    distinct = int(np.count_nonzero(tally))
-    top = int(tally.max()) if cc.size else 0
+    distinct = top = 0
+    if count_values:
+        tally = np.bincount(cc, minlength=width)
+        distinct = int(np.count_nonzero(tally))
+        top = int(tally.max()) if cc.size else 0
     cf = cc.astype(np.float64)
     sums = np.bincount(uu, weights=cf, minlength=ctx.n_units)
     mean_i = np.divide(sums, n_i, out=np.zeros(ctx.n_units), where=n_i > 0)

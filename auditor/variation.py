@@ -1,11 +1,16 @@
 """Within / between variation, column kinds and per-column signals.
 
-A scalar pass (missing, non-finite, distinct values), then one ``collect_all`` with
-the grouped pass by unit (every column's count, min and max), the grouped pass by
-period (count, min and max, for period-only columns and missing data by wave) and
-value tables for columns with repeated values. Per-unit means and centred sums of
-squares come from an ordered numpy pass (:func:`unit_moments`). Everything else is
-numpy arithmetic on those small tables.
+Every column's statistics come from one of three passes (:func:`run_passes`):
+
+- in memory: the ordered numpy pass of :mod:`auditor.unitpass`;
+- streaming, one key column: :func:`_partitioned_passes`, light whole-column
+  queries, then ranges of units read one at a time through the same numpy pass;
+- streaming otherwise (composite keys, more than 63 periods, list or struct
+  columns): polars queries (a scalar pass, grouped passes by unit and by period,
+  value tables) with per-unit moments merged across row batches (:func:`unit_moments`).
+
+Each gives a :class:`~auditor.unitpass.ColumnStats` per column; kinds, shares and
+signals are numpy arithmetic on those (:func:`compute_variation`).
 
 Numerical stability: numeric columns are shifted by their first finite value,
 per-unit sums of squares are centred within the unit (two passes), and totals are
@@ -15,7 +20,7 @@ combined as WSS + BSS from unit means (methods.md, section 2).
 from __future__ import annotations
 
 from collections.abc import Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import numpy as np
@@ -25,7 +30,7 @@ from auditor import unitpass
 from auditor.config import Settings
 from auditor.findings import Finding, make
 from auditor.load import PERIOD_ID, UNIT_ID, Panel
-from auditor.unitpass import DENSE_CELLS, ColumnStats
+from auditor.unitpass import ColumnStats, period_matrix
 
 KINDS = ("constant", "period-only", "time-invariant", "nearly-time-invariant", "time-varying")
 
@@ -230,16 +235,19 @@ class Passes:
 
     ``stats``: column name -> :class:`~auditor.unitpass.ColumnStats`. ``per_unit``:
     the structure's per-unit table sorted by unit code (None when not asked for).
-    ``period_rows``: rows per period index. ``counts``: the dense unit x period row
-    counts (in-memory pass only). ``streaming``: the stats came from the polars
-    tables of a streaming pass (the period-effect R2 then reads the rows again).
+    ``period_rows``: rows per period index. ``system``: the period dummies' matrix
+    after unit demeaning over every row (:func:`~auditor.unitpass.period_matrix`).
+    ``streaming``: the stats came from the polars tables of a streaming pass (the
+    period-effect R2 then reads the rows again). ``duplicate_cells``: the first
+    (unit, period) cells holding several rows, when the passes found them.
     """
 
     stats: dict[str, ColumnStats]
     per_unit: pl.DataFrame | None
     period_rows: np.ndarray
-    counts: np.ndarray | None = None
+    system: np.ndarray | None = None
     streaming: bool = False
+    duplicate_cells: pl.DataFrame | None = None
     unit_means: dict[str, np.ndarray] = field(default_factory=dict)
 
 
@@ -254,6 +262,8 @@ def run_passes(panel: Panel, settings: Settings, extra_unit: list[pl.Expr] | Non
     tol = float(settings.get("profile", "float_tolerance"))
     k = int(settings.get("profile", "examples"))
     if not unitpass.feasible(panel):
+        if partitioned(panel):
+            return _partitioned_passes(panel, tol, k)
         return _polars_passes(panel, list(panel.columns), tol, k, extra_unit)
 
     def slow(p: Panel, column: str) -> ColumnStats:
@@ -263,23 +273,20 @@ def run_passes(panel: Panel, settings: Settings, extra_unit: list[pl.Expr] | Non
     per_unit = up.structure
     if per_unit is None and extra_unit:
         per_unit = panel.collect(panel.lazy.group_by(UNIT_ID).agg(extra_unit)).sort(UNIT_ID)
-    return Passes(stats=up.columns, per_unit=per_unit, period_rows=up.period_rows, counts=up.counts)
+    return Passes(stats=up.columns, per_unit=per_unit, period_rows=up.period_rows, system=up.system)
 
 
-def _polars_passes(
-    panel: Panel, cols: list[str], tol: float, k: int, extra_unit: list[pl.Expr] | None
-) -> Passes:
-    """The statistics of ``cols`` from polars queries (streaming, or columns numpy cannot code)."""
-    schema = panel.schema
-    names = column_aliases(panel)
-    numeric = [c for c in cols if is_numeric(schema[c])]
+def _scalar_exprs(panel: Panel, cols: Sequence[str], *, distinct: bool) -> list[pl.Expr]:
+    """Whole-column counts: rows, missing, NaN, infinities, first finite value, extremes
+    and (``distinct``) distinct values, aliased ``{alias}:{what}``."""
+    names, schema = column_aliases(panel), panel.schema
     scalar: list[pl.Expr] = [pl.len().alias("__rows")]
     for c in cols:
         a, dt = names[c], schema[c]
         if dt.is_float():
             scalar.append(pl.col(c).is_nan().sum().alias(f"{a}:nan"))
             scalar.append(pl.col(c).is_infinite().sum().alias(f"{a}:inf"))
-        if c in numeric:
+        if is_numeric(dt):
             clean = _clean(c, dt)
             scalar += [
                 clean.drop_nulls().first().alias(f"{a}:shift"),
@@ -287,13 +294,15 @@ def _polars_passes(
                 clean.max().alias(f"{a}:max"),
             ]
         scalar.append(pl.col(c).null_count().alias(f"{a}:null"))
-        if _orderable(dt):
+        if distinct and _orderable(dt):
             v = pl.col(c).fill_nan(None) if dt.is_float() else pl.col(c)
             scalar.append(v.drop_nulls().n_unique().alias(f"{a}:distinct"))
-    g = select_row(panel, scalar)
-    n_keyed = int(g["__rows"])
-    shift = {c: float(g.get(f"{names[c]}:shift") or 0.0) for c in numeric}
+    return scalar
 
+
+def _period_exprs(panel: Panel, cols: Sequence[str]) -> list[pl.Expr]:
+    """Per-period aggregations on :func:`prepared` columns: rows, values, one value or more."""
+    names, schema = column_aliases(panel), panel.schema
     per_period: list[pl.Expr] = [pl.len().alias("rows")]
     for c in cols:
         a, dt = names[c], schema[c]
@@ -305,6 +314,20 @@ def _polars_passes(
             pl.col(f"{a}:v").min().alias(f"{a}:pmin"),
             pl.col(f"{a}:v").max().alias(f"{a}:pmax"),
         ]
+    return per_period
+
+
+def _polars_passes(
+    panel: Panel, cols: list[str], tol: float, k: int, extra_unit: list[pl.Expr] | None
+) -> Passes:
+    """The statistics of ``cols`` from polars queries (streaming, or columns numpy cannot code)."""
+    schema = panel.schema
+    names = column_aliases(panel)
+    numeric = [c for c in cols if is_numeric(schema[c])]
+    g = select_row(panel, _scalar_exprs(panel, cols, distinct=True))
+    n_keyed = int(g["__rows"])
+    shift = {c: float(g.get(f"{names[c]}:shift") or 0.0) for c in numeric}
+    per_period = _period_exprs(panel, cols)
     prep = prepared(panel, cols, names)
     queries = [
         prep.group_by(UNIT_ID).agg([*unit_exprs(panel, cols), *(extra_unit or [])]),
@@ -355,6 +378,166 @@ def _polars_passes(
     )
 
 
+PARTITION_ROWS = 8_000_000  # rows per partition of units in the streaming profile
+
+
+def _partitioned_passes(panel: Panel, tol: float, k: int) -> Passes:
+    """A streaming profile read one partition of units at a time, in bounded memory.
+
+    Light whole-column queries first (missing and non-finite counts, first finite
+    value, extremes, per-period counts and extremes), then each column's distinct
+    values (one column in memory at a time), then the units in contiguous ranges of
+    their sorted key: each range's rows are read, coded and run through the in-memory
+    numpy pass, and the per-unit arrays are joined in unit order, so every per-unit
+    figure is the one an in-memory profile computes. Per-period sums and the period
+    dummies' matrices add up across ranges.
+    """
+    assert panel.by_period is not None
+    cols = list(panel.columns)
+    schema, names = panel.schema, column_aliases(panel)
+    key = panel.unit[0]
+    g = select_row(panel, _scalar_exprs(panel, cols, distinct=False))
+    shifts = {c: float(g.get(f"{names[c]}:shift") or 0.0) for c in cols if is_numeric(schema[c])}
+    body = prepared(panel, cols, names).drop(UNIT_ID)
+    pp = panel.collect(body.group_by(PERIOD_ID).agg(_period_exprs(panel, cols))).sort(PERIOD_ID)
+    values = {c: _value_counts(panel.collect(panel.by_period.select(c)).to_series()) for c in cols}
+
+    n, n_periods = panel.n_units, panel.n_periods
+    keyed_rows = panel.rows - panel.missing_keys
+    parts = max(1, int(np.ceil(keyed_rows / PARTITION_ROWS)))
+    bounds = np.unique(np.linspace(0, n, parts + 1).round().astype(np.int64))
+    unit_keys = panel.units[key]
+    pieces: dict[str, list[ColumnStats]] = {c: [] for c in cols}
+    structure: list[pl.DataFrame] = []
+    duplicates: list[pl.DataFrame] = []
+    unit_rows: list[np.ndarray] = []
+    partly = dict.fromkeys(cols, False)  # some range has missing values: its own counts
+    system = np.zeros((n_periods, n_periods))
+    for a, b in zip(bounds[:-1], bounds[1:], strict=True):
+        frame = panel.collect(
+            panel.by_period.filter(
+                pl.col(key).is_between(
+                    pl.lit(unit_keys[int(a)], dtype=unit_keys.dtype), pl.lit(unit_keys[int(b) - 1], dtype=unit_keys.dtype)
+                )
+            )
+            .select(key, PERIOD_ID, *cols)
+        )
+        frame = frame.with_columns((pl.col(key).rank("dense") - 1).cast(pl.UInt32).alias(UNIT_ID))
+        up = unitpass.run_frame(
+            frame, int(b - a), n_periods, cols, examples=k, tolerance=tol, slow=_no_slow, shifts=shifts
+        )
+        del frame
+        unit_rows.append(up.unit_rows)
+        for c in cols:
+            st = up.columns[c]
+            if st.n_i is up.unit_rows:  # no value missing in the range: share one array
+                st = replace(st, n_i=np.empty(0, dtype=np.int64))
+            else:
+                partly[c] = True
+            if st.mean_i is not None and st.system is None:  # every row of the range has a value
+                st = replace(st, system=up.system if int(up.unit_rows.sum()) else np.zeros_like(system))
+            pieces[c].append(replace(st, examples=tuple((code + int(a), lo, hi) for code, lo, hi in st.examples)))
+        assert up.structure is not None and up.counts is not None and up.system is not None
+        structure.append(up.structure.with_columns(pl.col(UNIT_ID) + int(a)))
+        system += up.system
+        cells = np.argwhere(up.counts > 1)[:k]
+        duplicates.append(
+            pl.DataFrame(
+                {
+                    UNIT_ID: pl.Series(cells[:, 0] + int(a), dtype=pl.UInt32),
+                    PERIOD_ID: pl.Series(cells[:, 1], dtype=pl.UInt32),
+                    "n": pl.Series(up.counts[cells[:, 0], cells[:, 1]], dtype=pl.UInt32),
+                }
+            )
+        )
+    all_rows = np.concatenate(unit_rows)
+    stats = {}
+    for c in cols:
+        if partly[c]:  # ranges without missing values get their row counts back
+            parts_c = [p if p.n_i.size else replace(p, n_i=r) for p, r in zip(pieces[c], unit_rows, strict=True)]
+            stats[c] = _joined(parts_c, names[c], g, pp, values[c], shifts.get(c, 0.0), k)
+        else:
+            stats[c] = replace(_joined(pieces[c], names[c], g, pp, values[c], shifts.get(c, 0.0), k), n_i=all_rows)
+        del pieces[c]
+    return Passes(
+        stats=stats,
+        per_unit=pl.concat(structure),
+        period_rows=pp["rows"].to_numpy(),
+        system=system,
+        duplicate_cells=pl.concat(duplicates),
+    )
+
+
+def _no_slow(column: str) -> ColumnStats:
+    raise AssertionError(f"column {column!r} cannot be profiled by partitions")
+
+
+def partitioned(panel: Panel) -> bool:
+    """Whether a streaming panel can be profiled a partition of units at a time: one key
+    column, at most 63 periods, and every column numbers, text or other orderable values."""
+    return (
+        panel.by_period is not None
+        and len(panel.unit) == 1
+        and panel.n_periods <= unitpass.BITMASK_PERIODS
+        and all(is_numeric(dt) or _orderable(dt) for dt in panel.schema.values())
+    )
+
+
+def _value_counts(s: pl.Series) -> tuple[int, int]:
+    """(distinct values, rows of the most common one) of a whole column, NaN as missing."""
+    if is_numeric(s.dtype):
+        return unitpass.distinct_numbers(s)
+    v = s.drop_nulls()
+    if v.len() == 0:
+        return 0, 0
+    distinct = v.n_unique()
+    return (distinct, 1) if distinct == v.len() else (distinct, int(v.unique_counts().max()))
+
+
+def _joined(
+    parts: list[ColumnStats], a: str, g: dict[str, Any], pp: pl.DataFrame, values: tuple[int, int], shift: float, k: int
+) -> ColumnStats:
+    """One column's statistics from its partitions (in unit order) and the whole-column counts."""
+    first = parts[0]
+    number = first.mean_i is not None
+
+    def cat(field_name: str) -> np.ndarray:
+        return np.concatenate([getattr(p, field_name) for p in parts])
+
+    extra: dict[str, Any] = {}
+    if number:
+        extra = {
+            "shift": shift,
+            "vmin": g.get(f"{a}:min"),
+            "vmax": g.get(f"{a}:max"),
+            "mean_i": cat("mean_i"),
+            "m2_i": cat("m2_i"),
+            "rhs": sum((p.rhs for p in parts if p.rhs is not None), np.zeros(pp.height)),
+            "wss": float(sum(p.wss or 0.0 for p in parts)),
+            "system": sum((p.system for p in parts if p.system is not None), np.zeros((pp.height, pp.height))),
+        }
+    return ColumnStats(
+        nulls=int(g[f"{a}:null"]) + int(g.get(f"{a}:nan") or 0),
+        non_finite=int(g.get(f"{a}:inf") or 0),
+        distinct=values[0],
+        top=values[1],
+        n_i=cat("n_i"),
+        changing=cat("changing"),
+        n_t=pp[f"{a}:n"].to_numpy(),
+        one_value=_one_value_from(pp, a),
+        examples=tuple(e for p in parts for e in p.examples)[:k],
+        **extra,
+    )
+
+
+def _one_value_from(pp: pl.DataFrame, a: str) -> bool:
+    """Whether every period holds at most one value, from the per-period table."""
+    if f"{a}:pmin" in pp.columns:
+        pmin, pmax = pp[f"{a}:pmin"], pp[f"{a}:pmax"]
+        return bool((pmin.is_null() | (pmin == pmax)).fill_null(True).all())
+    return bool((pp[f"{a}:nu"].to_numpy() <= 1).all())
+
+
 def _stats_from_tables(
     c: str,
     a: str,
@@ -370,7 +553,7 @@ def _stats_from_tables(
     k: int,
 ) -> ColumnStats:
     """One column's :class:`ColumnStats` from the polars tables of :func:`_polars_passes`."""
-    pu_cols, pp_cols = set(pu.columns), set(pp.columns)
+    pu_cols = set(pu.columns)
     n_i = pu[f"{a}:n"].to_numpy()
     extra: dict[str, Any] = {}
     if moments is not None:
@@ -401,11 +584,7 @@ def _stats_from_tables(
         changing = nu >= 2
         idx = np.flatnonzero(changing)[:k]
         examples = tuple((int(codes[i]), None, int(nu[i])) for i in idx)
-    if f"{a}:pmin" in pp_cols:
-        pmin, pmax = pp[f"{a}:pmin"], pp[f"{a}:pmax"]
-        one_value = bool((pmin.is_null() | (pmin == pmax)).fill_null(True).all())
-    else:
-        one_value = bool((pp[f"{a}:nu"].to_numpy() <= 1).all())
+    one_value = _one_value_from(pp, a)
     return ColumnStats(
         nulls=int(g[f"{a}:null"]) + int(g.get(f"{a}:nan") or 0),
         non_finite=int(g.get(f"{a}:inf") or 0),
@@ -620,29 +799,15 @@ def _absorbed(
         return basis
     if passes.streaming:
         return _absorbed_streaming(panel, todo, passes, settings, cut)
-    frame = panel.eager
-    assert frame is not None
-    u = frame[UNIT_ID].to_numpy().astype(np.intp)
-    t = frame[PERIOD_ID].to_numpy().astype(np.intp)
-    cache: dict[bytes, tuple[np.ndarray, np.ndarray]] = {}
+    systems: dict[int, tuple[np.ndarray, np.ndarray]] = {}
     for r in todo:
         st = passes.stats[r["name"]]
-        if st.rhs is None or st.wss is None:
+        matrix = st.system if st.system is not None else passes.system
+        if st.rhs is None or st.wss is None or matrix is None:
             continue
-        if st.nulls + st.non_finite == 0:
-            key = b"all"
-            if key not in cache:
-                cache[key] = (
-                    _dense_system(passes.counts)
-                    if passes.counts is not None
-                    else _period_system(u, t, panel.n_units, panel.n_periods)
-                )
-        else:
-            mask = np.isfinite(frame[r["name"]].cast(pl.Float64).to_numpy())
-            key = np.packbits(mask).tobytes()
-            if key not in cache:
-                cache[key] = _period_system(u[mask], t[mask], panel.n_units, panel.n_periods)
-        r2 = _explained(st.rhs, st.wss, cache[key])
+        if id(matrix) not in systems:
+            systems[id(matrix)] = np.linalg.eigh(matrix)
+        r2 = _explained(st.rhs, st.wss, systems[id(matrix)])
         r["time_r2"] = r2
         r["absorbed_by_time"] = bool(r2 is not None and r2 >= cut)
     return basis
@@ -693,28 +858,9 @@ def _absorbed_streaming(
     return basis
 
 
-def _dense_system(counts: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Eigen-decomposition of D' M_U D from the (units x periods) row-count matrix."""
-    counts = counts.astype(np.float64)
-    t_i = counts.sum(axis=1)
-    w = np.divide(1.0, t_i, out=np.zeros(t_i.size), where=t_i > 0)
-    cwc = counts.T @ (counts * w[:, None])
-    return np.linalg.eigh(np.diag(counts.sum(axis=0)) - cwc)
-
-
 def _period_system(u: np.ndarray, t: np.ndarray, n_units: int, n_periods: int) -> tuple[np.ndarray, np.ndarray]:
     """Eigen-decomposition (values, vectors) of D' M_U D, period dummies D after unit demeaning."""
-    if n_units * n_periods <= DENSE_CELLS:
-        counts = np.bincount(u * n_periods + t, minlength=n_units * n_periods)
-        return _dense_system(counts.reshape(n_units, n_periods))
-    from scipy import sparse
-
-    c = sparse.coo_matrix((np.ones(u.size), (u, t)), shape=(n_units, n_periods)).tocsr()
-    t_i = np.asarray(c.sum(axis=1)).ravel()
-    w = np.divide(1.0, t_i, out=np.zeros(n_units), where=t_i > 0)
-    cwc = (c.T @ (sparse.diags(w) @ c)).toarray()
-    n_t = np.asarray(c.sum(axis=0)).ravel()
-    return np.linalg.eigh(np.diag(n_t) - cwc)
+    return np.linalg.eigh(period_matrix(u, t, n_units, n_periods))
 
 
 def time_r2(

@@ -50,9 +50,51 @@ def test_streaming_equals_in_memory(parquet) -> None:
     assert _doc(parquet, True) == _doc(parquet, False)
 
 
-def test_streaming_in_small_batches_merges_exactly(parquet, monkeypatch) -> None:
-    # per-unit moments merged across batches (Chan, Golub and LeVeque) equal one pass to 1e-12
+def test_streaming_in_many_partitions_of_units_equals_in_memory(parquet, monkeypatch) -> None:
+    # ranges of units read one at a time: per-unit figures joined in unit order, per-period
+    # sums and the period dummies' matrices added up; equal to one pass to 1e-12
     import auditor.variation as variation
 
+    monkeypatch.setattr(variation, "PARTITION_ROWS", 97)
+    calls = []
+    original = variation.unitpass.run_frame
+    monkeypatch.setattr(variation.unitpass, "run_frame", lambda *a, **k: calls.append(1) or original(*a, **k))
+    streamed = _doc(parquet, True)
+    assert len(calls) >= 20  # 2,000-odd rows in ranges of about 97 rows
+    assert _approx(streamed, _doc(parquet, False))
+
+
+def test_streaming_in_small_batches_merges_exactly(parquet, monkeypatch) -> None:
+    # the polars streaming pass (composite keys, more than 63 periods): per-unit moments
+    # merged across batches (Chan, Golub and LeVeque) equal one pass to 1e-12
+    import auditor.variation as variation
+
+    monkeypatch.setattr(variation, "partitioned", lambda panel: False)
     monkeypatch.setattr(variation, "MOMENT_BATCH_ROWS", 97)
     assert _approx(_doc(parquet, True), _doc(parquet, False))
+
+
+def test_streaming_with_text_keys_and_duplicates_in_partitions(tmp_path, monkeypatch) -> None:
+    # text unit keys are ranged by their sorted order; duplicate cells and gaps found per range
+    import auditor.variation as variation
+
+    rng = np.random.default_rng(11)
+    n, periods = 150, 5
+    df = pl.DataFrame(
+        {
+            "hh": np.repeat([f"H{i:04d}" for i in range(n)], periods),
+            "wave": np.tile(np.arange(1, periods + 1), n),
+            "spend": rng.normal(size=n * periods),
+            "region": np.repeat(np.array(["n", "s"])[rng.integers(0, 2, n)], periods),
+        }
+    ).sample(fraction=0.9, seed=2)
+    df = pl.concat([df, df.slice(10, 3)])
+    path = tmp_path / "hh.parquet"
+    df.write_parquet(path)
+    monkeypatch.setattr(variation, "PARTITION_ROWS", 50)
+    streamed = auditor.profile(path, "hh", "wave", streaming=True).to_dict()
+    whole = auditor.profile(path, "hh", "wave", streaming=False).to_dict()
+    assert streamed["panel"].pop("engine") == "streaming"
+    whole["panel"].pop("engine")
+    assert streamed["panel"]["duplicate_keys"] == 3
+    assert _approx(streamed, whole)
