@@ -111,7 +111,10 @@ def _orderable(dtype: pl.DataType) -> bool:
 
 
 def prepared(
-    panel: Panel, only: Sequence[str] | None = None, names: dict[str, str] | None = None
+    panel: Panel,
+    only: Sequence[str] | None = None,
+    names: dict[str, str] | None = None,
+    source: pl.LazyFrame | None = None,
 ) -> pl.LazyFrame:
     """The panel with helper columns so every grouped aggregation is a plain one.
 
@@ -119,7 +122,8 @@ def prepared(
     ``a:x`` the finite values as Float64 (numeric columns), ``a:t`` text for
     categoricals. ``only`` limits the helper columns to those of the named columns
     (a small plan for a one-column query on a wide panel); ``names`` are the
-    column aliases when the caller has them already.
+    column aliases when the caller has them already. ``source``: rows holding the
+    period code and the columns but no unit code (the result then has none either).
     """
     names = names or column_aliases(panel)
     exprs: list[pl.Expr] = []
@@ -135,6 +139,8 @@ def prepared(
             exprs.append(_text(c, dt).alias(f"{a}:v"))
         else:
             exprs.append(pl.col(c).alias(f"{a}:v"))
+    if source is not None:
+        return source.select(pl.col(PERIOD_ID), *exprs)
     return panel.lazy.select(pl.col(UNIT_ID), pl.col(PERIOD_ID), *exprs)
 
 
@@ -384,13 +390,13 @@ PARTITION_ROWS = 8_000_000  # rows per partition of units in the streaming profi
 def _partitioned_passes(panel: Panel, tol: float, k: int) -> Passes:
     """A streaming profile read one partition of units at a time, in bounded memory.
 
-    Light whole-column queries first (missing and non-finite counts, first finite
-    value, extremes, per-period counts and extremes), then each column's distinct
-    values (one column in memory at a time), then the units in contiguous ranges of
-    their sorted key: each range's rows are read, coded and run through the in-memory
-    numpy pass, and the per-unit arrays are joined in unit order, so every per-unit
-    figure is the one an in-memory profile computes. Per-period sums and the period
-    dummies' matrices add up across ranges.
+    A light whole-column query first (missing and non-finite counts, first finite
+    value, extremes), then each column's distinct values (one column in memory at a
+    time), then the units in contiguous ranges of their sorted key: each range's rows
+    are read, coded and run through the in-memory numpy pass, and the per-unit arrays
+    are joined in unit order, so every per-unit figure is the one an in-memory
+    profile computes. Per-period counts, extremes and sums and the period dummies'
+    matrices add up across ranges.
     """
     assert panel.by_period is not None
     cols = list(panel.columns)
@@ -398,8 +404,6 @@ def _partitioned_passes(panel: Panel, tol: float, k: int) -> Passes:
     key = panel.unit[0]
     g = select_row(panel, _scalar_exprs(panel, cols, distinct=False))
     shifts = {c: float(g.get(f"{names[c]}:shift") or 0.0) for c in cols if is_numeric(schema[c])}
-    body = prepared(panel, cols, names).drop(UNIT_ID)
-    pp = panel.collect(body.group_by(PERIOD_ID).agg(_period_exprs(panel, cols))).sort(PERIOD_ID)
     values = {c: _value_counts(panel.collect(panel.by_period.select(c)).to_series()) for c in cols}
 
     n, n_periods = panel.n_units, panel.n_periods
@@ -412,6 +416,8 @@ def _partitioned_passes(panel: Panel, tol: float, k: int) -> Passes:
     duplicates: list[pl.DataFrame] = []
     unit_rows: list[np.ndarray] = []
     partly = dict.fromkeys(cols, False)  # some range has missing values: its own counts
+    periods: list[pl.DataFrame] = []
+    period_exprs = _period_exprs(panel, cols)
     system = np.zeros((n_periods, n_periods))
     for a, b in zip(bounds[:-1], bounds[1:], strict=True):
         frame = panel.collect(
@@ -423,6 +429,11 @@ def _partitioned_passes(panel: Panel, tol: float, k: int) -> Passes:
             .select(key, PERIOD_ID, *cols)
         )
         frame = frame.with_columns((pl.col(key).rank("dense") - 1).cast(pl.UInt32).alias(UNIT_ID))
+        # per-period counts and extremes of the range (a streaming query over the whole
+        # input would hold every row: polars cannot stream text extremes)
+        periods.append(
+            prepared(panel, cols, names, source=frame.lazy()).group_by(PERIOD_ID).agg(period_exprs).collect()
+        )
         up = unitpass.run_frame(
             frame, int(b - a), n_periods, cols, examples=k, tolerance=tol, slow=_no_slow, shifts=shifts
         )
@@ -451,6 +462,11 @@ def _partitioned_passes(panel: Panel, tol: float, k: int) -> Passes:
             )
         )
     all_rows = np.concatenate(unit_rows)
+    merged = [pl.col("rows").sum()]
+    for c in cols:
+        a = names[c]
+        merged += [pl.col(f"{a}:n").sum(), pl.col(f"{a}:pmin").min(), pl.col(f"{a}:pmax").max()]
+    pp = pl.concat(periods).group_by(PERIOD_ID).agg(merged).sort(PERIOD_ID)
     stats = {}
     for c in cols:
         if partly[c]:  # ranges without missing values get their row counts back
