@@ -162,7 +162,7 @@ def run_frame(
         coding = {c: pool.submit(_codes, frame[c]) for c in others}
         compact = {c for c in numbers if count_values and _compact_integers(frame[c])}
         counting = {
-            c: pool.submit(distinct_numbers, frame[c]) for c in numbers if count_values and c not in compact
+            c: pool.submit(value_counts, frame[c]) for c in numbers if count_values and c not in compact
         }
         for c in numbers:
             out[c] = _number(ctx, frame[c], c in compact, None if shifts is None else shifts[c])
@@ -260,14 +260,15 @@ def _compact_integers(s: pl.Series) -> bool:
     return int(hi) - int(lo) <= 4 * s.len() + 1024
 
 
-def distinct_numbers(s: pl.Series) -> tuple[int, int]:
-    """(distinct values, rows of the most common one) of a number column, NaN as missing.
+def value_counts(s: pl.Series) -> tuple[int, int]:
+    """(distinct values, rows of the most common one) of a column, NaN as missing.
 
-    Floats and integers are sorted with numpy, which releases the interpreter lock
-    (this runs beside the main pass); equal neighbours are one value, and the
-    longest run is the most common value. Decimals are hashed by polars.
+    Floats, integers and booleans are sorted with numpy, which releases the
+    interpreter lock (this runs beside the main pass); equal neighbours are one
+    value, and the longest run is the most common value. Other columns (text,
+    dates, decimals) are hashed by polars.
     """
-    if s.dtype.is_decimal():
+    if not _is_number(s.dtype) or s.dtype.is_decimal():
         v = s.drop_nulls()
         if v.len() == 0:
             return 0, 0
@@ -401,7 +402,12 @@ def _unit_extremes(
     ctx: _Context, x: np.ndarray, finite: np.ndarray, all_finite: bool, units: np.ndarray
 ) -> tuple[np.ndarray, np.ndarray]:
     """Per-unit minimum and maximum of the finite values, for the marked units only."""
-    rows = units[ctx.u] if all_finite else (units[ctx.u] & finite)
+    return _extremes_of_rows(ctx, x, units[ctx.u] if all_finite else (units[ctx.u] & finite))
+
+
+def _extremes_of_rows(ctx: _Context, x: np.ndarray, rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Per-unit minimum and maximum of ``x`` over ``rows`` (a mask or row numbers);
+    +inf / -inf for units without such rows."""
     uu, xs = ctx.u[rows], x[rows]
     lo = np.full(ctx.n_units, np.inf)
     hi = np.full(ctx.n_units, -np.inf)
@@ -434,11 +440,7 @@ def _number_examples(
     units, rows = _example_rows(ctx, changing)
     if not all_finite:
         rows = rows[finite[rows]]
-    uu, xs = ctx.u[rows], x[rows]
-    lo = np.full(ctx.n_units, np.inf)
-    hi = np.full(ctx.n_units, -np.inf)
-    np.minimum.at(lo, uu, xs)
-    np.maximum.at(hi, uu, xs)
+    lo, hi = _extremes_of_rows(ctx, x, rows)
     return tuple((int(i), float(lo[i]), float(hi[i])) for i in units)
 
 

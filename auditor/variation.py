@@ -404,7 +404,7 @@ def _partitioned_passes(panel: Panel, tol: float, k: int) -> Passes:
     key = panel.unit[0]
     g = select_row(panel, _scalar_exprs(panel, cols, distinct=False))
     shifts = {c: float(g.get(f"{names[c]}:shift") or 0.0) for c in cols if is_numeric(schema[c])}
-    values = {c: _value_counts(panel.collect(panel.by_period.select(c)).to_series()) for c in cols}
+    values = {c: unitpass.value_counts(panel.collect(panel.by_period.select(c)).to_series()) for c in cols}
 
     n, n_periods = panel.n_units, panel.n_periods
     keyed_rows = panel.rows - panel.missing_keys
@@ -497,17 +497,6 @@ def partitioned(panel: Panel) -> bool:
         and panel.n_periods <= unitpass.BITMASK_PERIODS
         and all(is_numeric(dt) or _orderable(dt) for dt in panel.schema.values())
     )
-
-
-def _value_counts(s: pl.Series) -> tuple[int, int]:
-    """(distinct values, rows of the most common one) of a whole column, NaN as missing."""
-    if is_numeric(s.dtype):
-        return unitpass.distinct_numbers(s)
-    v = s.drop_nulls()
-    if v.len() == 0:
-        return 0, 0
-    distinct = v.n_unique()
-    return (distinct, 1) if distinct == v.len() else (distinct, int(v.unique_counts().max()))
 
 
 def _joined(
