@@ -25,9 +25,11 @@ dummies' system for ``absorbed_by_time`` (variation.py).
 
 from __future__ import annotations
 
+import os
+import threading
 from collections.abc import Callable
 from concurrent.futures import ThreadPoolExecutor
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
@@ -37,6 +39,7 @@ from auditor.load import PERIOD_ID, UNIT_ID, Panel
 
 DENSE_CELLS = 50_000_000  # units x periods up to which the count matrix is held dense
 BITMASK_PERIODS = 63  # participation patterns as bit masks up to this many periods
+MAX_WORKERS = 4  # threads of the column pass, at most
 EARLY_ROWS = 65_536  # rows checked first when a one-value-per-period test can fail early
 _EPS = float(np.finfo(np.float64).eps)
 
@@ -145,41 +148,66 @@ def run_frame(
     t = frame[PERIOD_ID].to_numpy().astype(np.intp)
     unit_rows = np.bincount(u, minlength=n)
     period_rows = np.bincount(t, minlength=n_periods)
-    counts = None
-    if n * n_periods <= DENSE_CELLS:
-        counts = np.bincount(u * n_periods + t, minlength=n * n_periods).reshape(n, n_periods)
-    structure = _structure(counts, unit_rows) if counts is not None and n_periods <= BITMASK_PERIODS else None
-    system = period_matrix(u, t, n, n_periods, counts)
 
-    ctx = _Context(u, t, n, n_periods, unit_rows, period_rows, examples, tolerance, np.empty(u.size), np.empty(u.size))
-    # Hashing work runs in a background thread while numpy works here: text is coded
-    # first (this thread needs the codes), then the exact distinct counts of numbers.
     schema = frame.schema
     numbers = [c for c in columns if _is_number(schema[c])]
     others = [c for c in columns if c not in set(numbers)]
-    out: dict[str, ColumnStats] = {}
-    with ThreadPoolExecutor(max_workers=1) as pool:
-        coding = {c: pool.submit(_codes, frame[c]) for c in others}
-        compact = {c for c in numbers if count_values and _compact_integers(frame[c])}
-        counting = {
-            c: pool.submit(value_counts, frame[c]) for c in numbers if count_values and c not in compact
-        }
+    ctx = _Context(
+        u, t, n, n_periods, unit_rows, period_rows, examples, tolerance,
+        t_sorted=bool(u.size < 2 or (t[1:] >= t[:-1]).all()),
+        rep_row=_representatives(u, n) if others else None,
+    )  # fmt: skip
+    # Every column is independent work: text coding and coded statistics, and the
+    # number pass with its exact value count, are tasks for a pool of threads (numpy
+    # and polars release the interpreter lock), beside the count matrix's structure
+    # and period system. Each task adds in row order: results do not depend on the
+    # schedule.
+    with ThreadPoolExecutor(max_workers=workers()) as pool:
+        grid = pool.submit(_grid, u, t, n, n_periods, unit_rows)
+        jobs = {c: pool.submit(_other_column, ctx, frame[c], slow, count_values) for c in others}
         for c in numbers:
-            out[c] = _number(ctx, frame[c], c in compact, None if shifts is None else shifts[c])
-        for c in others:
-            codes = coding[c].result()
-            out[c] = slow(c) if codes is None else _coded(ctx, frame[c], *codes, count_values=count_values)
-        for c, fut in counting.items():
-            distinct, top = fut.result()
-            out[c] = replace(out[c], distinct=distinct, top=top)
+            jobs[c] = pool.submit(_number, ctx, frame[c], None if shifts is None else shifts[c], count_values)
+        out = {c: jobs[c].result() for c in columns}
+        counts, structure, system = grid.result()
     return UnitPass(
-        columns={c: out[c] for c in columns},
+        columns=out,
         period_rows=period_rows,
         unit_rows=unit_rows,
         counts=counts,
         structure=structure,
         system=system,
     )
+
+
+def _grid(
+    u: np.ndarray, t: np.ndarray, n: int, n_periods: int, unit_rows: np.ndarray
+) -> tuple[np.ndarray | None, pl.DataFrame | None, np.ndarray]:
+    """(unit x period count matrix or None when too large, per-unit structure fields
+    or None, :func:`period_matrix` of every row)."""
+    counts = None
+    if n * n_periods <= DENSE_CELLS:
+        counts = np.bincount(u * n_periods + t, minlength=n * n_periods).reshape(n, n_periods)
+    structure = _structure(counts, unit_rows) if counts is not None and n_periods <= BITMASK_PERIODS else None
+    return counts, structure, period_matrix(u, t, n, n_periods, counts)
+
+
+def workers() -> int:
+    """Threads for the column tasks: the cores this process may run on, at most
+    :data:`MAX_WORKERS` (each holds two row-length work buffers)."""
+    try:
+        cores = len(os.sched_getaffinity(0))
+    except AttributeError:  # pragma: no cover - not Linux
+        cores = os.cpu_count() or 1
+    return max(1, min(cores, MAX_WORKERS))
+
+
+def _representatives(u: np.ndarray, n_units: int) -> np.ndarray:
+    """For every row, the row number of one fixed row of its unit (the same for all
+    rows of a unit): a unit holds one value exactly when each row equals its
+    representative's."""
+    rep = np.zeros(n_units, dtype=np.intp)
+    rep[u] = np.arange(u.size, dtype=np.intp)
+    return rep[u]
 
 
 def period_matrix(
@@ -216,9 +244,34 @@ class _Context:
     period_rows: np.ndarray
     examples: int
     tolerance: float
-    buf_a: np.ndarray  # two row-length work buffers (this thread only)
-    buf_b: np.ndarray
-    rows_of: dict[str, Any] = field(default_factory=dict)  # see _example_rows
+    t_sorted: bool = False  # rows ordered by period: per-period sums by segments
+    rep_row: np.ndarray | None = None  # see _representatives (when text columns exist)
+    local: threading.local = field(default_factory=threading.local)  # per-thread buffers
+
+
+def _buffers(ctx: _Context, size: int) -> tuple[np.ndarray, np.ndarray]:
+    """Two work buffers of ``size`` floats owned by the calling thread."""
+    loc = ctx.local
+    if getattr(loc, "a", None) is None:
+        loc.a, loc.b = np.empty(ctx.u.size), np.empty(ctx.u.size)
+    return loc.a[:size], loc.b[:size]
+
+
+def _period_sums(ctx: _Context, tt: np.ndarray, w: np.ndarray | None = None) -> np.ndarray:
+    """Per-period sums of ``w`` (counts when None) over rows with periods ``tt``.
+
+    Rows ordered by period (one file per wave) are summed by contiguous segments:
+    bincount over a few bins that repeat row after row waits on its own stores.
+    """
+    if not ctx.t_sorted or tt.size == 0:
+        return np.bincount(tt, weights=w, minlength=ctx.n_periods)
+    bounds = np.searchsorted(tt, np.arange(ctx.n_periods + 1))
+    if w is None:
+        return np.diff(bounds)
+    out = np.zeros(ctx.n_periods)
+    full = bounds[:-1] < bounds[1:]
+    out[full] = np.add.reduceat(w, bounds[:-1][full])
+    return out
 
 
 def _is_number(dt: pl.DataType) -> bool:
@@ -250,23 +303,12 @@ def _structure(counts: np.ndarray, unit_rows: np.ndarray) -> pl.DataFrame:
 # --- number columns -------------------------------------------------------------------------
 
 
-def _compact_integers(s: pl.Series) -> bool:
-    """Whether an integer column's range is small enough to count its values by bincount."""
-    if not (s.dtype.is_integer() or s.dtype == pl.Boolean):
-        return False
-    if s.null_count() == s.len():
-        return True
-    lo, hi = s.min(), s.max()
-    return int(hi) - int(lo) <= 4 * s.len() + 1024
-
-
 def value_counts(s: pl.Series) -> tuple[int, int]:
     """(distinct values, rows of the most common one) of a column, NaN as missing.
 
-    Floats, integers and booleans are sorted with numpy, which releases the
-    interpreter lock (this runs beside the main pass); equal neighbours are one
-    value, and the longest run is the most common value. Other columns (text,
-    dates, decimals) are hashed by polars.
+    Floats, integers and booleans are sorted with numpy (equal neighbours are one
+    value, the longest run is the most common value); other columns (text, dates,
+    decimals) are hashed by polars.
     """
     if not _is_number(s.dtype) or s.dtype.is_decimal():
         v = s.drop_nulls()
@@ -277,7 +319,11 @@ def value_counts(s: pl.Series) -> tuple[int, int]:
     v = (s.fill_nan(None) if s.dtype.is_float() else s).drop_nulls()
     if v.len() == 0:
         return 0, 0
-    x = np.sort(v.cast(pl.Float64 if s.dtype == pl.Boolean else v.dtype).to_numpy())
+    return _runs(np.sort(v.cast(pl.Float64 if s.dtype == pl.Boolean else v.dtype).to_numpy()))
+
+
+def _runs(x: np.ndarray) -> tuple[int, int]:
+    """(distinct values, length of the longest run) of a sorted, non-empty array."""
     change = x[1:] != x[:-1]
     distinct = int(np.count_nonzero(change)) + 1
     if distinct == x.size:  # continuous: every value once
@@ -286,44 +332,48 @@ def value_counts(s: pl.Series) -> tuple[int, int]:
     return distinct, int(np.diff(edges, prepend=-1, append=x.size - 1).max())
 
 
-def _number(ctx: _Context, s: pl.Series, compact: bool, shift: float | None = None) -> ColumnStats:
-    """A number column's statistics; ``distinct`` and ``top`` only when ``compact`` (integers
-    of a small range; the caller fills them in from the background count otherwise).
+def _number(ctx: _Context, s: pl.Series, shift: float | None = None, count_values: bool = True) -> ColumnStats:
+    """A number column's statistics.
 
-    ``shift``: the value subtracted before summing (default: the first finite value);
-    given, the column is part of a partition and the R2 inputs are always computed."""
+    ``count_values``: also count its distinct values and the rows of the most common
+    one (a tally for integers of a small range, a sort otherwise); a partition of
+    the units leaves them at 0. ``shift``: the value subtracted before summing
+    (default: the first finite value); given, the column is part of a partition and
+    the R2 inputs are always computed.
+    """
     x = s.cast(pl.Float64).to_numpy()
-    if s.dtype.is_float():
-        finite = np.isfinite(x)
-        all_finite = bool(finite.all())
+    whole = not s.dtype.is_float()  # integers and booleans
+    if not whole:
+        # NaN propagates through min and max: finite extremes mean every value is finite
+        all_finite = x.size == 0 or bool(np.isfinite(x.min()) and np.isfinite(x.max()))
+        finite = np.ones(0, dtype=bool) if all_finite else np.isfinite(x)
         nulls = 0 if all_finite else int(np.isnan(x).sum())
-    else:  # integers and booleans: only nulls (NaN after the cast) are not finite
-        all_finite = s.null_count() == 0
-        finite = np.ones(0, dtype=bool) if all_finite else ~np.isnan(x)
+    else:  # only nulls (NaN after the cast) are not finite
         nulls = int(s.null_count())
+        all_finite = nulls == 0
+        finite = np.ones(0, dtype=bool) if all_finite else ~np.isnan(x)
     non_finite = 0 if all_finite else int(finite.size - finite.sum()) - nulls
     present = None if nulls == 0 else ~np.isnan(x)
     if all_finite:
         uu, tt, xf = ctx.u, ctx.t, x
         n_i = ctx.unit_rows
-        buf_a, buf_b = ctx.buf_a, ctx.buf_b
     else:
         uu, tt, xf = ctx.u[finite], ctx.t[finite], x[finite]
         n_i = np.bincount(uu, minlength=ctx.n_units)
-        buf_a, buf_b = ctx.buf_a[: xf.size], ctx.buf_b[: xf.size]
-    d, top = _count_values(s) if compact else (0, 0)
+    buf_a, buf_b = _buffers(ctx, xf.size)
     common = {
         "nulls": nulls,
         "non_finite": non_finite,
-        "distinct": d,
-        "top": top,
         "n_i": n_i,
         "n_t": _per_period(ctx, present),
         "one_value": _one_value(ctx, x, present),
     }
     if xf.size == 0:
         z = np.zeros(ctx.n_units)
-        return ColumnStats(changing=np.zeros(ctx.n_units, dtype=bool), mean_i=z, m2_i=z, **common)
+        counted = _number_values(ctx, s, x, present, whole, 0.0, 0.0) if count_values else (0, 0)
+        return ColumnStats(
+            changing=np.zeros(ctx.n_units, dtype=bool), mean_i=z, m2_i=z, distinct=counted[0], top=counted[1], **common
+        )
     partial = shift is not None
     shift = float(xf[0]) if shift is None else shift
     vmin, vmax = float(xf.min()), float(xf.max())
@@ -333,18 +383,21 @@ def _number(ctx: _Context, s: pl.Series, compact: bool, shift: float | None = No
     dev = np.subtract(xx, mean_i[uu], out=buf_b)
     m2_i = np.bincount(uu, weights=np.multiply(dev, dev, out=buf_a), minlength=ctx.n_units)
 
-    whole = s.dtype.is_integer() or s.dtype == pl.Boolean
     if whole and max(abs(vmin), abs(vmax)) < 2.0**52:
         changing = m2_i > 0
     else:
         changing = _float_changing(x, finite, all_finite, ctx, n_i, mean_i, m2_i, shift, vmin, vmax)
     rhs = wss = system = None
     if partial or changing.any():
-        rhs = np.bincount(tt, weights=dev, minlength=ctx.n_periods)
+        rhs = _period_sums(ctx, tt, dev)
         wss = float(dev @ dev)
         if not all_finite:
             system = period_matrix(uu, tt, ctx.n_units, ctx.n_periods)
+    # last: the value count sorts in this thread's work buffers
+    distinct, top = _number_values(ctx, s, x, present, whole, vmin, vmax) if count_values else (0, 0)
     return ColumnStats(
+        distinct=distinct,
+        top=top,
         changing=changing,
         examples=_number_examples(ctx, x, finite, all_finite, changing),
         shift=shift,
@@ -359,14 +412,28 @@ def _number(ctx: _Context, s: pl.Series, compact: bool, shift: float | None = No
     )
 
 
-def _count_values(s: pl.Series) -> tuple[int, int]:
-    """(distinct values, rows of the most common one) of integers of a compact range."""
-    v = s.drop_nulls()
-    if v.len() == 0:
+def _number_values(
+    ctx: _Context, s: pl.Series, x: np.ndarray, present: np.ndarray | None, whole: bool, vmin: float, vmax: float
+) -> tuple[int, int]:
+    """(distinct values, rows of the most common one) of a number column ``s`` (as
+    floats ``x``; ``vmin`` and ``vmax`` its finite extremes).
+
+    Integers of a small range are tallied by bincount; integers beyond exact floats
+    are sorted as integers; others are sorted as floats in a work buffer.
+    """
+    v = x if present is None else x[present]
+    if v.size == 0:
         return 0, 0
-    k = v.cast(pl.Int64).to_numpy()
-    tally = np.bincount(k - k.min())
-    return int(np.count_nonzero(tally)), int(tally.max())
+    if whole:
+        if max(abs(vmin), abs(vmax)) >= 2.0**53:
+            return value_counts(s)
+        if vmax - vmin <= 4 * v.size + 1024:
+            tally = np.bincount((v - vmin).astype(np.intp))
+            return int(np.count_nonzero(tally)), int(tally.max())
+    buf, _ = _buffers(ctx, v.size)
+    np.copyto(buf, v)
+    buf.sort()
+    return _runs(buf)
 
 
 def _float_changing(
@@ -419,17 +486,16 @@ def _extremes_of_rows(ctx: _Context, x: np.ndarray, rows: np.ndarray) -> tuple[n
 def _example_rows(ctx: _Context, changing: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """(unit codes, row numbers) of the first ``ctx.examples`` changing units.
 
-    Columns often share their first changing units, so the rows of the last set asked
-    for are kept.
+    Columns often share their first changing units, so each thread keeps the rows of
+    the last set it asked for.
     """
     units = np.flatnonzero(changing)[: ctx.examples]
     key = units.tobytes()
-    if ctx.rows_of.get("key") != key:
+    if getattr(ctx.local, "example_key", None) != key:  # a cache per thread
         mark = np.zeros(changing.size, dtype=bool)
         mark[units] = True
-        ctx.rows_of.clear()
-        ctx.rows_of.update(key=key, rows=np.flatnonzero(mark[ctx.u]))
-    return units, ctx.rows_of["rows"]
+        ctx.local.example_key, ctx.local.example_rows = key, np.flatnonzero(mark[ctx.u])
+    return units, ctx.local.example_rows
 
 
 def _number_examples(
@@ -448,7 +514,7 @@ def _per_period(ctx: _Context, present: np.ndarray | None) -> np.ndarray:
     """Non-missing values per period (``present`` None: every row has one)."""
     if present is None:
         return ctx.period_rows
-    return np.bincount(ctx.t[present], minlength=ctx.n_periods)
+    return _period_sums(ctx, ctx.t[present])
 
 
 def _one_value(ctx: _Context, v: np.ndarray, present: np.ndarray | None) -> bool:
@@ -494,26 +560,39 @@ def _codes(s: pl.Series) -> tuple[np.ndarray, np.ndarray, int] | None:
     return codes, present, int(codes.max()) + 1 if codes.size else 0
 
 
+def _other_column(
+    ctx: _Context, s: pl.Series, slow: Callable[[str], ColumnStats], count_values: bool
+) -> ColumnStats:
+    """A text, categorical, date or other non-number column: coded, then counted (or
+    handed to ``slow`` when it has no codes: lists, structs, objects)."""
+    codes = _codes(s)
+    if codes is None:
+        return slow(s.name)
+    return _coded(ctx, s, *codes, count_values=count_values)
+
+
 def _coded(
     ctx: _Context, s: pl.Series, codes: np.ndarray, present: np.ndarray, width: int, *, count_values: bool = True
 ) -> ColumnStats:
     nulls = int(s.null_count())
     if nulls:
-        uu, cc = ctx.u[present], codes[present]
+        rows = np.flatnonzero(present)
+        uu, cc = ctx.u[rows], codes[rows]
         n_i = np.bincount(uu, minlength=ctx.n_units)
+        rep = np.zeros(ctx.n_units, dtype=np.intp)
+        rep[uu] = rows  # one row holding a value, per unit
+        ref = codes[rep[uu]]
     else:
         uu, cc = ctx.u, codes
         n_i = ctx.unit_rows
+        ref = codes[ctx.rep_row]
     distinct = top = 0
     if count_values:
         tally = np.bincount(cc, minlength=width)
         distinct = int(np.count_nonzero(tally))
         top = int(tally.max()) if cc.size else 0
-    cf = cc.astype(np.float64)
-    sums = np.bincount(uu, weights=cf, minlength=ctx.n_units)
-    mean_i = np.divide(sums, n_i, out=np.zeros(ctx.n_units), where=n_i > 0)
-    dev = cf - mean_i[uu]
-    changing = np.bincount(uu, weights=dev * dev, minlength=ctx.n_units) > 0
+    changing = np.zeros(ctx.n_units, dtype=bool)
+    changing[uu[cc != ref]] = True
     return ColumnStats(
         nulls=nulls,
         non_finite=0,
