@@ -8,6 +8,7 @@ it (for ``check``: a rule failed); 2 could not run (one line on stderr,
 from __future__ import annotations
 
 import argparse
+import os
 import sys
 from collections.abc import Callable, Sequence
 from pathlib import Path
@@ -282,7 +283,32 @@ COMMANDS: dict[str, Callable[[argparse.Namespace], int]] = {
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    """Run the command line; return the exit code."""
+    """Run the command line; return the exit code.
+
+    Run as the command itself (``argv`` None), the process ends as soon as its output
+    is flushed: handing a few million rows back to the allocator and unloading every
+    module, one by one, would add a fifth of a second to a profile for nothing.
+    """
+    code = _run(argv)
+    if argv is None:
+        _end_process(code)
+    return code
+
+
+def _end_process(code: int) -> None:
+    """Flush stdout and stderr and end the process with ``code``, skipping interpreter
+    teardown; a no-op when great-expectations was loaded (it has exit handlers)."""
+    if "great_expectations" in sys.modules:
+        return
+    for stream in (sys.stdout, sys.stderr):
+        try:
+            stream.flush()
+        except (BrokenPipeError, OSError, ValueError):
+            pass
+    os._exit(code)
+
+
+def _run(argv: Sequence[str] | None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
     if not args.command:
