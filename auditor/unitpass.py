@@ -163,7 +163,7 @@ def run_frame(
     # and period system. Each task adds in row order: results do not depend on the
     # schedule.
     with ThreadPoolExecutor(max_workers=workers()) as pool:
-        grid = pool.submit(_grid, u, t, n, n_periods, unit_rows)
+        grid = pool.submit(_grid, u, t, n, n_periods, unit_rows, period_rows, ctx.t_sorted)
         jobs = {c: pool.submit(_other_column, ctx, frame[c], slow, count_values) for c in others}
         for c in numbers:
             jobs[c] = pool.submit(_number, ctx, frame[c], None if shifts is None else shifts[c], count_values)
@@ -180,15 +180,22 @@ def run_frame(
 
 
 def _grid(
-    u: np.ndarray, t: np.ndarray, n: int, n_periods: int, unit_rows: np.ndarray
+    u: np.ndarray,
+    t: np.ndarray,
+    n: int,
+    n_periods: int,
+    unit_rows: np.ndarray,
+    period_rows: np.ndarray,
+    t_sorted: bool,
 ) -> tuple[np.ndarray | None, pl.DataFrame | None, np.ndarray]:
     """(unit x period count matrix or None when too large, per-unit structure fields
     or None, :func:`period_matrix` of every row)."""
-    counts = None
-    if n * n_periods <= DENSE_CELLS:
-        counts = np.bincount(u * n_periods + t, minlength=n * n_periods).reshape(n, n_periods)
-    structure = _structure(counts, unit_rows) if counts is not None and n_periods <= BITMASK_PERIODS else None
-    return counts, structure, period_matrix(u, t, n, n_periods, counts)
+    if n * n_periods > DENSE_CELLS:
+        return None, None, period_matrix(u, t, n, n_periods)
+    counts = count_matrix(u, t, n, n_periods, t_sorted)
+    structure = _structure(counts, unit_rows) if n_periods <= BITMASK_PERIODS else None
+    system = period_matrix(u, t, n, n_periods, counts, unit_rows=unit_rows, period_rows=period_rows)
+    return counts.T, structure, system
 
 
 def workers() -> int:
@@ -210,21 +217,46 @@ def _representatives(u: np.ndarray, n_units: int) -> np.ndarray:
     return rep[u]
 
 
+def count_matrix(u: np.ndarray, t: np.ndarray, n_units: int, n_periods: int, t_sorted: bool = False) -> np.ndarray:
+    """Rows per period and unit, as a float (periods x units) matrix.
+
+    Rows ordered by period are counted one period segment at a time (a loop over
+    periods, not units), without a row-length index array.
+    """
+    if not t_sorted:
+        flat = np.bincount(t * n_units + u, minlength=n_periods * n_units)
+        return flat.reshape(n_periods, n_units).astype(np.float64)
+    bounds = np.searchsorted(t, np.arange(n_periods + 1))
+    counts = np.empty((n_periods, n_units))
+    for p in range(n_periods):
+        counts[p] = np.bincount(u[bounds[p] : bounds[p + 1]], minlength=n_units)
+    return counts
+
+
 def period_matrix(
-    u: np.ndarray, t: np.ndarray, n_units: int, n_periods: int, counts: np.ndarray | None = None
+    u: np.ndarray,
+    t: np.ndarray,
+    n_units: int,
+    n_periods: int,
+    counts: np.ndarray | None = None,
+    *,
+    unit_rows: np.ndarray | None = None,
+    period_rows: np.ndarray | None = None,
 ) -> np.ndarray:
     """D' M_U D (periods x periods): period dummies after unit demeaning, from row codes.
 
     It is diag(n_t) - C' W C with C the unit x period row counts and W = diag(1/T_i);
-    a sum over units, so the matrices of disjoint sets of units add up.
+    a sum over units, so the matrices of disjoint sets of units add up. ``counts``:
+    the :func:`count_matrix` of these rows, when known; ``unit_rows`` and
+    ``period_rows`` its sums, when known.
     """
     if counts is None and n_units * n_periods <= DENSE_CELLS:
-        counts = np.bincount(u * n_periods + t, minlength=n_units * n_periods).reshape(n_units, n_periods)
+        counts = count_matrix(u, t, n_units, n_periods)
     if counts is not None:
-        c = counts.astype(np.float64)
-        t_i = c.sum(axis=1)
-        w = np.divide(1.0, t_i, out=np.zeros(t_i.size), where=t_i > 0)
-        return np.diag(c.sum(axis=0)) - c.T @ (c * w[:, None])
+        t_i = counts.sum(axis=0) if unit_rows is None else unit_rows
+        n_t = counts.sum(axis=1) if period_rows is None else period_rows
+        w = np.divide(1.0, t_i, out=np.zeros(n_units), where=t_i > 0)
+        return np.diag(n_t.astype(np.float64)) - (counts * w) @ counts.T
     from scipy import sparse
 
     m = sparse.coo_matrix((np.ones(u.size), (u, t)), shape=(n_units, n_periods)).tocsr()
@@ -249,12 +281,14 @@ class _Context:
     local: threading.local = field(default_factory=threading.local)  # per-thread buffers
 
 
-def _buffers(ctx: _Context, size: int) -> tuple[np.ndarray, np.ndarray]:
-    """Two work buffers of ``size`` floats owned by the calling thread."""
+def _buffers(ctx: _Context, size: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Three row-length work buffers owned by the calling thread (the first two cut to
+    ``size``): fresh memory costs a page fault per 4 KiB, reused memory nothing."""
     loc = ctx.local
-    if getattr(loc, "a", None) is None:
-        loc.a, loc.b = np.empty(ctx.u.size), np.empty(ctx.u.size)
-    return loc.a[:size], loc.b[:size]
+    if getattr(loc, "buffers", None) is None:
+        loc.buffers = tuple(np.empty(ctx.u.size) for _ in range(3))
+    a, b, x = loc.buffers
+    return a[:size], b[:size], x
 
 
 def _period_sums(ctx: _Context, tt: np.ndarray, w: np.ndarray | None = None) -> np.ndarray:
@@ -279,22 +313,22 @@ def _is_number(dt: pl.DataType) -> bool:
 
 
 def _structure(counts: np.ndarray, unit_rows: np.ndarray) -> pl.DataFrame:
-    """Per-unit structure fields from the count matrix (at most 63 periods)."""
-    n, n_periods = counts.shape
+    """Per-unit structure fields from the (periods x units) count matrix (at most 63
+    periods)."""
+    n_periods, n = counts.shape
     seen = counts > 0
-    first = np.argmax(seen, axis=1)
-    last = n_periods - 1 - np.argmax(seen[:, ::-1], axis=1)
-    bits = np.left_shift(np.uint64(1), np.arange(n_periods, dtype=np.uint64))
+    first = np.argmax(seen, axis=0)
+    last = n_periods - 1 - np.argmax(seen[::-1], axis=0)
     pattern = np.zeros(n, dtype=np.uint64)
     for p in range(n_periods):  # a loop over periods (at most 63), not units
-        pattern |= np.where(seen[:, p], bits[p], np.uint64(0))
+        pattern[seen[p]] |= np.uint64(1) << np.uint64(p)
     return pl.DataFrame(
         {
             UNIT_ID: pl.Series(UNIT_ID, np.arange(n, dtype=np.uint32)),
             "__rows": pl.Series("__rows", unit_rows.astype(np.uint32)),
             "__first": pl.Series("__first", first.astype(np.uint32)),
             "__last": pl.Series("__last", last.astype(np.uint32)),
-            "__seen": pl.Series("__seen", [None] * n, dtype=pl.Null),
+            "__seen": pl.repeat(None, n, dtype=pl.Null, eager=True),
             "__pattern": pl.Series("__pattern", pattern),
         }
     )
@@ -341,11 +375,13 @@ def _number(ctx: _Context, s: pl.Series, shift: float | None = None, count_value
     (default: the first finite value); given, the column is part of a partition and
     the R2 inputs are always computed.
     """
-    x = s.cast(pl.Float64).to_numpy()
+    x = _floats(s, _buffers(ctx, 0)[2])
     whole = not s.dtype.is_float()  # integers and booleans
+    extremes = None
     if not whole:
         # NaN propagates through min and max: finite extremes mean every value is finite
-        all_finite = x.size == 0 or bool(np.isfinite(x.min()) and np.isfinite(x.max()))
+        extremes = (float(x.min()), float(x.max())) if x.size else None
+        all_finite = extremes is None or bool(np.isfinite(extremes[0]) and np.isfinite(extremes[1]))
         finite = np.ones(0, dtype=bool) if all_finite else np.isfinite(x)
         nulls = 0 if all_finite else int(np.isnan(x).sum())
     else:  # only nulls (NaN after the cast) are not finite
@@ -360,7 +396,7 @@ def _number(ctx: _Context, s: pl.Series, shift: float | None = None, count_value
     else:
         uu, tt, xf = ctx.u[finite], ctx.t[finite], x[finite]
         n_i = np.bincount(uu, minlength=ctx.n_units)
-    buf_a, buf_b = _buffers(ctx, xf.size)
+    buf_a, buf_b, _ = _buffers(ctx, xf.size)
     common = {
         "nulls": nulls,
         "non_finite": non_finite,
@@ -376,11 +412,11 @@ def _number(ctx: _Context, s: pl.Series, shift: float | None = None, count_value
         )
     partial = shift is not None
     shift = float(xf[0]) if shift is None else shift
-    vmin, vmax = float(xf.min()), float(xf.max())
+    vmin, vmax = extremes if all_finite and extremes is not None else (float(xf.min()), float(xf.max()))
     xx = np.subtract(xf, shift, out=buf_a)
     sums = np.bincount(uu, weights=xx, minlength=ctx.n_units)
     mean_i = np.divide(sums, n_i, out=np.zeros(ctx.n_units), where=n_i > 0)
-    dev = np.subtract(xx, mean_i[uu], out=buf_b)
+    dev = np.subtract(xx, np.take(mean_i, uu, out=buf_b, mode="clip"), out=buf_b)  # take: without the GIL
     m2_i = np.bincount(uu, weights=np.multiply(dev, dev, out=buf_a), minlength=ctx.n_units)
 
     if whole and max(abs(vmin), abs(vmax)) < 2.0**52:
@@ -390,7 +426,7 @@ def _number(ctx: _Context, s: pl.Series, shift: float | None = None, count_value
     rhs = wss = system = None
     if partial or changing.any():
         rhs = _period_sums(ctx, tt, dev)
-        wss = float(dev @ dev)
+        wss = float(m2_i.sum())
         if not all_finite:
             system = period_matrix(uu, tt, ctx.n_units, ctx.n_periods)
     # last: the value count sorts in this thread's work buffers
@@ -412,6 +448,22 @@ def _number(ctx: _Context, s: pl.Series, shift: float | None = None, count_value
     )
 
 
+_CHUNKED = (pl.Float64, pl.Float32, pl.Int64, pl.Int32, pl.Int16, pl.Int8, pl.UInt64, pl.UInt32, pl.UInt16, pl.UInt8)
+
+
+def _floats(s: pl.Series, out: np.ndarray) -> np.ndarray:
+    """``s`` as float64, nulls as NaN: written into ``out`` (row length) chunk by chunk
+    for floats and integers, a new array for other types (booleans, decimals)."""
+    if s.dtype not in _CHUNKED:
+        return s.cast(pl.Float64).to_numpy()
+    i = 0
+    for chunk in s.get_chunks():
+        a = chunk.to_numpy()  # no copy for a chunk without nulls
+        np.copyto(out[i : i + a.size], a, casting="unsafe")
+        i += a.size
+    return out[:i]
+
+
 def _number_values(
     ctx: _Context, s: pl.Series, x: np.ndarray, present: np.ndarray | None, whole: bool, vmin: float, vmax: float
 ) -> tuple[int, int]:
@@ -427,10 +479,12 @@ def _number_values(
     if whole:
         if max(abs(vmin), abs(vmax)) >= 2.0**53:
             return value_counts(s)
-        if vmax - vmin <= 4 * v.size + 1024:
-            tally = np.bincount((v - vmin).astype(np.intp))
+        if vmax - vmin <= 4 * v.size + 1024 and s.dtype.is_integer():
+            tally = np.zeros(int(vmax - vmin) + 1, dtype=np.int64)
+            for chunk in s.drop_nulls().get_chunks():  # the integers themselves, chunk by chunk
+                tally += np.bincount(chunk.to_numpy() - int(vmin), minlength=tally.size)
             return int(np.count_nonzero(tally)), int(tally.max())
-    buf, _ = _buffers(ctx, v.size)
+    buf = _buffers(ctx, v.size)[0]
     np.copyto(buf, v)
     buf.sort()
     return _runs(buf)
@@ -537,14 +591,16 @@ def _one_value(ctx: _Context, v: np.ndarray, present: np.ndarray | None) -> bool
 # --- coded columns (text, categories, dates, ...) -------------------------------------------
 
 
-def _codes(s: pl.Series) -> tuple[np.ndarray, np.ndarray, int] | None:
-    """(dense codes, present mask, number of codes) for a non-number column, or None.
+def _codes(s: pl.Series) -> tuple[np.ndarray, np.ndarray | None, int] | None:
+    """(dense codes, present mask or None without nulls, number of codes) for a
+    non-number column, or None.
 
     Text is coded by hashing (codes in order of appearance); categories by their
     physical codes; other orderable values (dates, times, ...) by their dense rank.
     """
     dt = s.dtype
-    present = s.is_not_null().to_numpy()
+    nulls = s.null_count()
+    present = s.is_not_null().to_numpy() if nulls else None
     try:
         if dt == pl.String:
             c = s.cast(pl.Categorical).to_physical()
@@ -556,7 +612,7 @@ def _codes(s: pl.Series) -> tuple[np.ndarray, np.ndarray, int] | None:
             c = s.rank("dense")
     except pl.exceptions.PolarsError:
         return None
-    codes = c.fill_null(0).cast(pl.Int64).to_numpy()
+    codes = (c.fill_null(0) if nulls else c).to_numpy()
     return codes, present, int(codes.max()) + 1 if codes.size else 0
 
 
@@ -572,20 +628,26 @@ def _other_column(
 
 
 def _coded(
-    ctx: _Context, s: pl.Series, codes: np.ndarray, present: np.ndarray, width: int, *, count_values: bool = True
+    ctx: _Context,
+    s: pl.Series,
+    codes: np.ndarray,
+    present: np.ndarray | None,
+    width: int,
+    *,
+    count_values: bool = True,
 ) -> ColumnStats:
     nulls = int(s.null_count())
-    if nulls:
+    if present is not None:
         rows = np.flatnonzero(present)
         uu, cc = ctx.u[rows], codes[rows]
         n_i = np.bincount(uu, minlength=ctx.n_units)
         rep = np.zeros(ctx.n_units, dtype=np.intp)
         rep[uu] = rows  # one row holding a value, per unit
-        ref = codes[rep[uu]]
+        ref = np.take(codes, rep[uu], mode="clip")
     else:
         uu, cc = ctx.u, codes
         n_i = ctx.unit_rows
-        ref = codes[ctx.rep_row]
+        ref = np.take(codes, ctx.rep_row, mode="clip")
     distinct = top = 0
     if count_values:
         tally = np.bincount(cc, minlength=width)
@@ -600,8 +662,8 @@ def _coded(
         top=top,
         n_i=n_i,
         changing=changing,
-        n_t=_per_period(ctx, present if nulls else None),
-        one_value=_one_value(ctx, codes, present if nulls else None),
+        n_t=_per_period(ctx, present),
+        one_value=_one_value(ctx, codes, present),
         examples=_coded_examples(ctx, s, changing),
     )
 

@@ -457,7 +457,7 @@ def _partitioned_passes(panel: Panel, tol: float, k: int) -> Passes:
                 {
                     UNIT_ID: pl.Series(cells[:, 0] + int(a), dtype=pl.UInt32),
                     PERIOD_ID: pl.Series(cells[:, 1], dtype=pl.UInt32),
-                    "n": pl.Series(up.counts[cells[:, 0], cells[:, 1]], dtype=pl.UInt32),
+                    "n": pl.Series(up.counts[cells[:, 0], cells[:, 1]].astype(np.uint32)),
                 }
             )
         )
