@@ -5,6 +5,8 @@ dropped, 10 numeric and 2 text columns) to one Parquet file and prints the wall 
 peak RSS of ``panel-audit profile --json`` beside the one-pass floor (polars scan,
 group_by unit: count, sum, sum of squares of every numeric column) measured in the same
 run, and the time ratios between sizes (target: 16M / 1M between 12x and 20x, linear).
+The profile of a 1,000-unit panel gives the fixed cost (start-up, imports); the growth
+is also printed net of it.
 
 ``--big`` adds the larger-than-memory run: a panel of about 50 million rows written in
 pieces (one Parquet file per period) to a temporary folder and profiled from the folder
@@ -32,6 +34,7 @@ from profile_bench import (  # noqa: E402
     TIME,
     UNIT,
     best,
+    compile_package,
     console_script,
     floor_run,
     fmt_mib,
@@ -57,8 +60,20 @@ def profile_argv(data: Path, *extra: str) -> list[str]:
             "--fail-on", "never", *extra]
 
 
+def fixed_cost(folder: Path, periods: int, repeat: int) -> float:
+    """Seconds of the profile of a 1,000-unit panel: start-up, imports and per-run work
+    that do not grow with rows."""
+    data = folder / "panel_tiny.parquet"
+    write_panel(data, 1_000, periods)
+    a = best(profile_argv(data), repeat)
+    data.unlink()
+    return a.seconds
+
+
 def scale_runs(folder: Path, sizes: list[float], periods: int, repeat: int) -> None:
     print(f"scale: one Parquet file per size, {periods} periods, best of {repeat}")
+    fixed = fixed_cost(folder, periods, max(repeat, 3))
+    print(line("  profile of 1,000 units (fixed cost)", fmt_s(fixed)))
     results = []
     for millions in sizes:
         data = folder / f"panel_{millions:g}M.parquet"
@@ -77,6 +92,7 @@ def scale_runs(folder: Path, sizes: list[float], periods: int, repeat: int) -> N
         print(line("    one-pass floor", fmt_s(floor_s)))
         ratio = a.seconds / floor_s
         print(line("    profile / floor", f"{ratio:.2f}x", "<= 3x", ratio <= 3))
+        print(line("    profile / the floor's whole process", f"{a.seconds / floor.seconds:.2f}x"))
         print(line("    peak RSS profile", fmt_mib(a.rss_mib)))
         print(line("    peak RSS floor", fmt_mib(floor.rss_mib)))
         data.unlink()
@@ -92,6 +108,8 @@ def scale_runs(folder: Path, sizes: list[float], periods: int, repeat: int) -> N
             else:
                 print(line(label, f"{growth:.2f}x"))
             print(line(f"    floor {m:g}M / {m0:g}M", f"{f / f0:.2f}x"))
+            if s0 > fixed:
+                print(line("      net of the fixed cost", f"{(s - fixed) / (s0 - fixed):.2f}x"))
 
 
 PARTITIONED_SCRIPT = """
@@ -162,6 +180,7 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--skip-profile", action="store_true", help="big run: floor and merge pass only")
     args = ap.parse_args(argv)
     print(machine_line())
+    print(compile_package())
     tmp = None if args.keep else tempfile.TemporaryDirectory(prefix="pa-scale-")
     folder = Path(args.keep) if args.keep else Path(tmp.name)
     folder.mkdir(parents=True, exist_ok=True)
