@@ -35,7 +35,8 @@ class Panel:
     units in sorted key order), ``__pa_period`` (UInt32 index into ``grid``) and
     ``__pa_row`` (UInt64 row number in the input). ``units`` maps unit codes to
     key values. Streaming panels also keep ``by_period``: the same rows with
-    ``__pa_period`` but no unit code, to be read a partition of units at a time.
+    ``__pa_period`` but no unit code or row number (so that a filter on the key reaches
+    the file reader), to be read a partition of units at a time.
     ``grid`` holds the period labels (JSON values) and ``grid_position`` their
     positions on the ``frequency`` scale.
     """
@@ -98,7 +99,7 @@ def panel_units(coded: pl.LazyFrame, units: Sequence[str], engine: str) -> pl.Da
     )
 
 
-def _integer_codes(key: pl.Series) -> tuple[pl.Series, pl.Series] | None:
+def integer_codes(key: pl.Series) -> tuple[pl.Series, pl.Series] | None:
     """Dense 0-based codes of an integer unit key, and the keys in code order, or None.
 
     The same codes as a dense rank, found by one bincount over the key's range when
@@ -237,6 +238,7 @@ def load_panel(
         except pl.exceptions.PolarsError as exc:
             raise fail("corrupt-file", path=source, format="data", reason=str(exc).splitlines()[0][:200]) from None
 
+    unnumbered = lf  # without row numbers: filters on it reach the file reader
     lf = lf.with_row_index(ROW_ID)
     # Float keys: NaN counts as missing, like null.
     def _missing(col: str) -> pl.Expr:
@@ -298,14 +300,14 @@ def load_panel(
     if streaming:
         # codes by a dense rank of the whole column only when a query needs them; the
         # profile reads partitions of units from ``by_period`` and codes them there
-        by_period = keyed.with_columns(period_code)
+        by_period = unnumbered.filter(~missing_any).with_columns(period_code)
         coded = keyed.with_columns((key.rank("dense") - 1).cast(pl.UInt32).alias(UNIT_ID), period_code)
         unit_table = (
-            keyed.select(*units).unique().sort(list(units)).collect(engine=engine).with_row_index(UNIT_ID)
+            by_period.select(*units).unique().sort(list(units)).collect(engine=engine).with_row_index(UNIT_ID)
         ).with_columns(pl.col(UNIT_ID).cast(pl.UInt32))
     else:
         frame = lf.collect() if not missing else keyed.collect()  # no copy when no key is missing
-        fast = _integer_codes(frame[units[0]]) if len(units) == 1 else None
+        fast = integer_codes(frame[units[0]]) if len(units) == 1 else None
         looked_up = _integer_lookup(frame[time], time_map[time], time_map[PERIOD_ID])
         period = period_code if looked_up is None else looked_up
         if fast is not None:

@@ -4,23 +4,29 @@ In memory every row carries a unit code ``u`` (0..n-1) and a period index ``t``
 (0..P-1). Each column becomes one numpy array (floats for numbers, dense integer
 codes for text, dates and other orderable values) and is reduced with
 ``np.bincount``, which adds in row order: the sums are bit-reproducible from run
-to run, as the JSON must be, where parallel grouped sums are not. The exact
-distinct counts of number columns (hashing) run in a background thread meanwhile;
-polars releases the interpreter lock while it counts.
+to run, as the JSON must be, where parallel grouped sums are not. Columns are
+independent tasks for a small pool of threads (numpy and polars release the
+interpreter lock); each task's result does not depend on the schedule. The exact
+distinct count of a number column sorts it (or tallies a small integer range).
 
 What a unit "changes" means (methods.md, section 3) is decided without a per-unit
 minimum and maximum of every column:
 
-- integer values (whole-number columns, codes): a unit changes exactly when its
-  centred sum of squares is non-zero (all values equal ⇔ every deviation from the
-  unit mean is exactly zero; integers below 2**53 are exact in float64);
+- integer values (whole-number columns): a unit changes exactly when its centred
+  sum of squares is non-zero (all values equal ⇔ every deviation from the unit
+  mean is exactly zero; integers below 2**52 are exact in float64);
+- codes (text, dates, ...): a unit changes when some row's code differs from the
+  code of one fixed row of the unit;
 - floats: the centred sum of squares bounds the range, sqrt(m2 / n) <= range <=
   2 sqrt(m2) (up to rounding, allowed for); only the units between the bounds get
   an exact minimum and maximum.
 
 The structure's per-unit fields (rows, first and last period, participation bit
-mask) come from the unit x period count matrix, which also gives the period
+mask) come from the period x unit count matrix, which also gives the period
 dummies' system for ``absorbed_by_time`` (variation.py).
+
+Fresh memory costs a page fault per 4 KiB, so each thread keeps its row-length work
+buffers from column to column.
 """
 
 from __future__ import annotations
@@ -354,6 +360,59 @@ def value_counts(s: pl.Series) -> tuple[int, int]:
     if v.len() == 0:
         return 0, 0
     return _runs(np.sort(v.cast(pl.Float64 if s.dtype == pl.Boolean else v.dtype).to_numpy()))
+
+
+@dataclass(frozen=True)
+class ColumnFacts:
+    """Whole-column counts of one number column: ``nulls`` (null values), ``nan``,
+    ``inf``, ``shift`` (the first finite value in row order), ``vmin`` and ``vmax``
+    (finite extremes; None without finite values), ``distinct`` values and ``top``
+    (rows of the most common one), NaN and null counted as missing."""
+
+    nulls: int
+    nan: int
+    inf: int
+    shift: float | None
+    vmin: float | None
+    vmax: float | None
+    distinct: int
+    top: int
+
+
+def column_facts(s: pl.Series) -> ColumnFacts | None:
+    """:class:`ColumnFacts` of a float, integer or boolean column held in memory, by one
+    sort of a copy in place (NaN sorts last); None for other types."""
+    nulls = int(s.null_count())
+    if s.dtype.is_float():
+        x = s.to_numpy()  # nulls as NaN
+        x = x.copy() if not x.flags.writeable else x
+        shift = _first_finite(x)
+        x.sort()
+        missing = int(np.count_nonzero(np.isnan(x)))
+        valid = x[: x.size - missing]
+        lo = int(np.searchsorted(valid, -np.inf, side="right"))
+        hi = int(np.searchsorted(valid, np.inf, side="left"))
+        runs = _runs(valid) if valid.size else (0, 0)
+        extremes = (float(valid[lo]), float(valid[hi - 1])) if hi > lo else (None, None)
+        return ColumnFacts(nulls, missing - nulls, lo + valid.size - hi, shift, *extremes, *runs)
+    if s.dtype.is_integer() and s.dtype not in (pl.Int128, pl.UInt128) or s.dtype == pl.Boolean:
+        v = (s.cast(pl.Int8) if s.dtype == pl.Boolean else s).drop_nulls().to_numpy()
+        v = v.copy() if not v.flags.writeable else v
+        if v.size == 0:
+            return ColumnFacts(nulls, 0, 0, None, None, None, 0, 0)
+        shift = float(v[0])
+        v.sort()
+        return ColumnFacts(nulls, 0, 0, shift, float(v[0]), float(v[-1]), *_runs(v))
+    return None
+
+
+def _first_finite(x: np.ndarray, block: int = 65_536) -> float | None:
+    """The first finite value of ``x`` in order, looked for a block at a time."""
+    for start in range(0, x.size, block):
+        part = np.isfinite(x[start : start + block])
+        if part.any():
+            return float(x[start + int(np.argmax(part))])
+    return None
 
 
 def _runs(x: np.ndarray) -> tuple[int, int]:

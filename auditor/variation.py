@@ -20,6 +20,7 @@ combined as WSS + BSS from unit means (methods.md, section 2).
 from __future__ import annotations
 
 from collections.abc import Sequence
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field, replace
 from typing import Any
 
@@ -29,7 +30,7 @@ import polars as pl
 from auditor import unitpass
 from auditor.config import Settings
 from auditor.findings import Finding, make
-from auditor.load import PERIOD_ID, UNIT_ID, Panel
+from auditor.load import PERIOD_ID, UNIT_ID, Panel, integer_codes
 from auditor.unitpass import ColumnStats, period_matrix
 
 KINDS = ("constant", "period-only", "time-invariant", "nearly-time-invariant", "time-varying")
@@ -390,9 +391,8 @@ PARTITION_ROWS = 8_000_000  # rows per partition of units in the streaming profi
 def _partitioned_passes(panel: Panel, tol: float, k: int) -> Passes:
     """A streaming profile read one partition of units at a time, in bounded memory.
 
-    A light whole-column query first (missing and non-finite counts, first finite
-    value, extremes), then each column's distinct values (one column in memory at a
-    time), then the units in contiguous ranges of their sorted key: each range's rows
+    Each column read whole first, one or two in memory at a time: its missing and
+    non-finite counts, first finite value, extremes and distinct values; then the units in contiguous ranges of their sorted key: each range's rows
     are read, coded and run through the in-memory numpy pass, and the per-unit arrays
     are joined in unit order, so every per-unit figure is the one an in-memory
     profile computes. Per-period counts, extremes and sums and the period dummies'
@@ -402,9 +402,13 @@ def _partitioned_passes(panel: Panel, tol: float, k: int) -> Passes:
     cols = list(panel.columns)
     schema, names = panel.schema, column_aliases(panel)
     key = panel.unit[0]
-    g = select_row(panel, _scalar_exprs(panel, cols, distinct=False))
+    g: dict[str, Any] = {}
+    values: dict[str, tuple[int, int]] = {}
+    with ThreadPoolExecutor(max_workers=2) as pool:  # one column is read while another sorts
+        for c, (row, counted) in zip(cols, pool.map(lambda c: _whole_column(panel, c), cols), strict=True):
+            g.update(row)
+            values[c] = counted
     shifts = {c: float(g.get(f"{names[c]}:shift") or 0.0) for c in cols if is_numeric(schema[c])}
-    values = {c: unitpass.value_counts(panel.collect(panel.by_period.select(c)).to_series()) for c in cols}
 
     n, n_periods = panel.n_units, panel.n_periods
     keyed_rows = panel.rows - panel.missing_keys
@@ -428,7 +432,10 @@ def _partitioned_passes(panel: Panel, tol: float, k: int) -> Passes:
             )
             .select(key, PERIOD_ID, *cols)
         )
-        frame = frame.with_columns((pl.col(key).rank("dense") - 1).cast(pl.UInt32).alias(UNIT_ID))
+        fast = integer_codes(frame[key])  # integer keys: one bincount, else a dense rank
+        frame = frame.with_columns(
+            fast[0] if fast is not None else (pl.col(key).rank("dense") - 1).cast(pl.UInt32).alias(UNIT_ID)
+        )
         # per-period counts and extremes of the range (a streaming query over the whole
         # input would hold every row: polars cannot stream text extremes)
         periods.append(
@@ -482,6 +489,27 @@ def _partitioned_passes(panel: Panel, tol: float, k: int) -> Passes:
         system=system,
         duplicate_cells=pl.concat(duplicates),
     )
+
+
+def _whole_column(panel: Panel, c: str) -> tuple[dict[str, Any], tuple[int, int]]:
+    """One column of a streaming panel read whole (one column in memory): the counts
+    of :func:`_scalar_exprs` under their aliases, and (distinct values, rows of the
+    most common one)."""
+    frame = panel.collect(panel.by_period.select(c))
+    s = frame.to_series()
+    facts = unitpass.column_facts(s)
+    if facts is None:  # text, dates, decimals: polars
+        return frame.select(_scalar_exprs(panel, [c], distinct=False)).row(0, named=True), unitpass.value_counts(s)
+    a = column_aliases(panel)[c]
+    row = {
+        f"{a}:null": facts.nulls,
+        f"{a}:nan": facts.nan,
+        f"{a}:inf": facts.inf,
+        f"{a}:shift": facts.shift,
+        f"{a}:min": facts.vmin,
+        f"{a}:max": facts.vmax,
+    }
+    return row, (facts.distinct, facts.top)
 
 
 def _no_slow(column: str) -> ColumnStats:

@@ -40,8 +40,8 @@ def parquet(tmp_path_factory):
     return path
 
 
-def _doc(path, streaming):
-    d = auditor.profile(path, "u", "t", streaming=streaming).to_dict()
+def _doc(path, streaming, unit="u", time="t"):
+    d = auditor.profile(path, unit, time, streaming=streaming).to_dict()
     assert d["panel"].pop("engine") == ("streaming" if streaming else "in-memory")
     return d
 
@@ -97,4 +97,49 @@ def test_streaming_with_text_keys_and_duplicates_in_partitions(tmp_path, monkeyp
     assert streamed["panel"].pop("engine") == "streaming"
     whole["panel"].pop("engine")
     assert streamed["panel"]["duplicate_keys"] == 3
+    assert _approx(streamed, whole)
+
+
+def test_streaming_with_missing_and_non_finite_values_equals_in_memory(tmp_path, monkeypatch) -> None:
+    # whole-column counts of a streaming panel come from each column read whole and sorted:
+    # nulls, NaN, infinities, the first finite value, finite extremes and distinct values
+    # must equal the in-memory pass, for floats (64 and 32 bit), integers with nulls,
+    # booleans, dates and text
+    import datetime as dt
+
+    import auditor.variation as variation
+
+    rng = np.random.default_rng(23)
+    n, periods = 120, 6
+    rows = n * periods
+    x = rng.normal(size=rows).round(2)  # rounded: repeated values
+    x[rng.integers(0, rows, 25)] = np.nan
+    x[rng.integers(0, rows, 6)] = np.inf
+    x[rng.integers(0, rows, 4)] = -np.inf
+    x[0] = np.nan  # the first finite value is not the first row
+    counts = rng.integers(0, 9, rows).astype(float)
+    df = pl.DataFrame(
+        {
+            "farm": np.repeat(np.arange(n), periods),
+            "year": np.tile(np.arange(2010, 2010 + periods), n),
+            "x": x,
+            "x32": rng.normal(size=rows).astype(np.float32),
+            "k": counts,
+            "flag": rng.integers(0, 2, rows).astype(bool),
+            "day": [dt.date(2020, 1, 1) + dt.timedelta(days=int(d)) for d in rng.integers(0, 40, rows)],
+            "crop": np.array(["rye", "oat", "pea"])[rng.integers(0, 3, rows)],
+        }
+    ).with_columns(
+        pl.when(pl.int_range(pl.len()) % 17 == 3).then(None).otherwise(pl.col("x")).alias("x"),
+        pl.when(pl.int_range(pl.len()) % 13 == 5).then(None).otherwise(pl.col("k")).cast(pl.Int64).alias("k"),
+        pl.when(pl.int_range(pl.len()) % 11 == 7).then(None).otherwise(pl.col("flag")).alias("flag"),
+        pl.when(pl.int_range(pl.len()) % 19 == 2).then(None).otherwise(pl.col("crop")).alias("crop"),
+    ).sample(fraction=0.9, seed=5)
+    path = tmp_path / "farms.parquet"
+    df.write_parquet(path)
+    monkeypatch.setattr(variation, "PARTITION_ROWS", 101)
+    streamed = _doc(path, True, "farm", "year")
+    whole = _doc(path, False, "farm", "year")
+    cols = {c["name"]: c for c in streamed["columns"]}
+    assert cols["x"]["missing_share"] > 0 and cols["k"]["missing_share"] > 0
     assert _approx(streamed, whole)
