@@ -20,7 +20,8 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
-from scipy import stats
+
+from auditor.pvalues import chi2_sf, normal_sf
 
 CONST = "const"
 
@@ -374,20 +375,20 @@ def _quasi_demean(pa: PanelArrays, theta: np.ndarray, out: np.ndarray | None = N
     ``out`` (N, 1 + kx + kz) receives the design (columns placed at ``order``, default
     in the order const, X, Z) so that no extra N x K copy is made.
     """
-    th = theta[pa.codes]
+    th = np.take(theta, pa.codes, mode="clip")
     kx, kz = pa.x.shape[1], pa.z.shape[1]
     k = 1 + kx + kz
-    design = np.empty((pa.nobs, k)) if out is None else out
+    design = np.empty((pa.nobs, k), order="F") if out is None else out  # columns filled one by one
     pos = list(range(k)) if order is None else order
     np.subtract(1.0, th, out=design[:, pos[0]])
     buf = np.empty(pa.nobs)
     for j in range(kx):  # loop over columns, never over units
-        np.take(np.ascontiguousarray(theta * pa.xbar[:, j]), pa.codes, out=buf)
+        np.take(np.ascontiguousarray(theta * pa.xbar[:, j]), pa.codes, out=buf, mode="clip")
         np.subtract(pa.x[:, j], buf, out=design[:, pos[1 + j]])
     for j in range(kz):
-        np.take(np.ascontiguousarray(theta * pa.zbar[:, j]), pa.codes, out=buf)
+        np.take(np.ascontiguousarray(theta * pa.zbar[:, j]), pa.codes, out=buf, mode="clip")
         np.subtract(pa.z[:, j], buf, out=design[:, pos[1 + kx + j]])
-    np.take(theta * pa.ybar, pa.codes, out=buf)
+    np.take(theta * pa.ybar, pa.codes, out=buf, mode="clip")
     return design, pa.y - buf
 
 
@@ -442,7 +443,7 @@ def wald(coef: np.ndarray, cov: np.ndarray) -> WaldTest:
     stat = float(coef @ np.linalg.solve(cov, coef)) if np.linalg.matrix_rank(cov) == k else float(
         coef @ np.linalg.pinv(cov) @ coef
     )
-    return WaldTest(stat, k, float(stats.chi2.sf(stat, k)))
+    return WaldTest(stat, k, float(chi2_sf(stat, k)))
 
 
 def contrast(b_eff: np.ndarray, v_eff: np.ndarray, b_cons: np.ndarray, v_cons: np.ndarray,
@@ -477,7 +478,7 @@ def contrast(b_eff: np.ndarray, v_eff: np.ndarray, b_cons: np.ndarray, v_cons: n
             f"({int(negative.sum())} negative, {len(vals) - rank - int(negative.sum())} zero eigenvalues); "
             f"the statistic uses the {rank} positive directions only"
         )
-    p = float(stats.chi2.sf(stat, dof)) if dof > 0 else None
+    p = float(chi2_sf(stat, dof)) if dof > 0 else None
     return WaldTest(stat, dof, p, pd, note)
 
 
@@ -570,7 +571,7 @@ def mundlak(
     with np.errstate(divide="ignore", invalid="ignore"):
         t = b / se
     rows = tuple(
-        {"column": c, "coef": _num(bi), "t": _num(ti), "p": _num(2 * stats.norm.sf(abs(ti))) if np.isfinite(ti) else None}
+        {"column": c, "coef": _num(bi), "t": _num(ti), "p": _num(2 * normal_sf(abs(ti))) if np.isfinite(ti) else None}
         for c, bi, ti in zip(tested_cols, b, t, strict=True)
     )
     return Mundlak(fit, joint, rows)
@@ -674,7 +675,7 @@ def hausman_taylor(
         dof = k1 - g2
         if not exact:
             stat = float(sub.nobs * base.e_pa_e / base.e_e)
-            sargan = WaldTest(stat, dof, float(stats.chi2.sf(stat, dof)))
+            sargan = WaldTest(stat, dof, float(chi2_sf(stat, dof)))
         idx = list(range(nx))
         hw = contrast(fit.coef[idx], fit.cov[np.ix_(idx, idx)], wf.coef, wf.cov, df=dof)
     c_tests: dict[str, WaldTest | None] = {}
@@ -689,11 +690,11 @@ def hausman_taylor(
         keep = [i for i in ia if i != first_mean + j]
         restricted = _gram_iv(gram, keep, iw, iy)
         stat = max(0.0, (base.e_pa_e - restricted.e_pa_e) / scale)
-        c_tests[c] = WaldTest(stat, 1, float(stats.chi2.sf(stat, 1)))
+        c_tests[c] = WaldTest(stat, 1, float(chi2_sf(stat, 1)))
         if restricted.e_e > 0:
             rest = float(sub.nobs * restricted.e_pa_e / restricted.e_e)
             dof_r = len(means) - 1 - g2
-            rest_sargan[c] = WaldTest(rest, dof_r, float(stats.chi2.sf(rest, dof_r)))
+            rest_sargan[c] = WaldTest(rest, dof_r, float(chi2_sf(rest, dof_r)))
     return HausmanTaylor(fit, Components(sigma2_u, sigma2_e, theta), sargan, hw, c_tests, rest_sargan)
 
 
@@ -708,14 +709,14 @@ def _ht_arrays(
     nz = sub.z.shape[1]
     L = nx + len(means) + 1 + len(z1)
     K = 1 + nx + nz
-    full = np.empty((sub.nobs, L + K + 1))
+    full = np.empty((sub.nobs, L + K + 1), order="F")  # columns contiguous: filled one by one
     codes = sub.codes
     buf = np.empty(sub.nobs)
     for j in range(nx):  # loop over columns, never over units
-        np.take(np.ascontiguousarray(sub.xbar[:, j]), codes, out=buf)
+        np.take(np.ascontiguousarray(sub.xbar[:, j]), codes, out=buf, mode="clip")
         np.subtract(sub.x[:, j], buf, out=full[:, j])
     for m, c in enumerate(means):
-        np.take(np.ascontiguousarray(sub.xbar[:, sub.x_names.index(c)]), codes, out=full[:, nx + m])
+        np.take(np.ascontiguousarray(sub.xbar[:, sub.x_names.index(c)]), codes, out=full[:, nx + m], mode="clip")
     full[:, nx + len(means)] = 1.0
     for j in range(len(z1)):
         full[:, nx + len(means) + 1 + j] = sub.z[:, j]

@@ -16,9 +16,9 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from scipy import stats
 
 from auditor import models
+from auditor.pvalues import f_sf
 
 # --------------------------------------------------------------------------- critical values
 
@@ -240,23 +240,23 @@ def x2_first_stage(
     xi = [pa.x_names.index(c) for c in xcols]
     zi1 = [pa.z_names.index(c) for c in z1]
     # A = [X - X means, X1 means, 1, Z1], filled column by column
-    a = np.empty((pa.nobs, len(xi) + len(mean_cols) + 1 + len(zi1)))
+    a = np.empty((pa.nobs, len(xi) + len(mean_cols) + 1 + len(zi1)), order="F")  # columns contiguous
     for k, j in enumerate(xi):  # loop over columns, never over units
-        np.take(np.ascontiguousarray(pa.xbar[:, j]), pa.codes, out=a[:, k])
+        np.take(np.ascontiguousarray(pa.xbar[:, j]), pa.codes, out=a[:, k], mode="clip")
         np.subtract(pa.x[:, j], a[:, k], out=a[:, k])
     base = len(xi)
     for k, c in enumerate(mean_cols):
-        np.take(np.ascontiguousarray(pa.xbar[:, pa.x_names.index(c)]), pa.codes, out=a[:, base + k])
+        np.take(np.ascontiguousarray(pa.xbar[:, pa.x_names.index(c)]), pa.codes, out=a[:, base + k], mode="clip")
     a[:, base + len(mean_cols)] = 1.0
     for k, j in enumerate(zi1):
-        np.take(np.ascontiguousarray(pa.zbar[:, j]), pa.codes, out=a[:, base + len(mean_cols) + 1 + k])
+        np.take(np.ascontiguousarray(pa.zbar[:, j]), pa.codes, out=a[:, base + len(mean_cols) + 1 + k], mode="clip")
     names = [f"dev({c})" for c in xcols] + [f"mean({c})" for c in mean_cols] + ["const"] + list(z1)
     other = [f"mean({c})" for c in mean_cols] + list(z1)
     out = []
     bread = np.linalg.pinv(a.T @ a)
     for c in x2:  # loop over the few X2 columns
         j = pa.x_names.index(c)
-        target = pa.x[:, j] - th * pa.xbar[pa.codes, j]
+        target = pa.x[:, j] - th * np.take(np.ascontiguousarray(pa.xbar[:, j]), pa.codes, mode="clip")
         fit, e = models.ols(a, target, names, pa.codes, pa.n, bread=bread)
         own = fit.index([f"dev({c})"])
         rest = fit.index(other)
@@ -397,4 +397,4 @@ def f_pvalue(f_value: float | None, df: tuple[int, int] | list[int]) -> float | 
     """Upper-tail p-value of an F statistic with (df1, df2) degrees of freedom."""
     if f_value is None or df[0] <= 0 or df[1] <= 0:
         return None
-    return float(stats.f.sf(f_value, df[0], df[1]))
+    return f_sf(f_value, df[0], df[1])
