@@ -46,12 +46,24 @@ class UnitGrouper:
 
     def sums(self, values: np.ndarray) -> np.ndarray:
         """Per-unit sums of ``values`` ((N,) or (N, k)); returns (n,) or (n, k)."""
-        return np.asarray(self.indicator @ values)
+        return _product(self.indicator, values)
 
     def weighted_sums(self, weights: np.ndarray, values: np.ndarray) -> np.ndarray:
         """Per-unit sums of ``weights * values`` without forming the N x k product."""
         m = self._sparse.csr_matrix((weights[self.order], self.order, self.indptr), shape=(self.n, self.nobs))
-        return np.asarray(m @ values)
+        return _product(m, values)
+
+
+def _product(m: Any, values: np.ndarray) -> np.ndarray:
+    """``m @ values`` for a sparse ``m``; a column-major (N, k) array goes column by
+    column (the same sums in the same order), where scipy would first copy it to row
+    order."""
+    if values.ndim == 2 and not values.flags.c_contiguous and values.flags.f_contiguous:
+        out = np.empty((m.shape[0], values.shape[1]))
+        for j in range(values.shape[1]):  # a loop over columns, not units
+            out[:, j] = m @ values[:, j]
+        return out
+    return np.asarray(m @ values)
 
 
 _GROUPERS: list[tuple[np.ndarray, int, UnitGrouper]] = []

@@ -217,6 +217,9 @@ def instruments(
     may be named whole or by indicator (``soil=SD``). Raises AuditError for input
     that cannot be used.
     """
+    from auditor.pvalues import preload
+
+    preload()  # scipy.special and scipy.sparse, while the panel is read and profiled
     if settings is None:
         settings = load_settings(rules)
     regs = _names(regressors)

@@ -377,11 +377,9 @@ def _period_scale(
 def _preload_scipy_stats() -> None:
     # scipy.stats (for the KS p-values) takes a second or more to import; start it in a
     # thread so that it overlaps the base profile, whose polars work releases the GIL.
-    import sys
-    import threading
+    from auditor.pvalues import preload
 
-    if "scipy.stats" not in sys.modules:
-        threading.Thread(target=__import__, args=("scipy.stats",), daemon=True).start()
+    preload("scipy.stats")
 
 
 def compare(
