@@ -16,6 +16,7 @@ Conventions chosen here (README states the same):
 
 from __future__ import annotations
 
+import threading
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -67,17 +68,19 @@ def _product(m: Any, values: np.ndarray) -> np.ndarray:
 
 
 _GROUPERS: list[tuple[np.ndarray, int, UnitGrouper]] = []
+_GROUPERS_LOCK = threading.Lock()  # fits may run in two threads
 
 
 def grouper(codes: np.ndarray, n: int) -> UnitGrouper:
     """The UnitGrouper of ``codes`` (the same array object reuses the last few built)."""
-    for arr, size, g in _GROUPERS:
-        if arr is codes and size == n:
-            return g
-    g = UnitGrouper(codes, n)
-    _GROUPERS.insert(0, (codes, n, g))
-    del _GROUPERS[4:]
-    return g
+    with _GROUPERS_LOCK:
+        for arr, size, g in _GROUPERS:
+            if arr is codes and size == n:
+                return g
+        g = UnitGrouper(codes, n)
+        _GROUPERS.insert(0, (codes, n, g))
+        del _GROUPERS[4:]
+        return g
 
 
 def unit_means(codes: np.ndarray, n: int, values: np.ndarray, counts: np.ndarray | None = None) -> np.ndarray:

@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import dataclasses
 from collections.abc import Sequence
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -448,8 +449,13 @@ def _run(panel: Panel, outcome: str, regs: list[str], corr: list[str] | None, pe
     tests: dict[str, Any] = {"mundlak": None, "hausman_within_random": None, "overidentification": None,
                              "hausman_within_ht": None}
     components: dict[str, Any] | None = None
-    wf = bf = re = mu = None
-    comp = None
+    wf = bf = mu = None
+    # Fits that do not feed one another run side by side in a second thread (numpy
+    # releases the interpreter lock): random effects beside the roles and
+    # Hausman-Taylor, the X2 first stages beside the Z2 strength. Findings are sorted
+    # at the end, so the order they are made in does not matter.
+    pool = ThreadPoolExecutor(max_workers=1)
+    random_job = None
     if not outcome_invariant:
         wf, ew = models.within(pa)
         estimates["within"] = wf.to_dict()
@@ -463,23 +469,7 @@ def _run(panel: Panel, outcome: str, regs: list[str], corr: list[str] | None, pe
                             "flagged": [r["column"] for r in mu.per_column if r["p"] is not None and r["p"] < alpha]}
         estimates["mundlak"] = mu.fit.to_dict()
         if wf is not None:
-            re, comp = models.random_effects(pa, wf, bf)
-            estimates["random"] = re.to_dict()
-            components = comp.to_dict()
-            if x_user:
-                h = models.hausman_within_random(wf, re, x_user)
-                tests["hausman_within_random"] = h.to_dict()
-                if h.p is not None and h.p < test_alpha:
-                    findings.append(make(
-                        "random-effects-rejected", settings,
-                        f"The Hausman test rejects random effects (p = {h.p:.3g}), so its estimates of the "
-                        "time-varying coefficients are likely biased and within or Hausman-Taylor should be used.",
-                    ))
-                if h.positive_definite is False:
-                    findings.append(make(
-                        "hausman-not-positive-definite", settings,
-                        f"In the Hausman test {h.note}, so the test has fewer degrees of freedom than coefficients.",
-                    ))
+            random_job = pool.submit(models.random_effects, pa, wf, bf)
     mundlak_p: dict[str, float | None] = {}
     if mu is not None:
         mundlak_p = {r["column"]: r["p"] for r in mu.per_column}
@@ -529,10 +519,28 @@ def _run(panel: Panel, outcome: str, regs: list[str], corr: list[str] | None, pe
                 examples=[{"column": r["column"], "p": float(f"{r['p']:.3g}")} for r in mu.per_column
                           if r["p"] is not None and r["p"] < alpha][:n_examples],
             ))
-    # ---- Hausman-Taylor
+    # ---- Hausman-Taylor (beside random effects, when both are fitted)
     ht = None
-    if order_met and comp is not None and not too_few:
+    if order_met and random_job is not None:
         ht = models.hausman_taylor(pa, x1, x2, z1, z2, within_fit=wf, mean_instruments=mean_instr)
+    if random_job is not None:
+        re, comp = random_job.result()
+        estimates["random"] = re.to_dict()
+        components = comp.to_dict()
+        if x_user:
+            h = models.hausman_within_random(wf, re, x_user)
+            tests["hausman_within_random"] = h.to_dict()
+            if h.p is not None and h.p < test_alpha:
+                findings.append(make(
+                    "random-effects-rejected", settings,
+                    f"The Hausman test rejects random effects (p = {h.p:.3g}), so its estimates of the "
+                    "time-varying coefficients are likely biased and within or Hausman-Taylor should be used.",
+                ))
+            if h.positive_definite is False:
+                findings.append(make(
+                    "hausman-not-positive-definite", settings,
+                    f"In the Hausman test {h.note}, so the test has fewer degrees of freedom than coefficients.",
+                ))
     if ht is not None:
         estimates["hausman_taylor"] = ht.fit.to_dict()
         if ht.sargan is not None:
@@ -593,6 +601,9 @@ def _run(panel: Panel, outcome: str, regs: list[str], corr: list[str] | None, pe
     cands: list[dict[str, Any]] = []
     sugg: list[dict[str, Any]] = []
     x2_rows: list[dict[str, Any]] = []
+    x2_job = None
+    if x2 and ht is not None:
+        x2_job = pool.submit(strength.x2_first_stage, pa, x1, x2, z1, ht.components.theta, means=mean_instr)
     if z2 and not too_few:
         z_rows, cd = strength.z2_strength(pa, mean_instr, z1, z2, size=size, rule_of_thumb=thumb,
                                           order_met=order_met)
@@ -615,8 +626,8 @@ def _run(panel: Panel, outcome: str, regs: list[str], corr: list[str] | None, pe
                                           rule_of_thumb=thumb, max_exhaustive=int(get("exhaustive_candidates")),
                                           c_p=c_tests, invalid=invalid)
     within_share = {c: share_of.get(c) for c in pa.x_names}
-    if x2 and ht is not None:
-        x2_rows = strength.x2_first_stage(pa, x1, x2, z1, ht.components.theta, means=mean_instr)
+    if x2_job is not None:
+        x2_rows = x2_job.result()
         for r in x2_rows:
             share = within_share.get(r["endogenous"])
             r["within_share"] = share
@@ -627,6 +638,8 @@ def _run(panel: Panel, outcome: str, regs: list[str], corr: list[str] | None, pe
                     "deviation is a weak instrument and its Hausman-Taylor coefficient is imprecise.",
                     column=r["endogenous"],
                 ))
+
+    pool.shutdown()
 
     # ---- the document
     roles = {"X1": x1, "X2": x2, "Z1": z1, "Z2": z2}
