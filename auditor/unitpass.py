@@ -34,7 +34,7 @@ from __future__ import annotations
 import os
 import threading
 from collections.abc import Callable
-from concurrent.futures import ThreadPoolExecutor
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -153,23 +153,26 @@ def run_frame(
     u = frame[UNIT_ID].to_numpy().astype(np.intp)
     t = frame[PERIOD_ID].to_numpy().astype(np.intp)
     unit_rows = np.bincount(u, minlength=n)
-    period_rows = np.bincount(t, minlength=n_periods)
+    t_sorted = bool(t.size < 2 or (t[1:] >= t[:-1]).all())
+    if t_sorted:
+        period_rows = np.diff(np.searchsorted(t, np.arange(n_periods + 1)))
+    else:
+        period_rows = np.bincount(t, minlength=n_periods)
 
     schema = frame.schema
     numbers = [c for c in columns if _is_number(schema[c])]
     others = [c for c in columns if c not in set(numbers)]
-    ctx = _Context(
-        u, t, n, n_periods, unit_rows, period_rows, examples, tolerance,
-        t_sorted=bool(u.size < 2 or (t[1:] >= t[:-1]).all()),
-        rep_row=_representatives(u, n) if others else None,
-    )  # fmt: skip
     # Every column is independent work: text coding and coded statistics, and the
     # number pass with its exact value count, are tasks for a pool of threads (numpy
     # and polars release the interpreter lock), beside the count matrix's structure
     # and period system. Each task adds in row order: results do not depend on the
     # schedule.
     with ThreadPoolExecutor(max_workers=workers()) as pool:
-        grid = pool.submit(_grid, u, t, n, n_periods, unit_rows, period_rows, ctx.t_sorted)
+        ctx = _Context(
+            u, t, n, n_periods, unit_rows, period_rows, examples, tolerance, t_sorted=t_sorted,
+            rep_row=pool.submit(_representatives, u, n) if others else None,
+        )  # fmt: skip
+        grid = pool.submit(_grid, u, t, n, n_periods, unit_rows, period_rows, t_sorted)
         jobs = {c: pool.submit(_other_column, ctx, frame[c], slow, count_values) for c in others}
         for c in numbers:
             jobs[c] = pool.submit(_number, ctx, frame[c], None if shifts is None else shifts[c], count_values)
@@ -283,7 +286,7 @@ class _Context:
     examples: int
     tolerance: float
     t_sorted: bool = False  # rows ordered by period: per-period sums by segments
-    rep_row: np.ndarray | None = None  # see _representatives (when text columns exist)
+    rep_row: Future[np.ndarray] | None = None  # see _representatives (when text columns exist)
     local: threading.local = field(default_factory=threading.local)  # per-thread buffers
 
 
@@ -706,7 +709,8 @@ def _coded(
     else:
         uu, cc = ctx.u, codes
         n_i = ctx.unit_rows
-        ref = np.take(codes, ctx.rep_row, mode="clip")
+        assert ctx.rep_row is not None
+        ref = np.take(codes, ctx.rep_row.result(), mode="clip")
     distinct = top = 0
     if count_values:
         tally = np.bincount(cc, minlength=width)

@@ -682,8 +682,11 @@ def compute_variation(panel: Panel, settings: Settings, passes: Passes | None = 
             "binary": False,
         }
         if c in numeric and st.mean_i is not None and st.m2_i is not None:
-            seen = st.n_i > 0
-            rec.update(decompose(st.n_i[seen], st.mean_i[seen], st.m2_i[seen]))
+            if st.n_i.size and int(st.n_i.min()) > 0:  # every unit has a value: no copies
+                rec.update(decompose(st.n_i, st.mean_i, st.m2_i))
+            else:
+                seen = st.n_i > 0
+                rec.update(decompose(st.n_i[seen], st.mean_i[seen], st.m2_i[seen]))
             if rec["mean"] is not None:
                 rec["mean"] = rec["mean"] + st.shift
             rec["binary"] = bool(st.distinct == 2 and st.vmin == 0.0 and st.vmax == 1.0)
