@@ -111,14 +111,26 @@ def integer_codes(key: pl.Series) -> tuple[pl.Series, pl.Series] | None:
     lo, hi = int(key.min()), int(key.max())
     if hi - lo > 4 * key.len() + 1024:
         return None
-    raw = key.to_numpy()
-    offset = (raw - raw.dtype.type(lo)).astype(np.intp)  # in the key's own type: no overflow
+    offset = _offsets(key, lo)
     present = np.zeros(hi - lo + 1, dtype=bool)
     present[offset] = True
-    code_of = np.cumsum(present, dtype=np.int64) - 1
-    codes = pl.Series(UNIT_ID, code_of[offset].astype(np.uint32))
+    code_of = np.cumsum(present, dtype=np.uint32)  # 1-based at the keys present
+    codes = np.take(code_of, offset, mode="clip")
+    codes -= np.uint32(1)
     keys = (pl.Series(key.name, np.flatnonzero(present)) + lo).cast(key.dtype)
-    return codes, keys
+    return pl.Series(UNIT_ID, codes), keys
+
+
+def _offsets(values: pl.Series, lo: int) -> np.ndarray:
+    """``values - lo`` as row indices (intp), computed in the values' own type (no
+    overflow: every value is at least ``lo``) and in place where the array is ours."""
+    raw = values.to_numpy()
+    if lo:
+        if raw.flags.writeable:
+            np.subtract(raw, raw.dtype.type(lo), out=raw)
+        else:
+            raw = raw - raw.dtype.type(lo)
+    return raw.astype(np.intp, copy=False)
 
 
 def _integer_lookup(values: pl.Series, keys: pl.Series, codes: pl.Series) -> pl.Series | None:
@@ -132,8 +144,7 @@ def _integer_lookup(values: pl.Series, keys: pl.Series, codes: pl.Series) -> pl.
     table = np.zeros(hi - lo + 1, dtype=np.uint32)
     k = keys.to_numpy()
     table[(k - k.dtype.type(lo)).astype(np.intp)] = codes.to_numpy()
-    raw = values.to_numpy()
-    return pl.Series(codes.name, table[(raw - raw.dtype.type(lo)).astype(np.intp)])
+    return pl.Series(codes.name, np.take(table, _offsets(values, lo), mode="clip"))
 
 
 def parse_unit(unit: str | Sequence[str]) -> tuple[str, ...]:

@@ -283,3 +283,28 @@ def test_int64_ids_beyond_2_to_the_53_in_parquet_keep_their_exact_value(tmp_path
     assert doc["panel"]["units"] == 2
     dup = _checks(doc)[("duplicate-keys", None)]
     assert dup["examples"][0]["orchard_id"] == 9007199254740993
+
+
+def test_profiling_leaves_the_callers_frames_unchanged():
+    # integer keys far from zero are coded in place on arrays the profile owns; a
+    # pandas or polars frame handed in (zero-copy to numpy) must come back untouched
+    import pandas as pd
+    import polars as pl
+
+    import auditor
+
+    rng = np.random.default_rng(8)
+    df = pd.DataFrame(
+        {
+            "farm": np.repeat(np.arange(5_000, 5_060), 5),
+            "year": np.tile(np.arange(2010, 2015), 60),
+            "yield_t": rng.normal(size=300),
+        }
+    )
+    before = df.copy()
+    frame = pl.from_pandas(df)
+    frame_before = frame.clone()
+    auditor.profile(df, unit="farm", time="year")
+    auditor.profile(frame, unit="farm", time="year")
+    assert df.equals(before)
+    assert frame.equals(frame_before)
