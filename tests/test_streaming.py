@@ -134,6 +134,7 @@ def test_streaming_with_missing_and_non_finite_values_equals_in_memory(tmp_path,
         pl.when(pl.int_range(pl.len()) % 13 == 5).then(None).otherwise(pl.col("k")).cast(pl.Int64).alias("k"),
         pl.when(pl.int_range(pl.len()) % 11 == 7).then(None).otherwise(pl.col("flag")).alias("flag"),
         pl.when(pl.int_range(pl.len()) % 19 == 2).then(None).otherwise(pl.col("crop")).alias("crop"),
+        pl.when(pl.int_range(pl.len()) % 23 == 4).then(None).otherwise(pl.col("x32")).alias("x32"),
     ).sample(fraction=0.9, seed=5)
     path = tmp_path / "farms.parquet"
     df.write_parquet(path)
@@ -141,5 +142,5 @@ def test_streaming_with_missing_and_non_finite_values_equals_in_memory(tmp_path,
     streamed = _doc(path, True, "farm", "year")
     whole = _doc(path, False, "farm", "year")
     cols = {c["name"]: c for c in streamed["columns"]}
-    assert cols["x"]["missing_share"] > 0 and cols["k"]["missing_share"] > 0
+    assert cols["x"]["missing_share"] > 0 and cols["k"]["missing_share"] > 0 and cols["x32"]["missing_share"] > 0
     assert _approx(streamed, whole)
