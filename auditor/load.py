@@ -142,8 +142,7 @@ def _integer_lookup(values: pl.Series, keys: pl.Series, codes: pl.Series) -> pl.
     if hi - lo > 4 * values.len() + 1024:
         return None
     table = np.zeros(hi - lo + 1, dtype=np.uint32)
-    k = keys.to_numpy()
-    table[(k - k.dtype.type(lo)).astype(np.intp)] = codes.to_numpy()
+    table[_offsets(keys, lo)] = codes.to_numpy()
     return pl.Series(codes.name, np.take(table, _offsets(values, lo), mode="clip"))
 
 

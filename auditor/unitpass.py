@@ -154,10 +154,7 @@ def run_frame(
     t = frame[PERIOD_ID].to_numpy().astype(np.intp)
     unit_rows = np.bincount(u, minlength=n)
     t_sorted = bool(t.size < 2 or (t[1:] >= t[:-1]).all())
-    if t_sorted:
-        period_rows = np.diff(np.searchsorted(t, np.arange(n_periods + 1)))
-    else:
-        period_rows = np.bincount(t, minlength=n_periods)
+    period_rows = period_sums(t, n_periods, t_sorted)
 
     schema = frame.schema
     numbers = [c for c in columns if _is_number(schema[c])]
@@ -209,7 +206,7 @@ def _grid(
 
 def workers() -> int:
     """Threads for the column tasks: the cores this process may run on, at most
-    :data:`MAX_WORKERS` (each holds two row-length work buffers)."""
+    :data:`MAX_WORKERS` (each holds three row-length work buffers)."""
     try:
         cores = len(os.sched_getaffinity(0))
     except AttributeError:  # pragma: no cover - not Linux
@@ -300,18 +297,19 @@ def _buffers(ctx: _Context, size: int) -> tuple[np.ndarray, np.ndarray, np.ndarr
     return a[:size], b[:size], x
 
 
-def _period_sums(ctx: _Context, tt: np.ndarray, w: np.ndarray | None = None) -> np.ndarray:
+def period_sums(tt: np.ndarray, n_periods: int, t_sorted: bool, w: np.ndarray | None = None) -> np.ndarray:
     """Per-period sums of ``w`` (counts when None) over rows with periods ``tt``.
 
-    Rows ordered by period (one file per wave) are summed by contiguous segments:
-    bincount over a few bins that repeat row after row waits on its own stores.
+    Rows ordered by period (``t_sorted``: one file per wave) are summed by contiguous
+    segments: bincount over a few bins that repeat row after row waits on its own
+    stores.
     """
-    if not ctx.t_sorted or tt.size == 0:
-        return np.bincount(tt, weights=w, minlength=ctx.n_periods)
-    bounds = np.searchsorted(tt, np.arange(ctx.n_periods + 1))
+    if not t_sorted or tt.size == 0:
+        return np.bincount(tt, weights=w, minlength=n_periods)
+    bounds = np.searchsorted(tt, np.arange(n_periods + 1))
     if w is None:
         return np.diff(bounds)
-    out = np.zeros(ctx.n_periods)
+    out = np.zeros(n_periods)
     full = bounds[:-1] < bounds[1:]
     out[full] = np.add.reduceat(w, bounds[:-1][full])
     return out
@@ -349,20 +347,18 @@ def _structure(counts: np.ndarray, unit_rows: np.ndarray) -> pl.DataFrame:
 def value_counts(s: pl.Series) -> tuple[int, int]:
     """(distinct values, rows of the most common one) of a column, NaN as missing.
 
-    Floats, integers and booleans are sorted with numpy (equal neighbours are one
-    value, the longest run is the most common value); other columns (text, dates,
-    decimals) are hashed by polars.
+    Floats, integers and booleans are sorted with numpy (:func:`column_facts`:
+    equal neighbours are one value, the longest run is the most common value);
+    other columns (text, dates, decimals) are hashed by polars.
     """
-    if not _is_number(s.dtype) or s.dtype.is_decimal():
-        v = s.drop_nulls()
-        if v.len() == 0:
-            return 0, 0
-        distinct = v.n_unique()
-        return (distinct, 1) if distinct == v.len() else (distinct, int(v.unique_counts().max()))
-    v = (s.fill_nan(None) if s.dtype.is_float() else s).drop_nulls()
+    facts = column_facts(s)
+    if facts is not None:
+        return facts.distinct, facts.top
+    v = s.drop_nulls()
     if v.len() == 0:
         return 0, 0
-    return _runs(np.sort(v.cast(pl.Float64 if s.dtype == pl.Boolean else v.dtype).to_numpy()))
+    distinct = v.n_unique()
+    return (distinct, 1) if distinct == v.len() else (distinct, int(v.unique_counts().max()))
 
 
 @dataclass(frozen=True)
@@ -487,7 +483,7 @@ def _number(ctx: _Context, s: pl.Series, shift: float | None = None, count_value
         changing = _float_changing(x, finite, all_finite, ctx, n_i, mean_i, m2_i, shift, vmin, vmax)
     rhs = wss = system = None
     if partial or changing.any():
-        rhs = _period_sums(ctx, tt, dev)
+        rhs = period_sums(tt, ctx.n_periods, ctx.t_sorted, dev)
         wss = float(m2_i.sum())
         if not all_finite:
             system = period_matrix(uu, tt, ctx.n_units, ctx.n_periods)
@@ -630,7 +626,7 @@ def _per_period(ctx: _Context, present: np.ndarray | None) -> np.ndarray:
     """Non-missing values per period (``present`` None: every row has one)."""
     if present is None:
         return ctx.period_rows
-    return _period_sums(ctx, ctx.t[present])
+    return period_sums(ctx.t[present], ctx.n_periods, ctx.t_sorted)
 
 
 def _one_value(ctx: _Context, v: np.ndarray, present: np.ndarray | None) -> bool:

@@ -392,10 +392,11 @@ def _partitioned_passes(panel: Panel, tol: float, k: int) -> Passes:
     """A streaming profile read one partition of units at a time, in bounded memory.
 
     Each column read whole first, one or two in memory at a time: its missing and
-    non-finite counts, first finite value, extremes and distinct values; then the units in contiguous ranges of their sorted key: each range's rows
-    are read, coded and run through the in-memory numpy pass, and the per-unit arrays
-    are joined in unit order, so every per-unit figure is the one an in-memory
-    profile computes. Per-period counts, extremes and sums and the period dummies'
+    non-finite counts, first finite value, extremes and distinct values. Then the
+    units in contiguous ranges of their sorted key: each range's rows are read,
+    coded and run through the in-memory numpy pass, and the per-unit arrays are
+    joined in unit order, so every per-unit figure is the one an in-memory profile
+    computes. Per-period counts, extremes and sums and the period dummies'
     matrices add up across ranges.
     """
     assert panel.by_period is not None

@@ -46,6 +46,7 @@ from auditor.errors import AuditError, fail, short_list
 from auditor.findings import Finding, make, sort_findings
 from auditor.load import INTERNAL, UNIT_ID, Panel, load_panel, parse_unit
 from auditor.periods import grid_step, scale_for
+from auditor.pvalues import preload
 
 SECTION = "compare"
 POS = "__pa_pos"  # the period's position on the scale shared by base and new
@@ -389,14 +390,6 @@ def _period_scale(
 # --- the comparison ---------------------------------------------------------------------
 
 
-def _preload_scipy_stats() -> None:
-    # scipy.stats (for the KS p-values) takes a second or more to import; start it in a
-    # thread so that it overlaps the base profile, whose polars work releases the GIL.
-    from auditor.pvalues import preload
-
-    preload("scipy.stats")
-
-
 def compare(
     base: Any,
     new: Any,
@@ -415,7 +408,9 @@ def compare(
     fractions, the PSI and KS statistic dimensionless. Raises AuditError (exit 2)
     when a side cannot serve (no common keys, an empty new wave, unreadable files).
     """
-    _preload_scipy_stats()
+    # scipy.stats (for the KS p-values) takes a second or more to import: in a thread,
+    # beside the base profile, whose polars work releases the GIL
+    preload("scipy.stats")
     if settings is None:
         settings = load_settings(rules)
     units = parse_unit(unit)
