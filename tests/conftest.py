@@ -13,6 +13,21 @@ import pytest
 ROOT = Path(__file__).resolve().parent.parent
 
 
+def approx_equal(a, b, rel: float, abs_: float) -> bool:
+    """Two JSON documents equal, floats to ``rel`` relative (``abs_`` absolute near zero)."""
+    if isinstance(a, dict):
+        return isinstance(b, dict) and a.keys() == b.keys() and all(approx_equal(a[k], b[k], rel, abs_) for k in a)
+    if isinstance(a, list):
+        return (
+            isinstance(b, list)
+            and len(a) == len(b)
+            and all(approx_equal(x, y, rel, abs_) for x, y in zip(a, b, strict=True))
+        )
+    if isinstance(a, float) and isinstance(b, float):
+        return a == pytest.approx(b, rel=rel, abs=abs_)
+    return a == b
+
+
 def run_cli(*args: str, timeout: float = 120, env: dict[str, str] | None = None) -> subprocess.CompletedProcess[str]:
     """Run ``panel-audit ARGS`` in a subprocess (from the source tree) and capture its output."""
     full_env = dict(os.environ)

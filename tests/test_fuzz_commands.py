@@ -60,6 +60,18 @@ def _same(a, b, path="doc", rel=1e-12):
         assert a == b, (path, a, b)
 
 
+def _document(run) -> dict | None:
+    """``run()``'s result as a strict-JSON document, or None after a catalogued exit-2
+    error: a command may refuse a panel, never crash on it."""
+    try:
+        doc = run().to_dict()
+    except AuditError as err:
+        assert err.code in CATALOGUE
+        return None
+    json.dumps(doc, allow_nan=False)
+    return doc
+
+
 def _shuffled(frame: pl.DataFrame, seed: int) -> pl.DataFrame:
     order = np.random.default_rng(seed).permutation(frame.height)
     return frame[order]
@@ -74,13 +86,9 @@ def _shuffled(frame: pl.DataFrame, seed: int) -> pl.DataFrame:
 def test_compare_on_random_waves(base, new, seed):
     from auditor.waves import compare
 
-    try:
-        result = compare(base, new, unit=UNIT, time=TIME)
-    except AuditError as err:
-        assert err.code in CATALOGUE
+    doc = _document(lambda: compare(base, new, unit=UNIT, time=TIME))
+    if doc is None:
         return
-    doc = result.to_dict()
-    json.dumps(doc, allow_nan=False)
     u = doc["units"]
     base_ids, new_ids = set(base[UNIT]), set(new[UNIT])
     assert (u["base"], u["new"]) == (len(base_ids), len(new_ids))
@@ -122,12 +130,7 @@ def test_instruments_never_crashes_even_on_tiny_panels(frame):
     # freedom): a catalogued exit-2 error or a strict-JSON document, never an exception.
     from auditor.readiness import instruments
 
-    try:
-        doc = instruments(frame, **KW).to_dict()
-    except AuditError as err:
-        assert err.code in CATALOGUE
-        return
-    json.dumps(doc, allow_nan=False)
+    _document(lambda: instruments(frame, **KW))
 
 
 @FUZZ
@@ -136,13 +139,9 @@ def test_instruments_on_random_panels(frame, seed):
     from auditor.readiness import instruments
 
     kw = KW
-    try:
-        result = instruments(frame, **kw)
-    except AuditError as err:
-        assert err.code in CATALOGUE
+    doc = _document(lambda: instruments(frame, **kw))
+    if doc is None:
         return
-    doc = result.to_dict()
-    json.dumps(doc, allow_nan=False)
     roles = doc["roles"]
     assert {c for cols in roles.values() for c in cols if c != "const"} <= {"x1", "x2", "z"}
     for s in doc["strength"]:

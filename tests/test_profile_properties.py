@@ -7,6 +7,7 @@ import json
 import numpy as np
 import polars as pl
 import pytest
+from conftest import approx_equal
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
@@ -45,13 +46,7 @@ def _doc(result) -> dict:
 
 
 def _approx_equal(a, b, rel: float = 1e-9) -> bool:
-    if isinstance(a, dict):
-        return a.keys() == b.keys() and all(_approx_equal(a[k], b[k], rel) for k in a)
-    if isinstance(a, list):
-        return len(a) == len(b) and all(_approx_equal(x, y, rel) for x, y in zip(a, b, strict=True))
-    if isinstance(a, float) and isinstance(b, float):
-        return a == pytest.approx(b, rel=rel, abs=1e-12)
-    return a == b
+    return approx_equal(a, b, rel=rel, abs_=1e-12)
 
 
 @settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])
