@@ -429,9 +429,9 @@ def _number(ctx: _Context, s: pl.Series, shift: float | None = None, count_value
 
     ``count_values``: also count its distinct values and the rows of the most common
     one (a tally for integers of a small range, a sort otherwise); a partition of
-    the units leaves them at 0. ``shift``: the value subtracted before summing
-    (default: the first finite value); given, the column is part of a partition and
-    the R2 inputs are always computed.
+    the units leaves them at 0. ``shift``: the value the unit means are reported
+    relative to (default: the first finite value); given, the column is part of a
+    partition and the R2 inputs are always computed.
     """
     x = _floats(s, _buffers(ctx, 0)[2])
     whole = not s.dtype.is_float()  # integers and booleans
@@ -471,11 +471,17 @@ def _number(ctx: _Context, s: pl.Series, shift: float | None = None, count_value
     partial = shift is not None
     shift = float(xf[0]) if shift is None else shift
     vmin, vmax = extremes if all_finite and extremes is not None else (float(xf.min()), float(xf.max()))
-    xx = np.subtract(xf, shift, out=buf_a)
+    # Each unit is centred on one of its own values (the last in row order), not on
+    # the column's shift: x - shift rounds to eps * |x - shift|, which for a unit far
+    # from the shift would swamp its within deviations (methods.md, section 2).
+    ref = np.zeros(ctx.n_units)
+    ref[uu] = xf
+    xx = np.subtract(xf, np.take(ref, uu, out=buf_a, mode="clip"), out=buf_a)  # take: without the GIL
     sums = np.bincount(uu, weights=xx, minlength=ctx.n_units)
-    mean_i = np.divide(sums, n_i, out=np.zeros(ctx.n_units), where=n_i > 0)
-    dev = np.subtract(xx, np.take(mean_i, uu, out=buf_b, mode="clip"), out=buf_b)  # take: without the GIL
+    local = np.divide(sums, n_i, out=np.zeros(ctx.n_units), where=n_i > 0)
+    dev = np.subtract(xx, np.take(local, uu, out=buf_b, mode="clip"), out=buf_b)
     m2_i = np.bincount(uu, weights=np.multiply(dev, dev, out=buf_a), minlength=ctx.n_units)
+    mean_i = np.where(n_i > 0, (ref - shift) + local, 0.0)  # relative to the column's shift
 
     if whole and max(abs(vmin), abs(vmax)) < 2.0**52:
         changing = m2_i > 0

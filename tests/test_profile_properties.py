@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import math
 
 import numpy as np
 import polars as pl
@@ -118,6 +119,28 @@ def test_large_offset_gives_the_same_within_share_as_the_noise_alone() -> None:
     # methods.md section 3: a float unit "changes" only when (max - min) > 1e-9 * (1 + |mean|); at 1e9
     # a spread of 1e-3 is below that relative tolerance, so the offset column counts as time-invariant.
     assert rows["big"]["kind"] == "time-invariant"
+
+
+def test_within_sd_does_not_depend_on_which_unit_comes_first() -> None:
+    # methods.md section 2: within deviations must not be rounded on the scale of a value from
+    # another unit. Oracle: the within sd from each unit's own deviations in exact rational
+    # arithmetic (fractions), rounded once.
+    from fractions import Fraction
+
+    rows = {"p5": [32768.0], "p4": [0.0, -0.99999], "p6": [0.0], "p7": [1.5, 1.25, 1.75]}
+    unit = [u for u, xs in rows.items() for _ in xs]
+    x = [v for xs in rows.values() for v in xs]
+    wave = [w for xs in rows.values() for w in range(len(xs))]
+    wss = Fraction(0)
+    for xs in rows.values():
+        m = sum(map(Fraction, xs)) / len(xs)
+        wss += sum((Fraction(v) - m) ** 2 for v in xs)
+    expected = math.sqrt(wss / (len(x) - len(rows)))
+    for order in (range(len(x)), reversed(range(len(x)))):  # the far value first, then last
+        idx = list(order)
+        df = pl.DataFrame({"u": [unit[i] for i in idx], "t": [wave[i] for i in idx], "x": [x[i] for i in idx]})
+        got = {d["name"]: d for d in auditor.profile(df, "u", "t").columns.to_dicts()}["x"]["within_sd"]
+        assert got == pytest.approx(expected, rel=1e-14)
 
 
 def test_age_growing_by_one_is_absorbed_in_an_unbalanced_panel() -> None:
