@@ -90,6 +90,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--rules", required=True, metavar="FILE", help="the panel contract")
     p.add_argument("--unit", metavar="COL[,COL...]", help="unit key (default: the contract's)")
     p.add_argument("--time", metavar="COL", help="period key (default: the contract's)")
+    p.add_argument("--against", metavar="BASE",
+                   help="the panel so far (a file, folder or glob): also judge the rules that span waves across the boundary")
     p.add_argument("--json", action="store_true")
     p.add_argument("--debug", action="store_true")
 
@@ -194,7 +196,7 @@ def _cmd_check(args: argparse.Namespace) -> int:
     from auditor.report.text_check import render
     from auditor.rules import check
 
-    result = check(_data(args), rules=args.rules, unit=args.unit, time=args.time)
+    result = check(_data(args), rules=args.rules, unit=args.unit, time=args.time, against=args.against)
     _print_result(args, result, render)
     return 0 if result.passed else 1
 

@@ -10,6 +10,7 @@ has passed this check.
 
 from __future__ import annotations
 
+import math
 import re
 from dataclasses import dataclass, field
 from datetime import date, datetime
@@ -48,6 +49,22 @@ COLUMN_KEYS: dict[str, str] = {
     "invariant": "true or false",
     "monotone": "one of " + ", ".join(MONOTONE),
     "max_change": "a number, at least 0",
+    "max_change_per_period": "a number, at least 0",
+    "follows_period": "true or false",
+}
+
+#: The value families each rule can run on (``type_family`` of the column's dtype).
+NUMERIC_FAMILIES = ("integer", "float")
+DATE_FAMILIES = ("date", "datetime")
+#: Declared types and the value families they accept.
+TYPE_FAMILIES: dict[str, tuple[str, ...]] = {
+    "integer": ("integer",),
+    "float": ("float",),
+    "number": NUMERIC_FAMILIES,
+    "text": ("text",),
+    "boolean": ("boolean",),
+    "date": ("date",),
+    "datetime": ("datetime",),
 }
 
 _RANGE_KEYS = {"first": "a period label", "last": "a period label"}
@@ -88,6 +105,47 @@ class ColumnRules:
     invariant: bool = False
     monotone: str | None = None
     max_change: float | None = None
+    max_change_per_period: float | None = None
+    follows_period: bool = False
+
+    def needs(self) -> dict[str, tuple[tuple[str, ...], str]]:
+        """Each stated rule that runs only on some value families: rule -> (families, what they are).
+
+        ``min``/``max`` need numbers (or dates, for a date bound), ``pattern`` text,
+        ``monotone`` numbers or dates, ``max_change`` and ``max_change_per_period``
+        numbers, ``allowed`` the family of its values (numbers, text, booleans or
+        dates; a mixed list runs on any column).
+        """
+        out: dict[str, tuple[tuple[str, ...], str]] = {}
+        for key in ("min", "max"):
+            v = getattr(self, key)
+            if v is not None:
+                out[key] = (DATE_FAMILIES, "a date column") if isinstance(v, date) else (NUMERIC_FAMILIES, "a numeric column")
+        if self.allowed is not None:
+            fam = allowed_family(self.allowed)
+            if fam is not None:
+                out["allowed"] = fam
+        if self.pattern is not None:
+            out["pattern"] = (("text",), "a text column")
+        if self.monotone is not None:
+            out["monotone"] = ((*NUMERIC_FAMILIES, *DATE_FAMILIES), "a numeric or date column")
+        for key in ("max_change", "max_change_per_period"):
+            if getattr(self, key) is not None:
+                out[key] = (NUMERIC_FAMILIES, "a numeric column")
+        return out
+
+
+def allowed_family(values: tuple[Any, ...]) -> tuple[tuple[str, ...], str] | None:
+    """The value families an ``allowed`` list can be checked on, or None for a mixed list."""
+    if all(isinstance(v, bool) for v in values):
+        return ("boolean",), "a boolean column"
+    if all(_is_number(v) for v in values):
+        return NUMERIC_FAMILIES, "a numeric column"
+    if all(isinstance(v, str) for v in values):
+        return ("text",), "a text column"
+    if all(isinstance(v, date) for v in values):
+        return DATE_FAMILIES, "a date column"
+    return None
 
 
 @dataclass(frozen=True)
@@ -112,7 +170,13 @@ def _is_number(v: Any) -> bool:
     return isinstance(v, int | float) and not isinstance(v, bool)
 
 
+def _is_finite_number(v: Any) -> bool:
+    return _is_number(v) and math.isfinite(v)
+
+
 def _is_scalar(v: Any) -> bool:
+    if isinstance(v, float) and not math.isfinite(v):
+        return False  # NaN counts as missing and infinities bound nothing: never a label or a code
     return isinstance(v, str | int | float | bool | date | datetime)
 
 
@@ -164,7 +228,7 @@ class _Reader:
         return int(value)
 
     def share(self, value: Any, keys: tuple[str, ...]) -> float:
-        if not _is_number(value) or not 0 <= value <= 1:
+        if not _is_finite_number(value) or not 0 <= value <= 1:
             raise self.bad(keys, "a share between 0 and 1", value)
         return float(value)
 
@@ -248,11 +312,12 @@ class _Reader:
                 if v not in TYPES:
                     raise self.bad(keys, COLUMN_KEYS[key], v)
                 out[key] = v
-            elif key in ("required", "unique", "invariant"):
+            elif key in ("required", "unique", "invariant", "follows_period"):
                 out[key] = self.flag(v, keys)
             elif key in ("min", "max"):
-                if not (_is_number(v) or isinstance(v, date | datetime)):
-                    raise self.bad(keys, COLUMN_KEYS[key], v)
+                if not (_is_finite_number(v) or isinstance(v, date | datetime)):
+                    expected = "a finite number or a date" if _is_number(v) else COLUMN_KEYS[key]
+                    raise self.bad(keys, expected, v)
                 out[key] = v
             elif key == "allowed":
                 if not isinstance(v, list) or not v or not all(_is_scalar(x) for x in v):
@@ -272,9 +337,9 @@ class _Reader:
                 if v not in MONOTONE:
                     raise self.bad(keys, COLUMN_KEYS[key], v)
                 out[key] = v
-            elif key == "max_change":
-                if not _is_number(v) or v < 0:
-                    raise self.bad(keys, COLUMN_KEYS[key], v)
+            elif key in ("max_change", "max_change_per_period"):
+                if not _is_finite_number(v) or v < 0:
+                    raise self.bad(keys, "a finite number, at least 0", v)
                 out[key] = float(v)
         lo, hi = out.get("min"), out.get("max")
         if lo is not None and hi is not None:
@@ -282,7 +347,26 @@ class _Reader:
                 raise self.bad((*base, "max"), "of the same kind as 'min' (both numbers or both dates)", hi)
             if _as_comparable(lo) > _as_comparable(hi):
                 raise self.bad((*base, "max"), f"at least the minimum {lo!r}", hi)
-        return ColumnRules(**out)
+        rules = ColumnRules(**out)
+        self.consistent(rules)
+        return rules
+
+    def consistent(self, col: ColumnRules) -> None:
+        """Refuse rules of one column that no column could satisfy together: a rule that
+        needs another type than the declared one, or two rules that need different types."""
+        needs = col.needs()
+        declared = TYPE_FAMILIES.get(col.type or "")
+        possible: set[str] | None = None
+        for key, (families, what) in needs.items():
+            if declared is not None and not set(declared) & set(families):
+                raise fail("contract-rule-conflict", path=self.path, line=self.line("columns", col.name, key),
+                           key=key, column=col.name, expected=what, other=f"'type: {col.type}'")
+            if possible is not None and not possible & set(families):
+                earlier = next(k for k, (f, _) in needs.items() if not set(f) & set(families))
+                raise fail("contract-rule-conflict", path=self.path, line=self.line("columns", col.name, key),
+                           key=key, column=col.name, expected=what,
+                           other=f"rule '{earlier}' ({needs[earlier][1]})")
+            possible = set(families) if possible is None else possible & set(families)
 
 
 def _as_comparable(v: Any) -> Any:

@@ -88,9 +88,9 @@ CATALOGUE: dict[str, str] = {
         "--{key} {given} differs from the {key} key '{declared}' in rules file '{path}'; "
         "drop the option or change the file"
     ),
-    "contract-rule-kind": (
+    "contract-rule-conflict": (
         "rules file '{path}' line {line}: rule '{key}' of column '{column}' needs {expected}, "
-        "but the column holds {dtype}"
+        "which {other} rules out; no column can meet both"
     ),
     "contract-repeated-key": "rules file '{path}' line {line}: key '{key}' appears twice in {where}; keep one",
     "contract-engine": (

@@ -18,7 +18,7 @@ from __future__ import annotations
 
 import math
 import time as _time
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from datetime import date, datetime
 from pathlib import Path
 from typing import Any
@@ -57,13 +57,20 @@ class RuleResult:
     level: str
     column: str | None
     passed: bool
-    failing: int
+    failing: int | None
     message: str
     engine: str = POLARS_ENGINE
     examples: tuple[dict[str, Any], ...] = field(default_factory=tuple)
+    evaluated: bool = True
+    across_waves: bool = False
 
     def to_dict(self) -> dict[str, Any]:
-        """The rule's entry in the ``check`` JSON document."""
+        """The rule's entry in the ``check`` JSON document.
+
+        A rule that could not run on the column's type has ``evaluated: false``,
+        ``passed: false`` and ``failing: null``; a rule judged across the boundary
+        between the panel so far and the new wave has ``across_waves: true``.
+        """
         from auditor.report.jsonout import clean
 
         return clean(
@@ -75,6 +82,8 @@ class RuleResult:
                 "failing": self.failing,
                 "message": self.message,
                 "engine": self.engine,
+                "evaluated": self.evaluated,
+                "across_waves": self.across_waves,
                 "examples": [dict(e) for e in self.examples],
             }
         )
@@ -93,6 +102,7 @@ class CheckResult:
     source: str
     findings: tuple[Finding, ...]
     timings: dict[str, float] = field(default_factory=dict)
+    base_source: str | None = None
 
     @property
     def passed(self) -> bool:
@@ -101,11 +111,17 @@ class CheckResult:
 
     @property
     def failed(self) -> tuple[RuleResult, ...]:
-        """The rules that do not hold."""
-        return tuple(r for r in self.rules if not r.passed)
+        """The rules that were evaluated and do not hold."""
+        return tuple(r for r in self.rules if r.evaluated and not r.passed)
+
+    @property
+    def not_evaluated(self) -> tuple[RuleResult, ...]:
+        """The rules that could not run on the column's type (each says why)."""
+        return tuple(r for r in self.rules if not r.evaluated)
 
     def to_dict(self) -> dict[str, Any]:
-        """The contract's ``check`` JSON document."""
+        """The contract's ``check`` JSON document (``against``: the base of the
+        cross-wave rules, or null)."""
         from auditor.profile import tool_info
 
         return {
@@ -113,7 +129,12 @@ class CheckResult:
             "passed": self.passed,
             "contract": self.contract,
             "source": self.source,
-            "summary": {"rules": len(self.rules), "failed": len(self.failed)},
+            "against": self.base_source,
+            "summary": {
+                "rules": len(self.rules),
+                "failed": len(self.failed),
+                "not_evaluated": len(self.not_evaluated),
+            },
             "rules": [r.to_dict() for r in self.rules],
         }
 
@@ -127,21 +148,36 @@ def check(
     rules: str | Path,
     unit: str | list[str] | None = None,
     time: str | None = None,
+    against: Any = None,
 ) -> CheckResult:
     """Run the contract in the file ``rules`` on ``data`` (path(s) or a pandas/polars frame).
 
     The unit and time keys come from the contract's ``panel`` part, or from
-    ``unit``/``time`` when the contract leaves them out. Returns a CheckResult;
-    raises AuditError (exit 2) when the file or the data cannot be used.
+    ``unit``/``time`` when the contract leaves them out. With ``against`` (the
+    panel so far: path(s), a folder of waves or a frame) the rules that span
+    waves (invariant, monotone, max_change, max_change_per_period, the step and
+    keys the base already holds) are also judged across the boundary between the
+    two. Returns a CheckResult; raises AuditError (exit 2) when the file or the
+    data cannot be used.
     """
     clock = _time.perf_counter()
     contract, settings = read_contract(rules)
     if contract.is_empty:
         raise fail("contract-empty", path=rules)
+    if _has_row_rules(contract):
+        preload_gx()  # beside loading the panel and the polars rules, which release the GIL
     units, time_key = _keys(contract, rules, unit, time)
     panel = load_panel(data, units, time_key, settings=settings)
     timings = {"load": _time.perf_counter() - clock}
     results = run_contract(contract, panel, settings, timings=timings)
+    base_source = None
+    if against is not None:
+        from auditor.boundary import across_waves
+
+        clock = _time.perf_counter()
+        crossing, base_source = across_waves(contract, panel, against, settings)
+        results = (*results, *crossing)
+        timings["across_waves"] = _time.perf_counter() - clock
     findings = tuple(
         make(
             "rule-failed",
@@ -160,6 +196,7 @@ def check(
         source=panel.source,
         findings=findings,
         timings=timings,
+        base_source=base_source,
     )
 
 
@@ -172,21 +209,26 @@ def run_contract(
 ) -> tuple[RuleResult, ...]:
     """Every rule of ``contract`` evaluated on the loaded ``panel``, in contract order.
 
+    A rule that cannot run on the type a column holds (a bound on a column that
+    arrived as text) is reported as not evaluated, and the column fails its
+    ``type`` rule (stated or implied by the rules); every other rule still runs.
     ``timings`` (if given) receives the seconds spent per stage.
     """
     timings = timings if timings is not None else {}
     schema = panel.schema
-    _check_rule_kinds(contract, schema)
     limit = int(settings.get("check", "examples"))
     out: list[RuleResult] = []
+    present = [c for c in contract.columns if c.name in schema]
+    plan = {c.name: fit_to_type(c, schema[c.name]) for c in present}
+    runnable = [plan[c.name][0] for c in present]
 
     clock = _time.perf_counter()
     out.extend(_panel_rules(contract.panel, contract, panel, limit))
-    present = [c for c in contract.columns if c.name in schema]
-    within = _within_rules(present, panel, settings, limit)
+    within = _within_rules(runnable, panel, settings, limit)
+    exact, for_gx = _exact_integer_bounds(runnable, panel, limit)
     timings["panel_rules"] = _time.perf_counter() - clock
 
-    row = _row_rules_gx(present, panel, limit, timings)
+    row = _row_rules_gx(for_gx, panel, limit, timings)
     rows = panel.frame.height
     for col in contract.columns:
         if col.name not in schema:
@@ -198,11 +240,36 @@ def run_contract(
                     )
                 )
             continue
-        if col.type is not None:
-            out.append(_type_rule(col, panel))
-        out.extend(row.get(col.name, []))
+        skipped = plan[col.name][1]
+        typed = _type_rule(col, skipped, panel, limit)
+        if typed is not None:
+            out.append(typed)
+        by_rule = {r.rule: r for r in [*row.get(col.name, []), *exact.get(col.name, [])]}
+        out.extend(by_rule[k] for k in ROW_RULES_GX if k in by_rule)
         out.extend(within[col.name])
+        dtype = schema[col.name]
+        out.extend(
+            RuleResult(
+                key, "row" if key in ROW_RULES_GX else "panel", col.name, False, None,
+                f"not evaluated: the rule needs {what}, and the column holds {dtype}",
+                evaluated=False,
+            )
+            for key, what in skipped
+        )
     return tuple(out)
+
+
+def fit_to_type(col: ColumnRules, dtype: pl.DataType) -> tuple[ColumnRules, tuple[tuple[str, str], ...]]:
+    """The rules of ``col`` that can run on a column of ``dtype``, and those that cannot.
+
+    Returns (the column's rules with the unrunnable ones removed, ((rule, what it
+    needs), ...)).
+    """
+    fam = type_family(dtype)
+    skipped = tuple((key, what) for key, (families, what) in col.needs().items() if fam not in families)
+    if not skipped:
+        return col, ()
+    return replace(col, **{key: None for key, _ in skipped}), skipped
 
 
 def _keys(
@@ -254,53 +321,63 @@ def _type_matches(wanted: str, dtype: pl.DataType) -> bool:
     return fam == wanted
 
 
-def _type_rule(col: ColumnRules, panel: Panel) -> RuleResult:
+def _type_rule(
+    col: ColumnRules, skipped: tuple[tuple[str, str], ...], panel: Panel, limit: int
+) -> RuleResult | None:
+    """The column's ``type`` rule: the stated type, or (when none is stated) the type its
+    other rules need. None when the contract states no type and every rule can run."""
     dtype = panel.schema[col.name]
-    ok = _type_matches(col.type or "", dtype)
+    if col.type is not None:
+        expects = f"the contract expects {col.type} values"
+        ok = _type_matches(col.type, dtype)
+    elif skipped:
+        expects = f"its rules ({', '.join(k for k, _ in skipped)}) need {skipped[0][1]}"
+        ok = False
+    else:
+        return None
     if ok:
         return RuleResult("type", "row", col.name, True, 0, f"values are {col.type} ({dtype})")
     values = int(panel.frame.select(pl.col(col.name).count()).item())
-    return RuleResult(
-        "type",
-        "row",
-        col.name,
-        False,
-        values,
-        f"the contract expects {col.type} values but the column holds {dtype}: all {values} non-missing values break it",
+    message = f"{expects} but the column holds {dtype}: all {values} non-missing values break it"
+    examples: tuple[dict[str, Any], ...] = ()
+    numeric = col.type in ("integer", "float", "number") or (
+        col.type is None and any("numeric" in what for _, what in skipped)
+    )
+    if type_family(dtype) == "text" and numeric:
+        # which values keep the column from being read as numbers
+        text = pl.col(col.name).str.strip_chars()
+        bad = text.is_not_null() & (text != "") & text.cast(pl.Float64, strict=False).is_null()
+        rows = panel.frame.select(bad.arg_true()).to_series()
+        if rows.len():
+            picked = _row_examples(panel, col.name, rows.head(limit).to_list())
+            shown = ", ".join(repr(str(e[col.name])) for e in picked[:3])
+            message += f"; {rows.len()} of them cannot be read as numbers (such as {shown})"
+            examples = picked
+        else:
+            message += "; every value reads as a number: the file's reader took the column as text"
+    if skipped:
+        message += "; not evaluated: " + ", ".join(k for k, _ in skipped)
+    return RuleResult("type", "row", col.name, False, values, message, examples=examples)
+
+
+def _has_row_rules(contract: Contract) -> bool:
+    return any(
+        getattr(c, k) is not None and getattr(c, k) is not False for c in contract.columns for k in ROW_RULES_GX
     )
 
 
-def _check_rule_kinds(contract: Contract, schema: dict[str, pl.DataType]) -> None:
-    """Refuse (exit 2) rules that cannot apply to a column's type, before anything runs."""
-    path = contract.source
-    for col in contract.columns:
-        if col.name not in schema:
-            continue
-        fam = type_family(schema[col.name])
-        numeric = fam in ("integer", "float")
-        dated = fam in ("date", "datetime")
-        for key in ("min", "max"):
-            v = getattr(col, key)
-            if v is None:
-                continue
-            if isinstance(v, date) and not dated:
-                raise fail("contract-rule-kind", path=path, line=col.line, column=col.name, key=key,
-                           dtype=schema[col.name], expected="a date column")
-            if not isinstance(v, date) and not numeric:
-                raise fail("contract-rule-kind", path=path, line=col.line, column=col.name, key=key,
-                           dtype=schema[col.name], expected="a numeric column (or a date bound for a date column)")
-        if col.pattern is not None and fam != "text":
-            raise fail("contract-rule-kind", path=path, line=col.line, column=col.name, key="pattern",
-                       dtype=schema[col.name], expected="a text column")
-        if col.max_change is not None and not numeric:
-            raise fail("contract-rule-kind", path=path, line=col.line, column=col.name, key="max_change",
-                       dtype=schema[col.name], expected="a numeric column")
-        if col.monotone is not None and not (numeric or dated):
-            raise fail("contract-rule-kind", path=path, line=col.line, column=col.name, key="monotone",
-                       dtype=schema[col.name], expected="a numeric or date column")
-
-
 # --- row rules through great-expectations ------------------------------------------
+
+
+def preload_gx() -> None:
+    """Start importing great-expectations in a background thread (it takes seconds), so that
+    the import overlaps reading the panel and the polars rules, which release the GIL."""
+    import os
+
+    from auditor.pvalues import preload
+
+    os.environ.setdefault("GX_ANALYTICS_ENABLED", "False")
+    preload("great_expectations")
 
 
 def _gx() -> Any:
@@ -313,6 +390,74 @@ def _gx() -> Any:
 
     logging.getLogger("great_expectations").setLevel(logging.ERROR)
     return gx
+
+
+#: Integers beyond this magnitude are not exact as float64, which great-expectations
+#: compares bounds in; their ``min``/``max`` rules run on polars, exactly.
+FLOAT_EXACT_INTEGERS = 2**53
+
+
+def _integer_range(dtype: pl.DataType) -> tuple[int, int]:
+    """The lowest and highest value a polars integer dtype holds (Int8 ... Int128, UInt8 ... UInt64)."""
+    name = str(dtype).lower()
+    bits = int(name.removeprefix("u").removeprefix("int"))
+    if name.startswith("u"):
+        return 0, 2**bits - 1
+    return -(2 ** (bits - 1)), 2 ** (bits - 1) - 1
+
+
+def _exact_integer_bounds(
+    columns: list[ColumnRules], panel: Panel, limit: int
+) -> tuple[dict[str, list[RuleResult]], list[ColumnRules]]:
+    """``min``/``max`` of integer columns whose values or bounds lie beyond 2**53, on polars.
+
+    great-expectations compares such bounds as float64, where 2**63 - 1 and 2**63 are one
+    number (a column would fail, or pass, its own extremes). Returns (results by column,
+    the columns with those rules removed, for great-expectations).
+    """
+    schema = panel.schema
+    bounded = [c for c in columns if (c.min is not None or c.max is not None) and schema[c.name].is_integer()]
+    if not bounded:
+        return {}, list(columns)
+    ext = panel.frame.select(
+        *[pl.col(c.name).min().alias(f"{c.name}\x00lo") for c in bounded],
+        *[pl.col(c.name).max().alias(f"{c.name}\x00hi") for c in bounded],
+    ).row(0, named=True)
+    out: dict[str, list[RuleResult]] = {}
+    moved: dict[str, ColumnRules] = {}
+    rows = panel.frame.height
+    for col in bounded:
+        lo, hi = ext[f"{col.name}\x00lo"], ext[f"{col.name}\x00hi"]
+        magnitudes = [abs(v) for v in (lo, hi, col.min, col.max) if isinstance(v, int | float)]
+        if not magnitudes or max(magnitudes) <= FLOAT_EXACT_INTEGERS:
+            continue
+        dtype = schema[col.name]
+        low, high = _integer_range(dtype)
+        results = []
+        for rule, bound in (("min", col.min), ("max", col.max)):
+            if bound is None:
+                continue
+            # an integer is below a bound b exactly when it is below ceil(b) (above: floor(b))
+            b = math.ceil(bound) if rule == "min" else math.floor(bound)
+            c = pl.col(col.name)
+            if b < low or b > high:  # a bound outside the type's range: every value, or none
+                every = (rule == "min" and b > high) or (rule == "max" and b < low)
+                bad = c.is_not_null() & pl.lit(every)
+            else:
+                bad = (c < pl.lit(b, dtype=dtype)) if rule == "min" else (c > pl.lit(b, dtype=dtype))
+            hits = panel.frame.select(bad.fill_null(False).arg_true()).to_series()
+            failing = hits.len()
+            results.append(
+                RuleResult(
+                    rule, "row", col.name, failing == 0, failing,
+                    _row_message(col, rule, failing, rows, 0),
+                    POLARS_ENGINE,
+                    _row_examples(panel, col.name, hits.head(limit).to_list()),
+                )
+            )
+        out[col.name] = results
+        moved[col.name] = replace(col, min=None, max=None)
+    return out, [moved.get(c.name, c) for c in columns]
 
 
 def _gx_value(v: Any) -> Any:
@@ -363,29 +508,42 @@ def build_expectations(columns: list[ColumnRules] | tuple[ColumnRules, ...]) -> 
 
 
 def to_pandas_once(frame: pl.DataFrame) -> Any:
-    """``frame`` as a pandas DataFrame that keeps integer and boolean columns with gaps exact.
+    """``frame`` as a pandas DataFrame in which every value compares as in the data.
 
-    Integers and booleans become pandas nullable types (not floats or objects),
-    categorical columns become text, dates become datetime64; row order and the
-    default 0..n-1 index are kept, so result row positions index ``frame``.
+    Integers become numpy integers when no value is missing; with missing values,
+    float64 (exact up to 2**53; larger magnitudes keep pandas' nullable integer type,
+    and their bounds run on polars, see :func:`_exact_integer_bounds`). Booleans
+    without missing values stay numpy booleans, with them pandas' nullable boolean;
+    decimals become float64 (as ``rules draft`` reads them); categorical columns become
+    text and dates datetime64. great-expectations runs about six times slower on
+    pandas' nullable integers than on numpy arrays. Row order and the default 0..n-1
+    index are kept, so result row positions index ``frame``.
     """
     import pandas as pd
-    import pyarrow as pa
 
-    casts = [
-        pl.col(c).cast(pl.String)
-        for c, dt in frame.schema.items()
-        if isinstance(dt, pl.Categorical | pl.Enum)
-    ]
-    casts += [pl.col(c).cast(pl.Float64) for c, dt in frame.schema.items() if isinstance(dt, pl.Decimal)]
+    casts: list[pl.Expr] = []
+    nullable: dict[Any, Any] = {}
+    counts = frame.null_count().row(0, named=True) if frame.width else {}
+    for c, dt in frame.schema.items():
+        if isinstance(dt, pl.Categorical | pl.Enum):
+            casts.append(pl.col(c).cast(pl.String))
+        elif isinstance(dt, pl.Decimal):
+            casts.append(pl.col(c).cast(pl.Float64))
+        elif dt.is_integer() and counts[c]:
+            lo, hi = frame.select(pl.col(c).min().alias("lo"), pl.col(c).max().alias("hi")).row(0)
+            if max(abs(lo), abs(hi)) <= FLOAT_EXACT_INTEGERS:
+                casts.append(pl.col(c).cast(pl.Float64))
+            else:
+                kind = getattr(pd, f"{dt}Dtype", None)
+                nullable[c] = kind() if kind is not None else object
+        elif dt == pl.Boolean and counts[c]:
+            nullable[c] = pd.BooleanDtype()
     if casts:
         frame = frame.with_columns(casts)
-    nullable = {
-        pa.int8(): pd.Int8Dtype(), pa.int16(): pd.Int16Dtype(), pa.int32(): pd.Int32Dtype(),
-        pa.int64(): pd.Int64Dtype(), pa.uint8(): pd.UInt8Dtype(), pa.uint16(): pd.UInt16Dtype(),
-        pa.uint32(): pd.UInt32Dtype(), pa.uint64(): pd.UInt64Dtype(), pa.bool_(): pd.BooleanDtype(),
-    }
-    return frame.to_arrow().to_pandas(types_mapper=nullable.get, date_as_object=False)
+    out = frame.to_arrow().to_pandas(date_as_object=False)
+    for c, kind in nullable.items():
+        out[c] = pd.array(frame.get_column(c).to_list(), dtype=kind)
+    return out
 
 
 def _row_rules_gx(
@@ -478,7 +636,7 @@ def _row_examples(panel: Panel, column: str, rows: list[int]) -> tuple[dict[str,
     from auditor.report.jsonout import clean
 
     keys = [*panel.unit, panel.time]
-    picked = panel.frame.select([*keys, column])[rows]
+    picked = panel.frame.select([*keys, *([column] if column not in keys else [])])[rows]
     return tuple(clean(r) for r in picked.iter_rows(named=True))
 
 
@@ -550,16 +708,7 @@ def _panel_rules(rules: PanelRules, contract: Contract, panel: Panel, limit: int
             )
         )
     if rules.step is not None:
-        ok = panel.step == rules.step
-        if panel.step is None:
-            bad = [{"from": a, "to": b} for a, b in panel.irregular[:limit]]
-            msg = f"the periods are irregularly spaced ({len(panel.irregular)} uneven steps); the contract expects a step of {rules.step}"
-            n = len(panel.irregular)
-        else:
-            bad = []
-            msg = f"the periods advance by {panel.step}; the contract expects {rules.step}"
-            n = 0 if ok else panel.n_periods - 1
-        out.append(RuleResult("step", "panel", None, ok, n, msg, examples=tuple(bad)))
+        out.append(_step_rule(rules.step, panel, limit))
     if rules.periods is not None:
         expected = {period_text(p) for p in rules.periods}
         observed = set(grid_text)
@@ -622,6 +771,30 @@ def _panel_rules(rules: PanelRules, contract: Contract, panel: Panel, limit: int
             )
         )
     return out
+
+
+def _step_rule(step: int, panel: Panel, limit: int) -> RuleResult:
+    """Neighbouring periods of the grid ``step`` apart (a delivery of one period has no step)."""
+    pos, grid = panel.grid_position, panel.grid
+    if len(pos) < 2:
+        return RuleResult(
+            "step", "panel", None, True, 0,
+            f"one period ({grid[0]}): no step between periods within the data "
+            "(check --against BASE judges the step from the base's last period)",
+        )
+    uneven = [(grid[i], grid[i + 1], pos[i + 1] - pos[i]) for i in range(len(pos) - 1) if pos[i + 1] - pos[i] != step]
+    n = len(uneven)
+    if not n:
+        msg = f"each of the {len(pos) - 1} steps between neighbouring periods is {step}"
+    else:
+        first = uneven[0]
+        msg = (
+            f"{n} of {len(pos) - 1} steps between neighbouring periods differ from the contract's {step} "
+            f"({first[0]} to {first[1]} is {first[2]}"
+            + ("; periods are missing in between)" if first[2] > step and first[2] % step == 0 else ")")
+        )
+    examples = tuple({"from": a, "to": b, "step": d} for a, b, d in uneven[:limit])
+    return RuleResult("step", "panel", None, n == 0, n, msg, examples=examples)
 
 
 def _per_unit(panel: Panel) -> pl.DataFrame:
@@ -706,22 +879,27 @@ def _within_rules(
                     examples=examples,
                 )
             )
-    moving = [c for c in columns if c.monotone or c.max_change is not None]
+    moving = [c for c in columns if c.monotone or c.max_change is not None or c.max_change_per_period is not None]
     if moving:
         steps = step_changes(panel, [c.name for c in moving])
         keys = [*panel.unit, panel.time]
         for col in moving:
             change = pl.col(f"change:{col.name}")
-            shown = [*keys, pl.col(f"previous:{col.name}").alias("previous"), col.name]
+            shown = [*keys, pl.col(f"previous:{col.name}").alias("previous"), *([col.name] if col.name not in keys else [])]
+
+            def located(frame: pl.DataFrame, extra: tuple[Any, ...] = (), shown: list[Any] = shown) -> tuple[dict[str, Any], ...]:
+                picked = frame.select(*shown, *extra).head(limit)
+                return tuple(clean(r) for r in picked.iter_rows(named=True))
+
             if col.monotone:
                 wrong = steps.filter(change < 0 if col.monotone == "increasing" else change > 0)
                 word = "falls" if col.monotone == "increasing" else "rises"
                 out[col.name].append(
                     RuleResult(
                         "monotone", "panel", col.name, wrong.height == 0, wrong.height,
-                        f"{wrong.height} times a unit's value {word} from one observation to its next"
+                        f"{_times(wrong.height)} a unit's value {word} from one observation to its next"
                         f" (the contract says it is {col.monotone})",
-                        examples=tuple(clean(r) for r in wrong.select(shown).head(limit).iter_rows(named=True)),
+                        examples=located(wrong),
                     )
                 )
             if col.max_change is not None:
@@ -729,11 +907,61 @@ def _within_rules(
                 out[col.name].append(
                     RuleResult(
                         "max_change", "panel", col.name, big.height == 0, big.height,
-                        f"{big.height} times a unit's value moves by more than {col.max_change:g} between consecutive observations",
-                        examples=tuple(clean(r) for r in big.select(shown).head(limit).iter_rows(named=True)),
+                        f"{_times(big.height)} a unit's value moves by more than {col.max_change:g} between consecutive observations",
+                        examples=located(big),
                     )
                 )
+            if col.max_change_per_period is not None:
+                per = (change / pl.col(f"periods:{col.name}")).abs()
+                big = steps.filter(per > col.max_change_per_period)
+                out[col.name].append(
+                    RuleResult(
+                        "max_change_per_period", "panel", col.name, big.height == 0, big.height,
+                        f"{_times(big.height)} a unit's value moves by more than {col.max_change_per_period:g} a period "
+                        "(its change divided by the periods between the two observations)",
+                        examples=located(big, (pl.col(f"periods:{col.name}").alias("periods_between"),)),
+                    )
+                )
+    for col in columns:
+        if col.follows_period:
+            out[col.name].append(_follows_period_rule(col.name, panel, tol, limit))
     return out
+
+
+def _times(n: int) -> str:
+    return "once" if n == 1 else f"{n} times"
+
+
+def _follows_period_rule(column: str, panel: Panel, tolerance: float, limit: int) -> RuleResult:
+    """Every unit holds the same value in a period (a price, a national index): the periods
+    where the non-missing values differ (floats: by more than the profile's tolerance)."""
+    from auditor.report.jsonout import clean
+
+    dtype = panel.schema[column]
+    v = _values(column, dtype)
+    if dtype.is_float():
+        differs = (v.max() - v.min()) > tolerance * (1 + v.mean().abs())
+    else:
+        differs = v.drop_nulls().n_unique() > 1
+    per = (
+        panel.frame.group_by(PERIOD_ID)
+        .agg(differs.fill_null(False).alias("differs"), v.min().alias("lowest"), v.max().alias("highest"),
+             v.drop_nulls().n_unique().alias("values"))
+        .filter(pl.col("differs"))
+        .sort(PERIOD_ID)
+    )
+    n = per.height
+    examples = tuple(
+        clean({"period": panel.grid[int(r[PERIOD_ID])], "values": int(r["values"]),
+               "lowest": r["lowest"], "highest": r["highest"]})
+        for r in per.head(limit).iter_rows(named=True)
+    )
+    return RuleResult(
+        "follows_period", "panel", column, n == 0, n,
+        f"in {n} of {panel.n_periods} periods the units hold different values; the contract says every unit "
+        "shares one value in a period",
+        examples=examples,
+    )
 
 
 def _changes(dtype: pl.DataType, values: pl.Expr) -> pl.Expr:
@@ -793,26 +1021,33 @@ def step_changes(panel: Panel, columns: list[str]) -> pl.DataFrame:
 
     One sort by (unit, period) for all columns. Returns the rows in that order
     with the key columns, each column, ``previous:<col>`` (the unit's previous
-    non-missing value) and ``change:<col>`` (now - previous as a float: days for
-    dates; null on a unit's first observation and where the value is missing).
+    non-missing value), ``change:<col>`` (now - previous as a float: days for
+    dates; null on a unit's first observation and where the value is missing) and
+    ``periods:<col>`` (the grid steps between the two observations: 1 for
+    neighbouring periods; the grid's step is its most common difference).
     """
     keys = [*panel.unit, panel.time]
+    positions = pl.Series("pos", list(panel.grid_position), dtype=pl.Int64)
     frame = panel.frame.select(
         UNIT_ID, PERIOD_ID, *[k for k in keys if k not in columns],
         *[_values(c, panel.schema[c]).alias(c) for c in columns],
     ).sort(UNIT_ID, PERIOD_ID, maintain_order=True)
+    frame = frame.with_columns(pl.lit(positions).gather(pl.col(PERIOD_ID)).alias("__pa_pos"))
+    step = float(panel.step or 1)
     exprs: list[pl.Expr] = []
     for c in columns:
         v = pl.col(c)
         # the previous non-missing value and the unit it belongs to, without a window per unit
         previous = v.shift(1).forward_fill()
         owner = pl.when(v.is_not_null()).then(pl.col(UNIT_ID)).shift(1).forward_fill()
+        at = pl.when(v.is_not_null()).then(pl.col("__pa_pos")).shift(1).forward_fill()
         same = v.is_not_null() & (owner == pl.col(UNIT_ID))
         num = _changes(panel.schema[c], v)
         prev_num = _changes(panel.schema[c], previous)
         exprs.append(pl.when(same).then(previous).otherwise(None).alias(f"previous:{c}"))
         exprs.append(pl.when(same).then(num - prev_num).otherwise(None).alias(f"change:{c}"))
-    return frame.with_columns(exprs)
+        exprs.append(pl.when(same).then((pl.col("__pa_pos") - at) / step).otherwise(None).alias(f"periods:{c}"))
+    return frame.with_columns(exprs).drop("__pa_pos")
 
 
 # --- drafting --------------------------------------------------------------------

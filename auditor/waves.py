@@ -242,7 +242,9 @@ def _is_levels(dt: pl.DataType) -> bool:
     return _family(dt) in ("text", "boolean")
 
 
-def _key_text(col: str, dt: pl.DataType) -> pl.Expr:
+def key_text(col: str, dt: pl.DataType) -> pl.Expr:
+    """A unit key column as text for matching across files (a float key holding whole
+    numbers loses its ``.0``, so 7.0 and 7 are one unit)."""
     c = pl.col(col)
     if dt.is_float():
         whole = c.is_finite() & (c == c.round(0))
@@ -265,7 +267,7 @@ def _missing(col: str, dt: pl.DataType) -> pl.Expr:
     return e
 
 
-def _label_at(pos: int, freq: str) -> Any:
+def label_at(pos: int, freq: str) -> Any:
     """The period label of a position on the scale (also for periods nobody holds)."""
     if freq in ("integer", "year"):
         return int(pos)
@@ -356,7 +358,7 @@ def _profile(data: Any, units: tuple[str, ...], time: str, settings: Settings) -
     return profile(data, unit=list(units), time=time, settings=settings)
 
 
-def _period_scale(
+def period_scale(
     base: Panel, new: Panel, time: str
 ) -> tuple[Any, pl.Expr, pl.Expr]:
     """One period scale for both sides; expressions giving each side's row position."""
@@ -465,7 +467,7 @@ class _Comparison:
         merged_panel = None
         if self.merged:
             merged_findings, merged_panel = self._merged_profile()
-        ref_label = _label_at(self.last_pos, self.scale.frequency)
+        ref_label = label_at(self.last_pos, self.scale.frequency)
         return CompareResult(
             schema=schema,
             units=units,
@@ -549,13 +551,13 @@ class _Comparison:
     # -- aligned frames -------------------------------------------------------------------
     def _align(self) -> None:
         bs, ns = self.bp.schema, self.ns
-        self.scale, bpos, npos = _period_scale(self.bp, self.np, self.time)
+        self.scale, bpos, npos = period_scale(self.bp, self.np, self.time)
         # Unit tables (one row per unit) carry the text keys; rows carry codes only.
         bunits = self.bp.units.with_columns(
-            [_key_text(u, bs[u]).alias(k) for u, k in zip(self.units, self.nkeys, strict=True)]
+            [key_text(u, bs[u]).alias(k) for u, k in zip(self.units, self.nkeys, strict=True)]
         ).select(UNIT_ID, *self.nkeys)
         nunits = self.np.units.with_columns(
-            [_key_text(u, ns[u]).alias(k) for u, k in zip(self.units, self.nkeys, strict=True)]
+            [key_text(u, ns[u]).alias(k) for u, k in zip(self.units, self.nkeys, strict=True)]
         ).select(UNIT_ID, *self.nkeys)
         code_map = nunits.join(
             bunits.rename({UNIT_ID: BASE_UNIT}), on=self.nkeys, how="left", nulls_equal=True
@@ -590,7 +592,7 @@ class _Comparison:
         self.ref = self.B.filter(pl.col(POS) == self.last_pos)
 
     def _lab(self, pos: int) -> Any:
-        return _label_at(pos, self.scale.frequency)
+        return label_at(pos, self.scale.frequency)
 
     def _keys_of(self, row: dict[str, Any]) -> dict[str, Any]:
         """The unit key of a row holding the text keys, by the user's column names."""
@@ -1063,8 +1065,8 @@ class _Comparison:
             if bs[c] == ns[c]:
                 continue
             if c in keys:
-                expr_b = _key_text(c, bs[c]).alias(c) if c in self.units else pl.col(c).cast(pl.String)
-                expr_n = _key_text(c, ns[c]).alias(c) if c in self.units else pl.col(c).cast(pl.String)
+                expr_b = key_text(c, bs[c]).alias(c) if c in self.units else pl.col(c).cast(pl.String)
+                expr_n = key_text(c, ns[c]).alias(c) if c in self.units else pl.col(c).cast(pl.String)
             elif _is_numeric(bs[c]) and _is_numeric(ns[c]):
                 expr_b, expr_n = pl.col(c).cast(pl.Float64), pl.col(c).cast(pl.Float64)
             else:

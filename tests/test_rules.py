@@ -383,12 +383,35 @@ def test_invalid_contract_names_the_problem(tmp_path, text, code, needles):
         assert n in info.value.message
 
 
-def test_rule_that_cannot_apply_to_the_column_type_is_refused(tmp_path):
-    path = write(tmp_path, "panel: {unit: u, time: t}\ncolumns:\n  age: {pattern: '[0-9]+'}\n")
+def test_rule_that_cannot_apply_to_the_column_type_fails_its_type_and_is_not_evaluated(tmp_path):
+    # issue 14 item 2: a column whose type no longer fits its rules is a broken delivery
+    # (exit 1: the type rule fails with the type found), not a broken tool (exit 2)
+    path = write(tmp_path, "panel: {unit: u, time: t}\ncolumns:\n  age: {pattern: '[0-9]+', max_missing: 0.5}\n")
+    res = check(_hand_panel(), rules=path)
+    by_rule = {r.rule: r for r in res.rules if r.column == "age"}
+    assert not by_rule["type"].passed and "Int64" in by_rule["type"].message
+    assert "a text column" in by_rule["type"].message
+    assert by_rule["pattern"].evaluated is False and by_rule["pattern"].failing is None
+    assert by_rule["max_missing"].evaluated and by_rule["max_missing"].passed  # what can run, runs
+    assert not res.passed and res.to_dict()["summary"]["not_evaluated"] == 1
+
+
+@pytest.mark.parametrize(
+    ("text", "needles"),
+    [
+        ("  age: {type: integer, pattern: '[0-9]+'}\n", ["line 3", "'pattern'", "'type: integer'"]),
+        ("  age: {min: 0, pattern: '[0-9]+'}\n", ["'pattern'", "rule 'min'"]),
+        ("  age: {type: text, max_change: 2}\n", ["'max_change'", "a numeric column"]),
+        ("  age: {type: integer, allowed: [a, b]}\n", ["'allowed'", "a text column"]),
+    ],
+)
+def test_rules_that_no_column_could_meet_together_are_an_invalid_contract(tmp_path, text, needles):
+    path = write(tmp_path, "panel: {unit: u, time: t}\ncolumns:\n" + text)
     with pytest.raises(AuditError) as info:
         check(_hand_panel(), rules=path)
-    assert info.value.code == "contract-rule-kind"
-    assert "line 3" in info.value.message and "text column" in info.value.message
+    assert info.value.code == "contract-rule-conflict"
+    for n in needles:
+        assert n in info.value.message
 
 
 def test_keys_given_and_declared_must_agree(tmp_path):

@@ -2,8 +2,10 @@
 
 Layout (the project's own): one verdict line, then the broken rules, each with
 where it applies, how many rows/units/periods break it, what was found and up
-to two located examples; then the holding rules folded into one line per
-subject (the panel, or a column).
+to two located examples; the rules that could not run on the column's type, with
+why; then the holding rules folded into one line per subject (the panel, or a
+column). Rules judged across the boundary with the panel so far (``--against``)
+carry "across waves" after their name.
 """
 
 from __future__ import annotations
@@ -20,6 +22,10 @@ def _subject(r: RuleResult) -> str:
     return "(panel)" if r.column is None else r.column
 
 
+def _name(r: RuleResult) -> str:
+    return f"{r.rule} (across waves)" if r.across_waves else r.rule
+
+
 def _example_text(example: dict[str, Any]) -> str:
     return ", ".join(f"{k}={safe(v)}" for k, v in example.items())
 
@@ -34,37 +40,46 @@ def render(
     color = colour if color is None else color
     width = max(60, width)
     broken = result.failed
+    skipped = result.not_evaluated
     total = len(result.rules)
+    holding = total - len(broken) - len(skipped)
     lines: list[str] = []
-    verdict = (
-        paint("contract holds", "bold", color)
-        if not broken
-        else paint(f"contract broken: {len(broken)} of {total} rules fail", "error", color)
-    )
-    lines.append(f"{verdict}  ({total - len(broken)} of {total} rules hold)")
+    if not broken and not skipped:
+        verdict = paint("contract holds", "bold", color)
+    else:
+        what = f"{len(broken)} of {total} rules fail" if broken else "no rule fails"
+        verdict = paint(f"contract broken: {what}", "error", color)
+    tail = f", {len(skipped)} not evaluated" if skipped else ""
+    lines.append(f"{verdict}  ({holding} of {total} rules hold{tail})")
     lines.append(clip(f"  rules: {safe(result.contract)}", width))
     lines.append(clip(f"  data:  {safe(result.source)}", width))
-    if broken:
+    if result.base_source:
+        lines.append(clip(f"  base:  {safe(result.base_source)} (rules across waves)", width))
+    shown = [("Broken", broken), ("Not evaluated", skipped)]
+    for title, group in shown:
+        if not group:
+            continue
         lines.append("")
-        lines.append(paint("Broken", "bold", color))
-        subj_w = min(24, max(len(_subject(r)) for r in broken))
-        rule_w = max(len(r.rule) for r in broken)
-        for r in broken:
-            head = f"  {clip(safe(_subject(r)), subj_w):<{subj_w}}  {r.rule:<{rule_w}}  {r.failing:>8}  "
+        lines.append(paint(title, "bold", color))
+        subj_w = min(24, max(len(_subject(r)) for r in group))
+        rule_w = max(len(_name(r)) for r in group)
+        for r in group:
+            count = "-" if r.failing is None else str(r.failing)
+            head = f"  {clip(safe(_subject(r)), subj_w):<{subj_w}}  {_name(r):<{rule_w}}  {count:>8}  "
             body = wrap(safe(r.message), width - len(head), 0)
             lines.append(head + body[0])
             lines.extend(" " * len(head) + b for b in body[1:])
             for ex in r.examples[:2]:
                 at = clip("at " + _example_text(ex), width - 6)
                 lines.append("      " + paint(at, "dim", color))
-    holding: dict[str, list[str]] = {}
+    folded: dict[str, list[str]] = {}
     for r in result.rules:
         if r.passed:
-            holding.setdefault(_subject(r), []).append(r.rule)
-    if holding:
+            folded.setdefault(_subject(r), []).append(_name(r))
+    if folded:
         lines.append("")
         lines.append(paint("Holding", "bold", color))
-        for subject, names in holding.items():
+        for subject, names in folded.items():
             text = f"  {safe(subject)}: " + ", ".join(names)
             lines.extend(wrap(text, width, 4))
     return "\n".join(lines) + "\n"
