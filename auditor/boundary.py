@@ -292,7 +292,8 @@ class _Judge:
                 f"{big.height} of {n_pairs} returning units' values move by more than {col.max_change:g} "
                 "from their last base observation to the new wave", examples(big)))
         if col.max_change_per_period is not None:
-            big = pairs.filter((change / pl.col("__pa_periods")).abs() > col.max_change_per_period)
+            between = pl.col("__pa_periods")
+            big = pairs.filter((between > 0) & ((change / between).abs() > col.max_change_per_period))
             out.append(self.result(
                 "max_change_per_period", c, big.height,
                 f"{big.height} of {n_pairs} returning units' values move by more than "

@@ -205,7 +205,7 @@ def _cmd_rules(args: argparse.Namespace) -> int:
     from auditor.outputs import write_atomic
 
     if args.rules_command == "draft":
-        from auditor.rules import draft
+        from auditor.drafting import draft
 
         text = draft(_data(args), unit=args.unit, time=args.time, settings=_settings(args))
         if args.out:

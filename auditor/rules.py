@@ -25,7 +25,7 @@ from typing import Any
 
 import polars as pl
 
-from auditor.config import Settings, default_settings
+from auditor.config import Settings
 from auditor.contract import (
     ColumnRules,
     Contract,
@@ -397,7 +397,7 @@ def _gx() -> Any:
 FLOAT_EXACT_INTEGERS = 2**53
 
 
-def _integer_range(dtype: pl.DataType) -> tuple[int, int]:
+def integer_range(dtype: pl.DataType) -> tuple[int, int]:
     """The lowest and highest value a polars integer dtype holds (Int8 ... Int128, UInt8 ... UInt64)."""
     name = str(dtype).lower()
     bits = int(name.removeprefix("u").removeprefix("int"))
@@ -432,7 +432,7 @@ def _exact_integer_bounds(
         if not magnitudes or max(magnitudes) <= FLOAT_EXACT_INTEGERS:
             continue
         dtype = schema[col.name]
-        low, high = _integer_range(dtype)
+        low, high = integer_range(dtype)
         results = []
         for rule, bound in (("min", col.min), ("max", col.max)):
             if bound is None:
@@ -678,7 +678,7 @@ def _panel_rules(rules: PanelRules, contract: Contract, panel: Panel, limit: int
                 examples=tuple(panel.missing_key_examples[:limit]),
             )
         )
-    per_unit = _per_unit(panel) if (
+    per_unit = unit_periods(panel) if (
         rules.max_duplicate_keys is not None or rules.balanced or rules.max_attrition is not None
     ) else None
     if rules.max_duplicate_keys is not None and per_unit is not None:
@@ -797,7 +797,7 @@ def _step_rule(step: int, panel: Panel, limit: int) -> RuleResult:
     return RuleResult("step", "panel", None, n == 0, n, msg, examples=examples)
 
 
-def _per_unit(panel: Panel) -> pl.DataFrame:
+def unit_periods(panel: Panel) -> pl.DataFrame:
     """One row per unit code: ``periods`` (distinct periods observed) and ``last`` (last period index)."""
     return panel.frame.group_by(UNIT_ID).agg(
         pl.col(PERIOD_ID).n_unique().alias("periods"), pl.col(PERIOD_ID).max().alias("last")
@@ -811,7 +811,7 @@ def attrition_shares(panel: Panel, per_unit: pl.DataFrame | None = None) -> pl.D
     ``share`` (leaving / present, a fraction).
     """
     frame = panel.frame
-    last = per_unit if per_unit is not None else _per_unit(panel)
+    last = per_unit if per_unit is not None else unit_periods(panel)
     present = frame.group_by(PERIOD_ID).agg(pl.col(UNIT_ID).n_unique().alias("present"))
     leaving = last.group_by("last").agg(pl.len().alias("leaving")).rename({"last": PERIOD_ID})
     final = panel.n_periods - 1
@@ -842,7 +842,7 @@ def _attrition_rule(limit_share: float, panel: Panel, limit: int, per_unit: pl.D
     )
 
 
-def _values(column: str, dtype: pl.DataType) -> pl.Expr:
+def missing_as_null(column: str, dtype: pl.DataType) -> pl.Expr:
     """The column with NaN read as missing, as the row rules read it."""
     e = pl.col(column)
     if dtype.is_float():
@@ -912,8 +912,10 @@ def _within_rules(
                     )
                 )
             if col.max_change_per_period is not None:
-                per = (change / pl.col(f"periods:{col.name}")).abs()
-                big = steps.filter(per > col.max_change_per_period)
+                # a repeated (unit, period) key has no periods between: max_duplicate_keys' business
+                between = pl.col(f"periods:{col.name}")
+                per = (change / between).abs()
+                big = steps.filter((between > 0) & (per > col.max_change_per_period))
                 out[col.name].append(
                     RuleResult(
                         "max_change_per_period", "panel", col.name, big.height == 0, big.height,
@@ -938,7 +940,7 @@ def _follows_period_rule(column: str, panel: Panel, tolerance: float, limit: int
     from auditor.report.jsonout import clean
 
     dtype = panel.schema[column]
-    v = _values(column, dtype)
+    v = missing_as_null(column, dtype)
     if dtype.is_float():
         differs = (v.max() - v.min()) > tolerance * (1 + v.mean().abs())
     else:
@@ -982,7 +984,7 @@ def invariant_counts(panel: Panel, columns: list[str], tolerance: float) -> dict
     aggs: list[pl.Expr] = []
     for c in columns:
         dtype = panel.schema[c]
-        v = _values(c, dtype)
+        v = missing_as_null(c, dtype)
         if dtype.is_float():
             aggs.append(((v.max() - v.min()) > tolerance * (1 + v.mean().abs())).alias(c))
         else:
@@ -1000,7 +1002,7 @@ def changing_units(panel: Panel, column: str, tolerance: float) -> pl.DataFrame:
     its first value by period and one that differs from it), sorted by unit code.
     """
     dtype = panel.schema[column]
-    v = _values(column, dtype)
+    v = missing_as_null(column, dtype)
     base = panel.frame.select(UNIT_ID, PERIOD_ID, v.alias("v")).drop_nulls("v")
     if dtype.is_float():
         stats = base.group_by(UNIT_ID).agg(
@@ -1024,13 +1026,14 @@ def step_changes(panel: Panel, columns: list[str]) -> pl.DataFrame:
     non-missing value), ``change:<col>`` (now - previous as a float: days for
     dates; null on a unit's first observation and where the value is missing) and
     ``periods:<col>`` (the grid steps between the two observations: 1 for
-    neighbouring periods; the grid's step is its most common difference).
+    neighbouring periods, 0 for a repeated key; the grid's step is its most common
+    difference).
     """
     keys = [*panel.unit, panel.time]
     positions = pl.Series("pos", list(panel.grid_position), dtype=pl.Int64)
     frame = panel.frame.select(
         UNIT_ID, PERIOD_ID, *[k for k in keys if k not in columns],
-        *[_values(c, panel.schema[c]).alias(c) for c in columns],
+        *[missing_as_null(c, panel.schema[c]).alias(c) for c in columns],
     ).sort(UNIT_ID, PERIOD_ID, maintain_order=True)
     frame = frame.with_columns(pl.lit(positions).gather(pl.col(PERIOD_ID)).alias("__pa_pos"))
     step = float(panel.step or 1)
@@ -1048,155 +1051,6 @@ def step_changes(panel: Panel, columns: list[str]) -> pl.DataFrame:
         exprs.append(pl.when(same).then(num - prev_num).otherwise(None).alias(f"change:{c}"))
         exprs.append(pl.when(same).then((pl.col("__pa_pos") - at) / step).otherwise(None).alias(f"periods:{c}"))
     return frame.with_columns(exprs).drop("__pa_pos")
-
-
-# --- drafting --------------------------------------------------------------------
-
-
-def draft(
-    data: Any,
-    *,
-    unit: str | list[str],
-    time: str,
-    settings: Settings | None = None,
-) -> str:
-    """A starting contract learned from ``data`` (meant to be a clean panel), as YAML text.
-
-    It records the keys, the period grid, the types, observed ranges, code lists
-    of columns with few levels, missing-share ceilings, the time-invariant
-    columns (from the profile) and columns that never fall within a unit. The
-    data it was drafted from passes it.
-    """
-    import yaml
-
-    from auditor import __version__
-    from auditor.profile import profile_panel
-
-    settings = settings or default_settings()
-    panel = load_panel(data, unit, time, settings=settings)
-    prof = profile_panel(panel, settings)
-    kinds = dict(zip(prof.columns["name"].to_list(), prof.columns["kind"].to_list(), strict=True))
-    doc_panel = _draft_panel(panel, settings)
-    doc_columns = _draft_columns(panel, kinds, settings)
-    head = (
-        f"# Panel contract drafted by panel-audit {__version__} from {panel.source}\n"
-        f"# ({panel.rows} rows, {panel.n_units} units, {panel.n_periods} periods).\n"
-        "# A starting point: it states what this data looks like. Loosen or tighten\n"
-        "# each rule to what the delivery must promise, then run `panel-audit check`.\n"
-    )
-    body = yaml.safe_dump(
-        {"panel": doc_panel, "columns": doc_columns},
-        sort_keys=False,
-        default_flow_style=None,
-        allow_unicode=True,
-        width=100,
-    )
-    return head + body
-
-
-def _ceil(x: float, digits: int = 2) -> float:
-    scale = 10**digits
-    return min(1.0, math.ceil(x * scale - 1e-9) / scale)
-
-
-def _draft_panel(panel: Panel, settings: Settings) -> dict[str, Any]:
-    listed = int(settings.get("check", "draft_periods_listed"))
-    margin = float(settings.get("check", "draft_attrition_margin"))
-    doc: dict[str, Any] = {
-        "unit": panel.unit[0] if len(panel.unit) == 1 else list(panel.unit),
-        "time": panel.time,
-    }
-    if panel.step is not None:
-        doc["step"] = panel.step
-    if panel.n_periods <= listed:
-        doc["periods"] = list(panel.grid)
-    else:
-        doc["period_range"] = {"first": panel.grid[0], "last": panel.grid[-1]}
-    doc["min_units"] = panel.n_units
-    per_unit = _per_unit(panel)
-    if int(per_unit["periods"].min()) == panel.n_periods:
-        doc["balanced"] = True
-    table = attrition_shares(panel, per_unit)
-    if table.height:
-        worst = float(table["share"].max())
-        doc["max_attrition"] = _ceil(max(worst, worst + margin))
-    doc["max_duplicate_keys"] = panel.frame.height - int(per_unit["periods"].sum())
-    doc["max_missing_keys"] = panel.missing_keys
-    doc["only_listed_columns"] = True
-    return doc
-
-
-def _scalar(v: Any) -> Any:
-    if isinstance(v, datetime | date | bool | int | str):
-        return v
-    if isinstance(v, float):
-        return v
-    return str(v)
-
-
-def _draft_columns(panel: Panel, kinds: dict[str, str], settings: Settings) -> dict[str, Any]:
-    max_levels = int(settings.get("check", "draft_max_levels"))
-    margin = float(settings.get("check", "draft_missing_margin"))
-    frame = panel.frame
-    rows = frame.height
-    names = [c for c in panel.schema if c not in (*panel.unit, panel.time)]
-    fams = {c: type_family(panel.schema[c]) for c in names}
-    # one pass over the frame for every column's missing count, range and distinct count
-    aggs: list[pl.Expr] = []
-    for c in names:
-        v = _values(c, panel.schema[c])
-        aggs.append(v.null_count().alias(f"{c}\x00null"))
-        if fams[c] in ("text", "integer", "boolean"):
-            aggs.append(v.drop_nulls().n_unique().alias(f"{c}\x00distinct"))
-        if fams[c] in ("integer", "float", "date", "datetime"):
-            aggs.append(v.min().alias(f"{c}\x00min"))
-            aggs.append(v.max().alias(f"{c}\x00max"))
-    stats = frame.select(aggs).row(0, named=True) if aggs else {}
-    # columns that change within units: do they only rise (or only fall)? one sort for all
-    moving = [
-        c for c in names
-        if fams[c] in ("integer", "float", "date")
-        and kinds.get(c) not in (None, "constant", "time-invariant")
-    ]
-    direction: dict[str, str] = {}
-    if moving:
-        steps = step_changes(panel, moving)
-        counts = steps.select(
-            [(pl.col(f"change:{c}") < 0).sum().alias(f"{c}\x00falls") for c in moving]
-            + [(pl.col(f"change:{c}") > 0).sum().alias(f"{c}\x00rises") for c in moving]
-        ).row(0, named=True)
-        for c in moving:
-            falls, rises = int(counts[f"{c}\x00falls"]), int(counts[f"{c}\x00rises"])
-            if falls == 0 and rises > 0:
-                direction[c] = "increasing"
-            elif rises == 0 and falls > 0:
-                direction[c] = "decreasing"
-    doc: dict[str, Any] = {}
-    for c in [*panel.unit, panel.time]:
-        fam = type_family(panel.schema[c])
-        if fam is not None:
-            doc[c] = {"type": fam}
-    for c in names:
-        spec: dict[str, Any] = {}
-        fam = fams[c]
-        if fam is not None:
-            spec["type"] = fam
-        if fam in ("integer", "float", "date", "datetime"):
-            lo, hi = stats[f"{c}\x00min"], stats[f"{c}\x00max"]
-            if lo is not None and hi is not None:
-                spec["min"], spec["max"] = _scalar(lo), _scalar(hi)
-        distinct = int(stats.get(f"{c}\x00distinct") or 0)
-        if 0 < distinct <= max_levels:
-            levels = frame.select(pl.col(c).drop_nulls().unique().sort()).to_series().to_list()
-            spec["allowed"] = [_scalar(x) for x in levels]
-        share = int(stats[f"{c}\x00null"]) / rows if rows else 0.0
-        spec["max_missing"] = 0.0 if share == 0 else _ceil(share + margin)
-        if kinds.get(c) in ("constant", "time-invariant"):
-            spec["invariant"] = True
-        elif c in direction:
-            spec["monotone"] = direction[c]
-        doc[c] = spec
-    return doc
 
 
 # --- export ----------------------------------------------------------------------
@@ -1221,7 +1075,7 @@ def export_suite(rules_path: str | Path) -> dict[str, Any]:
     doc = suite.to_json_dict()
     left = [f"panel.{k}" for k, v in vars(contract.panel).items() if v not in (None, False) and k not in ("unit", "time")]
     for col in contract.columns:
-        for key in ("type", "invariant", "monotone", "max_change"):
+        for key in ("type", "invariant", "monotone", "max_change", "max_change_per_period", "follows_period"):
             if getattr(col, key) not in (None, False):
                 left.append(f"columns.{col.name}.{key}")
     meta = dict(doc.get("meta") or {})

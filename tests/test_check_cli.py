@@ -65,7 +65,7 @@ def test_check_exits_1_on_the_next_season_and_json_names_the_rules(orchard_files
     failed = {(r["rule"], r["column"]): r for r in doc["rules"] if not r["passed"]}
     assert failed[("allowed", "soil_class")]["failing"] == PLANTED_NEXT["new_soil_code"]
     assert failed[("allowed", "soil_class")]["level"] == "row"
-    assert failed[("periods", None)]["level"] == "panel"
+    assert failed[("only_listed_columns", None)]["level"] == "panel"
 
 
 def test_check_text_lists_broken_rules(orchard_files, drafted):
