@@ -320,8 +320,13 @@ def _run(argv: Sequence[str] | None) -> int:
     from auditor import progress
 
     progress.enable(bool(sys.stderr.isatty()) and not getattr(args, "json", False))
+    import warnings
+
     try:
-        return COMMANDS[args.command](args)
+        with warnings.catch_warnings():
+            if not debug:  # a library's warning is not the user's business on the terminal
+                warnings.simplefilter("ignore")
+            return COMMANDS[args.command](args)
     except KeyboardInterrupt:
         sys.stderr.write(f"{PROG}: interrupted\n")
         return 130

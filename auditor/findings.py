@@ -108,6 +108,9 @@ CHECKS: dict[str, CheckSpec] = {
         "warning", "compare", "a stability index against the base's last period above the cut-off"
     ),
     "missing-jump": CheckSpec("warning", "compare", "a missing share that rises against the base's last period"),
+    "period-value-differs": CheckSpec(
+        "warning", "compare", "a column all units share within each base period that units disagree on in the new wave"
+    ),
     "column-removed": CheckSpec("warning", "compare", "a base column absent from the new wave"),
     "unexpected-period": CheckSpec("warning", "compare", "a new period that does not continue the base grid"),
     "column-added": CheckSpec("note", "compare", "a column new in the wave"),

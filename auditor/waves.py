@@ -52,6 +52,7 @@ SECTION = "compare"
 POS = "__pa_pos"  # the period's position on the scale shared by base and new
 BASE_UNIT = "__pa_base_unit"  # the base's unit code of a new row's unit (null: entering)
 MAD_TO_SD = 1.4826  # 1 / Phi^-1(3/4): the MAD of normal data times this is its sd (common practice)
+KS_EXACT_MAX_N = 10_000  # scipy.stats.ks_2samp's method 'auto' computes exactly up to this sample size
 INVARIANT_KINDS = ("constant", "time-invariant", "nearly-time-invariant")
 
 
@@ -147,22 +148,47 @@ def _psi_from_counts(base_counts: np.ndarray, new_counts: np.ndarray, smoothing:
     return float(terms.sum())
 
 
+def psi_codes(reference: np.ndarray, values: np.ndarray, bins: int) -> tuple[np.ndarray, int]:
+    """The stability-index bin of each of ``values`` on the bins of ``reference``, and the
+    number of bins.
+
+    Cut points are the reference's quantiles at 1/bins, ..., (bins-1)/bins (numpy's
+    linear interpolation), repeated ones merged. A cut point on which the reference
+    holds a tie of at least one bin's worth (1/bins of its values: a constant or
+    discrete reference) is a bin of its own, between the interval below it and the one
+    above, so a value can leave it in either direction; other cut points close the
+    interval on their left. With m cut points the codes run 0..2m: the interval below
+    cut point j is 2j, cut point j itself 2j + 1.
+    """
+    edges = np.unique(np.quantile(reference, np.arange(1, bins) / bins))
+    ordered = np.sort(reference)
+    ties = np.searchsorted(ordered, edges, side="right") - np.searchsorted(ordered, edges, side="left")
+    point = ties * bins >= reference.size
+    k = np.searchsorted(edges, values, side="left")
+    inside = k < edges.size
+    at = np.zeros(values.shape, dtype=bool)
+    at[inside] = (values[inside] == edges[k[inside]]) & point[k[inside]]
+    return 2 * k + at, 2 * edges.size + 1
+
+
 def numeric_psi(base: np.ndarray, new: np.ndarray, *, bins: int = 10, smoothing: float = 0.5) -> float:
     """Population stability index of ``new`` against ``base`` on the base's quantile bins.
 
-    Cut points are the base's quantiles at 1/bins, ..., (bins-1)/bins (numpy's linear
-    interpolation), repeated cut points merged, bins closed on the right. Returns the
-    index (dimensionless, 0 for identical shares); NaN when either sample is empty.
+    Bins as :func:`psi_codes` makes them; bins empty on both sides are left out, and
+    ``smoothing`` is added to every other bin's count on both sides before shares are
+    taken. Returns the index (dimensionless, 0 for identical shares); NaN when either
+    sample is empty.
     """
     base = np.asarray(base, dtype=float)
     new = np.asarray(new, dtype=float)
     if base.size == 0 or new.size == 0:
         return math.nan
-    edges = np.unique(np.quantile(base, np.arange(1, bins) / bins))
-    k = edges.size + 1
-    b = np.bincount(np.searchsorted(edges, base, side="left"), minlength=k)
-    n = np.bincount(np.searchsorted(edges, new, side="left"), minlength=k)
-    return _psi_from_counts(b, n, smoothing)
+    b_codes, k = psi_codes(base, base, bins)
+    n_codes, _ = psi_codes(base, new, bins)
+    b = np.bincount(b_codes, minlength=k)
+    n = np.bincount(n_codes, minlength=k)
+    used = (b > 0) | (n > 0)
+    return _psi_from_counts(b[used], n[used], smoothing)
 
 
 def level_psi(base_counts: dict[Any, int], new_counts: dict[Any, int], *, smoothing: float = 0.5) -> float:
@@ -178,16 +204,71 @@ def level_psi(base_counts: dict[Any, int], new_counts: dict[Any, int], *, smooth
     return _psi_from_counts(b, n, smoothing)
 
 
-def ks_two_sample(base: np.ndarray, new: np.ndarray) -> tuple[float, float]:
+def ks_two_sample(base: np.ndarray, new: np.ndarray) -> tuple[float, float, str]:
     """Two-sample Kolmogorov-Smirnov statistic (largest gap between the two empirical
-    distribution functions, 0..1) and its two-sided p-value (scipy.stats.ks_2samp,
-    method 'auto'). NaN, NaN when either sample is empty."""
+    distribution functions, 0..1), its two-sided p-value (scipy.stats.ks_2samp, method
+    'auto') and how the p-value was computed: ``exact``, or ``asymptotic`` (large
+    samples, or scipy's exact calculation did not converge; its warning is kept off the
+    terminal). NaN, NaN, "" when either sample is empty."""
     if len(base) == 0 or len(new) == 0:
-        return math.nan, math.nan
+        return math.nan, math.nan, ""
+    import warnings
+
     from scipy.stats import ks_2samp
 
-    res = ks_2samp(np.asarray(base, dtype=float), np.asarray(new, dtype=float))
-    return float(res.statistic), float(res.pvalue)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        res = ks_2samp(np.asarray(base, dtype=float), np.asarray(new, dtype=float))
+    exact = max(len(base), len(new)) <= KS_EXACT_MAX_N and not any(
+        "Exact calculation unsuccessful" in str(w.message) for w in caught
+    )
+    return float(res.statistic), float(res.pvalue), "exact" if exact else "asymptotic"
+
+
+def significant(x: Any, digits: int = 6) -> float | None:
+    """``x`` rounded to ``digits`` significant digits (a p-value of 2e-36 stays 2e-36);
+    None for a missing or non-finite value."""
+    if x is None:
+        return None
+    x = float(x)
+    if not math.isfinite(x):
+        return None
+    return float(f"{x:.{digits}g}")
+
+
+def change_scale(changes: np.ndarray, *, zero_share: float) -> tuple[float | None, float | None, str]:
+    """The centre and robust scale of a column's within-unit changes, and how it was found.
+
+    In order, the first that is positive: 1.4826 times the median absolute deviation
+    about the median ("mad"; the normal-consistency factor, common practice), the
+    standard deviation of the changes between their 5% and 95% quantiles
+    ("trimmed-sd"), the standard deviation of all ("sd"), and the size of the one
+    change they all share ("step"). When at least ``zero_share`` of the changes are
+    exactly 0 (a value that often stays put), the scale is that of the non-zero
+    changes (the method is prefixed "non-zero ") and a zero change is never a jump.
+    Returns (None, None, "none") when there is no change to learn from.
+    """
+    d = np.asarray(changes, dtype=float)
+    d = d[np.isfinite(d)]
+    if d.size == 0:
+        return None, None, "none"
+    prefix = ""
+    zeros = d == 0
+    if zeros.mean() >= zero_share and not zeros.all():
+        d, prefix = d[~zeros], "non-zero "
+    centre = float(np.median(d))
+    mad = float(np.median(np.abs(d - centre)))
+    if mad > 0:
+        return centre, MAD_TO_SD * mad, prefix + "mad"
+    lo, hi = np.quantile(d, [0.05, 0.95])
+    middle = d[(d >= lo) & (d <= hi)]
+    if middle.size > 1 and float(np.std(middle, ddof=1)) > 0:
+        return centre, float(np.std(middle, ddof=1)), prefix + "trimmed-sd"
+    if d.size > 1 and float(np.std(d, ddof=1)) > 0:
+        return centre, float(np.std(d, ddof=1)), prefix + "sd"
+    if centre != 0:
+        return centre, abs(centre), prefix + "step"
+    return centre, None, "none"
 
 
 # --- small helpers ----------------------------------------------------------------------
@@ -752,6 +833,7 @@ class _Comparison:
         fresh = [p for p in self.new_pos if p not in base_set]
         later = [p for p in fresh if p > last]
         expected = {last + step * k for k in range(1, len(later) + 1)}
+        held = set(self.new_pos)
         problems = []
         for p in fresh:
             if p > last and p in expected:
@@ -763,8 +845,24 @@ class _Comparison:
             elif p < last:
                 why = "fills a period missing inside the base grid"
             else:
-                skipped = [self._lab(q) for q in range(last + step, p, step) if q not in set(self.new_pos)]
-                why = f"skips {_labels_text(skipped)}" if skipped else "does not continue the grid"
+                # the periods between, counted (never listed: a mistyped 20190101 on a yearly
+                # grid would skip twenty million of them)
+                between = (p - last) // step - 1
+                covered = sum(1 for q in held if last < q < p and (q - last) % step == 0)
+                n_skipped = between - covered
+                shown = []
+                q = last + step
+                while q < p and len(shown) < 3:
+                    if q not in held:
+                        shown.append(str(self._lab(q)))
+                    q += step
+                if n_skipped <= 0:
+                    why = "does not continue the grid"
+                elif n_skipped <= 3:
+                    why = f"skips {', '.join(shown)}"
+                else:
+                    why = (f"skips {n_skipped:,} periods ({', '.join(shown)}, ...); "
+                           "a mistyped period label is more likely than that many missing waves")
             problems.append({"period": self._lab(p), "reason": why})
         if problems:
             labels = [e["period"] for e in problems]
@@ -803,7 +901,9 @@ class _Comparison:
             c for c in self.numeric
             if kinds.get(c) == "time-varying" or (kinds.get(c) == "nearly-time-invariant" and c not in inv)
         ]
-        jump_info = self._consistency(inv, jump, tol)
+        jump_info = self._consistency(inv, jump, tol, kinds)
+        for c in [c for c in self.compared if kinds.get(c) == "period-only"]:
+            jump_info.setdefault(c, {}).update(self._period_only(c, tol))
         cat_info = self._categories(kinds)
         out = []
         for j, c in enumerate(self.compared):
@@ -824,25 +924,41 @@ class _Comparison:
                 r["name"]: r["units_observed_twice"] or 0
                 for r in cols.select("name", "units_observed_twice").iter_rows(named=True)
             }
+            self.units_changing = {
+                r["name"]: r["units_changing"] or 0
+                for r in cols.select("name", "units_changing").iter_rows(named=True)
+            }
             self.changing_share = {
                 r["name"]: (r["units_changing"] or 0) / r["units_observed_twice"] if r["units_observed_twice"] else 0.0
                 for r in cols.select("name", "units_changing", "units_observed_twice").iter_rows(named=True)
             }
         return dict(zip(cols["name"].to_list(), cols["kind"].to_list(), strict=True))
 
-    def _consistency(self, inv: list[str], jump: list[str], tol: float) -> dict[str, dict[str, Any]]:
-        """invariant-changed and implausible-jump findings; the jump scales by column."""
+    def _periods_between(self, later: pl.Expr, earlier: pl.Expr) -> pl.Expr:
+        """Grid steps between two positions on the shared scale (the base grid's step)."""
+        return (later - earlier) / float(self.step or 1)
+
+    def _consistency(
+        self, inv: list[str], jump: list[str], tol: float, kinds: dict[str, str]
+    ) -> dict[str, dict[str, Any]]:
+        """invariant-changed and implausible-jump findings; the expected change and its scale by column."""
         cols = [*inv, *jump]
         if not cols:
             return {}
         narrow = self.B.select(UNIT_ID, POS, *cols).sort(UNIT_ID, POS)
-        base_last = narrow.group_by(UNIT_ID).agg([pl.col(c).drop_nulls().last().alias(c) for c in cols])
+        base_last = narrow.group_by(UNIT_ID).agg(
+            [pl.col(c).drop_nulls().last().alias(c) for c in cols]
+            + [pl.col(POS).filter(pl.col(c).is_not_null()).last().alias(f"{c}\x00bpos") for c in jump]
+        )
         new_first = (
             self.N.filter(pl.col(BASE_UNIT).is_not_null())
             .select(BASE_UNIT, POS, *cols)
             .sort(BASE_UNIT, POS)
             .group_by(BASE_UNIT)
-            .agg([pl.col(c).drop_nulls().first().alias(c) for c in cols])
+            .agg(
+                [pl.col(c).drop_nulls().first().alias(c) for c in cols]
+                + [pl.col(POS).filter(pl.col(c).is_not_null()).first().alias(f"{c}\x00npos") for c in jump]
+            )
         )
         both = new_first.join(
             base_last.rename({c: f"{c}\x00base" for c in cols}), left_on=BASE_UNIT, right_on=UNIT_ID, how="inner"
@@ -889,51 +1005,138 @@ class _Comparison:
                  "base": _json_value(r[f"{c}\x00base"]), "new": _json_value(r[c])}
                 for r in changed.head(self.examples).iter_rows(named=True)
             ]
+            if kinds.get(c) == "nearly-time-invariant":
+                moved = getattr(self, "units_changing", {}).get(c, 0)
+                seen_twice = getattr(self, "observed_twice", {}).get(c, 0)
+                held = (f"'{c}' is nearly time-invariant in the base (it changes within only "
+                        f"{_plural(moved, 'unit')} of the {seen_twice:,} seen twice)")
+            else:
+                held = f"'{c}' does not change within units in the base"
             self.add(
                 "invariant-changed",
-                f"'{c}' does not change within units in the base, but {_plural(n, 'returning unit')} "
-                f"{_verb(n, 'reports', 'report')} a value in the new wave they never reported before; a fixed-effects model would "
-                "read these as real changes: confirm them with the source or keep the base value",
+                f"{held}, but {_plural(n, 'returning unit')} "
+                f"{_verb(n, 'reports', 'report')} a value in the new wave {_verb(n, 'it', 'they')} never reported before; "
+                "a fixed-effects model would read these as real changes: confirm them with the source or keep "
+                "the base value",
                 column=c,
                 count=n,
                 examples=examples,
             )
         if jump:
-            cut = float(self.get("jump_mads"))
-            same_unit = pl.col(UNIT_ID) == pl.col(UNIT_ID).shift(1)
-            d = narrow.select([pl.when(same_unit).then(pl.col(c) - pl.col(c).shift(1)).alias(c) for c in jump])
-            med, mad = zip(*(_median_and_mad(d.get_column(c)) for c in jump), strict=True)
-            zs = []
-            for c, m, s in zip(jump, med, mad, strict=True):
-                scale = None if s is None or m is None else MAD_TO_SD * float(s)
-                info[c] = {"change_median": _num(m), "change_scale": _num(scale)}
+            self._jumps(jump, narrow, both, tol, info)
+        return info
+
+    def _jumps(
+        self, jump: list[str], narrow: pl.DataFrame, both: pl.DataFrame, tol: float, info: dict[str, dict[str, Any]]
+    ) -> None:
+        """implausible-jump: each returning unit's change across the boundary against the base's
+        own within-unit changes. A column that moves by one step a period for (nearly) every
+        unit (an age) is judged against that step; others against the centre and robust
+        scale of their changes (:func:`change_scale`)."""
+        cut = float(self.get("jump_mads"))
+        step_cut = float(self.get("jump_steps"))
+        step_share = float(self.get("step_share"))
+        zero_share = float(self.get("jump_zero_share"))
+        same_unit = pl.col(UNIT_ID) == pl.col(UNIT_ID).shift(1)
+        periods = self._periods_between(pl.col(POS), pl.col(POS).shift(1))
+        d = narrow.select(
+            pl.when(same_unit).then(periods).alias("__pa_k"),
+            *[pl.when(same_unit).then(pl.col(c) - pl.col(c).shift(1)).alias(c) for c in jump],
+        )
+        k = d.get_column("__pa_k").to_numpy()
+        zs = []
+        for c in jump:
+            changes = d.get_column(c).to_numpy()
+            ok = np.isfinite(changes) & np.isfinite(k) & (k > 0)
+            per = changes[ok] / k[ok]
+            step = None
+            if per.size:
+                m = float(np.median(per))
+                if m != 0 and np.mean(np.abs(per - m) <= tol * (1 + abs(m))) >= step_share:
+                    step = m
+            entry: dict[str, Any]
+            new_change = pl.col(c) - pl.col(f"{c}\x00base")
+            if step is not None:
+                # the change expected across the boundary is the step times the periods between
+                expected = step * self._periods_between(pl.col(f"{c}\x00npos"), pl.col(f"{c}\x00bpos"))
+                entry = {"change_median": _num(step), "change_scale": _num(abs(step)),
+                         "change_scale_method": "step", "expected_step": _num(step)}
+                zs.append(((new_change - expected).abs() / abs(step) * (cut / step_cut)).alias(f"{c}\x00z"))
+            else:
+                centre, scale, method = change_scale(changes[np.isfinite(changes)], zero_share=zero_share)
+                entry = {"change_median": _num(centre), "change_scale": _num(scale), "change_scale_method": method}
                 if not scale:
                     zs.append(pl.lit(None, dtype=pl.Float64).alias(f"{c}\x00z"))
-                    continue
-                zs.append((((pl.col(c) - pl.col(f"{c}\x00base")) - m).abs() / scale).alias(f"{c}\x00z"))
-            zed = both.with_columns(zs)
-            for c in jump:
-                hit = zed.filter(pl.col(f"{c}\x00z") > cut)
-                info[c]["implausible_jumps"] = hit.height
-                if not hit.height:
-                    continue
-                ex = hit.sort(f"{c}\x00z", descending=True).head(self.examples)
-                examples = [
-                    {**self._keys_of(r),
-                     "base": _json_value(r[f"{c}\x00base"]), "new": _json_value(r[c]),
-                     "robust_z": round(float(r[f"{c}\x00z"]), 2)}
-                    for r in ex.iter_rows(named=True)
-                ]
-                self.add(
-                    "implausible-jump",
-                    f"'{c}' jumps for {_plural(hit.height, 'returning unit')} by more than {cut:g} robust "
-                    "deviations of the base's own period-to-period changes; check for a unit or entry "
-                    "error (a missed decimal, another measure) before appending",
-                    column=c,
-                    count=hit.height,
-                    examples=examples,
-                )
-        return info
+                else:
+                    z = (new_change - centre).abs() / scale
+                    if method.startswith("non-zero"):
+                        z = pl.when(new_change == 0).then(0.0).otherwise(z)
+                    zs.append(z.alias(f"{c}\x00z"))
+            info[c] = entry
+        zed = both.with_columns(zs)
+        for c in jump:
+            hit = zed.filter(pl.col(f"{c}\x00z") > cut)
+            info[c]["implausible_jumps"] = hit.height
+            if not hit.height:
+                continue
+            stepped = info[c]["change_scale_method"] == "step" and "expected_step" in info[c]
+            ex = hit.sort(f"{c}\x00z", descending=True).head(self.examples)
+            examples = []
+            for r in ex.iter_rows(named=True):
+                e = {**self._keys_of(r), "base": _json_value(r[f"{c}\x00base"]), "new": _json_value(r[c])}
+                if stepped:
+                    e["steps_off"] = round(float(r[f"{c}\x00z"]) * step_cut / cut, 2)
+                else:
+                    e["robust_z"] = round(float(r[f"{c}\x00z"]), 2)
+                examples.append(e)
+            if stepped:
+                why = (f"by more than {step_cut:g} steps away from the base's own change of "
+                       f"{info[c]['expected_step']:+g} a period")
+            else:
+                why = (f"by more than {cut:g} robust deviations of the base's own period-to-period changes "
+                       f"(scale: {info[c]['change_scale_method']})")
+            self.add(
+                "implausible-jump",
+                f"'{c}' jumps for {_plural(hit.height, 'returning unit')} {why}; check for a unit or entry "
+                "error (a missed decimal, another measure) before appending",
+                column=c,
+                count=hit.height,
+                examples=examples,
+            )
+
+    def _period_only(self, c: str, tol: float) -> dict[str, Any]:
+        """A column all units share within each base period (a price, a national index) must
+        again hold one value per period in the new wave: period-value-differs otherwise."""
+        v = pl.col(c)
+        if c in self.numeric:
+            differs = (v.max() - v.min()) > tol * (1 + v.mean().abs())
+        else:
+            differs = v.drop_nulls().n_unique() > 1
+        per = (
+            self.N.group_by(POS)
+            .agg(differs.fill_null(False).alias("__pa_d"), v.drop_nulls().n_unique().alias("__pa_n"),
+                 v.min().alias("__pa_lo"), v.max().alias("__pa_hi"))
+            .filter(pl.col("__pa_d"))
+            .sort(POS)
+        )
+        if per.height:
+            first = per.row(0, named=True)
+            self.add(
+                "period-value-differs",
+                f"'{c}' holds one value for every unit in each base period, but in "
+                f"{_plural(per.height, 'period')} of the new wave units hold different values "
+                f"({first['__pa_n']} values in {self._lab(first[POS])}, {_json_value(first['__pa_lo'])} to "
+                f"{_json_value(first['__pa_hi'])}); a period effect absorbs it only if every unit shares it: "
+                "check the wave's values",
+                column=c,
+                count=per.height,
+                examples=[
+                    {"period": self._lab(r[POS]), "values": int(r["__pa_n"]),
+                     "lowest": _json_value(r["__pa_lo"]), "highest": _json_value(r["__pa_hi"])}
+                    for r in per.head(self.examples).iter_rows(named=True)
+                ],
+            )
+        return {"expected": "one value per period", "periods_with_several_values": per.height}
 
     def _categories(self, kinds: dict[str, str]) -> dict[str, dict[str, Any]]:
         max_levels = int(self.get("category_max_levels"))
@@ -996,12 +1199,18 @@ class _Comparison:
         mb = float(self.ref.get_column(miss).mean()) if ref_rows else math.nan
         mn = float(self.N.get_column(miss).mean()) if new_rows else math.nan
         ks_stat = ks_p = math.nan
+        ks_method = ""
+        step = (jump or {}).get("expected_step")
         if c in self.numeric:
             a = self.ref.get_column(c).drop_nulls().to_numpy()
-            b = self.N.get_column(c).drop_nulls().to_numpy()
-            ks_stat, ks_p = ks_two_sample(a, b)
-            psi = numeric_psi(a, b, bins=bins, smoothing=smoothing)
+            values = pl.col(c)
             kind_cmp = "numeric"
+            if step is not None:
+                # like with like: the new wave less the base's step times the periods since the reference
+                values = values - step * self._periods_between(pl.col(POS), pl.lit(self.last_pos))
+            b = self.N.select(values.alias(c)).get_column(c).drop_nulls().to_numpy()
+            ks_stat, ks_p, ks_method = ks_two_sample(a, b)
+            psi = numeric_psi(a, b, bins=bins, smoothing=smoothing)
             nb, nn = a.size, b.size
         else:
             bc, nc = self._level_counts("ref", c), self._level_counts("new", c)
@@ -1016,7 +1225,8 @@ class _Comparison:
             nb, nn = sum(bd.values()), sum(nd.values())
         ref = f"base period {self._lab(self.last_pos)}"
         cut = float(self.get("psi_shift"))
-        # A period-only column changes with the period by definition: its shift is no alarm.
+        # A period-only column changes with the period by definition: its shift is no alarm
+        # (period-value-differs judges it); a stepped column was compared less its step.
         if math.isfinite(psi) and psi > cut and kind != "period-only":
             self.add(
                 "distribution-shift",
@@ -1038,12 +1248,14 @@ class _Comparison:
         row: dict[str, Any] = {
             "column": c,
             "compared_as": kind_cmp,
+            "less_step": step is not None,  # the new wave was compared less the base's step per period
             "base_kind": kind,
             "reference": ref,
             "n_base": int(nb),
             "n_new": int(nn),
             "ks_statistic": _num(ks_stat),
-            "ks_p": _num(ks_p, 8),
+            "ks_p": significant(ks_p),
+            "ks_p_method": ks_method or None,
             "psi": _num(psi),
             "missing_base": _num(mb),
             "missing_new": _num(mn),

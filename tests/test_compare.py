@@ -109,10 +109,12 @@ def test_numeric_psi_equals_a_hand_computation_on_deciles_of_one_to_ten():
 
 def test_numeric_psi_through_compare_uses_the_base_last_period_only():
     # Same hand case as above, placed in a panel: the base's earlier period (values 50..59)
-    # must not enter the reference ("like with like").
+    # must not enter the reference ("like with like"). The 2020 values are permuted across
+    # units so that the within-unit changes differ (every unit changing by the same step
+    # would make compare judge the wave less that step, issue 14).
     base = pl.DataFrame(
         {"id": list(range(10)) * 2, "year": [2020] * 10 + [2021] * 10,
-         "v": [50.0 + i for i in range(10)] + [float(i) for i in range(1, 11)]}
+         "v": [50.0 + (3 * i) % 10 for i in range(10)] + [float(i) for i in range(1, 11)]}
     )
     new = pl.DataFrame({"id": list(range(10)), "year": [2022] * 10, "v": [1.0, 1, 1, 1, 1, 2, 2, 3, 10, 10]})
     res = compare(base, new, **KEYS)

@@ -54,6 +54,23 @@ def _p_value(p: float | None) -> str:
     return "<0.001" if p < 0.001 else f"{p:.3f}"
 
 
+def _skipped_periods(findings: Sequence[Any]) -> str:
+    """The verdict's words for new periods that do not continue the base grid ("" if none)."""
+    hits = [f for f in findings if f.check == "unexpected-period"]
+    if not hits:
+        return ""
+    ex = list(hits[0].examples)
+    if not ex:
+        return "a new period does not continue the base grid"
+    first = ex[0]
+    more = f" (and {len(ex) - 1} more)" if len(ex) > 1 else ""
+    return f"new period {safe(first.get('period'))} {safe(first.get('reason'))}{more}"
+
+
+def _plural(n: int, one: str, many: str | None = None) -> str:
+    return f"{n:,} {one}" if n == 1 else f"{n:,} {many or one + 's'}"
+
+
 def _names(items: Sequence[str], limit: int = 6) -> str:
     if not items:
         return "none"
@@ -79,14 +96,18 @@ def render(
             colour,
         )
     ]
+    skipped = _skipped_periods(wave)
     if errors:
         checks = sorted({f.check for f in errors})
         verdict = paint(
             f"do not append yet: {len(errors)} problem{'s' if len(errors) != 1 else ''} would corrupt the panel "
-            f"({', '.join(checks)})",
+            f"({', '.join(checks)})" + (f"; and {skipped}" if skipped else ""),
             "error",
             colour,
         )
+    elif skipped:
+        verdict = paint(f"no error, but {skipped}: confirm the missing wave or fix the period labels before appending",
+                        "warning", colour)
     else:
         verdict = "no error: the wave can be appended once the warnings below are understood"
         if not any(f.severity == "warning" for f in wave):
@@ -135,13 +156,17 @@ def render(
         for c in result.columns:
             notes = []
             if c.get("changed_units"):
-                notes.append(f"{c['changed_units']} fixed values changed")
+                notes.append(_plural(c["changed_units"], "fixed value") + " changed")
             if c.get("implausible_jumps"):
-                notes.append(f"{c['implausible_jumps']} jumps")
+                notes.append(_plural(c["implausible_jumps"], "jump"))
             if c.get("new_levels"):
-                notes.append(f"{c['new_levels']} new levels")
+                notes.append(_plural(c["new_levels"], "new level"))
             if c.get("vanished_levels"):
-                notes.append(f"{c['vanished_levels']} levels gone")
+                notes.append(_plural(c["vanished_levels"], "level") + " gone")
+            if c.get("periods_with_several_values"):
+                notes.append(_plural(c["periods_with_several_values"], "period") + " not shared by all units")
+            if c.get("expected_step") is not None:
+                notes.append(f"step {c['expected_step']:+g} a period expected")
             rows.append(
                 [
                     c["column"],
