@@ -117,7 +117,11 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--outcome", metavar="COL")
     p.add_argument("--regressors", metavar="A,B,...")
     p.add_argument("--correlated", metavar="A,C", default=None)
-    p.add_argument("--against", metavar="BASE", help="compare DATA as a new wave against BASE")
+    p.add_argument("--period-effects", action="store_true", help="model readiness with a dummy for each period but the first")
+    p.add_argument("--treat-as-invariant", metavar="COL", action="append", default=[],
+                   help="model readiness: use a nearly-time-invariant column's most common value within each unit")
+    p.add_argument("--against", metavar="BASE",
+                   help="DATA is a new wave: report on BASE + DATA appended, with the wave compared against BASE")
     p.add_argument("--out", required=True, metavar="FILE.html")
     p.add_argument("--png-dir", metavar="DIR", help="also write each figure as PNG here")
     p.add_argument("--force", action="store_true", help="replace an existing --out file")
@@ -232,12 +236,13 @@ def _cmd_rules(args: argparse.Namespace) -> int:
 
 
 def _cmd_report(args: argparse.Namespace) -> int:
+    from auditor.findings import exit_code
     from auditor.outputs import check_output_path
-    from auditor.report.html import write_report
+    from auditor.report.html import build_report
 
     inputs = [Path(d) for d in args.data] + ([Path(args.against)] if args.against else [])
     check_output_path(args.out, force=args.force, inputs=inputs)
-    path = write_report(
+    run = build_report(
         _data(args),
         unit=args.unit,
         time=args.time,
@@ -249,15 +254,17 @@ def _cmd_report(args: argparse.Namespace) -> int:
         png_dir=args.png_dir,
         settings=_settings(args),
         force=args.force,
+        period_effects=args.period_effects,
+        treat_as_invariant=list(args.treat_as_invariant),
     )
     if args.json:
         from auditor.profile import tool_info
         from auditor.report.jsonout import dumps
 
-        sys.stdout.write(dumps({"tool": tool_info(), "report": str(path)}))
+        sys.stdout.write(dumps({"tool": tool_info(), "report": str(run.path)}))
     else:
-        sys.stdout.write(f"{path}\n")
-    return 0
+        sys.stdout.write(f"{run.path}\n")
+    return exit_code(run.findings, args.fail_on)
 
 
 def _cmd_demo(args: argparse.Namespace) -> int:

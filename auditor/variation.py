@@ -939,23 +939,32 @@ def variation_findings(panel: Panel, v: Variation, settings: Settings) -> list[F
     near = float(settings.get("profile", "near_constant_share"))
     few = int(settings.get("profile", "few_switchers"))
     high = float(settings.get("profile", "high_missing_share"))
+    rare = float(settings.get("profile", "nearly_invariant_units_share"))
     for r in v.columns.iter_rows(named=True):
         c, kind = r["name"], r["kind"]
         if r["distinct"] == 0:
             out.append(make("column-all-missing", settings, f"'{c}' has no value in any row; it cannot enter any model.", column=c, count=0))
             continue
+        switchers = bool(r["binary"]) and 0 < r["units_changing"] < few
         if kind == "constant":
             out.append(make("constant-column", settings, f"'{c}' takes one value everywhere; no model can estimate its effect.", column=c, count=1))
-        elif kind == "nearly-time-invariant":
+        elif kind == "nearly-time-invariant" and not switchers:  # a 0/1 column's few switchers: one finding below
+            changing, twice = r["units_changing"], r["units_observed_twice"]
+            share = f" (within share {r['within_share']:.4f})" if r["within_share"] is not None else ""
+            if changing <= rare * twice:
+                why = (f"'{c}' changes within {changing} of {twice} units seen twice or more{share}; such rare "
+                       "changes are often coding errors, and a within estimate of it rests on those units alone.")
+            else:
+                why = (f"'{c}' changes within {changing} of {twice} units seen twice or more, but only a little: "
+                       f"{100 * (r['within_share'] or 0):.2f}% of its variation lies within units, so a within "
+                       "estimate of it rests on that small variation and is imprecise.")
             out.append(
                 make(
                     "nearly-time-invariant",
                     settings,
-                    f"'{c}' changes within {r['units_changing']} of {r['units_observed_twice']} units seen twice or more"
-                    + (f" (within share {r['within_share']:.4f})" if r["within_share"] is not None else "")
-                    + "; such rare changes are often coding errors, and a within estimate of it rests on those units alone.",
+                    why,
                     column=c,
-                    count=r["units_changing"],
+                    count=changing,
                     examples=v.changing_examples.get(c, ()),
                 )
             )
@@ -973,12 +982,14 @@ def variation_findings(panel: Panel, v: Variation, settings: Settings) -> list[F
             )
         if kind != "constant" and r["dominant_share"] is not None and r["dominant_share"] >= near:
             out.append(make("near-constant", settings, f"one value of '{c}' holds {100 * r['dominant_share']:.2f}% of its rows; its effect rests on very few observations.", column=c, count=r["distinct"]))
-        if r["binary"] and 0 < r["units_changing"] < few:
+        if switchers:
+            also = " (so it is also nearly time-invariant)" if kind == "nearly-time-invariant" else ""
             out.append(
                 make(
                     "few-switchers",
                     settings,
-                    f"only {r['units_changing']} units switch '{c}' between 0 and 1; a within estimate of its effect is identified from those units alone.",
+                    f"only {r['units_changing']} {'unit switches' if r['units_changing'] == 1 else 'units switch'} '{c}' between 0 and 1{also}; "
+                    "a within estimate of its effect is identified from those units alone.",
                     column=c,
                     count=r["units_changing"],
                     examples=v.changing_examples.get(c, ()),

@@ -71,7 +71,9 @@ class CompareResult:
     dict per compared column (KS statistic, PSI, missing shares, as fractions);
     ``reference`` names the base period the distributions are compared with.
     ``wave_findings`` are this command's own findings, ``merged_findings`` those of
-    the profile of base + new together (only with ``merged=True``).
+    the profile of base + new together (only with ``merged=True``). ``appended`` is the
+    Panel of base + new and ``sides`` the base and new Panels (only with
+    ``appended=True``; not part of the JSON).
     """
 
     schema: dict[str, Any]
@@ -88,6 +90,8 @@ class CompareResult:
     merged_findings: tuple[Finding, ...] = ()
     merged_panel: dict[str, Any] | None = None
     settings: Settings | None = field(default=None, repr=False, compare=False)
+    appended: Panel | None = field(default=None, repr=False, compare=False)
+    sides: tuple[Panel, Panel] | None = field(default=None, repr=False, compare=False)
 
     @property
     def findings(self) -> tuple[Finding, ...]:
@@ -482,12 +486,14 @@ def compare(
     merged: bool = False,
     settings: Settings | None = None,
     rules: Any = None,
+    appended: bool = False,
 ) -> CompareResult:
     """Compare a new wave ``new`` with the panel held so far ``base``.
 
     Both are paths (any supported format) or pandas/polars frames keyed by ``unit``
     and ``time``. ``merged`` also profiles base + new together and adds that
-    profile's findings (scope ``merged``). Returns a CompareResult; shares are
+    profile's findings (scope ``merged``); ``appended`` keeps the Panel of base + new
+    on the result (for the report of the appended panel). Returns a CompareResult; shares are
     fractions, the PSI and KS statistic dimensionless. Raises AuditError (exit 2)
     when a side cannot serve (no common keys, an empty new wave, unreadable files).
     """
@@ -506,7 +512,11 @@ def compare(
             _load_side(base, units, time, "base", settings)  # re-raise with the compare wording
         raise
     basep: Panel = prof.data
-    return _Comparison(basep, newp, prof, settings, merged, base, new).run()
+    run = _Comparison(basep, newp, prof, settings, merged, base, new)
+    result = run.run()
+    if appended:
+        result = dataclasses.replace(result, appended=run.appended(), sides=(basep, newp))
+    return result
 
 
 class _Comparison:
@@ -528,6 +538,7 @@ class _Comparison:
         self.examples = int(settings.get("profile", "examples"))
         self.findings: list[Finding] = []
         self._counts: dict[tuple[str, str], pl.DataFrame] = {}
+        self._appended: Panel | None = None
 
     def get(self, key: str) -> Any:
         return self.s.get(SECTION, key)
@@ -1268,29 +1279,64 @@ class _Comparison:
 
     # -- merged ---------------------------------------------------------------------------
     def _merged_profile(self) -> tuple[tuple[Finding, ...], dict[str, Any] | None]:
-        bs, ns = self.bp.schema, self.np.schema
-        keys = (*self.units, self.time)
-        bf = self.bp.frame.drop([c for c in INTERNAL if c in self.bp.frame.columns])
-        nf = self.np.frame.drop([c for c in INTERNAL if c in self.np.frame.columns])
-        bcast, ncast = [], []
-        for c in set(bs) & set(ns):
-            if bs[c] == ns[c]:
-                continue
-            if c in keys:
-                expr_b = key_text(c, bs[c]).alias(c) if c in self.units else pl.col(c).cast(pl.String)
-                expr_n = key_text(c, ns[c]).alias(c) if c in self.units else pl.col(c).cast(pl.String)
-            elif _is_numeric(bs[c]) and _is_numeric(ns[c]):
-                expr_b, expr_n = pl.col(c).cast(pl.Float64), pl.col(c).cast(pl.Float64)
-            else:
-                expr_b, expr_n = pl.col(c).cast(pl.String), pl.col(c).cast(pl.String)
-            bcast.append(expr_b)
-            ncast.append(expr_n)
-        if bcast:
-            bf, nf = bf.with_columns(bcast), nf.with_columns(ncast)
-        both = pl.concat([bf, nf], how="diagonal_relaxed")
-        prof = _profile(both, self.units, self.time, self.s)
+        prof = _profile_panel(self.appended(), self.s)
         marked = tuple(
             dataclasses.replace(f, message=f"base + new: {f.message}") for f in getattr(prof, "findings", ())
         )
         panel = getattr(prof, "panel", None)
         return marked, (dict(panel) if isinstance(panel, dict) else None)
+
+    def appended(self) -> Panel:
+        """The panel as it would be after appending the wave: base + new rows, loaded once."""
+        if self._appended is None:
+            self._appended = appended_panel(self.bp, self.np, self.s)
+        return self._appended
+
+
+def _profile_panel(panel: Panel, settings: Settings) -> Any:
+    from auditor.profile import profile_panel
+
+    return profile_panel(panel, settings)
+
+
+def appended_panel(base: Panel, new: Panel, settings: Settings) -> Panel:
+    """The panel after appending ``new`` to ``base``: every keyed row of both, the columns
+    of either (a column whose type differs is read as their common numeric type, or as
+    text; key columns as text), with the rows lacking a key of both counted as its own.
+
+    Returns a Panel whose ``rows`` and ``missing_keys`` add up both inputs' and whose
+    ``source`` names both.
+    """
+    bs, ns = base.schema, new.schema
+    keys = (*base.unit, base.time)
+    bf = base.frame.drop([c for c in INTERNAL if c in base.frame.columns])
+    nf = new.frame.drop([c for c in INTERNAL if c in new.frame.columns])
+    bcast, ncast = [], []
+    for c in set(bs) & set(ns):
+        if bs[c] == ns[c]:
+            continue
+        if c in keys:
+            expr_b = key_text(c, bs[c]).alias(c) if c in base.unit else pl.col(c).cast(pl.String)
+            expr_n = key_text(c, ns[c]).alias(c) if c in base.unit else pl.col(c).cast(pl.String)
+        elif _is_numeric(bs[c]) and _is_numeric(ns[c]):
+            expr_b, expr_n = pl.col(c).cast(pl.Float64), pl.col(c).cast(pl.Float64)
+        else:
+            expr_b, expr_n = pl.col(c).cast(pl.String), pl.col(c).cast(pl.String)
+        bcast.append(expr_b)
+        ncast.append(expr_n)
+    if bcast:
+        bf, nf = bf.with_columns(bcast), nf.with_columns(ncast)
+    both = pl.concat([bf, nf], how="diagonal_relaxed")
+    panel = load_panel(both, base.unit, base.time, settings=settings)
+    examples = tuple({"in": "base", **e} for e in base.missing_key_examples) + tuple(
+        {"in": "new wave", **e} for e in new.missing_key_examples
+    )
+    return dataclasses.replace(
+        panel,
+        rows=base.rows + new.rows,
+        missing_keys=base.missing_keys + new.missing_keys,
+        missing_key_examples=examples[:5],
+        source=f"{base.source} + {new.source}",
+        inputs=(*base.inputs, *new.inputs),
+        load_findings=(*base.load_findings, *new.load_findings),
+    )

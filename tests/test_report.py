@@ -310,11 +310,29 @@ def test_cli_report_writes_the_page_and_prints_its_path(tmp_path, cli):
     data = tmp_path / "orchards.csv"
     orchard_frame().write_csv(data)
     out = tmp_path / "audit.html"
-    run = cli("report", str(data), "--unit", "orchard", "--time", "season", "--out", str(out))
+    run = cli("report", str(data), "--unit", "orchard", "--time", "season", "--out", str(out), "--fail-on", "never")
     assert run.returncode == 0, run.stderr
     assert run.stdout.strip() == str(out)
     assert section_ids(out.read_text(encoding="utf-8"))[:5] == [
         "summary", "findings", "structure", "variation", "missing"]
+
+
+def test_cli_report_honours_fail_on(tmp_path, cli):
+    # issue 14 item 5: the page is written either way; the exit code follows --fail-on
+    # like the other commands (the contract's exit codes)
+    from auditor.profile import profile
+
+    data = tmp_path / "orchards.csv"
+    orchard_frame().write_csv(data)
+    severities = {f.severity for f in profile(data, unit="orchard", time="season").findings}
+    for fail_on, expected in (("never", 0), ("error", int("error" in severities)),
+                              ("warning", int(bool({"error", "warning"} & severities)))):
+        out = tmp_path / f"audit-{fail_on}.html"
+        run = cli("report", str(data), "--unit", "orchard", "--time", "season", "--out", str(out),
+                  "--fail-on", fail_on)
+        assert run.returncode == expected, (fail_on, run.stderr)
+        assert out.exists()
+    assert {"error", "warning"} & severities  # the frame has something to fail on
 
 
 # --- new wave through the real comparison ----------------------------------------------

@@ -901,16 +901,56 @@ def write_report(
     png_dir: str | Path | None = None,
     settings: Settings | str | Path | None = None,
     force: bool = False,
+    period_effects: bool = False,
+    treat_as_invariant: Sequence[str] = (),
 ) -> Path:
     """Audit ``data`` and write the HTML report to ``out``; return the path written.
 
+    See :func:`build_report`, which also returns the findings behind the page.
+    """
+    return build_report(
+        data, unit=unit, time=time, out=out, outcome=outcome, regressors=regressors, correlated=correlated,
+        against=against, png_dir=png_dir, settings=settings, force=force, period_effects=period_effects,
+        treat_as_invariant=treat_as_invariant,
+    ).path
+
+
+@dataclass(frozen=True)
+class ReportRun:
+    """A written report: the page's ``path`` and every Finding it shows (profile, model
+    readiness and new wave), for the exit code of ``--fail-on``."""
+
+    path: Path
+    findings: tuple[Any, ...]
+
+
+def build_report(
+    data: Any,
+    *,
+    unit: str | Sequence[str],
+    time: str,
+    out: str | Path,
+    outcome: str | None = None,
+    regressors: Sequence[str] | None = None,
+    correlated: Sequence[str] | None = None,
+    against: Any = None,
+    png_dir: str | Path | None = None,
+    settings: Settings | str | Path | None = None,
+    force: bool = False,
+    period_effects: bool = False,
+    treat_as_invariant: Sequence[str] = (),
+) -> ReportRun:
+    """Audit ``data`` and write the HTML report to ``out``.
+
     Runs the profile, and the instruments check when ``outcome`` and
-    ``regressors`` are given, and the new-wave comparison when ``against`` (the
-    panel so far) is given. With ``png_dir`` each figure is also written there
-    as a PNG (names in ``FIGURE_FILES``). Refuses (exit 2) to write over an
-    input, or over an existing file unless ``force``; every file is written
-    through a temporary file and a rename, so an interrupted run leaves no
-    partial file.
+    ``regressors`` are given (with ``period_effects`` and ``treat_as_invariant`` as
+    for ``instruments``). With ``against`` (the panel so far) ``data`` is the new
+    wave: the profile and the model readiness describe the appended panel (base +
+    new), and the new-wave section compares the wave with the base. With ``png_dir``
+    each figure is also written there as a PNG (names in ``FIGURE_FILES``). Refuses
+    (exit 2) to write over an input, or over an existing file unless ``force``;
+    every file is written through a temporary file and a rename, so an interrupted
+    run leaves no partial file. Returns the ReportRun (path and findings).
     """
     from auditor.config import Settings as _Settings
     from auditor.config import load_settings
@@ -929,31 +969,34 @@ def write_report(
     if (outcome is None) != (not regressors):
         raise fail("report-model-needs-both")
 
-    from auditor.profile import profile
+    from auditor.profile import profile, profile_panel
 
-    result = profile(data, unit=unit, time=time, settings=settings)
+    comp = None
+    quantiles = None
+    lim = Limits.from_settings(settings)
+    model_data = data
+    if against is not None:
+        from auditor.load import INTERNAL, PERIOD_ID
+        from auditor.waves import compare
+
+        comp = compare(against, data, unit=unit, time=time, settings=settings, appended=True)
+        assert comp.appended is not None and comp.sides is not None
+        result = profile_panel(comp.appended, settings)
+        model_data = comp.appended.frame.drop([c for c in INTERNAL if c in comp.appended.frame.columns])
+        base, new = comp.sides
+        # like with like, as compare does: the new wave against the base's last period
+        last = base.frame.filter(base.frame[PERIOD_ID] == base.n_periods - 1)
+        quantiles = shift_quantiles(last, new.frame, _as_dict(comp) or {},
+                                    columns=lim.shift_columns, points=lim.quantiles)
+    else:
+        result = profile(data, unit=unit, time=time, settings=settings)
     inst = None
     if outcome is not None and regressors:
         from auditor.readiness import instruments
 
-        inst = instruments(data, unit=unit, time=time, outcome=outcome, regressors=list(regressors),
-                           correlated=list(correlated) if correlated else None, settings=settings)
-    comp = None
-    quantiles = None
-    lim = Limits.from_settings(settings)
-    if against is not None:
-        from auditor.load import load_panel
-        from auditor.waves import compare
-
-        comp = compare(against, data, unit=unit, time=time, settings=settings)
-        comp_doc = _as_dict(comp) or {}
-        from auditor.load import PERIOD_ID
-
-        base = load_panel(against, unit, time, settings=settings)
-        # like with like, as compare does: the new wave against the base's last period
-        last = base.frame.filter(base.frame[PERIOD_ID] == base.n_periods - 1)
-        quantiles = shift_quantiles(last, result.data.frame, comp_doc,
-                                    columns=lim.shift_columns, points=lim.quantiles)
+        inst = instruments(model_data, unit=unit, time=time, outcome=outcome, regressors=list(regressors),
+                           correlated=list(correlated) if correlated else None, settings=settings,
+                           period_effects=period_effects, treat_as_invariant=list(treat_as_invariant))
     inst_doc, comp_doc = _as_dict(inst), _as_dict(comp)
     drawn = build_figures(result, inst_doc, comp_doc, quantiles=quantiles, limits=lim)
     page = render_html(result, inst_doc, comp_doc, figures=drawn, settings=settings)
@@ -963,4 +1006,6 @@ def write_report(
 
         for name, fig in drawn.items():
             write_atomic(png_path / FIGURE_FILES[name], to_png(fig), force=force, inputs=inputs)
-    return written
+    findings = (*result.findings, *(inst.findings if inst is not None else ()),
+                *(comp.wave_findings if comp is not None else ()))
+    return ReportRun(path=written, findings=tuple(findings))
