@@ -40,7 +40,9 @@ from auditor.config import Settings, default_settings
 from auditor.load import PERIOD_ID, UNIT_ID, Panel, load_panel
 from auditor.rules import (
     attrition_shares,
+    follows_period_rule,
     integer_range,
+    invariant_counts,
     missing_as_null,
     step_changes,
     type_family,
@@ -173,8 +175,6 @@ def _number(v: Any, whole: bool) -> Any:
 def _shown(v: Any) -> str:
     if isinstance(v, float):
         return f"{v:.6g}"
-    if isinstance(v, int) and not isinstance(v, bool):
-        return _n(v)
     return str(v)
 
 
@@ -296,6 +296,13 @@ class _Drafter:
                   and not getattr(p.schema[c], "time_zone", None)]
         moves = self._moves(moving)
         rows = self.frame.height
+        # the profile's kinds, confirmed by the exact rules the draft states (it must pass its data)
+        tol = float(self.s.get("profile", "float_tolerance"))
+        fixed = [c for c in self.names if kinds[c] in ("constant", "time-invariant")]
+        changing = invariant_counts(p, fixed, tol) if fixed else {}
+        self.fixed = {c for c in fixed if changing[c] == 0}
+        self.shared = {c for c in self.names if kinds[c] == "period-only"
+                       and follows_period_rule(c, p, tol, 1).passed}
         for c in self.names:
             doc[c] = self._column(c, stats, by_period, kinds[c], moves.get(c), rows)
         return doc
@@ -352,15 +359,16 @@ class _Drafter:
         # -- what stays put, follows the period, or only moves one way within units
         twice = fact.get("units_observed_twice") or 0
         changing = fact.get("units_changing") or 0
-        if kind in ("constant", "time-invariant") and twice:
+        if c in self.fixed and twice:
             spec.put("invariant", True, f"no unit of the {_n(twice)} seen twice changes it")
-        elif follows:
+        elif follows and c in self.shared:
             spec.put("follows_period", True, f"every unit holds the same value in each of the {p.n_periods} periods")
         elif direction is not None and move is not None:
             n = move["rises"] if direction == "increasing" else move["falls"]
             verb = "rises" if direction == "increasing" else "falls"
             spec.put("monotone", direction, f"{verb} {_n(n)} times within units, never the other way")
-        if kind == "nearly-time-invariant" and changing:
+        rare = float(self.s.get("profile", "nearly_invariant_units_share"))
+        if kind == "nearly-time-invariant" and 0 < changing <= rare * twice:
             spec.comment = (f"changes within {_n(changing)} of {_n(twice)} units: not drafted as invariant; "
                             "if those changes are errors, fix them and add invariant: true")
         if (up or down) and move is not None and move["n"] and fam in ("integer", "float"):

@@ -531,7 +531,7 @@ def to_pandas_once(frame: pl.DataFrame) -> Any:
             casts.append(pl.col(c).cast(pl.Float64))
         elif dt.is_integer() and counts[c]:
             lo, hi = frame.select(pl.col(c).min().alias("lo"), pl.col(c).max().alias("hi")).row(0)
-            if max(abs(lo), abs(hi)) <= FLOAT_EXACT_INTEGERS:
+            if lo is None or max(abs(lo), abs(hi)) <= FLOAT_EXACT_INTEGERS:
                 casts.append(pl.col(c).cast(pl.Float64))
             else:
                 kind = getattr(pd, f"{dt}Dtype", None)
@@ -926,7 +926,7 @@ def _within_rules(
                 )
     for col in columns:
         if col.follows_period:
-            out[col.name].append(_follows_period_rule(col.name, panel, tol, limit))
+            out[col.name].append(follows_period_rule(col.name, panel, tol, limit))
     return out
 
 
@@ -934,7 +934,7 @@ def _times(n: int) -> str:
     return "once" if n == 1 else f"{n} times"
 
 
-def _follows_period_rule(column: str, panel: Panel, tolerance: float, limit: int) -> RuleResult:
+def follows_period_rule(column: str, panel: Panel, tolerance: float, limit: int) -> RuleResult:
     """Every unit holds the same value in a period (a price, a national index): the periods
     where the non-missing values differ (floats: by more than the profile's tolerance)."""
     from auditor.report.jsonout import clean

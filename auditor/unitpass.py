@@ -546,7 +546,8 @@ def _number_values(
         if vmax - vmin <= 4 * v.size + 1024 and s.dtype.is_integer():
             tally = np.zeros(int(vmax - vmin) + 1, dtype=np.int64)
             for chunk in s.drop_nulls().get_chunks():  # the integers themselves, chunk by chunk
-                tally += np.bincount(chunk.to_numpy() - int(vmin), minlength=tally.size)
+                # in int64: an Int8 holding -128 and 0 would wrap around in its own type
+                tally += np.bincount(chunk.to_numpy().astype(np.int64, copy=False) - int(vmin), minlength=tally.size)
             return int(np.count_nonzero(tally)), int(tally.max())
     buf = _buffers(ctx, v.size)[0]
     np.copyto(buf, v)
