@@ -152,45 +152,62 @@ def _psi_from_counts(base_counts: np.ndarray, new_counts: np.ndarray, smoothing:
     return float(terms.sum())
 
 
-def psi_codes(reference: np.ndarray, values: np.ndarray, bins: int) -> tuple[np.ndarray, int]:
-    """The stability-index bin of each of ``values`` on the bins of ``reference``, and the
-    number of bins.
+def psi_bins(reference: np.ndarray, bins: int, *, assume_sorted: bool = False) -> tuple[np.ndarray, np.ndarray]:
+    """The stability-index cut points of ``reference`` and which of them are bins of their own.
 
     Cut points are the reference's quantiles at 1/bins, ..., (bins-1)/bins (numpy's
     linear interpolation), repeated ones merged. A cut point on which the reference
     holds a tie of at least one bin's worth (1/bins of its values: a constant or
     discrete reference) is a bin of its own, between the interval below it and the one
     above, so a value can leave it in either direction; other cut points close the
-    interval on their left. With m cut points the codes run 0..2m: the interval below
-    cut point j is 2j, cut point j itself 2j + 1.
+    interval on their left. Returns (cut points, a boolean per cut point).
     """
-    edges = np.unique(np.quantile(reference, np.arange(1, bins) / bins))
-    ordered = np.sort(reference)
+    ordered = np.asarray(reference, dtype=float)
+    if not assume_sorted:
+        ordered = np.sort(ordered)
+    edges = np.unique(np.quantile(ordered, np.arange(1, bins) / bins))
     ties = np.searchsorted(ordered, edges, side="right") - np.searchsorted(ordered, edges, side="left")
-    point = ties * bins >= reference.size
-    k = np.searchsorted(edges, values, side="left")
-    inside = k < edges.size
-    at = np.zeros(values.shape, dtype=bool)
-    at[inside] = (values[inside] == edges[k[inside]]) & point[k[inside]]
-    return 2 * k + at, 2 * edges.size + 1
+    return edges, ties * bins >= ordered.size
 
 
-def numeric_psi(base: np.ndarray, new: np.ndarray, *, bins: int = 10, smoothing: float = 0.5) -> float:
+def psi_counts(values: np.ndarray, edges: np.ndarray, point: np.ndarray, *, assume_sorted: bool = False) -> np.ndarray:
+    """How many of ``values`` fall in each bin of :func:`psi_bins`: 2m + 1 counts for m cut
+    points, the interval below cut point j at 2j and cut point j itself at 2j + 1 (zero
+    when it is no bin of its own), the interval above the last at 2m. One sort of the
+    values (none when ``assume_sorted``) and two binary searches per cut point."""
+    ordered = np.asarray(values, dtype=float)
+    if not assume_sorted:
+        ordered = np.sort(ordered)
+    left = np.searchsorted(ordered, edges, side="left")
+    right = np.searchsorted(ordered, edges, side="right")
+    upper = np.where(point, left, right)  # where each interval ends: before a point bin, after a cut point
+    lower = np.concatenate([[0], right])  # where each starts: after the cut point below
+    counts = np.zeros(2 * edges.size + 1, dtype=np.int64)
+    counts[0:-1:2] = upper - lower[:-1]
+    counts[-1] = ordered.size - lower[-1]
+    counts[1::2] = np.where(point, right - left, 0)
+    return counts
+
+
+def numeric_psi(
+    base: np.ndarray, new: np.ndarray, *, bins: int = 10, smoothing: float = 0.5, assume_sorted: bool = False
+) -> float:
     """Population stability index of ``new`` against ``base`` on the base's quantile bins.
 
-    Bins as :func:`psi_codes` makes them; bins empty on both sides are left out, and
+    Bins as :func:`psi_bins` makes them; bins empty on both sides are left out, and
     ``smoothing`` is added to every other bin's count on both sides before shares are
-    taken. Returns the index (dimensionless, 0 for identical shares); NaN when either
-    sample is empty.
+    taken. ``assume_sorted``: both samples are sorted already. Returns the index
+    (dimensionless, 0 for identical shares); NaN when either sample is empty.
     """
     base = np.asarray(base, dtype=float)
     new = np.asarray(new, dtype=float)
     if base.size == 0 or new.size == 0:
         return math.nan
-    b_codes, k = psi_codes(base, base, bins)
-    n_codes, _ = psi_codes(base, new, bins)
-    b = np.bincount(b_codes, minlength=k)
-    n = np.bincount(n_codes, minlength=k)
+    if not assume_sorted:
+        base, new = np.sort(base), np.sort(new)
+    edges, point = psi_bins(base, bins, assume_sorted=True)
+    b = psi_counts(base, edges, point, assume_sorted=True)
+    n = psi_counts(new, edges, point, assume_sorted=True)
     used = (b > 0) | (n > 0)
     return _psi_from_counts(b[used], n[used], smoothing)
 
@@ -238,6 +255,15 @@ def significant(x: Any, digits: int = 6) -> float | None:
     if not math.isfinite(x):
         return None
     return float(f"{x:.{digits}g}")
+
+
+def _unit_period_order(units: np.ndarray, pos: np.ndarray) -> np.ndarray:
+    """Row order by unit, then period (stable)."""
+    lo, hi = int(pos.min()), int(pos.max())
+    span = hi - lo + 1
+    if span * (int(units.max()) + 1) < 2**62:
+        return np.argsort(units.astype(np.int64) * span + (pos.astype(np.int64) - lo), kind="stable")
+    return np.lexsort((pos, units))
 
 
 def change_scale(changes: np.ndarray, *, zero_share: float) -> tuple[float | None, float | None, str]:
@@ -916,10 +942,38 @@ class _Comparison:
         for c in [c for c in self.compared if kinds.get(c) == "period-only"]:
             jump_info.setdefault(c, {}).update(self._period_only(c, tol))
         cat_info = self._categories(kinds)
+        self._samples = self._numeric_samples(jump_info)
         out = []
         for j, c in enumerate(self.compared):
             out.append(self._distribution(j, c, kinds.get(c), jump_info.get(c), cat_info.get(c)))
         return out
+
+    def _numeric_samples(self, jump_info: dict[str, dict[str, Any]]) -> dict[str, tuple[np.ndarray, np.ndarray, float]]:
+        """Per numeric column: the reference sample and the new wave's (less the base's step
+        for a stepped column), sorted, and their stability index; one column per thread."""
+        bins = int(self.get("psi_bins"))
+        smoothing = float(self.get("psi_smoothing"))
+        new_values = []
+        for c in self.numeric:
+            values = pl.col(c)
+            step = (jump_info.get(c) or {}).get("expected_step")
+            if step is not None:
+                # like with like: the new wave less the base's step times the periods since the reference
+                values = values - step * self._periods_between(pl.col(POS), pl.lit(self.last_pos))
+            new_values.append(values.alias(c))
+        shifted = self.N.select(new_values) if new_values else None
+
+        def prepare(c: str) -> tuple[np.ndarray, np.ndarray, float]:
+            a = np.sort(self.ref.get_column(c).drop_nulls().to_numpy().astype(float, copy=False))
+            b = np.sort(shifted.get_column(c).drop_nulls().to_numpy().astype(float, copy=False))
+            return a, b, numeric_psi(a, b, bins=bins, smoothing=smoothing, assume_sorted=True)
+
+        from concurrent.futures import ThreadPoolExecutor
+
+        from auditor.unitpass import workers
+
+        with ThreadPoolExecutor(max_workers=workers()) as pool:  # numpy's sorts release the GIL
+            return dict(zip(self.numeric, pool.map(prepare, self.numeric), strict=True))
 
     def _base_kinds(self) -> dict[str, str]:
         cols = getattr(self.prof, "columns", None)
@@ -956,11 +1010,16 @@ class _Comparison:
         cols = [*inv, *jump]
         if not cols:
             return {}
-        narrow = self.B.select(UNIT_ID, POS, *cols).sort(UNIT_ID, POS)
-        base_last = narrow.group_by(UNIT_ID).agg(
-            [pl.col(c).drop_nulls().last().alias(c) for c in cols]
-            + [pl.col(POS).filter(pl.col(c).is_not_null()).last().alias(f"{c}\x00bpos") for c in jump]
+        learned = self._learn_changes(jump, tol) if jump else {}
+        n_units = self.bunits.height
+        base_last = pl.DataFrame({UNIT_ID: pl.Series(UNIT_ID, np.arange(n_units), dtype=pl.UInt32)}).with_columns(
+            [pl.Series(name, arr).fill_nan(None)
+             for c in jump for name, arr in ((c, learned[c].pop("__last")), (f"{c}\x00bpos", learned[c].pop("__bpos")))]
         )
+        narrow = self.B.select(UNIT_ID, POS, *inv).sort(UNIT_ID, POS) if inv else self.B.head(0)
+        if inv:
+            fixed = narrow.group_by(UNIT_ID).agg([pl.col(c).drop_nulls().last().alias(c) for c in inv])
+            base_last = base_last.join(fixed.with_columns(pl.col(UNIT_ID).cast(pl.UInt32)), on=UNIT_ID, how="left")
         new_first = (
             self.N.filter(pl.col(BASE_UNIT).is_not_null())
             .select(BASE_UNIT, POS, *cols)
@@ -971,7 +1030,7 @@ class _Comparison:
                 + [pl.col(POS).filter(pl.col(c).is_not_null()).first().alias(f"{c}\x00npos") for c in jump]
             )
         )
-        both = new_first.join(
+        both = new_first.with_columns(pl.col(BASE_UNIT).cast(pl.UInt32)).join(
             base_last.rename({c: f"{c}\x00base" for c in cols}), left_on=BASE_UNIT, right_on=UNIT_ID, how="inner"
         ).join(self.bunits.rename({UNIT_ID: BASE_UNIT}), on=BASE_UNIT, how="left")
         info: dict[str, dict[str, Any]] = {}
@@ -1034,55 +1093,85 @@ class _Comparison:
                 examples=examples,
             )
         if jump:
-            self._jumps(jump, narrow, both, tol, info)
+            self._jumps(jump, both, learned, info)
         return info
 
-    def _jumps(
-        self, jump: list[str], narrow: pl.DataFrame, both: pl.DataFrame, tol: float, info: dict[str, dict[str, Any]]
-    ) -> None:
-        """implausible-jump: each returning unit's change across the boundary against the base's
-        own within-unit changes. A column that moves by one step a period for (nearly) every
-        unit (an age) is judged against that step; others against the centre and robust
-        scale of their changes (:func:`change_scale`)."""
-        cut = float(self.get("jump_mads"))
-        step_cut = float(self.get("jump_steps"))
+    def _learn_changes(self, jump: list[str], tol: float) -> dict[str, dict[str, Any]]:
+        """What the base's own within-unit changes say about each column: a step it moves by a
+        period for (nearly) every unit (an age), or the centre and robust scale of its changes
+        (:func:`change_scale`); and each unit's last value and its position (``__last``,
+        ``__bpos``: arrays by base unit code, NaN where the unit has none). numpy, one
+        column per thread."""
         step_share = float(self.get("step_share"))
         zero_share = float(self.get("jump_zero_share"))
-        same_unit = pl.col(UNIT_ID) == pl.col(UNIT_ID).shift(1)
-        periods = self._periods_between(pl.col(POS), pl.col(POS).shift(1))
-        d = narrow.select(
-            pl.when(same_unit).then(periods).alias("__pa_k"),
-            *[pl.when(same_unit).then(pl.col(c) - pl.col(c).shift(1)).alias(c) for c in jump],
-        )
-        k = d.get_column("__pa_k").to_numpy()
+        n_units = self.bunits.height
+        # rows in (unit, period) order by one integer sort (numpy's stable sort merges the
+        # runs of a file written period by period), then each column's consecutive changes
+        units = self.B.get_column(UNIT_ID).to_numpy()
+        pos = self.B.get_column(POS).to_numpy()
+        order = _unit_period_order(units, pos)
+        units, pos = units[order], pos[order]
+        pairs = np.nonzero(units[1:] == units[:-1])[0]  # row i and i + 1 are one unit's consecutive rows
+        k = (pos[pairs + 1] - pos[pairs]) / float(self.step or 1)
+        one_step = bool(np.all(k == 1))
+
+        def learn(c: str) -> dict[str, Any]:
+            x = self.B.get_column(c).to_numpy().astype(float, copy=False)[order]  # null as NaN
+            valid = np.nonzero(~np.isnan(x))[0]
+            ends = valid[np.r_[units[valid[1:]] != units[valid[:-1]], True]] if valid.size else valid
+            last, bpos = np.full(n_units, np.nan), np.full(n_units, np.nan)
+            last[units[ends]], bpos[units[ends]] = x[ends], pos[ends]
+            out: dict[str, Any] = {"__last": last, "__bpos": bpos}
+            changes = x[pairs + 1] - x[pairs]
+            seen = ~np.isnan(changes)
+            changes = changes[seen]
+            per = changes if one_step else changes[k[seen] > 0] / k[seen][k[seen] > 0]
+            if per.size:
+                # A step needs step_share of the changes on one value, a block of sorted positions
+                # that holds every position from (1 - share) n to share n - 1 wherever it starts:
+                # quantiles just inside those (one partition, with the median) disagree otherwise.
+                inner = min(0.5, 1 - step_share + 0.01) if per.size >= 200 else 0.5
+                lo, m, hi = np.quantile(per, [inner, 0.5, 1 - inner])
+                if m != 0 and hi - lo <= 2 * tol * (1 + abs(m)):
+                    if np.mean(np.abs(per - m) <= tol * (1 + abs(m))) >= step_share:
+                        return {**out, "change_median": _num(m), "change_scale": _num(abs(m)),
+                                "change_scale_method": "step", "expected_step": _num(m), "__step": float(m)}
+            centre, scale, method = change_scale(changes, zero_share=zero_share)
+            return {**out, "change_median": _num(centre), "change_scale": _num(scale),
+                    "change_scale_method": method, "__centre": centre, "__scale": scale}
+
+        from concurrent.futures import ThreadPoolExecutor
+
+        from auditor.unitpass import workers
+
+        with ThreadPoolExecutor(max_workers=workers()) as pool:  # numpy releases the GIL in these loops
+            return dict(zip(jump, pool.map(learn, jump), strict=True))
+
+    def _jumps(
+        self, jump: list[str], both: pl.DataFrame, learned: dict[str, dict[str, Any]], info: dict[str, dict[str, Any]]
+    ) -> None:
+        """implausible-jump: each returning unit's change across the boundary against what the
+        base's own within-unit changes say (:meth:`_learn_changes`): a stepped column is judged
+        in steps away from the expected change, the others in robust deviations."""
+        cut = float(self.get("jump_mads"))
+        step_cut = float(self.get("jump_steps"))
         zs = []
         for c in jump:
-            changes = d.get_column(c).to_numpy()
-            ok = np.isfinite(changes) & np.isfinite(k) & (k > 0)
-            per = changes[ok] / k[ok]
-            step = None
-            if per.size:
-                m = float(np.median(per))
-                if m != 0 and np.mean(np.abs(per - m) <= tol * (1 + abs(m))) >= step_share:
-                    step = m
-            entry: dict[str, Any]
+            entry = learned[c]
             new_change = pl.col(c) - pl.col(f"{c}\x00base")
+            step = entry.pop("__step", None)
+            centre, scale = entry.pop("__centre", None), entry.pop("__scale", None)
             if step is not None:
                 # the change expected across the boundary is the step times the periods between
                 expected = step * self._periods_between(pl.col(f"{c}\x00npos"), pl.col(f"{c}\x00bpos"))
-                entry = {"change_median": _num(step), "change_scale": _num(abs(step)),
-                         "change_scale_method": "step", "expected_step": _num(step)}
                 zs.append(((new_change - expected).abs() / abs(step) * (cut / step_cut)).alias(f"{c}\x00z"))
+            elif not scale:
+                zs.append(pl.lit(None, dtype=pl.Float64).alias(f"{c}\x00z"))
             else:
-                centre, scale, method = change_scale(changes[np.isfinite(changes)], zero_share=zero_share)
-                entry = {"change_median": _num(centre), "change_scale": _num(scale), "change_scale_method": method}
-                if not scale:
-                    zs.append(pl.lit(None, dtype=pl.Float64).alias(f"{c}\x00z"))
-                else:
-                    z = (new_change - centre).abs() / scale
-                    if method.startswith("non-zero"):
-                        z = pl.when(new_change == 0).then(0.0).otherwise(z)
-                    zs.append(z.alias(f"{c}\x00z"))
+                z = (new_change - centre).abs() / scale
+                if entry["change_scale_method"].startswith("non-zero"):
+                    z = pl.when(new_change == 0).then(0.0).otherwise(z)
+                zs.append(z.alias(f"{c}\x00z"))
             info[c] = entry
         zed = both.with_columns(zs)
         for c in jump:
@@ -1203,7 +1292,6 @@ class _Comparison:
     def _distribution(
         self, j: int, c: str, kind: str | None, jump: dict[str, Any] | None, cats: dict[str, Any] | None
     ) -> dict[str, Any]:
-        bins = int(self.get("psi_bins"))
         smoothing = float(self.get("psi_smoothing"))
         miss = f"__pa_miss_{j}"
         ref_rows, new_rows = self.ref.height, self.N.height
@@ -1213,15 +1301,9 @@ class _Comparison:
         ks_method = ""
         step = (jump or {}).get("expected_step")
         if c in self.numeric:
-            a = self.ref.get_column(c).drop_nulls().to_numpy()
-            values = pl.col(c)
+            a, b, psi = self._samples[c]
             kind_cmp = "numeric"
-            if step is not None:
-                # like with like: the new wave less the base's step times the periods since the reference
-                values = values - step * self._periods_between(pl.col(POS), pl.lit(self.last_pos))
-            b = self.N.select(values.alias(c)).get_column(c).drop_nulls().to_numpy()
             ks_stat, ks_p, ks_method = ks_two_sample(a, b)
-            psi = numeric_psi(a, b, bins=bins, smoothing=smoothing)
             nb, nn = a.size, b.size
         else:
             bc, nc = self._level_counts("ref", c), self._level_counts("new", c)

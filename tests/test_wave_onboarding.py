@@ -631,3 +631,27 @@ def test_profile_of_a_narrow_integer_column_spanning_its_type(tmp_path):
     f = pl.DataFrame({"id": [0, 1, 2, 3], "t": [2000] * 4, "c": pl.Series([None, 127, 0, -128], dtype=pl.Int8)})
     row = auditor.profile(f, "id", "t").columns.row(0, named=True)
     assert row["distinct"] == f["c"].drop_nulls().n_unique() == 3  # polars oracle
+
+
+def test_psi_bin_counts_equal_a_value_by_value_classification():
+    # oracle: each value placed by hand (a plain loop over the bins' definition) against the
+    # sorted-search counts, on discrete data with ties at the cut points
+    from auditor.waves import psi_bins, psi_counts
+
+    rng = np.random.default_rng(9)
+    ref = rng.integers(0, 6, 400).astype(float)
+    new = rng.integers(-1, 8, 300).astype(float)
+    edges, point = psi_bins(ref, 10)
+    expected = np.zeros(2 * edges.size + 1, dtype=int)
+    for v in new:
+        for j, e in enumerate(edges):
+            if point[j] and v == e:
+                expected[2 * j + 1] += 1
+                break
+            if v < e or (v == e and not point[j]):
+                expected[2 * j] += 1
+                break
+        else:
+            expected[-1] += 1
+    assert psi_counts(new, edges, point).tolist() == expected.tolist()
+    assert point.any()  # integer data: ties at the cut points
