@@ -164,13 +164,15 @@ def check(
     contract, settings = read_contract(rules)
     if contract.is_empty:
         raise fail("contract-empty", path=rules)
-    if _has_row_rules(contract):
-        preload_gx()  # beside loading the panel and the polars rules, which release the GIL
     units, time_key = _keys(contract, rules, unit, time)
     if against is not None and not hasattr(against, "columns"):  # a base that cannot be read: before any work
         from auditor.sources import resolve_inputs
 
-        resolve_inputs(against)
+        for path in resolve_inputs(against):
+            if not path.exists():
+                raise fail("file-not-found", path=path)
+    if _has_row_rules(contract):
+        preload_gx()  # beside loading the panel and the polars rules, which release the GIL
     panel = load_panel(data, units, time_key, settings=settings)
     timings = {"load": _time.perf_counter() - clock}
     results = run_contract(contract, panel, settings, timings=timings)
