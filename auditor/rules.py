@@ -804,10 +804,30 @@ def _step_rule(step: int, panel: Panel, limit: int) -> RuleResult:
 
 
 def unit_periods(panel: Panel) -> pl.DataFrame:
-    """One row per unit code: ``periods`` (distinct periods observed) and ``last`` (last period index)."""
-    return panel.frame.group_by(UNIT_ID).agg(
-        pl.col(PERIOD_ID).n_unique().alias("periods"), pl.col(PERIOD_ID).max().alias("last")
-    )
+    """One row per unit code: ``periods`` (distinct periods observed) and ``last`` (last period index).
+
+    By a units x periods presence table in numpy (a polars grouped distinct count is
+    several times slower), or polars when that table would be large.
+    """
+    import numpy as np
+
+    n_units, n_periods = panel.n_units, panel.n_periods
+    if n_units * n_periods > 50_000_000:
+        return panel.frame.group_by(UNIT_ID).agg(
+            pl.col(PERIOD_ID).n_unique().alias("periods"), pl.col(PERIOD_ID).max().alias("last")
+        )
+    units = panel.frame.get_column(UNIT_ID).to_numpy().astype(np.int64)
+    present = np.zeros(n_units * n_periods, dtype=bool)
+    present[units * n_periods + panel.frame.get_column(PERIOD_ID).to_numpy()] = True
+    present = present.reshape(n_units, n_periods)
+    periods = present.sum(axis=1)
+    last = n_periods - 1 - np.argmax(present[:, ::-1], axis=1)
+    seen = periods > 0
+    return pl.DataFrame({
+        UNIT_ID: pl.Series(UNIT_ID, np.nonzero(seen)[0], dtype=pl.UInt32),
+        "periods": pl.Series("periods", periods[seen], dtype=pl.UInt32),
+        "last": pl.Series("last", last[seen], dtype=pl.UInt32),
+    })
 
 
 def attrition_shares(panel: Panel, per_unit: pl.DataFrame | None = None) -> pl.DataFrame:
@@ -982,22 +1002,62 @@ def _changes(dtype: pl.DataType, values: pl.Expr) -> pl.Expr:
 
 
 def invariant_counts(panel: Panel, columns: list[str], tolerance: float) -> dict[str, int]:
-    """For each column, the number of units whose non-missing values differ (one grouped pass).
+    """For each column, the number of units whose non-missing values differ.
 
     Floats differ when (max - min) > tolerance * (1 + |unit mean|) (methods.md);
-    other types when a unit holds more than one distinct value.
+    other types when a unit holds more than one distinct value. Numbers, text, dates
+    and booleans by one stable sort of the rows by unit and per-unit reductions in
+    numpy (text and categories by their codes of one categorical cast); other types
+    by a polars grouped distinct count.
     """
-    aggs: list[pl.Expr] = []
+    import numpy as np
+
+    units = panel.frame.get_column(UNIT_ID).to_numpy()
+    order = np.argsort(units, kind="stable")
+    sorted_units = units[order]
+    out: dict[str, int] = {}
+    rest: list[str] = []
     for c in columns:
-        dtype = panel.schema[c]
-        v = missing_as_null(c, dtype)
-        if dtype.is_float():
-            aggs.append(((v.max() - v.min()) > tolerance * (1 + v.mean().abs())).alias(c))
+        values = _orderable(panel.frame.get_column(c))
+        if values is None:
+            rest.append(c)
+            continue
+        x = values[order]
+        keep = ~np.isnan(x)
+        x, u = x[keep], sorted_units[keep]
+        if not x.size:
+            out[c] = 0
+            continue
+        starts = np.r_[0, np.nonzero(u[1:] != u[:-1])[0] + 1]
+        lo, hi = np.minimum.reduceat(x, starts), np.maximum.reduceat(x, starts)
+        if panel.schema[c].is_float():
+            mean = np.add.reduceat(x, starts) / np.diff(np.r_[starts, x.size])
+            out[c] = int(np.count_nonzero((hi - lo) > tolerance * (1 + np.abs(mean))))
         else:
-            aggs.append((v.drop_nulls().n_unique() > 1).alias(c))
-    per_unit = panel.frame.group_by(UNIT_ID).agg(aggs)
-    sums = per_unit.select([pl.col(c).fill_null(False).sum() for c in columns]).row(0, named=True)
-    return {c: int(sums[c]) for c in columns}
+            out[c] = int(np.count_nonzero(hi != lo))
+    if rest:
+        aggs = [(missing_as_null(c, panel.schema[c]).drop_nulls().n_unique() > 1).alias(c) for c in rest]
+        per_unit = panel.frame.group_by(UNIT_ID).agg(aggs)
+        out.update(per_unit.select([pl.col(c).fill_null(False).sum() for c in rest]).row(0, named=True))
+    return {c: int(out[c]) for c in columns}
+
+
+def _orderable(s: pl.Series) -> Any:
+    """``s`` as float64 numbers that order and compare like its values (missing and NaN as
+    NaN), or None when no such form is exact: integers beyond 2**53, lists, structs."""
+    dt = s.dtype
+    if dt.is_float():
+        return s.cast(pl.Float64).to_numpy()
+    if dt.is_integer() or dt == pl.Boolean or dt == pl.Date or isinstance(dt, pl.Datetime | pl.Duration):
+        phys = s.to_physical()
+        lo, hi = phys.min(), phys.max()
+        if lo is not None and max(abs(int(lo)), abs(int(hi))) > 2**53:
+            return None
+        return phys.cast(pl.Float64).to_numpy()
+    if dt == pl.String or isinstance(dt, pl.Categorical | pl.Enum):
+        # codes of one cast: equal codes exactly for equal texts
+        return s.cast(pl.String).cast(pl.Categorical).to_physical().cast(pl.Float64).to_numpy()
+    return None
 
 
 def changing_units(panel: Panel, column: str, tolerance: float) -> pl.DataFrame:

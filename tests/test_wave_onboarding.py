@@ -655,3 +655,42 @@ def test_psi_bin_counts_equal_a_value_by_value_classification():
             expected[-1] += 1
     assert psi_counts(new, edges, point).tolist() == expected.tolist()
     assert point.any()  # integer data: ties at the cut points
+
+
+def test_invariant_counts_equal_pandas_over_column_types():
+    # oracle: pandas group-by nunique (an independent library) per column type; floats by
+    # the tolerance rule of methods.md written out with pandas min, max and mean
+    import datetime as dt
+
+    from auditor.load import load_panel
+    from auditor.rules import invariant_counts
+
+    rng = np.random.default_rng(12)
+    n_units, periods = 300, 4
+    n = n_units * periods
+    unit = np.repeat(np.arange(n_units), periods)
+
+    def sometimes(values, p=0.03):
+        flip = rng.random(n) < p
+        return np.where(flip, np.roll(values, 1), values)
+
+    fixed = np.repeat(rng.integers(0, 5, n_units), periods)
+    frame = pl.DataFrame({
+        "u": unit, "t": np.tile(np.arange(periods), n_units),
+        "text": pl.Series(sometimes(np.array(["a", "b", "c", "d", "e"])[fixed])).set(
+            pl.Series(rng.random(n) < 0.1), None),
+        "cat": pl.Series(sometimes(np.array(["p", "q", "r", "s", "t"])[fixed])).cast(pl.Categorical),
+        "day": pl.Series([dt.date(2000, 1, 1) + dt.timedelta(days=int(v)) for v in sometimes(fixed * 40)]),
+        "flag": pl.Series(sometimes(fixed % 2 == 0)),
+        "num": pl.Series(np.where(rng.random(n) < 0.05, np.nan, sometimes(fixed * 1.5) + rng.normal(0, 1e-12, n))),
+        "huge": pl.Series(sometimes(fixed + 2**60), dtype=pl.Int64),
+    })
+    panel = load_panel(frame, "u", "t")
+    got = invariant_counts(panel, ["text", "cat", "day", "flag", "num", "huge"], 1e-9)
+    pdf = frame.with_columns(pl.col("cat").cast(pl.String), pl.col("num").fill_nan(None)).to_pandas()
+    g = pdf.groupby("u")
+    for c in ("text", "cat", "day", "flag", "huge"):
+        assert got[c] == int((g[c].nunique() > 1).sum()), c
+    spread = g["num"].max() - g["num"].min()
+    assert got["num"] == int((spread > 1e-9 * (1 + g["num"].mean().abs())).sum())
+    assert all(v > 0 for v in got.values())  # every column has changing units to count
