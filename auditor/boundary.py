@@ -24,7 +24,7 @@ import polars as pl
 from auditor.config import Settings
 from auditor.contract import ColumnRules, Contract
 from auditor.load import UNIT_ID, Panel, _to_lazy, load_panel
-from auditor.rules import RuleResult, fit_to_type, type_family
+from auditor.rules import RuleResult, count, fit_to_type, type_family
 
 BASE_UNIT = "__pa_base_unit"
 POS = "__pa_pos"
@@ -125,7 +125,8 @@ class _Judge:
         periods = sorted(hits.get_column(POS).unique().to_list())
         where = ", ".join(str(self.label(p)) for p in periods[:6])
         msg = (
-            f"{n} rows of the new wave repeat a (unit, period) key the base already holds (period {where}); "
+            f"{count(n, 'row')} of the new wave {'repeats' if n == 1 else 'repeat'} a (unit, period) key the base "
+            f"already holds (period {where}); "
             "appending would duplicate them"
             if n else "no (unit, period) key of the new wave is in the base"
         )

@@ -648,12 +648,12 @@ def _row_examples(panel: Panel, column: str, rows: list[int]) -> tuple[dict[str,
 
 def _row_message(col: ColumnRules, rule: str, failing: int, rows: int, missing: int) -> str:
     if rule == "min":
-        return f"{failing} values below the minimum {col.min}" if failing else f"no value below {col.min}"
+        return f"{count(failing, 'value')} below the minimum {col.min}" if failing else f"no value below {col.min}"
     if rule == "max":
-        return f"{failing} values above the maximum {col.max}" if failing else f"no value above {col.max}"
+        return f"{count(failing, 'value')} above the maximum {col.max}" if failing else f"no value above {col.max}"
     if rule == "allowed":
         return (
-            f"{failing} values outside the {len(col.allowed or ())} allowed"
+            f"{count(failing, 'value')} outside the {len(col.allowed or ())} allowed"
             if failing
             else f"every value is one of the {len(col.allowed or ())} allowed"
         )
@@ -661,9 +661,9 @@ def _row_message(col: ColumnRules, rule: str, failing: int, rows: int, missing: 
         share = failing / rows if rows else 0.0
         return f"{failing} of {rows} values missing ({share:.2%}); the contract allows at most {col.max_missing:.2%}"
     if rule == "pattern":
-        return f"{failing} values do not match the pattern" if failing else "every value matches the pattern"
+        return f"{count(failing, 'value')} {'does' if failing == 1 else 'do'} not match the pattern" if failing else "every value matches the pattern"
     if rule == "unique":
-        return f"{failing} rows share their value with another row" if failing else "no value repeats"
+        return f"{count(failing, 'row')} {'shares its' if failing == 1 else 'share their'} value with another row" if failing else "no value repeats"
     return f"{failing} rows fail"  # pragma: no cover - every rule is named above
 
 
@@ -680,7 +680,7 @@ def _panel_rules(rules: PanelRules, contract: Contract, panel: Panel, limit: int
         out.append(
             RuleResult(
                 "max_missing_keys", "panel", None, n <= rules.max_missing_keys, n,
-                f"{n} rows lack a unit or time key (at most {rules.max_missing_keys} allowed)",
+                f"{count(n, 'row')} {'lacks' if n == 1 else 'lack'} a unit or time key (at most {rules.max_missing_keys} allowed)",
                 examples=tuple(panel.missing_key_examples[:limit]),
             )
         )
@@ -700,7 +700,7 @@ def _panel_rules(rules: PanelRules, contract: Contract, panel: Panel, limit: int
         out.append(
             RuleResult(
                 "max_duplicate_keys", "panel", None, n <= rules.max_duplicate_keys, n,
-                f"{n} rows repeat a (unit, time) key already seen (at most {rules.max_duplicate_keys} allowed)",
+                f"{count(n, 'row')} {'repeats' if n == 1 else 'repeat'} a (unit, time) key already seen (at most {rules.max_duplicate_keys} allowed)",
                 examples=examples,
             )
         )
@@ -769,7 +769,7 @@ def _panel_rules(rules: PanelRules, contract: Contract, panel: Panel, limit: int
             RuleResult(
                 "only_listed_columns", "panel", None, not extra_cols, len(extra_cols),
                 (
-                    f"{len(extra_cols)} columns the contract does not list: " + ", ".join(extra_cols[:limit])
+                    f"{count(len(extra_cols), 'column')} the contract does not list: " + ", ".join(extra_cols[:limit])
                     if extra_cols
                     else "every column is listed in the contract"
                 ),
@@ -862,7 +862,7 @@ def _attrition_rule(limit_share: float, panel: Panel, limit: int, per_unit: pl.D
     worst = float(table["share"].max()) if table.height else 0.0
     return RuleResult(
         "max_attrition", "panel", None, bad.height == 0, bad.height,
-        f"{bad.height} periods after which more than {limit_share:.1%} of the units present are never seen again"
+        f"{count(bad.height, 'period')} after which more than {limit_share:.1%} of the units present are never seen again"
         f" (highest {worst:.1%})",
         examples=examples,
     )
@@ -954,6 +954,11 @@ def _within_rules(
         if col.follows_period:
             out[col.name].append(follows_period_rule(col.name, panel, tol, limit))
     return out
+
+
+def count(n: int, one: str, many: str | None = None) -> str:
+    """``n`` with its noun, singular for one: "1 value", "3 values"."""
+    return f"{n:,} {one}" if n == 1 else f"{n:,} {many or one + 's'}"
 
 
 def _times(n: int) -> str:
