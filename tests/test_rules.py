@@ -482,7 +482,9 @@ def test_readme_example_contract_is_valid(tmp_path):
 
     contract, settings = read_contract(write(tmp_path, block[0]))
     names = [c.name for c in contract.columns]
-    assert names == ["orchard_id", "labour_days", "soil_class", "tree_age", "registry_code", "visited"]
+    assert names == ["orchard_id", "labour_days", "soil_class", "tree_age", "farm_age", "frost_alert",
+                     "registry_code", "visited"]
+    assert contract.columns[4].max_change_per_period == 1 and contract.columns[5].follows_period
     assert contract.columns[-1].min == dt.date(2017, 1, 1)
     assert contract.panel.only_listed_columns and contract.panel.first_period == 2017
     assert settings.severity("few-switchers", "warning") == "note"
