@@ -366,6 +366,25 @@ def test_a_column_stepping_by_one_for_everybody_is_no_shift_and_a_31_rise_is_a_j
     jumped = new.with_columns(pl.when(pl.col("id") < 2).then(pl.col("age") + 30).otherwise(pl.col("age")))
     (f,) = [f for f in compare(base, jumped, unit="id", time="t").findings if f.check == "implausible-jump"]
     assert f.count == 2
+    # the cut: more than jump_steps (2) steps from the expected +1: +4 in a year is a jump, +3 is not
+    near = new.with_columns(pl.when(pl.col("id") < 3).then(pl.col("age") + 3)
+                            .when(pl.col("id") < 6).then(pl.col("age") + 2).otherwise(pl.col("age")))
+    (f,) = [f for f in compare(base, near, unit="id", time="t").findings if f.check == "implausible-jump"]
+    assert f.count == 3 and {e["steps_off"] for e in f.examples} == {3.0}
+
+
+def test_a_step_is_learnt_per_period_across_gaps():
+    # a fifth of the units skip period 3: their change from period 2 to 4 is +2 over two
+    # periods, still one step a period; the wave after a unit's absence expects +2
+    n = 200
+    rows = pl.DataFrame({"id": np.repeat(np.arange(n), 5), "t": np.tile([1, 2, 3, 4, 5], n)})
+    base = rows.filter(~((pl.col("id") % 5 == 0) & (pl.col("t") == 3)) & (pl.col("t") < 5)).with_columns(
+        (pl.col("id") % 30 + pl.col("t")).alias("age"))
+    assert base.height == n * 4 - n // 5
+    new = pl.DataFrame({"id": np.arange(n), "t": 5}).with_columns((pl.col("id") % 30 + 5).alias("age"))
+    res = compare(base, new, unit="id", time="t")
+    col = next(c for c in res.columns if c["column"] == "age")
+    assert col["expected_step"] == 1 and col["implausible_jumps"] == 0
 
 
 # --- p-values and warnings --------------------------------------------------------------------
@@ -380,7 +399,7 @@ def test_ks_p_values_keep_significant_digits_and_equal_scipy():
     col = next(c for c in compare(base, new, unit="id", time="t").columns if c["column"] == "x")
     ref = stats.ks_2samp(base["x"].to_numpy(), new["x"].to_numpy())  # scipy, method auto
     assert 0 < ref.pvalue < 1e-20
-    assert col["ks_p"] == pytest.approx(ref.pvalue, rel=1e-5)  # 2e-36 is not written 0.0
+    assert col["ks_p"] > 0 and col["ks_p"] == pytest.approx(ref.pvalue, rel=1e-5, abs=0)  # 2e-36 is not 0.0
     assert col["ks_p_method"] == "exact"
 
 
