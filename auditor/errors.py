@@ -65,6 +65,10 @@ CATALOGUE: dict[str, str] = {
         "no row has the outcome and every regressor present ({rows} rows with keys, {dropped} dropped); "
         "check the missing values of {worst}"
     ),
+    "instruments-too-many-levels": (
+        "regressor '{column}' holds text with {levels} distinct values; at most {limit} become indicators "
+        "(instruments.max_levels); group its rare values first, or leave it out"
+    ),
     "instruments-one-unit": (
         "only one unit ({unit}) has complete rows; within, between and random-effects fits need at least two units"
     ),

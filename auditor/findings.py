@@ -61,7 +61,10 @@ CHECKS: dict[str, CheckSpec] = {
     "overidentification-rejected": CheckSpec(
         "warning", "instruments", "the Sargan or within-vs-Hausman-Taylor test rejects the instruments"
     ),
-    "not-identified": CheckSpec("warning", "instruments", "a regressor whose coefficient the data cannot identify"),
+    "not-identified": CheckSpec("warning", "instruments", "a regressor whose coefficient one or more fits cannot identify"),
+    "near-collinear": CheckSpec(
+        "warning", "instruments", "a regressor almost a linear combination of others in a fit (kept; imprecise)"
+    ),
     "correlated-with-effect": CheckSpec(
         "warning", "instruments", "Mundlak evidence that regressors are correlated with the unit effect"
     ),
