@@ -57,7 +57,8 @@ def wrap(text: str, width: int, indent: int) -> list[str]:
     """``text`` wrapped to ``width`` with a hanging ``indent``."""
     import textwrap
 
-    return textwrap.wrap(text, width=max(20, width), subsequent_indent=" " * indent, break_long_words=True) or [""]
+    return textwrap.wrap(text, width=max(20, width), subsequent_indent=" " * indent, break_long_words=True,
+                         break_on_hyphens=False) or [""]
 
 
 def fmt_num(value: Any, digits: int = 3) -> str:
