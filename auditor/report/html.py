@@ -560,10 +560,7 @@ def _readiness(doc: Mapping[str, Any], svgs: Mapping[str, str], lim: Limits) -> 
              f"<td><b>X2</b> {_names(roles.get('X2'))}</td></tr>"
              f"<tr><th>fixed over time</th><td><b>Z1</b> {_names(roles.get('Z1'))}</td>"
              f"<td><b>Z2</b> {_names(roles.get('Z2'))}</td></tr></tbody></table>"]
-    ni = doc.get("not_identified") or []
-    if ni:
-        parts.append("<p>Not identified: " + ", ".join(
-            f"<code>{esc(x.get('column'), 60)}</code> ({esc(x.get('reason'))})" for x in ni) + ".</p>")
+    parts.append(_identified(doc))
     oc = doc.get("order_condition") or {}
     if oc:
         met = "met" if oc.get("met") else "<b>not met</b>"
@@ -583,14 +580,7 @@ def _readiness(doc: Mapping[str, Any], svgs: Mapping[str, str], lim: Limits) -> 
         parts.append("<h3>First stages</h3>")
         parts.append(_table(["regressor", "role", "instruments", "partial F", "robust F", "partial R\u00b2",
                              "df", "critical value", "verdict"], rows, numeric=[3, 4, 5, 7]))
-    cands = doc.get("candidates") or []
-    if cands:
-        rows = [[f"<code>{esc(c.get('endogenous'), 60)}</code>", f"<code>{esc(c.get('instrument'), 60)}</code>",
-                 _num(c.get("partial_f")), _p(c.get("mundlak_p")), "yes" if c.get("usable") else "no"]
-                for c in cands[: lim.columns]]
-        parts.append("<h3>Candidate instruments</h3>")
-        parts.append(_table(["regressor", "candidate", "partial F alone", "Mundlak p", "usable"], rows,
-                            numeric=[2, 3]))
+    parts.append(_candidates(doc, lim))
     tests = doc.get("tests") or {}
     labels = {"mundlak": "Mundlak: unit means of X jointly zero",
               "hausman_within_random": "Hausman: within against random effects",
@@ -607,10 +597,11 @@ def _readiness(doc: Mapping[str, Any], svgs: Mapping[str, str], lim: Limits) -> 
         parts.append(_table(["test", "statistic", "df", "p"], trows, cls="pa-narrow", numeric=[1, 2, 3]))
     est = {k: v for k, v in (doc.get("estimates") or {}).items() if isinstance(v, Mapping)}
     if est:
+        periods = set(doc.get("period_effects") or [])
         names: list[str] = []
         for v in est.values():
             for n in (v.get("coef") or {}):
-                if n not in names:
+                if n not in names and n not in periods and not (n.startswith("mean(") and n[5:-1] in periods):
                     names.append(n)
         erows = []
         for n in names[: lim.columns]:
@@ -626,12 +617,62 @@ def _readiness(doc: Mapping[str, Any], svgs: Mapping[str, str], lim: Limits) -> 
         parts.append("<h3>Estimates (coefficient \u00b1 standard error)</h3>")
         parts.append(_table(["regressor", *[esc(pretty.get(k, k)) for k in est]], erows,
                             numeric=list(range(1, len(est) + 1))))
+        if periods:
+            parts.append(_note(f"The {len(periods)} period effects are estimated in every fit and not shown "
+                               "(see the JSON document)."))
     vc = doc.get("variance_components") or {}
     if vc:
         parts.append(_facts([("sd of unit effect", _num(vc.get("sigma_u"))),
                              ("sd of idiosyncratic error", _num(vc.get("sigma_e"))),
                              ("mean quasi-demeaning weight", _num(vc.get("theta_mean")))]))
     parts.append("</section>")
+    return "".join(parts)
+
+
+_FIT_NAMES = {"within": "within", "between": "between", "random": "random effects", "mundlak": "Mundlak",
+              "hausman_taylor": "Hausman-Taylor"}
+
+
+def _identified(doc: Mapping[str, Any]) -> str:
+    """Period effects, and which fits set which column aside."""
+    out = []
+    periods = doc.get("period_effects") or []
+    if periods:
+        out.append(f"<p>Period effects ({len(periods)}: {_names(periods[:3])}{', ...' if len(periods) > 3 else ''}) "
+                   "are exogenous, each instrumented by itself; they do not count in k1 and are left out of the "
+                   "contrasts.</p>")
+    for x in doc.get("not_identified") or []:
+        fits = list(x.get("fits") or [])
+        where = "every fit" if len(fits) >= len(_FIT_NAMES) else ", ".join(_FIT_NAMES.get(f, str(f)) for f in fits)
+        with_ = list(x.get("with") or [])
+        shown = _names(with_[:4]) + (", ..." if len(with_) > 4 else "")
+        out.append(f"<p>Not identified by {esc(where)}: <code>{esc(x.get('column'), 60)}</code> "
+                   f"({esc(x.get('reason'))}{'; with ' + shown if with_ else ''}).</p>")
+    return "".join(out)
+
+
+_STATE_WORDS = {"accepted": "yes", "assumed": "yes (assumed)", "invalid": "no", "undecided": "undecided"}
+
+
+def _candidates(doc: Mapping[str, Any], lim: Limits) -> str:
+    """Each X1 unit mean alone as an instrument, and the suggested set (saying when the set is rejected)."""
+    cands = doc.get("candidates") or []
+    if not cands:
+        return ""
+    rows = [[f"<code>{esc(c.get('endogenous'), 60)}</code>", f"<code>{esc(c.get('instrument'), 60)}</code>",
+             _num(c.get("partial_f")), _p(c.get("mundlak_p")), _p(c.get("c_p")),
+             esc(_STATE_WORDS.get(c.get("state"), "yes" if c.get("usable") else "no"))]
+            for c in cands[: lim.columns]]
+    parts = ["<h3>Candidate instruments</h3>",
+             _table(["regressor", "candidate", "partial F alone", "Mundlak p", "C-test p", "usable"], rows,
+                    numeric=[2, 3, 4])]
+    for sg in doc.get("suggestion") or []:
+        text = (f"Suggested for <code>{esc(sg.get('endogenous'), 60)}</code>: {_names(sg.get('instruments'))} "
+                f"(F {_num(sg.get('partial_f'))}, {esc(sg.get('verdict'))}).")
+        if sg.get("set_rejected"):
+            text += (" The over-identification tests reject the instrument set and no single mean can be blamed, "
+                     "so the validity of these instruments is not established.")
+        parts.append(f"<p>{text}</p>")
     return "".join(parts)
 
 
