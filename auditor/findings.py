@@ -85,6 +85,15 @@ CHECKS: dict[str, CheckSpec] = {
     "weak-within-variation": CheckSpec(
         "warning", "instruments", "an X2 column with little within variation to instrument itself"
     ),
+    "selective-attrition": CheckSpec(
+        "warning", "instruments", "the Nijman-Verbeek test relates leaving the panel to the idiosyncratic error"
+    ),
+    "richer-set-rejected": CheckSpec(
+        "warning", "instruments", "the extra restrictions of Amemiya-MaCurdy or Breusch-Mizon-Schmidt are rejected"
+    ),
+    "richer-sets-skipped": CheckSpec(
+        "note", "instruments", "Amemiya-MaCurdy and Breusch-Mizon-Schmidt not computed (too many instruments)"
+    ),
     "rows-dropped": CheckSpec("note", "instruments", "rows left out because the outcome or a regressor is missing"),
     "treated-as-invariant": CheckSpec(
         "note", "instruments", "a column replaced by its most common value within each unit"

@@ -252,7 +252,7 @@ def orthogonalise(columns: np.ndarray, const: np.ndarray, skip: int | None = Non
     return s
 
 
-def _restore_constant(coef: np.ndarray, covs: list[np.ndarray], k: int, shifts: np.ndarray,
+def restore_constant(coef: np.ndarray, covs: list[np.ndarray], k: int, shifts: np.ndarray,
                       y_shift: float) -> tuple[np.ndarray, list[np.ndarray]]:
     """Coefficients and covariances of the original design from those of the design whose
     columns were orthogonalised against column ``k`` (the constant) with coefficients
@@ -361,12 +361,12 @@ def ols(
     cov = sigma2 * bread
     cov_cl = _cluster_cov(bread, design, e, codes, n, nobs)
     if shifts is not None:
-        coef, (cov, cov_cl) = _restore_constant(coef, [cov, cov_cl], const_col, shifts, y_shift)
+        coef, (cov, cov_cl) = restore_constant(coef, [cov, cov_cl], const_col, shifts, y_shift)
     return Fit(tuple(names), coef, cov, cov_cl, sigma2, int(dfr), nobs), e
 
 
 @dataclass(frozen=True)
-class _GramIV:
+class GramIV:
     """2SLS pieces from one cross-product matrix of [instruments, design, y]."""
 
     coef: np.ndarray
@@ -376,7 +376,7 @@ class _GramIV:
     e_e: float  # e' e
 
 
-def _gram_iv(g: np.ndarray, ia: list[int], iw: list[int], iy: int) -> _GramIV:
+def gram_iv(g: np.ndarray, ia: list[int], iw: list[int], iy: int) -> GramIV:
     saa = g[np.ix_(ia, ia)]
     saw = g[np.ix_(ia, iw)]
     say = g[ia, iy]
@@ -389,7 +389,7 @@ def _gram_iv(g: np.ndarray, ia: list[int], iw: list[int], iy: int) -> _GramIV:
     e_pa_e = float(ae @ _solve_sym(saa, ae))
     sww = g[np.ix_(iw, iw)]
     e_e = float(g[iy, iy] - 2.0 * coef @ g[iw, iy] + coef @ sww @ coef)
-    return _GramIV(coef, proj, bread, e_pa_e, max(e_e, 0.0))
+    return GramIV(coef, proj, bread, e_pa_e, max(e_e, 0.0))
 
 
 @dataclass(frozen=True)
@@ -449,7 +449,7 @@ def _tsls_prepared(prepared: _IVArrays, gram: np.ndarray, names: tuple[str, ...]
     (one pass more for residuals and clustered scores)."""
     full, L, k = prepared.full, prepared.n_instr, prepared.n_design
     nobs = full.shape[0]
-    piv = _gram_iv(gram, list(range(L)), list(range(L, L + k)), L + k)
+    piv = gram_iv(gram, list(range(L)), list(range(L, L + k)), L + k)
     coef = piv.coef
     a, w, yy = full[:, :L], full[:, L : L + k], full[:, L + k]
     e = yy - w @ coef
@@ -459,7 +459,7 @@ def _tsls_prepared(prepared: _IVArrays, gram: np.ndarray, names: tuple[str, ...]
     cov = sigma2 * piv.bread
     cov_cl = _cluster_cov(piv.bread, fitted, e, codes, n, nobs)
     if prepared.shifts is not None:
-        coef, (cov, cov_cl) = _restore_constant(coef, [cov, cov_cl], prepared.design_const, prepared.shifts,
+        coef, (cov, cov_cl) = restore_constant(coef, [cov, cov_cl], prepared.design_const, prepared.shifts,
                                                 prepared.y_shift)
     return Fit(tuple(names), coef, cov, cov_cl, sigma2, int(dfr), nobs), e
 
@@ -516,7 +516,7 @@ def _theta(sigma2_e: float, sigma2_u: float, counts: np.ndarray) -> np.ndarray:
         return np.where(total > 0, 1.0 - np.sqrt(sigma2_e / total), 0.0)
 
 
-def _quasi_demean(pa: PanelArrays, theta: np.ndarray, out: np.ndarray | None = None,
+def quasi_demean(pa: PanelArrays, theta: np.ndarray, out: np.ndarray | None = None,
                   order: list[int] | None = None) -> tuple[np.ndarray, np.ndarray]:
     """[1, X, Z] and y transformed to w - theta_i w_bar_i, filled column by column.
 
@@ -553,7 +553,7 @@ def random_effects(
     sigma2_e = wf.sigma2
     sigma2_u = max(0.0, bf.sigma2 - sigma2_e * float(np.mean(1.0 / pa.counts)))
     theta = _theta(sigma2_e, sigma2_u, pa.counts)
-    design, ys = _quasi_demean(pa, theta)
+    design, ys = quasi_demean(pa, theta)
     fit, _ = ols(design, ys, (CONST, *pa.x_names, *pa.z_names), pa.codes, pa.n, const_col=0, overwrite=True)
     return fit, Components(sigma2_u, sigma2_e, theta)
 
@@ -622,7 +622,9 @@ def contrast(b_eff: np.ndarray, v_eff: np.ndarray, b_cons: np.ndarray, v_cons: n
     proj = q[:, positive].T @ (whiten.T @ d)
     stat = float(np.sum(proj**2 / mu[positive])) if positive.any() else 0.0
     rank = int(positive.sum())
-    pd = bool(positive.all() and keep.all())
+    # reported as positive definite unless a direction has a negative eigenvalue: a difference of
+    # lower rank (within vs Hausman-Taylor has rank k1 - g2) is what the theory gives, and df says it
+    pd = not bool(negative.any())
     note = None
     if negative.any():
         note = (
@@ -830,7 +832,7 @@ def hausman_taylor(
     raw, _ = _tsls_prepared(prepared, gram, (CONST, *x1, *x2, *z1, *z2), sub.codes, sub.n)
     fit = _reorder(raw, [*x1, *x2, CONST, *z1, *z2])
     ia, iw, iy = list(range(L)), list(range(L, L + K)), L + K
-    base = _gram_iv(gram, ia, iw, iy)
+    base = gram_iv(gram, ia, iw, iy)
     sargan = hw = None
     # an exact fit (no residual variation, e.g. a tiny panel) leaves both statistics undefined
     exact = not base.e_e > 0
@@ -884,12 +886,12 @@ def _ht_arrays(sub: PanelArrays, sp: HTSpec, theta: np.ndarray) -> np.ndarray:
     full[:, nwc + len(means)] = 1.0
     for j in range(len(z1)):
         full[:, nwc + len(means) + 1 + j] = sub.z[:, j]
-    _, ys = _quasi_demean(sub, theta, out=full[:, L : L + K])
+    _, ys = quasi_demean(sub, theta, out=full[:, L : L + K])
     full[:, L + K] = ys
     return full
 
 
-def _c_tests(gram: np.ndarray, base: _GramIV, sp: HTSpec, L: int, K: int, nobs: int,
+def _c_tests(gram: np.ndarray, base: GramIV, sp: HTSpec, L: int, K: int, nobs: int,
              exact: bool) -> tuple[dict[str, WaldTest | None], dict[str, WaldTest]]:
     """Difference-in-Sargan test of each excluded X1 mean and the Sargan test of the rest."""
     c_tests: dict[str, WaldTest | None] = {}
@@ -904,7 +906,7 @@ def _c_tests(gram: np.ndarray, base: _GramIV, sp: HTSpec, L: int, K: int, nobs: 
             c_tests[c] = None
             continue
         keep = [i for i in ia if i != first_mean + j]
-        restricted = _gram_iv(gram, keep, iw, iy)
+        restricted = gram_iv(gram, keep, iw, iy)
         stat = max(0.0, (base.e_pa_e - restricted.e_pa_e) / scale)
         c_tests[c] = WaldTest(stat, 1, float(chi2_sf(stat, 1)))
         if restricted.e_e > 0:

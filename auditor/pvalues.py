@@ -62,3 +62,10 @@ def format_p(p: float | None, digits: int = 3) -> str:
     if p < 1e-3:
         return f"{p:.{digits - 1}e}"
     return f"{p:.{digits}g}"
+
+
+def f_isf(q: float, dfn: float, dfd: float) -> float:
+    """The F value with upper-tail probability ``q`` for (``dfn``, ``dfd``) degrees of freedom."""
+    from scipy import special
+
+    return float(special.fdtri(dfn, dfd, 1.0 - q))

@@ -30,7 +30,7 @@ from typing import Any
 import numpy as np
 import polars as pl
 
-from auditor import identification, models, strength
+from auditor import attrition, identification, instrument_sets, models, strength
 from auditor.config import Settings, load_settings
 from auditor.errors import fail, short_list
 from auditor.findings import Finding, make, sort_findings
@@ -304,6 +304,7 @@ class Design:
     col_kind: dict[str, str]
     pa: models.PanelArrays
     unbalanced: bool
+    period: np.ndarray  # each row's index in the period grid
 
 
 def _design(sample: Sample) -> Design:
@@ -334,7 +335,8 @@ def _design(sample: Sample) -> Design:
     xcols = periods + x
     pa = models.PanelArrays(codes=codes.astype(np.int64), n=int(codes.max()) + 1, y=y, x=matrix(xcols),
                             x_names=tuple(xcols), z=matrix(z), z_names=tuple(z))
-    return Design(tuple(periods), tuple(x), tuple(z), tuple(constant), col_kind, pa, not pa.balanced_counts)
+    period = num[PERIOD_ID].to_numpy().astype(np.int64)
+    return Design(tuple(periods), tuple(x), tuple(z), tuple(constant), col_kind, pa, not pa.balanced_counts, period)
 
 
 def _moved_to_z(design: Design, moved: tuple[str, ...]) -> Design:
@@ -419,6 +421,9 @@ class Fits:
     too_few_units: bool
     unit_parameters: int
     units: int
+    richer: dict[str, instrument_sets.RicherFit | None] = dataclasses.field(default_factory=dict)
+    richer_note: str | None = None
+    attrition: dict[str, Any] | None = None
 
 
 def _early_fits(design: Design, ident: identification.Identification, outcome_invariant: bool,
@@ -455,6 +460,33 @@ def _late_fits(design: Design, ident: identification.Identification, roles: Role
         if compared:
             h = models.hausman_within_random(wf, re, compared)
     return Fits(wf, bf, re, comp, mu, ht, h, too_few, k_unit, design.pa.n)
+
+
+def _beyond(design: Design, ident: identification.Identification, roles: Roles, fits: Fits,
+            settings: Settings) -> Fits:
+    """Amemiya-MaCurdy and Breusch-Mizon-Schmidt beside Hausman-Taylor (at its theta), and the
+    Nijman-Verbeek attrition test on the within fit."""
+    richer: dict[str, instrument_sets.RicherFit | None] = {instrument_sets.AM: None, instrument_sets.BMS: None}
+    note = None
+    ht = fits.hausman_taylor
+    if ht is not None:
+        _, dense = np.unique(design.period, return_inverse=True)
+        periods = int(dense.max()) + 1
+        sp = roles.spec
+        size = 2 + len(sp.z1) + len(sp.means) * (periods + 1) + periods + len(sp.x2) * periods
+        limit = int(settings.get(SECTION, "richer_max_instruments"))
+        if size > limit:
+            note = (f"not computed: the richer instrument sets would hold about {size} unit-level columns "
+                    f"(instruments.richer_max_instruments is {limit})")
+        else:
+            lev = design.pa.select(list(roles.x1) + list(roles.x2), list(roles.z1) + list(roles.z2))
+            for which in richer:
+                richer[which] = instrument_sets.fit(lev, sp, ht.components.theta, dense.astype(np.int64), periods,
+                                                    which, ht.fit, tol=float(settings.get(SECTION, "collinear_tol")))
+    attrition_test = None
+    if fits.within is not None and ident.within:
+        attrition_test = attrition.nijman_verbeek(design.pa, list(ident.within), design.period)
+    return dataclasses.replace(fits, richer=richer, richer_note=note, attrition=attrition_test)
 
 
 # --------------------------------------------------------------------------- stage 6: validity
@@ -547,6 +579,7 @@ def _strength(design: Design, ident: identification.Identification, roles: Roles
             r["p"] = strength.f_pvalue(f, r["df"])
             r["at_least_rule_of_thumb"] = None if f is None else bool(f >= thumb)
             r["at_least_lee"] = None if f is None else bool(f >= lee)
+        _anderson_rubin(rows, design, roles, fits, excluded, float(get("anderson_rubin_level")))
         mundlak_p = {r["column"]: r["p"] for r in fits.mundlak.per_column} if fits.mundlak is not None else {}
         if roles.z2:
             cands, sugg = strength.candidates(
@@ -557,6 +590,28 @@ def _strength(design: Design, ident: identification.Identification, roles: Roles
     for r in x2_rows:
         r["within_share"] = ident.within_share.get(r["endogenous"])
     return Strength(tuple(rows), cd, tuple(cands), tuple(sugg), tuple(x2_rows))
+
+
+def _anderson_rubin(rows: list[dict[str, Any]], design: Design, roles: Roles, fits: Fits, excluded: list[str],
+                    level: float) -> None:
+    """Attach the Anderson-Rubin set to the strength row when there is one unit-level endogenous
+    column and it is a Z2 column; otherwise say why it is not computed."""
+    sp, pa = roles.spec, design.pa
+    for r in rows:
+        r["anderson_rubin"] = None
+    if len(rows) != 1 or sp.x2_between_only or fits.within is None or not roles.order_met:
+        why = ("several unit-level endogenous columns" if len(rows) > 1 else
+               "the endogenous column is an X2 column identified between units only" if sp.x2_between_only else
+               "no within fit or the order condition fails")
+        for r in rows:
+            r["anderson_rubin_note"] = f"not computed: {why} (the set is for one Z2 column)"
+        return
+    wf = fits.within
+    d = pa.ybar - pa.xbar[:, [pa.x_names.index(c) for c in wf.names]] @ wf.coef if wf.names else pa.ybar.copy()
+    z = pa.zbar[:, pa.z_names.index(rows[0]["endogenous"])]
+    included = strength.unit_included(pa, list(roles.z1), sp.x1_between_only)
+    rows[0]["anderson_rubin"] = strength.anderson_rubin(d, z, included, pa.xbar[:, [pa.x_names.index(c)
+                                                                                       for c in excluded]], level)
 
 
 # --------------------------------------------------------------------------- the command
@@ -617,7 +672,8 @@ def _run(panel: Panel, outcome: str, regs: list[str], corr: list[str] | None, pe
         wf, bf, mu, job, too_few, k_unit = _early_fits(design, ident, outcome_invariant, pool)
         mundlak_p = {r["column"]: r["p"] for r in mu.per_column} if mu is not None else {}
         roles = _roles(design, ident, corr, mundlak_p, alpha, expand)
-        fits = _late_fits(design, ident, roles, wf, bf, mu, job, too_few, k_unit)
+        fits = _beyond(design, ident, roles, _late_fits(design, ident, roles, wf, bf, mu, job, too_few, k_unit),
+                       settings)
         validity = _validity(roles, fits.hausman_taylor, test_alpha)
         stren = _strength(design, ident, roles, fits, validity, settings, pool)
     findings = readiness_findings(sample, design, ident, roles, fits, validity, stren, settings)
@@ -641,6 +697,14 @@ def _tests(fits: Fits, roles: Roles, alpha: float) -> dict[str, Any]:
         tests["overidentification"] = {**ht.sargan.to_dict(), "name": "Sargan"}
     if ht is not None and ht.hausman_within is not None:
         tests["hausman_within_ht"] = ht.hausman_within.to_dict()
+    by_est: dict[str, Any] = {"hausman_taylor": tests["overidentification"]}
+    against: dict[str, Any] = {}
+    for name, rf in fits.richer.items():
+        by_est[name] = None if rf is None or rf.sargan is None else {**rf.sargan.to_dict(), "name": "Sargan"}
+        against[name] = None if rf is None or rf.against_ht is None else rf.against_ht.to_dict()
+    tests["overidentification_by_estimator"] = by_est if ht is not None else None
+    tests["hausman_against_ht"] = against if ht is not None else None
+    tests["attrition"] = fits.attrition
     return tests
 
 
@@ -654,6 +718,10 @@ def _document(panel: Panel, sample: Sample, design: Design, ident: identificatio
         "mundlak": fits.mundlak.fit.to_dict() if fits.mundlak is not None else None,
         "hausman_taylor": fits.hausman_taylor.fit.to_dict() if fits.hausman_taylor is not None else None,
     }
+    for name in (instrument_sets.AM, instrument_sets.BMS):
+        rf = fits.richer.get(name)
+        estimates[name] = rf.estimates() if rf is not None else None
+
     components = fits.components.to_dict() if fits.components is not None else None
     if fits.hausman_taylor is not None:
         components = {**(components or {}), "hausman_taylor": fits.hausman_taylor.components.to_dict()}
@@ -869,6 +937,7 @@ def _fit_findings(sample: Sample, roles: Roles, fits: Fits, settings: Settings) 
     if h is not None and h.note:
         out.append(make("hausman-not-positive-definite", settings,
                         f"In the Hausman test {h.note}, so the test has fewer degrees of freedom than coefficients."))
+    out += _beyond_findings(fits, test_alpha, settings)
     ht = fits.hausman_taylor
     if ht is not None:
         for nm, t in (("Sargan", ht.sargan), ("within vs Hausman-Taylor", ht.hausman_within)):
@@ -879,6 +948,35 @@ def _fit_findings(sample: Sample, roles: Roles, fits: Fits, settings: Settings) 
                     "is against the exogeneity of at least one X1 column's unit mean, and if one is correlated with "
                     "the unit effect the Hausman-Taylor estimates are inconsistent.",
                 ))
+    return out
+
+
+def _beyond_findings(fits: Fits, test_alpha: float, settings: Settings) -> list[Finding]:
+    """Attrition, and the extra restrictions of the richer instrument sets."""
+    out = []
+    a = fits.attrition
+    if a is not None and a["p"] is not None and a["p"] < test_alpha:
+        out.append(make(
+            "selective-attrition", settings,
+            f"The Nijman-Verbeek test finds that being observed in the next period is related to the outcome "
+            f"within units (t = {a['t']:.3g}, p = {format_p(a['p'])}): leaving the panel appears related to the "
+            "idiosyncratic error, so the within estimates on the observed rows may be inconsistent.",
+        ))
+    for name, rf in fits.richer.items():
+        if rf is None:
+            continue
+        label = instrument_sets.NAMES[name]
+        for what, t in (("Sargan test", rf.sargan), ("contrast with Hausman-Taylor", rf.against_ht)):
+            if t is not None and t.p is not None and t.p < test_alpha:
+                out.append(make(
+                    "richer-set-rejected", settings,
+                    f"The {label} {what} rejects (p = {format_p(t.p)}): the evidence is against the stronger "
+                    f"exogeneity its extra instruments assume, and if it fails the {label} estimates are "
+                    "inconsistent.",
+                ))
+    if fits.richer_note:
+        out.append(make("richer-sets-skipped", settings, f"Amemiya-MaCurdy and Breusch-Mizon-Schmidt are "
+                                                          f"{fits.richer_note}."))
     return out
 
 

@@ -180,7 +180,7 @@ def verdict(f_value: float | None, critical: float | None, fallback: float) -> s
     return "strong" if f_value >= (critical if critical is not None else fallback) else "weak"
 
 
-def _included(pa: models.PanelArrays, z1: list[str], included_means: list[str] | tuple[str, ...]) -> np.ndarray:
+def unit_included(pa: models.PanelArrays, z1: list[str], included_means: list[str] | tuple[str, ...]) -> np.ndarray:
     """The included unit-level columns [1, Z1, unit means of X1 columns the within fit
     cannot identify (they identify themselves)]."""
     return np.column_stack([np.ones(pa.n), pa.zbar[:, [pa.z_names.index(c) for c in z1]],
@@ -218,7 +218,7 @@ def z2_strength(
     targets = [(c, "Z2") for c in z2] + [(c, "X2 (between units only)") for c in endogenous_means]
     if not targets:
         return [], None
-    included = _included(pa, z1, included_means)
+    included = unit_included(pa, z1, included_means)
     excluded = pa.xbar[:, [pa.x_names.index(c) for c in x1]]
     endog = np.column_stack([pa.zbar[:, [pa.z_names.index(c) for c in z2]],
                              pa.xbar[:, [pa.x_names.index(c) for c in endogenous_means]]])
@@ -349,7 +349,7 @@ def candidates(
     suggestions: list[dict[str, Any]] = []
     if not z2 or not x1:
         return rows, suggestions
-    included, excl = _centred(_included(pa, z1, included_means), pa.xbar[:, [pa.x_names.index(c) for c in x1]])
+    included, excl = _centred(unit_included(pa, z1, included_means), pa.xbar[:, [pa.x_names.index(c) for c in x1]])
     g = included.shape[1]
     xt = _residualise(excl, included)
     # scale for a well-conditioned cross-product
@@ -445,3 +445,57 @@ def f_pvalue(f_value: float | None, df: tuple[int, int] | list[int]) -> float | 
     if f_value is None or df[0] <= 0 or df[1] <= 0:
         return None
     return f_sf(f_value, df[0], df[1])
+
+
+# --------------------------------------------------------------------------- Anderson-Rubin
+
+
+def anderson_rubin(d: np.ndarray, z2: np.ndarray, included: np.ndarray, excluded: np.ndarray,
+                   level: float = 0.95) -> dict[str, Any] | None:
+    """The Anderson-Rubin (1949) confidence set for the coefficient of one unit-level endogenous column.
+
+    ``d`` (n,) is y_bar_i - X_bar_i beta_W (Hausman-Taylor step 2), ``z2`` (n,) the endogenous
+    column, ``included`` (n, g; the constant first) and ``excluded`` (n, k) the included and
+    excluded instruments (methods.md section 8). b0 is in the set when the F test of the
+    excluded coefficients in the regression of d - b0 z2 on [included, excluded] does not
+    reject at ``level``: with P the projection on the partialled excluded instruments and
+    kappa = F_crit k / (n - g - k), that is a b0^2 - 2 b b0 + c <= 0 for the quadratic form
+    v'(P - kappa (I - P)) v of v = d - b0 z2. Returns ``{"level", "intervals", "kind"}``:
+    pieces [lo, hi] with None for an infinite end; kind ``interval``, ``two rays``,
+    ``whole line`` or ``empty``.
+    """
+    from auditor.pvalues import f_isf
+
+    n, g = included.shape
+    k = excluded.shape[1]
+    dfd = n - g - k
+    if k == 0 or dfd <= 0:
+        return None
+    included, d, z2, excluded = _centred(included, d, z2, excluded)
+    dt, zt, xt = (_residualise(v, included) for v in (d, z2, excluded))
+    coef_d, *_ = np.linalg.lstsq(xt, dt, rcond=None)
+    coef_z, *_ = np.linalg.lstsq(xt, zt, rcond=None)
+    pd_, pz = xt @ coef_d, xt @ coef_z
+    kappa = f_isf(1.0 - level, k, dfd) * k / dfd
+    a = (1 + kappa) * float(zt @ pz) - kappa * float(zt @ zt)
+    b = (1 + kappa) * float(zt @ pd_) - kappa * float(zt @ dt)
+    c = (1 + kappa) * float(dt @ pd_) - kappa * float(dt @ dt)
+    scale = max(abs(a), abs(b), abs(c), 1e-300)
+    if abs(a) <= 1e-12 * scale:  # linear: -2 b b0 + c <= 0
+        if abs(b) <= 1e-12 * scale:
+            kind, pieces = ("whole line", [[None, None]]) if c <= 0 else ("empty", [])
+        else:
+            root = float(c / (2 * b))
+            kind, pieces = "ray", [[root, None]] if b > 0 else [[None, root]]
+        return {"level": level, "intervals": pieces, "kind": kind}
+    disc = b * b - a * c
+    if a > 0:
+        if disc < 0:
+            return {"level": level, "intervals": [], "kind": "empty"}
+        r = np.sqrt(disc)
+        return {"level": level, "intervals": [[float((b - r) / a), float((b + r) / a)]], "kind": "interval"}
+    if disc <= 0:
+        return {"level": level, "intervals": [[None, None]], "kind": "whole line"}
+    r = np.sqrt(disc)
+    lo, hi = sorted((float((b - r) / a), float((b + r) / a)))
+    return {"level": level, "intervals": [[None, lo], [hi, None]], "kind": "two rays"}

@@ -44,6 +44,7 @@ FIGURE_FILES: dict[str, str] = {
     "within-share": "within_share.png",
     "missing-map": "missing_map.png",
     "first-stage": "first_stage_f.png",
+    "anderson-rubin": "anderson_rubin_set.png",
     "wave-shift": "wave_shift.png",
     "shifted-distributions": "shifted_distributions.png",
 }
@@ -237,6 +238,9 @@ def build_figures(
         out["first-stage"] = fg.first_stage_strength(
             instruments["strength"], rule_of_thumb=lim.f_rule_of_thumb, t_test_bound=lim.f_t_test
         )
+        if any(r.get("anderson_rubin") for r in instruments["strength"]):
+            out["anderson-rubin"] = fg.anderson_rubin_set(
+                instruments["strength"], (instruments.get("estimates") or {}).get("hausman_taylor"))
     if comparison is not None and comparison.get("columns"):
         out["wave-shift"] = fg.wave_shift(comparison["columns"], max_columns=lim.figure_columns)
         if quantiles:
@@ -576,22 +580,16 @@ def _readiness(doc: Mapping[str, Any], svgs: Mapping[str, str], lim: Limits) -> 
         rows = [[f"<code>{esc(s.get('endogenous'), 60)}</code>", esc(s.get("role")), _names(s.get("instruments")),
                  _num(s.get("partial_f")), _num(s.get("robust_f")), _num(s.get("partial_r2")),
                  esc("; ".join(str(d) for d in s.get("df") or [])), _num(s.get("critical_value")),
-                 esc(s.get("verdict"))] for s in strength]
+                 esc(s.get("verdict")), _ar_cell(s)] for s in strength]
         parts.append("<h3>First stages</h3>")
         parts.append(_table(["regressor", "role", "instruments", "partial F", "robust F", "partial R\u00b2",
-                             "df", "critical value", "verdict"], rows, numeric=[3, 4, 5, 7]))
+                             "df", "critical value", "verdict", "Anderson-Rubin set"], rows, numeric=[3, 4, 5, 7]))
+        parts.append(_figure(svgs, "anderson-rubin",
+                             "Blue: the values of the coefficient the Anderson-Rubin test does not reject (robust "
+                             "to weak instruments; an arrow marks an unbounded end). Orange: the Hausman-Taylor "
+                             "estimate \u00b1 1.96 standard errors, which is reliable only with strong instruments."))
     parts.append(_candidates(doc, lim))
-    tests = doc.get("tests") or {}
-    labels = {"mundlak": "Mundlak: unit means of X jointly zero",
-              "hausman_within_random": "Hausman: within against random effects",
-              "overidentification": "Over-identifying restrictions (Sargan)",
-              "hausman_within_ht": "Hausman: within against Hausman-Taylor"}
-    trows = []
-    for key, t in tests.items():
-        if not isinstance(t, Mapping):
-            trows.append([esc(labels.get(key, key)), "\u2013", "\u2013", "not computed"])
-            continue
-        trows.append([esc(labels.get(key, key)), _num(t.get("statistic")), _int(t.get("df")), _p(t.get("p"))])
+    trows = _test_rows(doc.get("tests") or {})
     if trows:
         parts.append("<h3>Tests</h3>")
         parts.append(_table(["test", "statistic", "df", "p"], trows, cls="pa-narrow", numeric=[1, 2, 3]))
@@ -612,8 +610,8 @@ def _readiness(doc: Mapping[str, Any], svgs: Mapping[str, str], lim: Limits) -> 
                 pm = f'<br><span class="pa-quiet">\u00b1 {_num(s, 3)}</span>' if s is not None else ""
                 r.append("\u2013" if c is None else f"{_num(c, 4)}{pm}")
             erows.append(r)
-        pretty = {"within": "within", "between": "between", "random": "random effects",
-                  "mundlak": "Mundlak", "hausman_taylor": "Hausman-Taylor"}
+        pretty = {**_FIT_NAMES, "amemiya_macurdy": "Amemiya-MaCurdy",
+                  "breusch_mizon_schmidt": "Breusch-Mizon-Schmidt"}
         parts.append("<h3>Estimates (coefficient \u00b1 standard error)</h3>")
         parts.append(_table(["regressor", *[esc(pretty.get(k, k)) for k in est]], erows,
                             numeric=list(range(1, len(est) + 1))))
@@ -649,6 +647,56 @@ def _identified(doc: Mapping[str, Any]) -> str:
         out.append(f"<p>Not identified by {esc(where)}: <code>{esc(x.get('column'), 60)}</code> "
                    f"({esc(x.get('reason'))}{'; with ' + shown if with_ else ''}).</p>")
     return "".join(out)
+
+
+_TEST_LABELS = {"mundlak": "Mundlak: unit means of X jointly zero",
+                "hausman_within_random": "Hausman: within against random effects",
+                "overidentification": "Over-identifying restrictions (Sargan)",
+                "hausman_within_ht": "Hausman: within against Hausman-Taylor",
+                "attrition": "Attrition (Nijman-Verbeek): next period observed"}
+_NESTED_TESTS = {"overidentification_by_estimator": "Sargan, {}", "hausman_against_ht": "Hausman: Hausman-Taylor "
+                 "against {}"}
+_ESTIMATOR_NAMES = {"hausman_taylor": "Hausman-Taylor", "amemiya_macurdy": "Amemiya-MaCurdy",
+                    "breusch_mizon_schmidt": "Breusch-Mizon-Schmidt"}
+
+
+def _test_rows(tests: Mapping[str, Any]) -> list[list[str]]:
+    """One row per test; the per-estimator groups (Sargan of each, contrasts against
+    Hausman-Taylor) one row per estimator."""
+    rows = []
+
+    def row(label: str, t: Any) -> list[str]:
+        if not isinstance(t, Mapping):
+            return [esc(label), "\u2013", "\u2013", "not computed"]
+        return [esc(label), _num(t.get("statistic")), _int(t.get("df")), _p(t.get("p"))]
+
+    for key, t in tests.items():
+        if key in _NESTED_TESTS:
+            if not isinstance(t, Mapping):
+                continue
+            for name, sub in t.items():
+                if key == "overidentification_by_estimator" and name == "hausman_taylor":
+                    continue  # the Sargan row above
+                rows.append(row(_NESTED_TESTS[key].format(_ESTIMATOR_NAMES.get(name, name)), sub))
+            continue
+        rows.append(row(_TEST_LABELS.get(key, key), t))
+    return rows
+
+
+def _ar_cell(row: Mapping[str, Any]) -> str:
+    ar = row.get("anderson_rubin")
+    if not isinstance(ar, Mapping):
+        return '<span class="pa-quiet">not computed</span>' if row.get("anderson_rubin_note") else "\u2013"
+    if ar.get("kind") == "empty":
+        return "empty (rejected at every value)"
+    if ar.get("kind") == "whole line":
+        return "the whole line"
+
+    def end(v: Any, sign: str) -> str:
+        return f"{sign}\u221e" if v is None else _num(v, 4)
+
+    minus = "\u2212"
+    return " or ".join(f"[{end(lo, minus)}, {end(hi, '+')}]" for lo, hi in ar.get("intervals") or [])
 
 
 _STATE_WORDS = {"accepted": "yes", "assumed": "yes (assumed)", "invalid": "no", "undecided": "undecided"}
@@ -898,6 +946,9 @@ def instruments_fragment(result: Any, *, figures: bool = True) -> str:
     if figures and doc.get("strength"):
         svgs["first-stage"] = fg.to_svg(fg.first_stage_strength(
             doc["strength"], rule_of_thumb=lim.f_rule_of_thumb, t_test_bound=lim.f_t_test), name="first-stage")
+        if any(r.get("anderson_rubin") for r in doc["strength"]):
+            svgs["anderson-rubin"] = fg.to_svg(fg.anderson_rubin_set(
+                doc["strength"], (doc.get("estimates") or {}).get("hausman_taylor")), name="anderson-rubin")
     items = [{**dict(f), "source": "model readiness"} for f in doc.get("findings", []) or []]
     items.sort(key=lambda d: _RANK.get(str(d.get("severity")), 9))
     return _fragment([_findings(items, lim), _readiness(doc, svgs, lim)])

@@ -116,6 +116,13 @@ def _strength(d: dict[str, Any], width: int, colour: bool) -> list[str]:
         included = d["strength"][0].get("included") or []
         if any(c.startswith("mean(") for c in included):
             lines.append(f"  included besides the constant: {', '.join(safe(x) for x in included)}")
+        for r in d["strength"]:
+            ar = r.get("anderson_rubin")
+            if ar is not None:
+                lines += _para(f"Anderson-Rubin {100 * ar['level']:g}% set for {safe(r['endogenous'])}: "
+                               f"{ar_text(ar)}", width)
+            elif r.get("anderson_rubin_note"):
+                lines += _para(f"Anderson-Rubin set: {r['anderson_rubin_note']}", width)
         if d["cragg_donald"] is not None:
             lines.append(f"  Cragg-Donald minimum eigenvalue: {fmt_num(d['cragg_donald'], 4)}")
             for r in d["strength"]:
@@ -147,6 +154,25 @@ def _strength(d: dict[str, Any], width: int, colour: bool) -> list[str]:
     return lines
 
 
+def ar_text(ar: dict[str, Any]) -> str:
+    """An Anderson-Rubin set in words: its pieces, or what an empty or unbounded set means."""
+    kind = ar.get("kind")
+    if kind == "empty":
+        return ("empty: at every value of the coefficient the excluded unit means still explain the unit-level "
+                "residual, so the test rejects the model (its over-identifying restrictions) everywhere")
+    if kind == "whole line":
+        return "the whole line: the instruments carry no usable information on this coefficient"
+
+    def end(v: float | None, sign: str) -> str:
+        return f"{sign}inf" if v is None else fmt_num(v, 4)
+
+    pieces = [f"[{end(lo, '-')}, {end(hi, '+')}]" for lo, hi in ar["intervals"]]
+    text = " or ".join(pieces)
+    if kind == "two rays":
+        text += " (two rays: unbounded, the instruments are weak)"
+    return text
+
+
 def _tests(d: dict[str, Any]) -> list[str]:
     t = d["tests"]
     lines = [_test_line("Mundlak, unit means of X jointly zero (clustered)", t["mundlak"], "not computed")]
@@ -159,6 +185,8 @@ def _tests(d: dict[str, Any]) -> list[str]:
     lines.append(_test_line("Sargan over-identification", t["overidentification"], "none (just identified or no fit)"))
     lines.append(_test_line("Hausman, within against Hausman-Taylor", t["hausman_within_ht"],
                             "none (just identified or no fit)"))
+    lines.append(_test_line("attrition (Nijman-Verbeek, next period observed, clustered)", t.get("attrition"),
+                            "not computed (nobody leaves the panel)"))
     vc = d["variance_components"]
     if vc:
         lines.append(f"  random effects: sd of the unit effect {fmt_num(vc['sigma_u'], 4)}, sd of the idiosyncratic "
@@ -195,6 +223,38 @@ def _coefficients(d: dict[str, Any], width: int, colour: bool) -> list[str]:
     return lines
 
 
+_RICHER = (("hausman_taylor", "Hausman-Taylor"), ("amemiya_macurdy", "Amemiya-MaCurdy"),
+           ("breusch_mizon_schmidt", "Breusch-Mizon-Schmidt"))
+
+
+def _richer(d: dict[str, Any], width: int, colour: bool) -> list[str]:
+    """Hausman-Taylor, Amemiya-MaCurdy and Breusch-Mizon-Schmidt side by side."""
+    e, t = d["estimates"], d["tests"]
+    if not e.get("amemiya_macurdy"):
+        return []
+    lines = ["", paint("richer instrument sets (same theta as Hausman-Taylor; classical standard errors)", "bold",
+                       colour)]
+    periods = set(d.get("period_effects") or [])
+    order = ["const"] + [c["column"] for c in d["columns"] if c["column"] not in periods]
+    present = set(e["hausman_taylor"]["coef"])
+    rows = [[c, *[_coef_cell(e.get(k), c) for k, _ in _RICHER]] for c in order if c in present]
+    lines += table(["column", *[label for _, label in _RICHER]], rows, width, "lrrr")
+    by = t.get("overidentification_by_estimator") or {}
+    against = t.get("hausman_against_ht") or {}
+    for key, label in _RICHER:
+        test = by.get(key)
+        inst = (e.get(key) or {}).get("instruments")
+        extra = f" ({inst} instruments)" if inst else ""
+        lines.append(_test_line(f"Sargan, {label}{extra}", test, "none (just identified)"))
+        if key in against:
+            lines.append(_test_line(f"Hausman, Hausman-Taylor against {label}", against.get(key), "not computed"))
+    for key, label in _RICHER[1:]:
+        note = (e.get(key) or {}).get("note")
+        if note:
+            lines += _para(f"{label}: {note}", width)
+    return lines
+
+
 def render(result: InstrumentsResult, width: int | None = None, color: bool = False, *,
            colour: bool | None = None) -> str:
     """The instruments result as terminal text, ``width`` columns wide, ANSI colour when ``color``
@@ -222,4 +282,5 @@ def render(result: InstrumentsResult, width: int | None = None, color: bool = Fa
     lines += _wrapped_tests(d, width)
     lines.append("")
     lines += _coefficients(d, width, colour)
+    lines += _richer(d, width, colour)
     return "\n".join(lines) + "\n"
