@@ -100,6 +100,24 @@ def test_richer_sets_match_an_independent_2sls(which, balanced):
     assert got.sargan.statistic == pytest.approx(sargan, rel=1e-7)
 
 
+def test_contrast_against_ht_equals_a_generalised_inverse_written_out():
+    # oracle: H = d' (V_HT - V_AM)^+ d with numpy's pseudo-inverse, V_AM at Hausman-Taylor's sigma2
+    # (README convention), on every coefficient but the constant; df the rank of the difference
+    d = simulate(seed=40, n=500)
+    d = d[np.random.default_rng(40).random(len(d)) > 0.15].reset_index(drop=True)
+    _, ht, out = _fits(d)
+    for rf in out.values():
+        cols = [c for c in rf.fit.names if c != "const"]
+        ih, ia = ht.fit.index(cols), rf.fit.index(cols)
+        diff = ht.fit.cov[np.ix_(ih, ih)] - rf.fit.cov[np.ix_(ia, ia)] * ht.fit.sigma2 / rf.fit.sigma2
+        dvec = ht.fit.coef[ih] - rf.fit.coef[ia]
+        vals = np.linalg.eigvalsh(diff)
+        rank = int(np.sum(vals > 1e-7 * vals.max()))
+        h = float(dvec @ np.linalg.pinv(diff, rcond=1e-7, hermitian=True) @ dvec)
+        assert rf.against_ht.df == rank
+        assert rf.against_ht.statistic == pytest.approx(h, rel=1e-5)
+
+
 def test_am_adds_k1_times_t_minus_1_restrictions_on_a_balanced_panel():
     # Amemiya and MaCurdy (1986), methods.md section 6: k1 (T - 1) more over-identifying restrictions
     d = simulate(seed=32, periods=6)
@@ -226,6 +244,9 @@ def test_anderson_rubin_set_matches_a_grid_of_statsmodels_f_tests(related):
         if any(abs(b0 - v) < 1e-6 for v in bounds):
             continue
         assert _inside(ar, b0) == _grid_accepts(um, dd, b0), b0
+    for v in bounds:  # at an end of the set the F test's p is exactly 1 - level
+        fit = sm.OLS(dd - v * um["z2"], sm.add_constant(um[["z1", "x1a", "x1b"]])).fit()
+        assert float(fit.f_test("x1a = 0, x1b = 0").pvalue) == pytest.approx(0.05, rel=1e-6)
     if related:
         # strong instruments: a bounded interval holding the simulated truth (z2 coefficient 1.0)
         assert ar["kind"] == "interval" and _inside(ar, 1.0)
