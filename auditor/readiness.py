@@ -478,6 +478,9 @@ def _beyond(design: Design, ident: identification.Identification, roles: Roles, 
         if size > limit:
             note = (f"not computed: the richer instrument sets would hold about {size} unit-level columns "
                     f"(instruments.richer_max_instruments is {limit})")
+        elif 2 * size >= design.pa.n:
+            note = (f"not computed: about {size} unit-level instrument columns for {design.pa.n} units (they need "
+                    "more than twice as many units as columns, or the first stage fits the units almost exactly)")
         else:
             lev = design.pa.select(list(roles.x1) + list(roles.x2), list(roles.z1) + list(roles.z2))
             for which in richer:
