@@ -12,6 +12,7 @@ from typing import Any
 CATALOGUE: dict[str, str] = {
     # --- arguments -----------------------------------------------------------
     "bad-argument": "{detail}",
+    "no-command": "no command given; choose one of: {commands} (see 'panel-audit --help')",
     # --- loading ---------------------------------------------------------------
     "file-not-found": "cannot read '{path}': no such file; check the path",
     "not-a-file": "cannot read '{path}': it is a folder with no data files in it",
@@ -51,6 +52,11 @@ CATALOGUE: dict[str, str] = {
     "output-exists": "'{path}' already exists; pass --force to replace it",
     "output-is-input": "'{path}' is an input of this run; choose another output path",
     "output-unwritable": "cannot write '{path}': {reason}",
+    "output-twice": "'{path}' would be written twice by this run, as {first} and as {second}; give each output its own path",
+    "output-is-link": (
+        "'{path}' is a symbolic link; outputs are never written through links: remove it or name the file it points to"
+    ),
+    "stdout-unwritable": "cannot write to standard output: {reason}; nothing was kept",
     # --- instruments -----------------------------------------------------------
     "instruments-unknown-outcome": "outcome column '{column}' not found; columns are: {available}",
     "instruments-unknown-regressor": "regressor '{column}' not found; columns are: {available}",
