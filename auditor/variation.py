@@ -649,6 +649,7 @@ def compute_variation(panel: Panel, settings: Settings, passes: Passes | None = 
             changing_examples={},
         )
     numeric = [c for c in cols if is_numeric(schema[c])]
+    numeric_set = set(numeric)  # membership per column: a list would be quadratic in columns
     passes = passes if passes is not None else run_passes(panel, settings)
 
     # --- arithmetic on the small tables ------------------------------------------------
@@ -682,7 +683,7 @@ def compute_variation(panel: Panel, settings: Settings, passes: Passes | None = 
             "non_finite": st.non_finite,
             "binary": False,
         }
-        if c in numeric and st.mean_i is not None and st.m2_i is not None:
+        if c in numeric_set and st.mean_i is not None and st.m2_i is not None:
             if st.n_i.size and int(st.n_i.min()) > 0:  # every unit has a value: no copies
                 rec.update(decompose(st.n_i, st.mean_i, st.m2_i))
             else:
@@ -822,12 +823,13 @@ def _absorbed(
     within deviations) come from the ordered pass; streaming reads the rows again.
     """
     cut = float(settings.get("profile", "absorbed_r2"))
+    numeric_set = set(numeric)
     todo = [
         r for r in records
-        if r["name"] in numeric and r["kind"] in ("time-varying", "nearly-time-invariant")
+        if r["name"] in numeric_set and r["kind"] in ("time-varying", "nearly-time-invariant")
     ]
     for r in records:
-        if r["name"] in numeric:
+        if r["name"] in numeric_set:
             r["absorbed_by_time"] = r["kind"] == "period-only"
             r["time_r2"] = 1.0 if r["kind"] == "period-only" else None
     n_keyed = panel.rows - panel.missing_keys
