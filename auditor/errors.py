@@ -44,6 +44,23 @@ CATALOGUE: dict[str, str] = {
     "rules-not-found": "rules file '{path}' not found",
     "rules-too-large": "rules file '{path}' is {size} bytes; the limit is {limit} bytes",
     "rules-syntax": "rules file '{path}' is not valid YAML at line {line}: {reason}",
+    "rules-encoding": (
+        "rules file '{path}' line {line}: byte {byte} is not UTF-8; save the file as UTF-8 "
+        "(YAML files are Unicode; in many editors: Save As, encoding UTF-8)"
+    ),
+    "rules-too-deep": "rules file '{path}' line {line}: nested more than {limit} levels deep; no rule needs that",
+    "rules-alias-loop": (
+        "rules file '{path}' line {line}: alias '*{alias}' points into the node that holds it, "
+        "so it would never end; write the values out"
+    ),
+    "rules-alias-expansion": (
+        "rules file '{path}' line {line}: its aliases expand to more than {limit} values; write the values out "
+        "or use fewer aliases"
+    ),
+    "rules-number-too-long": (
+        "rules file '{path}' line {line}: a number written with {digits} characters; "
+        "no threshold or bound needs more than {limit}"
+    ),
     "rules-tag": "rules file '{path}' line {line}: the YAML tag '{tag}' is not allowed (tags never construct objects here)",
     "rules-not-mapping": "rules file '{path}' must hold a mapping at the top level, found {found}",
     "rules-unknown-key": "rules file '{path}' line {line}: unknown key '{key}' in {where}; expected one of: {expected}",
