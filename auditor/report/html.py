@@ -5,14 +5,14 @@ The renderer shows what the statistics modules computed; it computes nothing of
 its own beyond formatting, except the quantiles of the shifted columns that the
 new-wave figure draws (a display summary of at most a few columns). Every text
 taken from the data (column names, values, categories, labels) goes through
-``esc``: control characters removed, then ``html.escape``.
+``esc``: acting characters shown as ``<U+XXXX>`` (auditor.report.sanitise),
+then ``html.escape``.
 """
 
 from __future__ import annotations
 
 import contextlib
 import html
-import re
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, replace
 from datetime import UTC, datetime
@@ -21,12 +21,12 @@ from typing import TYPE_CHECKING, Any
 
 import auditor
 from auditor.errors import fail
+from auditor.report.sanitise import visible
 
 if TYPE_CHECKING:  # pragma: no cover
     from auditor.config import Settings
     from auditor.outputs import OutputSet
 
-_CONTROL = re.compile(r"[\x00-\x08\x0b-\x1f\x7f-\x9f]")
 _RANK = {"error": 0, "warning": 1, "note": 2}
 
 SECTIONS: tuple[tuple[str, str], ...] = (
@@ -55,9 +55,10 @@ FIGURE_FILES: dict[str, str] = {
 
 
 def esc(value: Any, limit: int = 200) -> str:
-    """``value`` as safe HTML text: control characters dropped, shortened to
+    """``value`` as safe HTML text: acting characters (controls, bidirectional and
+    zero-width ones) shown as ``<U+XXXX>`` by the one sanitiser, shortened to
     ``limit`` characters (with an ellipsis), then escaped with ``html.escape``."""
-    s = _CONTROL.sub("", "" if value is None else str(value))
+    s = visible(value)
     if len(s) > limit:
         s = s[: limit - 1] + "\u2026"
     return html.escape(s, quote=True)
