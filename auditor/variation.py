@@ -31,7 +31,7 @@ from auditor import unitpass
 from auditor.config import Settings
 from auditor.findings import Finding, make
 from auditor.load import PERIOD_ID, UNIT_ID, Panel, integer_codes
-from auditor.unitpass import ColumnStats, period_matrix
+from auditor.unitpass import ColumnStats, SparsePeriods, period_matrix
 
 KINDS = ("constant", "period-only", "time-invariant", "nearly-time-invariant", "time-varying")
 
@@ -252,7 +252,7 @@ class Passes:
     stats: dict[str, ColumnStats]
     per_unit: pl.DataFrame | None
     period_rows: np.ndarray
-    system: np.ndarray | None = None
+    system: np.ndarray | SparsePeriods | None = None
     streaming: bool = False
     duplicate_cells: pl.DataFrame | None = None
     unit_means: dict[str, np.ndarray] = field(default_factory=dict)
@@ -838,18 +838,29 @@ def _absorbed(
         return basis
     if passes.streaming:
         return _absorbed_streaming(panel, todo, passes, settings, cut)
-    systems: dict[int, tuple[np.ndarray, np.ndarray]] = {}
+    # columns sharing one system (every row has a value) are solved together
+    groups: dict[int, tuple[Any, list[dict[str, Any]]]] = {}
     for r in todo:
         st = passes.stats[r["name"]]
         matrix = st.system if st.system is not None else passes.system
         if st.rhs is None or st.wss is None or matrix is None:
             continue
-        if id(matrix) not in systems:
-            systems[id(matrix)] = np.linalg.eigh(matrix)
-        r2 = _explained(st.rhs, st.wss, systems[id(matrix)])
-        r["time_r2"] = r2
-        r["absorbed_by_time"] = bool(r2 is not None and r2 >= cut)
+        groups.setdefault(id(matrix), (matrix, []))[1].append(r)
+    for matrix, rows in groups.values():
+        stats = [passes.stats[r["name"]] for r in rows]
+        shares = _explained_shares(
+            np.column_stack([st.rhs for st in stats]), [float(st.wss or 0.0) for st in stats], _solver(matrix)
+        )
+        for r, r2 in zip(rows, shares, strict=True):
+            r["time_r2"] = r2
+            r["absorbed_by_time"] = bool(r2 is not None and r2 >= cut)
     return basis
+
+
+def _solver(matrix: np.ndarray | SparsePeriods) -> tuple[np.ndarray, np.ndarray] | SparsePeriods:
+    """What :func:`_explained` needs of a period system: the eigen-decomposition of a
+    dense one (at most ``unitpass.DENSE_PERIODS`` periods), a sparse one as it is."""
+    return matrix if isinstance(matrix, SparsePeriods) else np.linalg.eigh(matrix)
 
 
 def _absorbed_streaming(
@@ -897,9 +908,11 @@ def _absorbed_streaming(
     return basis
 
 
-def _period_system(u: np.ndarray, t: np.ndarray, n_units: int, n_periods: int) -> tuple[np.ndarray, np.ndarray]:
-    """Eigen-decomposition (values, vectors) of D' M_U D, period dummies D after unit demeaning."""
-    return np.linalg.eigh(period_matrix(u, t, n_units, n_periods))
+def _period_system(
+    u: np.ndarray, t: np.ndarray, n_units: int, n_periods: int
+) -> tuple[np.ndarray, np.ndarray] | SparsePeriods:
+    """D' M_U D, period dummies D after unit demeaning, ready for :func:`_explained`."""
+    return _solver(period_matrix(u, t, n_units, n_periods))
 
 
 def time_r2(
@@ -908,7 +921,7 @@ def time_r2(
     x: np.ndarray,
     n_units: int,
     n_periods: int,
-    system: tuple[np.ndarray, np.ndarray],
+    system: tuple[np.ndarray, np.ndarray] | SparsePeriods,
     means: np.ndarray | None = None,
 ) -> float | None:
     """Share of the within variation of ``x`` explained by period effects (None when WSS = 0).
@@ -923,16 +936,30 @@ def time_r2(
     return _explained(np.bincount(t, weights=xt, minlength=n_periods), float(xt @ xt), system)
 
 
-def _explained(rhs: np.ndarray, wss: float, system: tuple[np.ndarray, np.ndarray]) -> float | None:
-    """R2 of period effects from the per-period sums of within deviations ``rhs`` and WSS."""
-    if not wss > 0:
-        return None
-    vals, vecs = system
-    n_periods = vals.size
-    keep = vals > max(vals.max(), 0.0) * 1e-12 * n_periods
-    proj = vecs[:, keep].T @ rhs
-    explained = float((proj**2 / vals[keep]).sum())
-    return float(min(max(explained / wss, 0.0), 1.0))
+def _explained(
+    rhs: np.ndarray, wss: float, system: tuple[np.ndarray, np.ndarray] | SparsePeriods
+) -> float | None:
+    """R2 of period effects from the per-period sums of within deviations ``rhs`` and WSS
+    (None when WSS is 0, or when a sparse system was not solved)."""
+    return _explained_shares(rhs[:, None], [wss], system)[0]
+
+
+def _explained_shares(
+    rhs: np.ndarray, wss: Sequence[float], system: tuple[np.ndarray, np.ndarray] | SparsePeriods
+) -> list[float | None]:
+    """:func:`_explained` for each column of ``rhs`` (periods x columns)."""
+    if isinstance(system, SparsePeriods):
+        explained = system.explained(rhs)
+    else:
+        vals, vecs = system
+        keep = vals > max(vals.max(), 0.0) * 1e-12 * vals.size
+        basis, kept = vecs[:, keep].T, vals[keep]
+        explained = np.array([float(((basis @ rhs[:, j]) ** 2 / kept).sum()) for j in range(rhs.shape[1])])
+    out: list[float | None] = []
+    for e, w in zip(explained, wss, strict=True):
+        ok = w > 0 and np.isfinite(e)
+        out.append(float(min(max(float(e) / w, 0.0), 1.0)) if ok else None)
+    return out
 
 
 def variation_findings(panel: Panel, v: Variation, settings: Settings) -> list[Finding]:
