@@ -35,6 +35,9 @@ CATALOGUE: dict[str, str] = {
     "time-fractional": (
         "time column '{column}' holds fractional values such as {examples}; periods must be whole numbers or dates"
     ),
+    "reserved-column-name": (
+        "column '{column}' starts with '{prefix}', which panel-audit keeps for its own helper columns; rename it"
+    ),
     "duplicate-column-names": "the file has more than one column named {names}; rename them first",
     "no-glob-match": "no files match '{pattern}'",
     "too-large": "'{path}' ({size}) does not fit in memory here and cannot be streamed: {reason}",

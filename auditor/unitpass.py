@@ -566,6 +566,8 @@ def _number(ctx: _Context, s: pl.Series, shift: float | None = None, count_value
 
     if whole and max(abs(vmin), abs(vmax)) < 2.0**52:
         changing = m2_i > 0
+    elif whole and s.dtype.is_integer():  # beyond 2**52 floats cannot tell neighbours apart
+        changing = _integer_changing(ctx, s)
     else:
         changing = _float_changing(x, finite, all_finite, ctx, n_i, mean_i, m2_i, shift, vmin, vmax)
     rhs = wss = system = None
@@ -633,6 +635,20 @@ def _number_values(
     np.copyto(buf, v)
     buf.sort()
     return _runs(buf)
+
+
+def _integer_changing(ctx: _Context, s: pl.Series) -> np.ndarray:
+    """Units holding two different integers, compared exactly in the column's own type
+    (int64 and uint64 extremes, 128-bit integers): a unit changes when its minimum and
+    maximum differ (methods.md, section 3: at least two distinct values)."""
+    per_unit = (
+        pl.DataFrame({"u": ctx.u, "v": s})
+        .group_by("u")
+        .agg((pl.col("v").max() != pl.col("v").min()).fill_null(False).alias("changes"))
+    )
+    out = np.zeros(ctx.n_units, dtype=bool)
+    out[per_unit["u"].to_numpy()] = per_unit["changes"].to_numpy()
+    return out
 
 
 def _float_changing(

@@ -108,7 +108,8 @@ def _text(col: str, dtype: pl.DataType) -> pl.Expr:
 
 
 def _orderable(dtype: pl.DataType) -> bool:
-    return not isinstance(dtype, pl.List | pl.Array | pl.Struct | pl.Object | pl.Null)
+    # nested types (lists, arrays, structs, maps) have no order: counted, never compared
+    return not (dtype.is_nested() or isinstance(dtype, pl.Object | pl.Null))
 
 
 def prepared(
@@ -156,11 +157,14 @@ def unit_exprs(panel: Panel, columns: Sequence[str] | None = None) -> list[pl.Ex
     for c in panel.columns if columns is None else columns:
         a, dt = names[c], panel.schema[c]
         src = f"{a}:x" if is_numeric(dt) else f"{a}:v"
+        # integers keep their own type for the extremes: as floats, neighbours beyond
+        # 2**53 (int64 and uint64 extremes) would look equal
+        ext = f"{a}:v" if dt.is_integer() else src
         if is_numeric(dt) or _orderable(dt):
             out += [
                 pl.col(src).count().alias(f"{a}:n"),
-                pl.col(src).min().alias(f"{a}:min" if is_numeric(dt) else f"{a}:tmin"),
-                pl.col(src).max().alias(f"{a}:max" if is_numeric(dt) else f"{a}:tmax"),
+                pl.col(ext).min().alias(f"{a}:min" if is_numeric(dt) else f"{a}:tmin"),
+                pl.col(ext).max().alias(f"{a}:max" if is_numeric(dt) else f"{a}:tmax"),
             ]
         else:
             out += [pl.col(src).count().alias(f"{a}:n"), pl.col(src).n_unique().alias(f"{a}:nu")]
@@ -564,6 +568,11 @@ def _joined(
     )
 
 
+def _number_value(v: Any) -> Any:
+    """An extreme for an example: integers as they are, other numbers as floats."""
+    return v if isinstance(v, int) and not isinstance(v, bool) else float(v)
+
+
 def _one_value_from(pp: pl.DataFrame, a: str) -> bool:
     """Whether every period holds at most one value, from the per-period table."""
     if f"{a}:pmin" in pp.columns:
@@ -592,15 +601,16 @@ def _stats_from_tables(
     extra: dict[str, Any] = {}
     if moments is not None:
         mean_i = moments[1][codes]
-        lo, hi = pu[f"{a}:min"].to_numpy(), pu[f"{a}:max"].to_numpy()
+        lo_s, hi_s = pu[f"{a}:min"], pu[f"{a}:max"]
         seen = n_i > 0
         if dt.is_float():
+            lo, hi = lo_s.to_numpy(), hi_s.to_numpy()
             unit_mean_abs = np.abs(np.where(seen, mean_i, 0.0) + shift)
             changing = seen & ((hi - lo) > tol * (1.0 + unit_mean_abs))
-        else:
-            changing = seen & (hi != lo)
+        else:  # integers compared in their own type, booleans as 0/1
+            changing = seen & (hi_s != lo_s).fill_null(False).to_numpy()
         idx = np.flatnonzero(changing)[:k]
-        examples = tuple((int(codes[i]), float(lo[i]), float(hi[i])) for i in idx)
+        examples = tuple((int(codes[i]), _number_value(lo_s[int(i)]), _number_value(hi_s[int(i)])) for i in idx)
         extra = {
             "shift": shift,
             "vmin": g.get(f"{a}:min"),
