@@ -198,10 +198,27 @@ def _to_lazy(
         frame = data.reset_index(drop=True)
         frame.columns = [str(c) for c in frame.columns]
         return pl.from_pandas(frame).lazy(), "pandas DataFrame", (), [], False
-    from auditor.sources import resolve_inputs, scan_inputs
+    from auditor.sources import expand_inputs, scan_inputs
 
-    paths = resolve_inputs(data)
+    paths, skipped = expand_inputs(data)
     lf, findings, binary = scan_inputs(paths, text_columns, settings)
+    if skipped:
+        from auditor.findings import make
+
+        names = short_list(p.name for p in skipped)
+        findings = [
+            *findings,
+            make(
+                "files-skipped",
+                settings,
+                f"{len(skipped)} {'file' if len(skipped) == 1 else 'files'} beside the data "
+                f"({names}) {'is' if len(skipped) == 1 else 'are'} not read: a folder or glob takes only "
+                ".csv, .tsv, .parquet, .arrow/.feather/.ipc and .jsonl/.ndjson files; "
+                "name a file explicitly to read it (.txt as delimited text)",
+                count=len(skipped),
+                examples=[{"file": str(p)} for p in skipped[:5]],
+            ),
+        ]
     desc = str(paths[0]) if len(paths) == 1 else f"{len(paths)} files ({paths[0].parent})"
     return lf, desc, tuple(paths), findings, binary
 

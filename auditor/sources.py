@@ -259,36 +259,63 @@ def read_source(path: str | Path, text_columns: Sequence[str] = ()) -> pl.DataFr
 
 def resolve_inputs(data: Any) -> list[Path]:
     """The data files named by ``data``: a path, a folder, a glob or a list of paths."""
+    return expand_inputs(data)[0]
+
+
+def expand_inputs(data: Any) -> tuple[list[Path], list[Path]]:
+    """(data files, files passed over) for ``data``: a path, a folder, a glob or a list.
+
+    A path named explicitly is read whatever its supported suffix (``.txt`` too). A
+    folder or a glob takes only the data formats of :data:`FOLDER_SUFFIXES`, never
+    hidden files: a ``README.txt`` or ``notes.md`` beside the waves is passed over
+    (and listed, so the profile can say so), not read as a wave.
+    """
     import glob as globmod
 
     items = list(data) if isinstance(data, list | tuple) else [data]
     paths: list[Path] = []
+    skipped: list[Path] = []
     for item in items:
         if not isinstance(item, str | Path):
             raise fail("unsupported-object", type=type(item).__name__)
         text = str(item)
         p = Path(text)
         if any(ch in text for ch in "*?[") and not p.exists():
-            found = sorted(Path(x) for x in globmod.glob(text))
+            matched = sorted(Path(x) for x in globmod.glob(text))
+            found = [x for x in matched if x.is_file() and _is_data_file(x)]
             if not found:
                 raise fail("no-glob-match", pattern=text)
             paths.extend(found)
+            skipped.extend(x for x in matched if x.is_file() and x not in found)
         elif p.is_dir():
-            found = sorted(x for x in p.iterdir() if x.is_file() and _is_data_file(x))
+            entries = sorted(x for x in p.iterdir() if x.is_file())
+            found = [x for x in entries if _is_data_file(x)]
             if not found:
                 raise fail("not-a-file", path=text)
             paths.extend(found)
+            skipped.extend(x for x in entries if x not in found and not x.name.startswith("."))
         else:
             paths.append(p)
-    return paths
+    return paths, skipped
+
+
+# The formats a folder or a glob is read for (.txt only when a file is named explicitly).
+FOLDER_SUFFIXES = {".csv", ".tsv", *PARQUET_SUFFIXES, *IPC_SUFFIXES, *JSONL_SUFFIXES}
 
 
 def _is_data_file(p: Path) -> bool:
+    if p.name.startswith("."):
+        return False
+    suffixes = [s.lower() for s in p.suffixes]
+    if suffixes and suffixes[-1] == ".gz":
+        suffixes = suffixes[:-1]
+    if not suffixes or suffixes[-1] not in FOLDER_SUFFIXES:
+        return False
     try:
         file_format(p)
     except Exception:
         return False
-    return not p.name.startswith(".")
+    return True
 
 
 def scan_inputs(
