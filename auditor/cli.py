@@ -131,24 +131,13 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
-class Interrupted(BaseException):
-    """Raised in the main thread by SIGTERM or SIGHUP, as Ctrl-C raises KeyboardInterrupt:
-    every ``finally`` and cleanup on the way out runs."""
-
-    def __init__(self, signum: int) -> None:
-        super().__init__(signum)
-        self.signum = signum
-
-
-def _on_signal(signum: int, _frame: Any) -> None:
-    raise Interrupted(signum)
-
-
 def _install_signal_handlers() -> None:
-    for name in ("SIGTERM", "SIGHUP"):
+    from auditor.outputs import on_signal
+
+    for name in ("SIGINT", "SIGTERM", "SIGHUP"):
         number = getattr(signal, name, None)
         if number is not None and signal.getsignal(number) is not signal.SIG_IGN:
-            signal.signal(number, _on_signal)
+            signal.signal(number, on_signal)
 
 
 def _say(text: str) -> None:
@@ -385,9 +374,6 @@ def _run(argv: Sequence[str] | None) -> int:
     except KeyboardInterrupt:
         sys.stderr.write(f"{PROG}: interrupted\n")
         return 128 + int(signal.SIGINT)
-    except Interrupted as stop:
-        sys.stderr.write(f"{PROG}: interrupted ({signal.Signals(stop.signum).name})\n")
-        return 128 + stop.signum
     except BrokenPipeError:
         _silence_stdout()
         return 0
@@ -407,6 +393,13 @@ def _run(argv: Sequence[str] | None) -> int:
                 exc = fail("internal-problem", kind=type(exc).__name__, detail=_one_line(str(exc))[:300])
         sys.stderr.write(f"{PROG}: error: {_one_line(exc.message)}\n")
         return 2
+    except BaseException as stop:  # SIGTERM, SIGHUP (auditor.outputs.on_signal)
+        from auditor.outputs import Interrupted
+
+        if not isinstance(stop, Interrupted):
+            raise
+        sys.stderr.write(f"{PROG}: interrupted ({signal.Signals(stop.signum).name})\n")
+        return 128 + stop.signum
 
 
 def _one_line(text: str) -> str:

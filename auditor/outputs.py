@@ -20,7 +20,6 @@ import errno
 import os
 import signal
 import tempfile
-import threading
 from collections.abc import Iterable, Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -28,25 +27,47 @@ from typing import Any
 
 from auditor.errors import fail
 
-_HELD_SIGNALS = tuple(
-    s for s in (getattr(signal, name, None) for name in ("SIGINT", "SIGTERM", "SIGHUP")) if s is not None
-)
 # os.link is refused on some file systems (FAT, some network and FUSE mounts)
 _NO_LINKS = {errno.EPERM, errno.EXDEV, errno.EMLINK, getattr(errno, "ENOTSUP", -1), getattr(errno, "EOPNOTSUPP", -1)}
 
 
+class Interrupted(BaseException):
+    """Raised in the main thread by SIGTERM or SIGHUP, as Ctrl-C raises KeyboardInterrupt:
+    every ``finally`` and cleanup on the way out runs."""
+
+    def __init__(self, signum: int) -> None:
+        super().__init__(signum)
+        self.signum = signum
+
+
+_held = {"depth": 0, "pending": []}
+
+
+def on_signal(signum: int, _frame: Any = None) -> None:
+    """The command's handler of SIGINT, SIGTERM and SIGHUP: KeyboardInterrupt or
+    :class:`Interrupted` at once, or, inside :func:`signals_held`, when the block ends."""
+    if _held["depth"]:
+        _held["pending"].append(signum)
+        return
+    if signum == signal.SIGINT:
+        raise KeyboardInterrupt
+    raise Interrupted(signum)
+
+
 @contextlib.contextmanager
 def signals_held() -> Iterator[None]:
-    """Hold SIGINT, SIGTERM and SIGHUP (delivered when the block ends) in the main thread."""
-    can = hasattr(signal, "pthread_sigmask") and threading.current_thread() is threading.main_thread()
-    if not can:  # pragma: no cover - not POSIX, or called from a worker thread
-        yield
-        return
-    old = signal.pthread_sigmask(signal.SIG_BLOCK, _HELD_SIGNALS)
+    """Defer the interrupt of :func:`on_signal` to the end of the block (files are being
+    published or put back: the block must run whole). Python runs signal handlers in the
+    main thread whichever thread the signal reached, so a flag holds them, not a mask."""
+    _held["depth"] += 1
     try:
         yield
     finally:
-        signal.pthread_sigmask(signal.SIG_SETMASK, old)
+        _held["depth"] -= 1
+        if not _held["depth"] and _held["pending"]:
+            signum = _held["pending"][0]
+            _held["pending"].clear()
+            on_signal(signum)
 
 
 def input_files(*data: Any, files: Iterable[Any] = ()) -> list[Path]:
