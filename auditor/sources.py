@@ -46,18 +46,21 @@ def _raw_bytes(path: Path, gz: bool) -> bytes:
         if not gz:
             return path.read_bytes()
         limit = text_limit()
-        out = bytearray()
+        chunks: list[bytes] = []
+        size = 0
         with gzip.open(path, "rb") as fh:
             while chunk := fh.read(GZIP_CHUNK):
-                out += chunk
-                if limit and len(out) > limit:
+                chunks.append(chunk)
+                size += len(chunk)
+                if limit and size > limit:
+                    chunks.clear()
                     raise fail(
                         "too-large",
                         path=path,
                         size=f"more than {limit / 2**30:.1f} GiB of text once decompressed",
                         reason="text files are read whole; convert it to Parquet, which is streamed",
                     )
-        return bytes(out)
+        return b"".join(chunks)
     except PermissionError:
         raise fail("unreadable-file", path=path, reason="permission denied") from None
     except (EOFError, gzip.BadGzipFile, zlib.error) as exc:

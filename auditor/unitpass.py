@@ -568,6 +568,7 @@ def _number(ctx: _Context, s: pl.Series, shift: float | None = None, count_value
         changing = m2_i > 0
     elif whole and s.dtype.is_integer():  # beyond 2**52 floats cannot tell neighbours apart
         changing = _integer_changing(ctx, s)
+        common["one_value"] = _integer_one_value(ctx, s)
     else:
         changing = _float_changing(x, finite, all_finite, ctx, n_i, mean_i, m2_i, shift, vmin, vmax)
     rhs = wss = system = None
@@ -635,6 +636,12 @@ def _number_values(
     np.copyto(buf, v)
     buf.sort()
     return _runs(buf)
+
+
+def _integer_one_value(ctx: _Context, s: pl.Series) -> bool:
+    """Whether every period holds at most one distinct integer of ``s``, compared exactly."""
+    per_period = pl.DataFrame({"t": ctx.t, "v": s}).group_by("t").agg(pl.col("v").drop_nulls().n_unique())
+    return bool(per_period["v"].max() <= 1) if per_period.height else True
 
 
 def _integer_changing(ctx: _Context, s: pl.Series) -> np.ndarray:

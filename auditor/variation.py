@@ -351,9 +351,16 @@ def _polars_passes(
     for c in cols:
         a, dt = names[c], schema[c]
         v = pl.col(f"{a}:v")
-        if not _orderable(dt):
+        if not _orderable(dt) and not dt.is_nested():  # objects, nulls: no value table
             counted.append(c)
             queries.append(prepared(panel, [c], names).select(v.n_unique().alias("d"), pl.lit(0).alias("top")))
+            continue
+        if not _orderable(dt):  # lists, structs, maps: counted by value, as in memory
+            counted.append(c)
+            queries.append(
+                prepared(panel, [c], names).select(v).filter(v.is_not_null()).group_by(v).len()
+                .select(pl.len().alias("d"), pl.col("len").max().alias("top"))
+            )
             continue
         present = n_keyed - int(g[f"{a}:null"]) - int(g.get(f"{a}:nan") or 0)
         distinct = int(g[f"{a}:distinct"])
