@@ -141,6 +141,19 @@ def test_a_target_that_appears_before_publication_is_not_replaced(tmp_path):
     assert _listing(tmp_path) == ["contract.yaml"]
 
 
+def test_a_failed_publication_undoes_the_files_already_published(tmp_path):
+    # the second target appears meanwhile: the first, already in place, is taken back
+    a, b = tmp_path / "a.html", tmp_path / "b.png"
+    outs = OutputSet(force=False)
+    outs.stage(a, "page")
+    outs.stage(b, "figure")
+    b.write_text("someone else's")
+    with pytest.raises(AuditError) as err:
+        outs.publish()
+    assert err.value.code == "output-exists"
+    assert _listing(tmp_path) == ["b.png"] and b.read_text() == "someone else's"
+
+
 def test_concurrent_runs_for_one_new_out_exactly_one_wins(tmp_path):
     out = tmp_path / "contract.yaml"
     env = dict(os.environ, PYTHONPATH=str(ROOT), NO_COLOR="1")
@@ -177,6 +190,19 @@ def test_a_link_at_out_is_refused_with_force(tmp_path, capsys):
     _refused(["rules", "draft", str(EXAMPLES / "orchards.csv"), *KEYS, "--out", str(link), "--force"],
              capsys, "output-is-link")
     assert link.is_symlink() and real.read_text() == "kept\n"
+
+
+def test_a_link_that_appears_before_publication_is_not_followed(tmp_path):
+    out, real = tmp_path / "r.html", tmp_path / "elsewhere"
+    real.write_text("kept")
+    outs = OutputSet(force=True)
+    outs.stage(out, "page")
+    out.symlink_to(real)  # planted while the run worked
+    with pytest.raises(AuditError) as err:
+        outs.publish()
+    assert err.value.code == "output-is-link"
+    assert out.is_symlink() and real.read_text() == "kept"
+    assert _listing(tmp_path) == ["elsewhere", "r.html"]
 
 
 def test_out_inside_png_dir_with_a_figures_name_is_refused(tmp_path, capsys):
@@ -278,6 +304,36 @@ def test_profile_to_a_full_standard_output_is_exit_2_with_one_line(extra):
     assert proc.stderr.splitlines() == [
         "panel-audit: error: cannot write to standard output: No space left on device; nothing was kept"
     ]
+
+
+class _FullStream:
+    """A standard output on a full disk (any system): every flush fails with ENOSPC."""
+
+    def __init__(self):
+        self.written = []
+
+    def write(self, text):
+        self.written.append(text)
+        return len(text)
+
+    def flush(self):
+        raise OSError(errno.ENOSPC, "No space left on device")
+
+    def fileno(self):
+        raise OSError(errno.EBADF, "no descriptor")
+
+    def isatty(self):
+        return False
+
+
+def test_draft_to_a_full_standard_output_keeps_no_contract(tmp_path, monkeypatch, capsys):
+    out = tmp_path / "c.yaml"
+    monkeypatch.setattr(sys, "stdout", _FullStream())
+    assert main(["rules", "draft", str(EXAMPLES / "orchards.csv"), *KEYS, "--out", str(out)]) == 2
+    assert capsys.readouterr().err == (
+        "panel-audit: error: cannot write to standard output: No space left on device; nothing was kept\n"
+    )
+    assert _listing(tmp_path) == []
 
 
 def test_a_closed_pipe_is_not_an_error(tmp_path):
