@@ -251,6 +251,22 @@ def test_50000_levels_of_flow_nesting_are_a_clear_error(tmp_path, monkeypatch, l
     assert code == ("rules-syntax" if libyaml and hasattr(yaml, "CSafeLoader") else "rules-too-deep")
 
 
+YAML_TOKENS = ["&a ", "&b ", "*a", "*b", "[", "]", "{", "}", ": ", ", ", "- ", "\n", "  ", "x", "1", "1e400",
+               "!!str ", "!!python/object ", "'q'", '"\\u202e"', "? ", "profile", "severities", "gaps", "note"]
+
+
+@settings(max_examples=300, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(st.lists(st.sampled_from(YAML_TOKENS), max_size=60))
+def test_fuzzed_rules_files_end_in_settings_or_a_catalogued_error(tmp_path_factory, tokens):
+    # whatever the tokens, reading ends (no loop, no blow-up) with settings or an AuditError
+    path = tmp_path_factory.mktemp("yaml") / "r.yaml"
+    path.write_text("".join(tokens), encoding="utf-8")
+    try:
+        _settings(path)
+    except AuditError as err:
+        assert err.code.startswith("rules-") or err.code.startswith("contract-"), err.code
+
+
 def test_a_latin1_rules_file_is_refused_naming_the_byte():
     with pytest.raises(AuditError) as err:
         _settings(CORPUS / "rules_latin1.yaml")
