@@ -330,6 +330,8 @@ _OPEN_SHARE = (0.0, 1.0, "a number above 0 and at most 1")
 _PROBABILITY = (0.0, 1.0, "a level above 0 and below 1")
 _COUNT = (0, None, "a whole number, 0 or more")
 _POSITIVE = (0.0, None, "a number above 0")
+_NON_NEGATIVE = (0.0, None, "a number, 0 or more")
+_AT_LEAST_ONE = (1, None, "a whole number, 1 or more")
 #: The values each threshold can take, (low, high, wording); a low or high of a share
 #: or level that is excluded is listed in _EXCLUSIVE. Numbers must be finite (no .nan or .inf).
 RANGES: dict[tuple[str, str], tuple[float | None, float | None, str]] = {
@@ -339,7 +341,7 @@ RANGES: dict[tuple[str, str], tuple[float | None, float | None, str]] = {
     ("profile", "near_constant_share"): _OPEN_SHARE,
     ("profile", "few_switchers"): _COUNT,
     ("profile", "absorbed_r2"): _OPEN_SHARE,
-    ("profile", "absorbed_max_rows"): (1, None, "a whole number, 1 or more"),
+    ("profile", "absorbed_max_rows"): _AT_LEAST_ONE,
     ("profile", "high_missing_share"): _SHARE,
     ("profile", "examples"): _COUNT,
     ("profile", "patterns"): _COUNT,
@@ -353,18 +355,18 @@ RANGES: dict[tuple[str, str], tuple[float | None, float | None, str]] = {
     ("instruments", "collinear_tol"): (0.0, 1.0, "a tolerance above 0 and below 1"),
     ("instruments", "exhaustive_candidates"): _COUNT,
     ("instruments", "examples"): _COUNT,
-    ("compare", "psi_shift"): (0.0, None, "a number, 0 or more"),
+    ("compare", "psi_shift"): _NON_NEGATIVE,
     ("compare", "psi_bins"): (2, None, "a whole number, 2 or more"),
     ("compare", "psi_smoothing"): _POSITIVE,
     ("compare", "missing_jump"): _SHARE,
     ("compare", "jump_mads"): _POSITIVE,
     ("compare", "category_max_levels"): _COUNT,
-    ("compare", "invariant_min_units"): (1, None, "a whole number, 1 or more"),
-    ("compare", "vanished_min_expected"): (0.0, None, "a number, 0 or more"),
+    ("compare", "invariant_min_units"): _AT_LEAST_ONE,
+    ("compare", "vanished_min_expected"): _NON_NEGATIVE,
     ("report", "findings"): _COUNT,
     ("report", "columns"): _COUNT,
-    ("report", "pattern_rows"): (1, None, "a whole number, 1 or more"),
-    ("report", "figure_columns"): (1, None, "a whole number, 1 or more"),
+    ("report", "pattern_rows"): _AT_LEAST_ONE,
+    ("report", "figure_columns"): _AT_LEAST_ONE,
     ("report", "periods_table"): _COUNT,
     ("report", "shift_columns"): _COUNT,
     ("report", "quantiles"): (2, None, "a whole number, 2 or more (both ends of a distribution)"),

@@ -74,6 +74,20 @@ def _first_line(raw: bytes) -> bytes:
     return raw if end < 0 else raw[:end]
 
 
+def _first_record(raw: bytes) -> bytes:
+    """The bytes of the first record: up to the first newline outside quotes (an even
+    number of quote characters before it; a doubled quote counts two)."""
+    end, quotes = 0, 0
+    while True:
+        nl = raw.find(b"\n", end)
+        if nl < 0:
+            return raw
+        quotes += raw.count(b'"', end, nl + 1)
+        end = nl + 1
+        if quotes % 2 == 0:
+            return raw[:end]
+
+
 def _sniff_separator(first: bytes, default: str | None) -> str:
     """The separator of a delimited file from its first line: the suffix's own when it
     occurs there, else the most frequent of comma, semicolon, tab and bar."""
@@ -114,7 +128,7 @@ def _read_text(path: Path, gz: bool, separator: str | None, text_columns: Sequen
         except UnicodeDecodeError:
             raw = raw.decode("latin-1").encode("utf-8")
     sep = _sniff_separator(_first_line(raw), separator)
-    header = header_names(raw, sep)
+    header = header_names(_first_record(raw), sep)
     if not header:
         raise fail("empty-file", path=path)
     seen: dict[str, int] = {}
