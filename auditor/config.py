@@ -355,6 +355,8 @@ RANGES: dict[tuple[str, str], tuple[float | None, float | None, str]] = {
     ("instruments", "collinear_tol"): (0.0, 1.0, "a tolerance above 0 and below 1"),
     ("instruments", "exhaustive_candidates"): _COUNT,
     ("instruments", "examples"): _COUNT,
+    ("instruments", "near_collinear_r2"): _OPEN_SHARE,
+    ("instruments", "max_levels"): _AT_LEAST_ONE,
     ("compare", "psi_shift"): _NON_NEGATIVE,
     ("compare", "psi_bins"): (2, None, "a whole number, 2 or more"),
     ("compare", "psi_smoothing"): _POSITIVE,
