@@ -5,8 +5,9 @@ instead of showing: terminal escape sequences (a window title, a cleared screen,
 hyperlink), C1 controls (an 8-bit CSI), bidirectional overrides that reverse what
 follows, zero-width characters that make two different ids look the same, line and
 paragraph separators. :func:`visible` writes each as ``<U+XXXX>``, so the text
-cannot act on a terminal, a page or a figure and two different values never look
-alike; the text (terminal), HTML (tables and inline SVG) and figure (PNG) renderers
+cannot act on a terminal, a page or a figure and a hidden character shows (a value
+that literally holds the text ``<U+202E>`` looks the same as one holding U+202E:
+the JSON keeps them apart); the text (terminal), HTML (tables and inline SVG) and figure (PNG) renderers
 all call it. :func:`json_escaped` writes the same characters as JSON ``\\uXXXX``
 escapes, so the JSON document keeps every value exactly and still prints safely.
 
