@@ -50,6 +50,10 @@ CHECKS: dict[str, CheckSpec] = {
     "period-only": CheckSpec("note", "profile", "a column that varies only across periods"),
     "schema-mismatch": CheckSpec("warning", "profile", "wave files whose column types differ"),
     "column-all-missing": CheckSpec("warning", "profile", "a column with no value at all"),
+    "files-skipped": CheckSpec("note", "profile", "files in a data folder or glob that are not a data format"),
+    "unit-key-twins": CheckSpec(
+        "note", "profile", "unit ids that differ only by Unicode form or invisible characters"
+    ),
     # --- instruments -----------------------------------------------------------
     "order-condition": CheckSpec(
         "error", "instruments", "fewer exogenous time-varying regressors (X1) than correlated time-invariant ones (Z2)"

@@ -322,10 +322,14 @@ def _gx_value(v: Any) -> Any:
     return v
 
 
-def build_expectations(columns: list[ColumnRules] | tuple[ColumnRules, ...]) -> list[Any]:
+def build_expectations(
+    columns: list[ColumnRules] | tuple[ColumnRules, ...], alias: dict[str, str] | None = None
+) -> list[Any]:
     """The great-expectations expectation objects for the row rules of ``columns``.
 
     Each carries ``meta = {"rule": ..., "column": ...}`` naming the contract rule.
+    ``alias``: the name each column has in the batch (great-expectations refuses an
+    empty column name), when it differs from its own.
     """
     gx = _gx()
     E = gx.expectations
@@ -334,7 +338,7 @@ def build_expectations(columns: list[ColumnRules] | tuple[ColumnRules, ...]) -> 
         def meta(rule: str, col: ColumnRules = col) -> dict[str, str]:
             return {"rule": rule, "column": col.name}
 
-        c = col.name
+        c = col.name if alias is None else alias[col.name]
         if col.min is not None:
             out.append(E.ExpectColumnValuesToBeBetween(column=c, min_value=_gx_value(col.min), meta=meta("min")))
         if col.max is not None:
@@ -362,6 +366,10 @@ def build_expectations(columns: list[ColumnRules] | tuple[ColumnRules, ...]) -> 
     return out
 
 
+def _has_row_rules(col: ColumnRules) -> bool:
+    return any(v not in (None, False) for v in (col.min, col.max, col.allowed, col.max_missing, col.pattern, col.unique))
+
+
 def to_pandas_once(frame: pl.DataFrame) -> Any:
     """``frame`` as a pandas DataFrame that keeps integer and boolean columns with gaps exact.
 
@@ -380,6 +388,14 @@ def to_pandas_once(frame: pl.DataFrame) -> Any:
     casts += [pl.col(c).cast(pl.Float64) for c, dt in frame.schema.items() if isinstance(dt, pl.Decimal)]
     if casts:
         frame = frame.with_columns(casts)
+    # 128-bit integers have no pandas or arrow-to-pandas type: exact Python ints (objects)
+    wide = [c for c, dt in frame.schema.items() if dt in (pl.Int128, pl.UInt128)]
+    if wide:
+        order = frame.columns
+        out = to_pandas_once(frame.drop(wide))
+        for c in wide:
+            out[c] = pd.Series(frame[c].to_list(), dtype=object)
+        return out[order]
     nullable = {
         pa.int8(): pd.Int8Dtype(), pa.int16(): pd.Int16Dtype(), pa.int32(): pd.Int32Dtype(),
         pa.int64(): pd.Int64Dtype(), pa.uint8(): pd.UInt8Dtype(), pa.uint16(): pd.UInt16Dtype(),
@@ -391,7 +407,8 @@ def to_pandas_once(frame: pl.DataFrame) -> Any:
 def _row_rules_gx(
     columns: list[ColumnRules], panel: Panel, limit: int, timings: dict[str, float]
 ) -> dict[str, list[RuleResult]]:
-    expectations = build_expectations(columns)
+    alias = {c.name: f"c{i}" for i, c in enumerate(columns)}  # the batch's column names
+    expectations = build_expectations(columns, alias)
     if not expectations:
         timings.setdefault("conversion", 0.0)
         timings.setdefault("expectations", 0.0)
@@ -402,7 +419,7 @@ def _row_rules_gx(
     clock = _time.perf_counter()
     names = sorted({e.meta["column"] for e in expectations}, key=list(panel.schema).index)
     frame = panel.frame
-    pdf = to_pandas_once(frame.select(names))
+    pdf = to_pandas_once(frame.select(pl.col(n).alias(alias[n]) for n in names))
     timings["conversion"] = _time.perf_counter() - clock
 
     clock = _time.perf_counter()
@@ -430,7 +447,7 @@ def _row_rules_gx(
     located: dict[tuple[str, str], Any] = {}
     if failing_keys:
         again = [
-            e for e in build_expectations(columns)
+            e for e in build_expectations(columns, alias)
             if (e.meta["column"], e.meta["rule"]) in failing_keys
         ]
         located = validate(again, "panel_audit_examples", "SUMMARY")
@@ -981,6 +998,12 @@ def export_suite(rules_path: str | Path) -> dict[str, Any]:
     gx = _gx()
     gx.get_context(mode="ephemeral")  # suites need an active context
     suite = gx.ExpectationSuite(name=Path(rules_path).stem)
+    for col in contract.columns:
+        if not col.name.strip() and _has_row_rules(col):
+            raise fail(
+                "contract-engine", rule="(any)", column=col.name,
+                reason="an expectation suite needs a column name; name the column in the data and the contract",
+            )  # fmt: skip
     for e in build_expectations(contract.columns):
         suite.add_expectation(e)
     doc = suite.to_json_dict()

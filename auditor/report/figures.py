@@ -88,7 +88,6 @@ STYLE: dict[str, Any] = {
 
 WIDTH = 9.0  # inches; the report's column width
 MAX_BARS = 120  # beyond this many bars a series is drawn as one filled area (small, fast SVG)
-_CONTROL = re.compile(r"[\x00-\x1f\x7f-\x9f]")
 
 
 def _mpl() -> Any:
@@ -124,9 +123,12 @@ def _new_figure(height: float, *, nrows: int = 1, height_ratios: Sequence[float]
 
 
 def plain(text: Any, limit: int = 36) -> str:
-    """``text`` made safe for a figure label: no control characters, ``$`` taken
-    literally (no math mode), shortened to ``limit`` characters with an ellipsis."""
-    s = _CONTROL.sub(" ", str(text))
+    """``text`` made safe for a figure label: acting characters shown as ``<U+XXXX>``
+    (the one sanitiser, auditor.report.sanitise), ``$`` taken literally (no math
+    mode), shortened to ``limit`` characters with an ellipsis."""
+    from auditor.report.sanitise import visible
+
+    s = visible(text)
     if len(s) > limit:
         s = s[: limit - 1] + "\u2026"
     return s.replace("$", r"\$")

@@ -5,13 +5,14 @@ The renderer shows what the statistics modules computed; it computes nothing of
 its own beyond formatting, except the quantiles of the shifted columns that the
 new-wave figure draws (a display summary of at most a few columns). Every text
 taken from the data (column names, values, categories, labels) goes through
-``esc``: control characters removed, then ``html.escape``.
+``esc``: acting characters shown as ``<U+XXXX>`` (auditor.report.sanitise),
+then ``html.escape``.
 """
 
 from __future__ import annotations
 
+import contextlib
 import html
-import re
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, replace
 from datetime import UTC, datetime
@@ -20,11 +21,12 @@ from typing import TYPE_CHECKING, Any
 
 import auditor
 from auditor.errors import fail
+from auditor.report.sanitise import visible
 
 if TYPE_CHECKING:  # pragma: no cover
     from auditor.config import Settings
+    from auditor.outputs import OutputSet
 
-_CONTROL = re.compile(r"[\x00-\x08\x0b-\x1f\x7f-\x9f]")
 _RANK = {"error": 0, "warning": 1, "note": 2}
 
 SECTIONS: tuple[tuple[str, str], ...] = (
@@ -54,9 +56,10 @@ FIGURE_FILES: dict[str, str] = {
 
 
 def esc(value: Any, limit: int = 200) -> str:
-    """``value`` as safe HTML text: control characters dropped, shortened to
+    """``value`` as safe HTML text: acting characters (controls, bidirectional and
+    zero-width ones) shown as ``<U+XXXX>`` by the one sanitiser, shortened to
     ``limit`` characters (with an ellipsis), then escaped with ``html.escape``."""
-    s = _CONTROL.sub("", "" if value is None else str(value))
+    s = visible(value)
     if len(s) > limit:
         s = s[: limit - 1] + "\u2026"
     return html.escape(s, quote=True)
@@ -972,14 +975,6 @@ def compare_fragment(result: Any, *, figures: bool = True) -> str:
 # --- writing ---------------------------------------------------------------------------
 
 
-def _input_paths(data: Any) -> list[Path]:
-    if data is None or hasattr(data, "columns"):  # a frame: nothing on disk to protect
-        return []
-    from auditor.sources import resolve_inputs
-
-    return list(resolve_inputs(data))
-
-
 def write_report(
     data: Any,
     *,
@@ -993,6 +988,7 @@ def write_report(
     png_dir: str | Path | None = None,
     settings: Settings | str | Path | None = None,
     force: bool = False,
+    outputs: OutputSet | None = None,
 ) -> Path:
     """Audit ``data`` and write the HTML report to ``out``; return the path written.
 
@@ -1000,59 +996,68 @@ def write_report(
     ``regressors`` are given, and the new-wave comparison when ``against`` (the
     panel so far) is given. With ``png_dir`` each figure is also written there
     as a PNG (names in ``FIGURE_FILES``). Refuses (exit 2) to write over an
-    input, or over an existing file unless ``force``; every file is written
-    through a temporary file and a rename, so an interrupted run leaves no
-    partial file.
+    input (the data files, the base, a rules file), over a symbolic link, one
+    path twice, or over an existing file unless ``force``. The page and the
+    figures are published together or not at all (auditor.outputs), so a full
+    disk or an interrupt leaves no partial file and no page without its figures.
+    ``outputs``: the caller's OutputSet, which then also publishes and keeps them.
     """
     from auditor.config import Settings as _Settings
     from auditor.config import load_settings
-    from auditor.outputs import check_output_path, write_atomic
+    from auditor.outputs import OutputSet, input_files
 
-    if not isinstance(settings, _Settings):
-        settings = load_settings(settings)
-    inputs = _input_paths(data) + _input_paths(against)
-    out_path = check_output_path(out, force=force, inputs=inputs)
-    png_path = Path(png_dir) if png_dir is not None else None
-    if png_path is not None:
-        if png_path.exists() and not png_path.is_dir():
-            raise fail("report-png-dir-not-folder", path=png_dir)
-        for file in FIGURE_FILES.values():
-            check_output_path(png_path / file, force=force, inputs=inputs)
-    if (outcome is None) != (not regressors):
-        raise fail("report-model-needs-both")
+    own = outputs is None
+    if outputs is None:
+        rules = settings if isinstance(settings, str | Path) else None
+        outputs = OutputSet(force=force, inputs=input_files(data, against, files=[rules]))
+    with contextlib.ExitStack() as stack:
+        if own:
+            stack.enter_context(outputs)
+        if not isinstance(settings, _Settings):
+            settings = load_settings(settings)
+        out_path = outputs.claim(out, "the report (--out)")
+        png_path = Path(png_dir) if png_dir is not None else None
+        if png_path is not None:
+            if png_path.exists() and not png_path.is_dir():
+                raise fail("report-png-dir-not-folder", path=png_dir)
+            for file in FIGURE_FILES.values():
+                outputs.claim(png_path / file, "a figure of --png-dir")
+        if (outcome is None) != (not regressors):
+            raise fail("report-model-needs-both")
 
-    from auditor.profile import profile
+        from auditor.profile import profile
 
-    result = profile(data, unit=unit, time=time, settings=settings)
-    inst = None
-    if outcome is not None and regressors:
-        from auditor.readiness import instruments
+        result = profile(data, unit=unit, time=time, settings=settings)
+        inst = None
+        if outcome is not None and regressors:
+            from auditor.readiness import instruments
 
-        inst = instruments(data, unit=unit, time=time, outcome=outcome, regressors=list(regressors),
-                           correlated=list(correlated) if correlated else None, settings=settings)
-    comp = None
-    quantiles = None
-    lim = Limits.from_settings(settings)
-    if against is not None:
-        from auditor.load import load_panel
-        from auditor.waves import compare
+            inst = instruments(data, unit=unit, time=time, outcome=outcome, regressors=list(regressors),
+                               correlated=list(correlated) if correlated else None, settings=settings)
+        comp = None
+        quantiles = None
+        lim = Limits.from_settings(settings)
+        if against is not None:
+            from auditor.load import load_panel
+            from auditor.waves import compare
 
-        comp = compare(against, data, unit=unit, time=time, settings=settings)
-        comp_doc = _as_dict(comp) or {}
-        from auditor.load import PERIOD_ID
+            comp = compare(against, data, unit=unit, time=time, settings=settings)
+            comp_doc = _as_dict(comp) or {}
+            from auditor.load import PERIOD_ID
 
-        base = load_panel(against, unit, time, settings=settings)
-        # like with like, as compare does: the new wave against the base's last period
-        last = base.frame.filter(base.frame[PERIOD_ID] == base.n_periods - 1)
-        quantiles = shift_quantiles(last, result.data.frame, comp_doc,
-                                    columns=lim.shift_columns, points=lim.quantiles)
-    inst_doc, comp_doc = _as_dict(inst), _as_dict(comp)
-    drawn = build_figures(result, inst_doc, comp_doc, quantiles=quantiles, limits=lim)
-    page = render_html(result, inst_doc, comp_doc, figures=drawn, settings=settings)
-    written = write_atomic(out_path, page, force=force, inputs=inputs)
-    if png_path is not None:
-        from auditor.report.figures import to_png
+            base = load_panel(against, unit, time, settings=settings)
+            # like with like, as compare does: the new wave against the base's last period
+            last = base.frame.filter(base.frame[PERIOD_ID] == base.n_periods - 1)
+            quantiles = shift_quantiles(last, result.data.frame, comp_doc,
+                                        columns=lim.shift_columns, points=lim.quantiles)
+        inst_doc, comp_doc = _as_dict(inst), _as_dict(comp)
+        drawn = build_figures(result, inst_doc, comp_doc, quantiles=quantiles, limits=lim)
+        page = render_html(result, inst_doc, comp_doc, figures=drawn, settings=settings)
+        outputs.stage(out_path, page)
+        if png_path is not None:
+            from auditor.report.figures import to_png
 
-        for name, fig in drawn.items():
-            write_atomic(png_path / FIGURE_FILES[name], to_png(fig), force=force, inputs=inputs)
-    return written
+            for name, fig in drawn.items():
+                outputs.stage(png_path / FIGURE_FILES[name], to_png(fig))
+        outputs.publish()
+    return out_path

@@ -21,7 +21,7 @@ def _subject(r: RuleResult) -> str:
 
 
 def _example_text(example: dict[str, Any]) -> str:
-    return ", ".join(f"{k}={safe(v)}" for k, v in example.items())
+    return ", ".join(f"{safe(k)}={safe(v)}" for k, v in example.items())
 
 
 def render(
@@ -47,10 +47,10 @@ def render(
     if broken:
         lines.append("")
         lines.append(paint("Broken", "bold", color))
-        subj_w = min(24, max(len(_subject(r)) for r in broken))
-        rule_w = max(len(r.rule) for r in broken)
+        subj_w = min(24, max(len(safe(_subject(r))) for r in broken))
+        rule_w = max(len(safe(r.rule)) for r in broken)
         for r in broken:
-            head = f"  {clip(safe(_subject(r)), subj_w):<{subj_w}}  {r.rule:<{rule_w}}  {r.failing:>8}  "
+            head = f"  {clip(safe(_subject(r)), subj_w):<{subj_w}}  {safe(r.rule):<{rule_w}}  {r.failing:>8}  "
             body = wrap(safe(r.message), width - len(head), 0)
             lines.append(head + body[0])
             lines.extend(" " * len(head) + b for b in body[1:])
@@ -65,6 +65,6 @@ def render(
         lines.append("")
         lines.append(paint("Holding", "bold", color))
         for subject, names in holding.items():
-            text = f"  {safe(subject)}: " + ", ".join(names)
+            text = f"  {safe(subject)}: " + ", ".join(safe(n) for n in names)
             lines.extend(wrap(text, width, 4))
     return "\n".join(lines) + "\n"
