@@ -2,13 +2,17 @@
 
 Exit codes: 0 ran and no finding reached --fail-on; 1 ran and findings reached
 it (for ``check``: a rule failed); 2 could not run (one line on stderr,
-``panel-audit: error: ...``; a traceback only with --debug).
+``panel-audit: error: ...``; with --debug a traceback before it, same code);
+130 interrupted by SIGINT (Ctrl-C), 143 by SIGTERM, 129 by SIGHUP (128 + the
+signal's number, the shell's convention). An interrupted run removes its
+temporary files and leaves no output of its own behind.
 """
 
 from __future__ import annotations
 
 import argparse
 import os
+import signal
 import sys
 from collections.abc import Callable, Sequence
 from pathlib import Path
@@ -133,6 +137,41 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+def _install_signal_handlers() -> None:
+    from auditor.outputs import on_signal
+
+    for name in ("SIGINT", "SIGTERM", "SIGHUP"):
+        number = getattr(signal, name, None)
+        if number is not None and signal.getsignal(number) is not signal.SIG_IGN:
+            signal.signal(number, on_signal)
+
+
+def _say(text: str) -> None:
+    """Write ``text`` to standard output and flush it; a full disk or an I/O error
+    becomes ``stdout-unwritable`` (so a run whose report cannot be read fails, and
+    keeps no file), a closed pipe is ignored (the reader stopped early)."""
+    try:
+        sys.stdout.write(text)
+        sys.stdout.flush()
+    except BrokenPipeError:
+        _silence_stdout()
+    except OSError as exc:
+        from auditor.errors import fail
+
+        _silence_stdout()
+        raise fail("stdout-unwritable", reason=exc.strerror or str(exc)) from None
+
+
+def _silence_stdout() -> None:
+    # later writes and the flush at exit go nowhere instead of failing again
+    try:
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        os.close(devnull)
+    except (OSError, ValueError, AttributeError):  # pragma: no cover - stdout without a descriptor
+        pass
+
+
 def _data(args: argparse.Namespace) -> Any:
     return args.data[0] if len(args.data) == 1 else list(args.data)
 
@@ -154,11 +193,11 @@ def _print_result(args: argparse.Namespace, result: Any, render: Callable[..., s
     if getattr(args, "json", False):
         from auditor.report.jsonout import dumps
 
-        sys.stdout.write(dumps(result.to_dict()))
+        _say(dumps(result.to_dict()))
     else:
         from auditor.report.text import terminal_width, use_colour
 
-        sys.stdout.write(render(result, width=terminal_width(), colour=use_colour(sys.stdout)))
+        _say(render(result, width=terminal_width(), colour=use_colour(sys.stdout)))
 
 
 def _cmd_profile(args: argparse.Namespace) -> int:
@@ -205,30 +244,40 @@ def _cmd_check(args: argparse.Namespace) -> int:
     return 0 if result.passed else 1
 
 
-def _cmd_rules(args: argparse.Namespace) -> int:
-    from auditor.outputs import write_atomic
+def _outputs(args: argparse.Namespace, *data: Any, files: Sequence[Any] = ()) -> Any:
+    """The run's OutputSet: ``--force`` from ``args``; every input file of the run
+    (data expanded as the loader expands it, the ``--rules`` file, ``files``) protected."""
+    from auditor.outputs import OutputSet, input_files
 
+    rules = getattr(args, "rules", None)
+    inputs = input_files(*data, files=[*files, rules])
+    return OutputSet(force=bool(getattr(args, "force", False)), inputs=inputs)
+
+
+def _cmd_rules(args: argparse.Namespace) -> int:
     if args.rules_command == "draft":
         from auditor.drafting import draft
 
-        text = draft(_data(args), unit=args.unit, time=args.time, settings=_settings(args))
-        if args.out:
-            inputs = [Path(d) for d in args.data]
-            write_atomic(args.out, text, force=args.force, inputs=inputs)
-            sys.stdout.write(f"{args.out}\n")
-        else:
-            sys.stdout.write(text)
+        if not args.out:
+            _say(draft(_data(args), unit=args.unit, time=args.time, settings=_settings(args)))
+            return 0
+        with _outputs(args, list(args.data)) as outs:
+            outs.claim(args.out, "--out")
+            outs.stage(args.out, draft(_data(args), unit=args.unit, time=args.time, settings=_settings(args)))
+            outs.publish()
+            _say(f"{args.out}\n")
         return 0
     if args.rules_command == "export":
         import json
 
-        from auditor.outputs import check_output_path
         from auditor.rules import export_suite
 
-        check_output_path(args.out, force=args.force, inputs=[Path(args.file)])
-        suite = export_suite(args.file)
-        write_atomic(args.out, json.dumps(suite, indent=2, sort_keys=True) + "\n", force=args.force, inputs=[Path(args.file)])
-        sys.stdout.write(f"{args.out}\n")
+        with _outputs(args, files=[args.file]) as outs:
+            outs.claim(args.out, "--out")
+            suite = export_suite(args.file)
+            outs.stage(args.out, json.dumps(suite, indent=2, sort_keys=True) + "\n")
+            outs.publish()
+            _say(f"{args.out}\n")
         return 0
     from auditor.errors import fail
 
@@ -237,33 +286,32 @@ def _cmd_rules(args: argparse.Namespace) -> int:
 
 def _cmd_report(args: argparse.Namespace) -> int:
     from auditor.findings import exit_code
-    from auditor.outputs import check_output_path
     from auditor.report.html import build_report
 
-    inputs = [Path(d) for d in args.data] + ([Path(args.against)] if args.against else [])
-    check_output_path(args.out, force=args.force, inputs=inputs)
-    run = build_report(
-        _data(args),
-        unit=args.unit,
-        time=args.time,
-        out=args.out,
-        outcome=args.outcome,
-        regressors=_csv_list(args.regressors) or None,
-        correlated=None if args.correlated is None else _csv_list(args.correlated),
-        against=args.against,
-        png_dir=args.png_dir,
-        settings=_settings(args),
-        force=args.force,
-        period_effects=args.period_effects,
-        treat_as_invariant=list(args.treat_as_invariant),
-    )
-    if args.json:
-        from auditor.profile import tool_info
-        from auditor.report.jsonout import dumps
+    with _outputs(args, list(args.data), args.against) as outs:
+        run = build_report(
+            _data(args),
+            unit=args.unit,
+            time=args.time,
+            out=args.out,
+            outcome=args.outcome,
+            regressors=_csv_list(args.regressors) or None,
+            correlated=None if args.correlated is None else _csv_list(args.correlated),
+            against=args.against,
+            png_dir=args.png_dir,
+            settings=_settings(args),
+            force=args.force,
+            period_effects=args.period_effects,
+            treat_as_invariant=list(args.treat_as_invariant),
+            outputs=outs,
+        )
+        if args.json:
+            from auditor.profile import tool_info
+            from auditor.report.jsonout import dumps
 
-        sys.stdout.write(dumps({"tool": tool_info(), "report": str(run.path)}))
-    else:
-        sys.stdout.write(f"{run.path}\n")
+            _say(dumps({"tool": tool_info(), "report": str(run.path)}))
+        else:
+            _say(f"{run.path}\n")
     return exit_code(run.findings, args.fail_on)
 
 
@@ -272,11 +320,10 @@ def _cmd_demo(args: argparse.Namespace) -> int:
     from auditor.report.text import render, terminal_width, use_colour
 
     run = run_demo(Path(args.out) if args.out else None, force=args.force)
-    sys.stdout.write(render(run.profile, width=terminal_width(), colour=use_colour(sys.stdout)))
-    sys.stdout.write("\nfiles written:\n")
+    lines = [render(run.profile, width=terminal_width(), colour=use_colour(sys.stdout)), "\nfiles written:\n"]
     pad = max((len(name) for name in run.paths), default=0)
-    for name, path in run.paths.items():
-        sys.stdout.write(f"  {name:<{pad}}  {path}\n")
+    lines += [f"  {name:<{pad}}  {path}\n" for name, path in run.paths.items()]
+    _say("".join(lines))
     return 0
 
 
@@ -298,6 +345,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     is flushed: handing a few million rows back to the allocator and unloading every
     module, one by one, would add a fifth of a second to a profile for nothing.
     """
+    if argv is None:
+        _install_signal_handlers()
     code = _run(argv)
     if argv is None:
         _end_process(code)
@@ -318,41 +367,53 @@ def _end_process(code: int) -> None:
 
 
 def _run(argv: Sequence[str] | None) -> int:
-    parser = build_parser()
-    args = parser.parse_args(argv)
-    if not args.command:
-        parser.print_help()
-        return 2
-    debug = bool(getattr(args, "debug", False))
-    from auditor import progress
-
-    progress.enable(bool(sys.stderr.isatty()) and not getattr(args, "json", False))
+    debug = False
     import warnings
 
     try:
+        parser = build_parser()
+        args = parser.parse_args(argv)
+        if not args.command:
+            from auditor.errors import fail
+
+            raise fail("no-command", commands=", ".join(COMMANDS))
+        debug = bool(getattr(args, "debug", False))
+        from auditor import progress
+
+        progress.enable(bool(sys.stderr.isatty()) and not getattr(args, "json", False))
         with warnings.catch_warnings():
             if not debug:  # a library's warning is not the user's business on the terminal
                 warnings.simplefilter("ignore")
             return COMMANDS[args.command](args)
     except KeyboardInterrupt:
         sys.stderr.write(f"{PROG}: interrupted\n")
-        return 130
+        return 128 + int(signal.SIGINT)
     except BrokenPipeError:
+        _silence_stdout()
         return 0
     except Exception as exc:  # the one place where any failure becomes exit 2
-        from auditor.errors import AuditError
+        from auditor.errors import AuditError, fail
 
         if debug:
-            raise
-        from auditor.errors import fail
+            import traceback
 
+            traceback.print_exc()
         if not isinstance(exc, AuditError):
             if isinstance(exc, MemoryError):
                 exc = fail("out-of-memory")
+            elif isinstance(exc, RecursionError):
+                exc = fail("internal-problem", kind="RecursionError", detail="the input nests too deeply")
             else:
                 exc = fail("internal-problem", kind=type(exc).__name__, detail=_one_line(str(exc))[:300])
         sys.stderr.write(f"{PROG}: error: {_one_line(exc.message)}\n")
         return 2
+    except BaseException as stop:  # SIGTERM, SIGHUP (auditor.outputs.on_signal)
+        from auditor.outputs import Interrupted
+
+        if not isinstance(stop, Interrupted):
+            raise
+        sys.stderr.write(f"{PROG}: interrupted ({signal.Signals(stop.signum).name})\n")
+        return 128 + stop.signum
 
 
 def _one_line(text: str) -> str:

@@ -12,6 +12,7 @@ from typing import Any
 CATALOGUE: dict[str, str] = {
     # --- arguments -----------------------------------------------------------
     "bad-argument": "{detail}",
+    "no-command": "no command given; choose one of: {commands} (see 'panel-audit --help')",
     # --- loading ---------------------------------------------------------------
     "file-not-found": "cannot read '{path}': no such file; check the path",
     "not-a-file": "cannot read '{path}': it is a folder with no data files in it",
@@ -34,6 +35,9 @@ CATALOGUE: dict[str, str] = {
     "time-fractional": (
         "time column '{column}' holds fractional values such as {examples}; periods must be whole numbers or dates"
     ),
+    "reserved-column-name": (
+        "column '{column}' starts with '{prefix}', which panel-audit keeps for its own helper columns; rename it"
+    ),
     "duplicate-column-names": "the file has more than one column named {names}; rename them first",
     "no-glob-match": "no files match '{pattern}'",
     "too-large": "'{path}' ({size}) does not fit in memory here and cannot be streamed: {reason}",
@@ -43,6 +47,23 @@ CATALOGUE: dict[str, str] = {
     "rules-not-found": "rules file '{path}' not found",
     "rules-too-large": "rules file '{path}' is {size} bytes; the limit is {limit} bytes",
     "rules-syntax": "rules file '{path}' is not valid YAML at line {line}: {reason}",
+    "rules-encoding": (
+        "rules file '{path}' line {line}: byte {byte} is not UTF-8; save the file as UTF-8 "
+        "(YAML files are Unicode; in many editors: Save As, encoding UTF-8)"
+    ),
+    "rules-too-deep": "rules file '{path}' line {line}: nested more than {limit} levels deep; no rule needs that",
+    "rules-alias-loop": (
+        "rules file '{path}' line {line}: alias '*{alias}' points into the node that holds it, "
+        "so it would never end; write the values out"
+    ),
+    "rules-alias-expansion": (
+        "rules file '{path}' line {line}: its aliases expand to more than {limit} values; write the values out "
+        "or use fewer aliases"
+    ),
+    "rules-number-too-long": (
+        "rules file '{path}' line {line}: a number written with {digits} characters; "
+        "no threshold or bound needs more than {limit}"
+    ),
     "rules-tag": "rules file '{path}' line {line}: the YAML tag '{tag}' is not allowed (tags never construct objects here)",
     "rules-not-mapping": "rules file '{path}' must hold a mapping at the top level, found {found}",
     "rules-unknown-key": "rules file '{path}' line {line}: unknown key '{key}' in {where}; expected one of: {expected}",
@@ -51,6 +72,11 @@ CATALOGUE: dict[str, str] = {
     "output-exists": "'{path}' already exists; pass --force to replace it",
     "output-is-input": "'{path}' is an input of this run; choose another output path",
     "output-unwritable": "cannot write '{path}': {reason}",
+    "output-twice": "'{path}' would be written twice by this run, as {first} and as {second}; give each output its own path",
+    "output-is-link": (
+        "'{path}' is a symbolic link; outputs are never written through links: remove it or name the file it points to"
+    ),
+    "stdout-unwritable": "cannot write to standard output: {reason}; nothing was kept",
     # --- instruments -----------------------------------------------------------
     "instruments-unknown-outcome": "outcome column '{column}' not found; columns are: {available}",
     "instruments-unknown-regressor": "regressor '{column}' not found; columns are: {available}",
@@ -64,6 +90,10 @@ CATALOGUE: dict[str, str] = {
     "instruments-no-complete-rows": (
         "no row has the outcome and every regressor present ({rows} rows with keys, {dropped} dropped); "
         "check the missing values of {worst}"
+    ),
+    "instruments-too-many-levels": (
+        "regressor '{column}' holds text with {levels} distinct values; at most {limit} become indicators "
+        "(instruments.max_levels); group its rare values first, or leave it out"
     ),
     "instruments-one-unit": (
         "only one unit ({unit}) has complete rows; within, between and random-effects fits need at least two units"

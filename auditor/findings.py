@@ -50,6 +50,10 @@ CHECKS: dict[str, CheckSpec] = {
     "period-only": CheckSpec("note", "profile", "a column that varies only across periods"),
     "schema-mismatch": CheckSpec("warning", "profile", "wave files whose column types differ"),
     "column-all-missing": CheckSpec("warning", "profile", "a column with no value at all"),
+    "files-skipped": CheckSpec("note", "profile", "files in a data folder or glob that are not a data format"),
+    "unit-key-twins": CheckSpec(
+        "note", "profile", "unit ids that differ only by Unicode form or invisible characters"
+    ),
     # --- instruments -----------------------------------------------------------
     "order-condition": CheckSpec(
         "error", "instruments", "fewer exogenous time-varying regressors (X1) than correlated time-invariant ones (Z2)"
@@ -61,7 +65,10 @@ CHECKS: dict[str, CheckSpec] = {
     "overidentification-rejected": CheckSpec(
         "warning", "instruments", "the Sargan or within-vs-Hausman-Taylor test rejects the instruments"
     ),
-    "not-identified": CheckSpec("warning", "instruments", "a regressor whose coefficient the data cannot identify"),
+    "not-identified": CheckSpec("warning", "instruments", "a regressor whose coefficient one or more fits cannot identify"),
+    "near-collinear": CheckSpec(
+        "warning", "instruments", "a regressor almost a linear combination of others in a fit (kept; imprecise)"
+    ),
     "correlated-with-effect": CheckSpec(
         "warning", "instruments", "Mundlak evidence that regressors are correlated with the unit effect"
     ),
@@ -81,6 +88,15 @@ CHECKS: dict[str, CheckSpec] = {
     ),
     "weak-within-variation": CheckSpec(
         "warning", "instruments", "an X2 column with little within variation to instrument itself"
+    ),
+    "selective-attrition": CheckSpec(
+        "warning", "instruments", "the Nijman-Verbeek test relates leaving the panel to the idiosyncratic error"
+    ),
+    "richer-set-rejected": CheckSpec(
+        "warning", "instruments", "the extra restrictions of Amemiya-MaCurdy or Breusch-Mizon-Schmidt are rejected"
+    ),
+    "richer-sets-skipped": CheckSpec(
+        "note", "instruments", "Amemiya-MaCurdy and Breusch-Mizon-Schmidt not computed (too many instruments)"
     ),
     "rows-dropped": CheckSpec("note", "instruments", "rows left out because the outcome or a regressor is missing"),
     "treated-as-invariant": CheckSpec(

@@ -24,6 +24,7 @@ UNIT_ID = "__pa_unit"
 PERIOD_ID = "__pa_period"
 ROW_ID = "__pa_row"
 INTERNAL = (UNIT_ID, PERIOD_ID, ROW_ID)
+RESERVED_PREFIX = "__pa_"  # every helper column of the tool starts so; data columns may not
 
 
 @dataclass(frozen=True)
@@ -106,8 +107,8 @@ def integer_codes(key: pl.Series) -> tuple[pl.Series, pl.Series] | None:
     that range is at most a few times the number of rows (household or firm ids);
     None for other keys, which are ranked.
     """
-    if not key.dtype.is_integer() or key.len() == 0 or key.null_count():
-        return None
+    if key.dtype not in _NUMPY_INTEGERS or key.len() == 0 or key.null_count():
+        return None  # 128-bit integers have no numpy type: ranked
     lo, hi = int(key.min()), int(key.max())
     if hi - lo > 4 * key.len() + 1024:
         return None
@@ -117,8 +118,16 @@ def integer_codes(key: pl.Series) -> tuple[pl.Series, pl.Series] | None:
     code_of = np.cumsum(present, dtype=np.uint32)  # 1-based at the keys present
     codes = np.take(code_of, offset, mode="clip")
     codes -= np.uint32(1)
-    keys = (pl.Series(key.name, np.flatnonzero(present)) + lo).cast(key.dtype)
+    # in the key's own type: lo + offset never leaves it (a uint64 near 2**64 included)
+    kind = _NUMPY_INTEGERS.get(key.dtype, np.int64)
+    keys = pl.Series(key.name, np.flatnonzero(present).astype(kind) + kind(lo)).cast(key.dtype)
     return pl.Series(UNIT_ID, codes), keys
+
+
+_NUMPY_INTEGERS: dict[Any, Any] = {
+    pl.Int8: np.int8, pl.Int16: np.int16, pl.Int32: np.int32, pl.Int64: np.int64,
+    pl.UInt8: np.uint8, pl.UInt16: np.uint16, pl.UInt32: np.uint32, pl.UInt64: np.uint64,
+}  # fmt: skip
 
 
 def _offsets(values: pl.Series, lo: int) -> np.ndarray:
@@ -136,7 +145,7 @@ def _offsets(values: pl.Series, lo: int) -> np.ndarray:
 def _integer_lookup(values: pl.Series, keys: pl.Series, codes: pl.Series) -> pl.Series | None:
     """``values`` replaced by ``codes`` through a table indexed by the integer ``keys``
     (one gather, for integer periods), or None when the keys are not compact integers."""
-    if not values.dtype.is_integer() or values.null_count() or keys.len() == 0:
+    if values.dtype not in _NUMPY_INTEGERS or values.null_count() or keys.len() == 0:
         return None
     lo, hi = int(keys.min()), int(keys.max())
     if hi - lo > 4 * values.len() + 1024:
@@ -189,10 +198,27 @@ def _to_lazy(
         frame = data.reset_index(drop=True)
         frame.columns = [str(c) for c in frame.columns]
         return pl.from_pandas(frame).lazy(), "pandas DataFrame", (), [], False
-    from auditor.sources import resolve_inputs, scan_inputs
+    from auditor.sources import expand_inputs, scan_inputs
 
-    paths = resolve_inputs(data)
+    paths, skipped = expand_inputs(data)
     lf, findings, binary = scan_inputs(paths, text_columns, settings)
+    if skipped:
+        from auditor.findings import make
+
+        names = short_list(p.name for p in skipped)
+        findings = [
+            *findings,
+            make(
+                "files-skipped",
+                settings,
+                f"{len(skipped)} {'file' if len(skipped) == 1 else 'files'} beside the data "
+                f"({names}) {'is' if len(skipped) == 1 else 'are'} not read: a folder or glob takes only "
+                ".csv, .tsv, .parquet, .arrow/.feather/.ipc and .jsonl/.ndjson files; "
+                "name a file explicitly to read it (.txt as delimited text)",
+                count=len(skipped),
+                examples=[{"file": str(p)} for p in skipped[:5]],
+            ),
+        ]
     desc = str(paths[0]) if len(paths) == 1 else f"{len(paths)} files ({paths[0].parent})"
     return lf, desc, tuple(paths), findings, binary
 
@@ -228,6 +254,9 @@ def load_panel(
         schema = dict(lf.collect_schema())
     except pl.exceptions.PolarsError as exc:
         raise fail("corrupt-file", path=source, format="data", reason=str(exc).splitlines()[0][:200]) from None
+    reserved = [c for c in schema if c.startswith(RESERVED_PREFIX)]
+    if reserved:
+        raise fail("reserved-column-name", column=reserved[0], prefix=RESERVED_PREFIX)
     for k in keys:
         if k not in schema:
             raise fail("unknown-column", column=k, available=short_list(c for c in schema if c not in INTERNAL))

@@ -2,16 +2,27 @@
 Hausman-Taylor, and the Hausman and Sargan tests (methods.md section 4).
 
 Everything works on numpy arrays with integer unit codes 0..n-1: unit means come
-from ``np.bincount``, never from a loop over units, and no n x n or N x n matrix is
-ever formed (unit dummies exist in the tests only). Each fit carries classical
-standard errors (``se``) and standard errors clustered by unit (``se_cluster``).
+from a sparse unit-indicator product, never from a loop over units, and no n x n or
+N x n matrix is ever formed (unit dummies exist in the tests only). Each fit carries
+classical standard errors (``se``) and standard errors clustered by unit
+(``se_cluster``). Which columns each fit takes is decided by the caller
+(auditor.identification); these functions fit what they are given.
 
 Conventions chosen here (README states the same):
 - cluster-robust covariances use the small-sample factor G/(G-1) * (N-1)/(N-K)
   (common practice; G = units, K = estimated coefficients of that fit);
 - the random-effects and Hausman-Taylor residual variance is e'e / (N - K);
+- Hausman contrasts scale the efficient fit's covariance to the within fit's
+  sigma2_e, so that the difference of the two covariances is positive semi-definite
+  with an exact rank (common practice);
 - Wald statistics are referred to the chi-square distribution, single coefficients
   to the standard normal.
+
+Numerical care: every design with a constant column is fitted with its other
+columns orthogonalised against that column first (and the constant mapped back), and
+every cross-product matrix is inverted after scaling it to a unit diagonal, so adding
+a large number to a column or changing its units moves no coefficient beyond
+rounding.
 """
 
 from __future__ import annotations
@@ -91,9 +102,11 @@ def unit_means(codes: np.ndarray, n: int, values: np.ndarray, counts: np.ndarray
     return sums / (counts if values.ndim == 1 else counts[:, None])
 
 
-def unit_sums(codes: np.ndarray, n: int, values: np.ndarray) -> np.ndarray:
-    """Per-unit sums of the columns of ``values`` (N, k); returns (n, k)."""
-    return grouper(codes, n).sums(values)
+def gather(unit_values: np.ndarray, codes: np.ndarray) -> np.ndarray:
+    """A per-unit vector spread to the rows (``unit_values[codes]`` without holding the interpreter lock)."""
+    out = np.empty(codes.shape[0])
+    np.take(np.ascontiguousarray(unit_values), codes, out=out, mode="clip")
+    return out
 
 
 @dataclass(frozen=True)
@@ -101,7 +114,8 @@ class PanelArrays:
     """The numeric panel a model sees: rows with every used column present.
 
     ``codes`` are unit codes 0..n-1 (every code present), ``x`` the time-varying
-    regressors (N, kx) and ``z`` the time-invariant ones without the constant (N, kz).
+    regressors in levels (N, kx), period effects included, and ``z`` the
+    time-invariant ones without the constant (N, kz).
     """
 
     codes: np.ndarray
@@ -128,6 +142,11 @@ class PanelArrays:
         """N, the number of rows."""
         return int(self.y.shape[0])
 
+    @property
+    def balanced_counts(self) -> bool:
+        """True when every unit has the same number of rows."""
+        return bool(self.counts.size == 0 or np.all(self.counts == self.counts[0]))
+
     @classmethod
     def build(
         cls,
@@ -153,7 +172,7 @@ class PanelArrays:
             z_names=tuple(z_names),
         )
 
-    def select(self, x_cols: list[str], z_cols: list[str]) -> PanelArrays:
+    def select(self, x_cols: list[str] | tuple[str, ...], z_cols: list[str] | tuple[str, ...]) -> PanelArrays:
         """The same panel with only the named X and Z columns (in the given order)."""
         xi = [self.x_names.index(c) for c in x_cols]
         zi = [self.z_names.index(c) for c in z_cols]
@@ -167,9 +186,83 @@ class PanelArrays:
             object.__setattr__(out, key, value)
         return out
 
+    def within_deviations(self, cols: list[str] | tuple[str, ...]) -> np.ndarray:
+        """X - X_bar_i for the named X columns, (N, k) column-major, filled column by column."""
+        out = np.empty((self.nobs, len(cols)), order="F")
+        for k, c in enumerate(cols):  # loop over columns, never over units
+            j = self.x_names.index(c)
+            np.take(np.ascontiguousarray(self.xbar[:, j]), self.codes, out=out[:, k], mode="clip")
+            np.subtract(self.x[:, j], out[:, k], out=out[:, k])
+        return out
+
 
 def _two_d(a: np.ndarray) -> np.ndarray:
     return a.reshape(-1, 1) if a.ndim == 1 else a
+
+
+# --------------------------------------------------------------------------- numerics
+
+
+def equilibrated_inv(m: np.ndarray) -> np.ndarray:
+    """The inverse of a symmetric positive semi-definite ``m``, computed after scaling it to a
+    unit diagonal (so columns in cents or in millions invert alike); a pseudo-inverse when singular."""
+    if m.size == 0:
+        return m.copy()
+    d = np.sqrt(np.clip(np.diag(m), 0.0, None))
+    s = np.where(d > 0, 1.0 / np.where(d > 0, d, 1.0), 1.0)
+    ms = m * s[:, None] * s[None, :]
+    try:
+        inv = np.linalg.inv(ms)
+    except np.linalg.LinAlgError:
+        inv = np.linalg.pinv(ms, hermitian=True)
+    return inv * s[:, None] * s[None, :]
+
+
+def _solve_sym(m: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Solve m x = b for a symmetric positive semi-definite m, equilibrated by its diagonal."""
+    d = np.sqrt(np.clip(np.diag(m), 0.0, None))
+    d = np.where(d > 0, 1.0 / np.where(d > 0, d, 1.0), 1.0)
+    ms = m * d[:, None] * d[None, :]
+    bs = b * (d[:, None] if b.ndim == 2 else d)
+    try:
+        xs = np.linalg.solve(ms, bs)
+    except np.linalg.LinAlgError:
+        xs = np.linalg.pinv(ms) @ bs
+    return xs * (d[:, None] if b.ndim == 2 else d)
+
+
+def orthogonalise(columns: np.ndarray, const: np.ndarray, skip: int | None = None) -> np.ndarray:
+    """Subtract from each column of ``columns`` (in place) its projection on ``const``.
+
+    Returns the projection coefficients s (zero at ``skip``, the position of the constant
+    column itself, if it is among ``columns``). A column plus 30,000 becomes the same
+    numbers as the column alone, so cross-products keep their digits.
+    """
+    cc = float(const @ const)
+    k = columns.shape[1]
+    s = np.zeros(k)
+    if cc <= 0:
+        return s
+    for j in range(k):  # loop over columns
+        if j == skip:
+            continue
+        s[j] = float(const @ columns[:, j]) / cc
+        if s[j] != 0.0:
+            columns[:, j] -= s[j] * const
+    return s
+
+
+def restore_constant(coef: np.ndarray, covs: list[np.ndarray], k: int, shifts: np.ndarray,
+                      y_shift: float) -> tuple[np.ndarray, list[np.ndarray]]:
+    """Coefficients and covariances of the original design from those of the design whose
+    columns were orthogonalised against column ``k`` (the constant) with coefficients
+    ``shifts``, the outcome with ``y_shift``: b_k = b_k' + y_shift - shifts . b'."""
+    m = np.eye(len(coef))
+    m[k, :] -= shifts
+    m[k, k] = 1.0
+    out = m @ coef
+    out[k] += y_shift
+    return out, [m @ v @ m.T for v in covs]
 
 
 # --------------------------------------------------------------------------- fits
@@ -186,7 +279,6 @@ class Fit:
     sigma2: float
     df_resid: int
     nobs: int
-    bread: np.ndarray | None = field(default=None, repr=False)  # (X'X)^-1 of an OLS fit
 
     @property
     def se(self) -> np.ndarray:
@@ -225,13 +317,6 @@ def _cluster_cov(bread: np.ndarray, design: np.ndarray, e: np.ndarray, codes: np
     return factor * (bread @ meat @ bread)
 
 
-def _inv(m: np.ndarray) -> np.ndarray:
-    try:
-        return np.linalg.inv(m)
-    except np.linalg.LinAlgError:
-        return np.linalg.pinv(m)
-
-
 def ols(
     design: np.ndarray,
     y: np.ndarray,
@@ -241,11 +326,17 @@ def ols(
     *,
     df_resid: int | None = None,
     bread: np.ndarray | None = None,
+    const_col: int | None = None,
+    overwrite: bool = False,
 ) -> tuple[Fit, np.ndarray]:
     """Least squares of ``y`` on ``design`` (N, K); returns (Fit, residuals).
 
     ``df_resid`` overrides N - K (the within fit uses N - n - K); ``bread`` is
-    (design' design)^-1 when already known (several outcomes on one design).
+    (design' design)^-1 when already known (several outcomes on one design; not with
+    ``const_col``). ``const_col`` names the position of the constant (or transformed
+    constant) column: the other columns are orthogonalised against it before the
+    cross-products, and the constant's coefficient is mapped back. ``overwrite`` lets
+    that step work in ``design`` itself.
     """
     nobs, k = design.shape
     if k == 0:
@@ -253,32 +344,29 @@ def ols(
         dfr = nobs if df_resid is None else df_resid
         empty = np.zeros((0, 0))
         return Fit(tuple(names), np.zeros(0), empty, empty, float(e @ e / max(dfr, 1)), dfr, nobs), e
+    shifts, y_shift = None, 0.0
+    if const_col is not None:
+        design = design if overwrite else np.array(design, order="F")
+        c = design[:, const_col]
+        shifts = orthogonalise(design, c, skip=const_col)
+        y_shift = float(c @ y) / float(c @ c) if float(c @ c) > 0 else 0.0
+        y = y - y_shift * c
+        bread = None
     if bread is None:
-        bread = _inv(design.T @ design)
+        bread = equilibrated_inv(design.T @ design)
     coef = bread @ (design.T @ y)
     e = y - design @ coef
     dfr = nobs - k if df_resid is None else df_resid
     sigma2 = float(e @ e) / max(dfr, 1)
     cov = sigma2 * bread
     cov_cl = _cluster_cov(bread, design, e, codes, n, nobs)
-    return Fit(tuple(names), coef, cov, cov_cl, sigma2, int(dfr), nobs, bread), e
-
-
-def _solve_sym(m: np.ndarray, b: np.ndarray) -> np.ndarray:
-    """Solve m x = b for a symmetric positive semi-definite m, equilibrated by its diagonal."""
-    d = np.sqrt(np.clip(np.diag(m), 0.0, None))
-    d = np.where(d > 0, 1.0 / np.where(d > 0, d, 1.0), 1.0)
-    ms = m * d[:, None] * d[None, :]
-    bs = b * (d[:, None] if b.ndim == 2 else d)
-    try:
-        xs = np.linalg.solve(ms, bs)
-    except np.linalg.LinAlgError:
-        xs = np.linalg.pinv(ms) @ bs
-    return xs * (d[:, None] if b.ndim == 2 else d)
+    if shifts is not None:
+        coef, (cov, cov_cl) = restore_constant(coef, [cov, cov_cl], const_col, shifts, y_shift)
+    return Fit(tuple(names), coef, cov, cov_cl, sigma2, int(dfr), nobs), e
 
 
 @dataclass(frozen=True)
-class _GramIV:
+class GramIV:
     """2SLS pieces from one cross-product matrix of [instruments, design, y]."""
 
     coef: np.ndarray
@@ -288,20 +376,49 @@ class _GramIV:
     e_e: float  # e' e
 
 
-def _gram_iv(g: np.ndarray, ia: list[int], iw: list[int], iy: int) -> _GramIV:
+def gram_iv(g: np.ndarray, ia: list[int], iw: list[int], iy: int) -> GramIV:
     saa = g[np.ix_(ia, ia)]
     saw = g[np.ix_(ia, iw)]
     say = g[ia, iy]
     proj = _solve_sym(saa, saw)
     wpw = saw.T @ proj
     wpw = (wpw + wpw.T) / 2.0
-    bread = _inv(wpw)
+    bread = equilibrated_inv(wpw)
     coef = bread @ (proj.T @ say)
     ae = say - saw @ coef
     e_pa_e = float(ae @ _solve_sym(saa, ae))
     sww = g[np.ix_(iw, iw)]
     e_e = float(g[iy, iy] - 2.0 * coef @ g[iw, iy] + coef @ sww @ coef)
-    return _GramIV(coef, proj, bread, e_pa_e, max(e_e, 0.0))
+    return GramIV(coef, proj, bread, e_pa_e, max(e_e, 0.0))
+
+
+@dataclass(frozen=True)
+class _IVArrays:
+    """[instruments, design, y] in one column-major array, the design's and the instruments'
+    constants orthogonalised out of their other columns; enough to map the constant back."""
+
+    full: np.ndarray
+    n_instr: int
+    n_design: int
+    design_const: int | None
+    shifts: np.ndarray | None
+    y_shift: float
+
+
+def _iv_arrays(full: np.ndarray, n_instr: int, n_design: int, instr_const: int | None,
+               design_const: int | None) -> _IVArrays:
+    """Orthogonalise, in place, the instruments on their constant column and the design and
+    outcome (the last column) on the design's constant column (positions within each block)."""
+    if instr_const is not None:
+        a = full[:, :n_instr]
+        orthogonalise(a, a[:, instr_const].copy(), skip=instr_const)
+    shifts, y_shift = None, 0.0
+    if design_const is not None:
+        block = full[:, n_instr:]
+        c = block[:, design_const].copy()
+        allshift = orthogonalise(block, c, skip=design_const)
+        shifts, y_shift = allshift[:n_design], float(allshift[n_design])
+    return _IVArrays(full, n_instr, n_design, design_const, shifts, y_shift)
 
 
 def tsls(
@@ -312,52 +429,68 @@ def tsls(
     codes: np.ndarray,
     n: int,
     *,
-    gram: np.ndarray | None = None,
+    instr_const: int | None = None,
+    design_const: int | None = None,
 ) -> tuple[Fit, np.ndarray]:
     """Two-stage least squares of ``y`` on ``design`` with ``instruments``; returns (Fit, residuals).
 
-    Works from the cross-product matrix of [instruments, design, y] (pass it as
-    ``gram`` when already computed) plus one pass for residuals and clustered scores.
-    Residual variance e'e / (N - K), e the structural residuals.
+    ``instr_const`` / ``design_const`` are the positions of the constant columns (the
+    other columns are orthogonalised against them first). Residual variance
+    e'e / (N - K), e the structural residuals.
     """
-    nobs, k = design.shape
-    L = instruments.shape[1]
-    if gram is None:
-        full = np.column_stack([instruments, design, y])
-        gram = full.T @ full
-    piv = _gram_iv(gram, list(range(L)), list(range(L, L + k)), L + k)
+    full = np.asfortranarray(np.column_stack([instruments, design, y]))
+    prepared = _iv_arrays(full, instruments.shape[1], design.shape[1], instr_const, design_const)
+    return _tsls_prepared(prepared, prepared.full.T @ prepared.full, names, codes, n)
+
+
+def _tsls_prepared(prepared: _IVArrays, gram: np.ndarray, names: tuple[str, ...] | list[str],
+                   codes: np.ndarray, n: int) -> tuple[Fit, np.ndarray]:
+    """2SLS from arrays built by :func:`_iv_arrays` and their cross-product matrix ``gram``
+    (one pass more for residuals and clustered scores)."""
+    full, L, k = prepared.full, prepared.n_instr, prepared.n_design
+    nobs = full.shape[0]
+    piv = gram_iv(gram, list(range(L)), list(range(L, L + k)), L + k)
     coef = piv.coef
-    e = y - design @ coef
-    fitted = instruments @ piv.proj
+    a, w, yy = full[:, :L], full[:, L : L + k], full[:, L + k]
+    e = yy - w @ coef
+    fitted = a @ piv.proj
     dfr = nobs - k
     sigma2 = float(e @ e) / max(dfr, 1)
     cov = sigma2 * piv.bread
     cov_cl = _cluster_cov(piv.bread, fitted, e, codes, n, nobs)
+    if prepared.shifts is not None:
+        coef, (cov, cov_cl) = restore_constant(coef, [cov, cov_cl], prepared.design_const, prepared.shifts,
+                                                prepared.y_shift)
     return Fit(tuple(names), coef, cov, cov_cl, sigma2, int(dfr), nobs), e
 
 
-def within(pa: PanelArrays) -> tuple[Fit, np.ndarray]:
-    """The within (fixed-effects) fit on the time-varying columns; returns (Fit, residuals).
+def within(pa: PanelArrays, columns: list[str] | tuple[str, ...] | None = None) -> tuple[Fit, np.ndarray]:
+    """The within (fixed-effects) fit on the named time-varying columns (default all of X);
+    returns (Fit, residuals).
 
     sigma2 = e'e / (N - n - K_X) (methods.md section 4).
     """
-    xw = pa.x - pa.xbar[pa.codes]
-    yw = pa.y - pa.ybar[pa.codes]
+    cols = list(pa.x_names) if columns is None else list(columns)
+    xw = pa.within_deviations(cols)
+    yw = pa.y - gather(pa.ybar, pa.codes)
     dfr = pa.nobs - pa.n - xw.shape[1]
-    return ols(xw, yw, pa.x_names, pa.codes, pa.n, df_resid=dfr)
+    return ols(xw, yw, cols, pa.codes, pa.n, df_resid=dfr)
 
 
-def between(pa: PanelArrays, mean_columns: list[str] | None = None) -> tuple[Fit, np.ndarray]:
+def between(pa: PanelArrays, mean_columns: list[str] | None = None,
+            z_columns: list[str] | None = None) -> tuple[Fit, np.ndarray]:
     """OLS of the unit means of y on [1, X means, Z] with n rows; returns (Fit, residuals).
 
-    ``mean_columns`` limits the X means to those columns (default: every X), for
-    example to leave out means that are collinear with the constant.
+    ``mean_columns`` limits the X means to those columns (default every X, period
+    effects included when they are in X), ``z_columns`` the Z columns (default all).
     """
     cols = list(pa.x_names) if mean_columns is None else list(mean_columns)
+    zcols = list(pa.z_names) if z_columns is None else list(z_columns)
     xi = [pa.x_names.index(c) for c in cols]
-    design = np.column_stack([np.ones(pa.n), pa.xbar[:, xi], pa.zbar])
-    names = (CONST, *cols, *pa.z_names)
-    return ols(design, pa.ybar, names, np.arange(pa.n), pa.n)
+    zi = [pa.z_names.index(c) for c in zcols]
+    design = np.column_stack([np.ones(pa.n), pa.xbar[:, xi], pa.zbar[:, zi]])
+    names = (CONST, *cols, *zcols)
+    return ols(design, pa.ybar, names, np.arange(pa.n), pa.n, const_col=0, overwrite=True)
 
 
 @dataclass(frozen=True)
@@ -383,7 +516,7 @@ def _theta(sigma2_e: float, sigma2_u: float, counts: np.ndarray) -> np.ndarray:
         return np.where(total > 0, 1.0 - np.sqrt(sigma2_e / total), 0.0)
 
 
-def _quasi_demean(pa: PanelArrays, theta: np.ndarray, out: np.ndarray | None = None,
+def quasi_demean(pa: PanelArrays, theta: np.ndarray, out: np.ndarray | None = None,
                   order: list[int] | None = None) -> tuple[np.ndarray, np.ndarray]:
     """[1, X, Z] and y transformed to w - theta_i w_bar_i, filled column by column.
 
@@ -410,18 +543,18 @@ def _quasi_demean(pa: PanelArrays, theta: np.ndarray, out: np.ndarray | None = N
 def random_effects(
     pa: PanelArrays, within_fit: Fit | None = None, between_fit: Fit | None = None
 ) -> tuple[Fit, Components]:
-    """Swamy-Arora random effects on [1, X, Z]; returns (Fit, Components).
+    """Swamy-Arora random effects on [1, X, Z] of ``pa`` (select the columns first); returns (Fit, Components).
 
-    sigma2_u = max(0, sigma2_b - sigma2_e * mean_i(1/T_i)), sigma2_b the between
-    residual variance with n - K_b degrees of freedom.
+    sigma2_e from the within fit; sigma2_u = max(0, sigma2_b - sigma2_e * mean_i(1/T_i)),
+    sigma2_b the between residual variance with n - K_b degrees of freedom.
     """
     wf = within_fit if within_fit is not None else within(pa)[0]
     bf = between_fit if between_fit is not None else between(pa)[0]
     sigma2_e = wf.sigma2
     sigma2_u = max(0.0, bf.sigma2 - sigma2_e * float(np.mean(1.0 / pa.counts)))
     theta = _theta(sigma2_e, sigma2_u, pa.counts)
-    design, ys = _quasi_demean(pa, theta)
-    fit, _ = ols(design, ys, (CONST, *pa.x_names, *pa.z_names), pa.codes, pa.n)
+    design, ys = quasi_demean(pa, theta)
+    fit, _ = ols(design, ys, (CONST, *pa.x_names, *pa.z_names), pa.codes, pa.n, const_col=0, overwrite=True)
     return fit, Components(sigma2_u, sigma2_e, theta)
 
 
@@ -455,46 +588,57 @@ def wald(coef: np.ndarray, cov: np.ndarray) -> WaldTest:
     k = len(coef)
     if k == 0:
         return WaldTest(None, 0, None)
-    stat = float(coef @ np.linalg.solve(cov, coef)) if np.linalg.matrix_rank(cov) == k else float(
-        coef @ np.linalg.pinv(cov) @ coef
-    )
+    inv = equilibrated_inv(cov)
+    stat = float(coef @ inv @ coef)
     return WaldTest(stat, k, float(chi2_sf(stat, k)))
 
 
-def contrast(b_eff: np.ndarray, v_eff: np.ndarray, b_cons: np.ndarray, v_cons: np.ndarray,
-             df: int | None = None) -> WaldTest:
+#: eigenvalues of the whitened covariance difference at or below this count as zero
+RANK_TOL = 1e-9
+
+
+def contrast(b_eff: np.ndarray, v_eff: np.ndarray, b_cons: np.ndarray, v_cons: np.ndarray) -> WaldTest:
     """Hausman contrast of a consistent estimate (``b_cons``) against an efficient one.
 
-    H = d' (V_cons - V_eff)^+ d. When the difference matrix has negative eigenvalues
-    it is not positive definite: the statistic is then computed on the subspace of
-    its positive eigenvalues only (a generalised inverse), with that many degrees of
-    freedom, and the result says so. ``df`` fixes the degrees of freedom (the
-    over-identification contrast uses k1 - g2).
+    H = d' (V_cons - V_eff)^+ d with d = b_cons - b_eff, computed in the coordinates where
+    V_cons is the identity: there the difference is I - V_eff~, whose eigenvalues are the
+    shares of each direction's variance that the efficient fit removes (scale-free), and
+    the degrees of freedom are the number of them above RANK_TOL (the rank of the
+    difference). Negative eigenvalues mean the difference is not positive definite: the
+    statistic then uses the positive directions only and says so.
     """
     d = b_cons - b_eff
-    diff = v_cons - v_eff
-    diff = (diff + diff.T) / 2.0
     if d.size == 0:
         return WaldTest(None, 0, None)
-    vals, vecs = np.linalg.eigh(diff)
-    scale = max(float(np.max(np.abs(vals))), 1e-300)
-    tol = scale * 1e-10 * len(vals)
-    positive = vals > tol
-    negative = vals < -tol
-    pd = bool(positive.all())
-    proj = vecs[:, positive].T @ d
-    stat = float(np.sum(proj**2 / vals[positive])) if positive.any() else 0.0
+    vc = (v_cons + v_cons.T) / 2.0
+    vals_c, vecs_c = np.linalg.eigh(vc)
+    top = max(float(np.max(vals_c)), 1e-300)
+    keep = vals_c > top * 1e-14
+    whiten = vecs_c[:, keep] / np.sqrt(vals_c[keep])  # V_cons^(-1/2) on its range
+    m = np.eye(int(keep.sum())) - whiten.T @ ((v_eff + v_eff.T) / 2.0) @ whiten
+    mu, q = np.linalg.eigh((m + m.T) / 2.0)
+    positive = mu > RANK_TOL
+    negative = mu < -RANK_TOL
+    proj = q[:, positive].T @ (whiten.T @ d)
+    stat = float(np.sum(proj**2 / mu[positive])) if positive.any() else 0.0
     rank = int(positive.sum())
-    dof = rank if df is None else min(df, rank) if rank else df
+    # reported as positive definite unless a direction has a negative eigenvalue: a difference of
+    # lower rank (within vs Hausman-Taylor has rank k1 - g2) is what the theory gives, and df says it
+    pd = not bool(negative.any())
     note = None
-    if not pd:
+    if negative.any():
         note = (
             f"the difference of the covariance matrices is not positive definite "
-            f"({int(negative.sum())} negative, {len(vals) - rank - int(negative.sum())} zero eigenvalues); "
+            f"({int(negative.sum())} negative, {len(mu) - rank - int(negative.sum())} zero eigenvalues); "
             f"the statistic uses the {rank} positive directions only"
         )
-    p = float(chi2_sf(stat, dof)) if dof > 0 else None
-    return WaldTest(stat, dof, p, pd, note)
+    p = float(chi2_sf(stat, rank)) if rank > 0 else None
+    return WaldTest(stat, rank, p, pd, note)
+
+
+def scaled_cov(fit: Fit, sigma2: float) -> np.ndarray:
+    """The classical covariance of ``fit`` rescaled to the residual variance ``sigma2``."""
+    return fit.cov * (sigma2 / fit.sigma2) if fit.sigma2 > 0 else fit.cov
 
 
 @dataclass(frozen=True)
@@ -516,68 +660,28 @@ def mundlak(
     pa: PanelArrays,
     mean_columns: list[str] | None = None,
     tested: list[str] | None = None,
-    within_fit: tuple[Fit, np.ndarray] | None = None,
 ) -> Mundlak:
     """The Mundlak regression and its joint and per-column tests of the X-mean coefficients.
 
-    ``mean_columns``: the X columns whose unit means enter (default every X; leave out
-    only means that are exact linear combinations of [1, Z, the other means]).
-    ``tested``: the means in the joint test and the per-column rows (default every
-    mean that enters). Per-column t = coefficient / clustered se, two-sided normal p.
-    ``within_fit``: the (Fit, residuals) of :func:`within` on ``pa``, when known.
-
-    Computed without the N x K pooled design: since X - X means is orthogonal to every
-    unit-level column, the pooled OLS splits into the within fit and a T_i-weighted
-    regression of the unit means of y on U = [1, Z, X means], and the clustered scores
-    into the within scores and U_i T_i r_i (r_i the unit-level residual). The
-    coefficients and both covariances are mapped back to [1, X, Z, X means]; the
-    tests check them against statsmodels' pooled OLS.
+    Pooled OLS of y on [1, X, Z, X means of ``mean_columns``] (default every X),
+    standard errors clustered by unit. ``tested``: the means in the joint test and the
+    per-column rows (default every mean that enters); the others (for example the
+    means of period dummies in an unbalanced panel) are controls. Per-column
+    t = coefficient / clustered se, two-sided normal p.
     """
     cols = list(pa.x_names) if mean_columns is None else list(mean_columns)
     tested_cols = cols if tested is None else [c for c in tested if c in cols]
     kx, kz = len(pa.x_names), len(pa.z_names)
-    wf, ew = within_fit if within_fit is not None else within(pa)
-    xi = [pa.x_names.index(c) for c in cols]
-    u = np.column_stack([np.ones(pa.n), pa.zbar, pa.xbar[:, xi]])
-    p = u.shape[1]
-    t_i = pa.counts
-    utwu = u.T @ (t_i[:, None] * u)
-    bread_u = _inv(utwu)
-    delta = bread_u @ (u.T @ (t_i * pa.ybar))
-    r = pa.ybar - u @ delta
-    # J maps beta into U's coordinates: X means enter as X_bar beta = U J beta
-    jmat = np.zeros((p, kx))
-    for k, c in enumerate(pa.x_names):  # loop over the few columns
-        if c in cols:
-            jmat[1 + kz + cols.index(c), k] = 1.0
-        else:
-            jmat[:, k] = np.linalg.lstsq(u, pa.xbar[:, k], rcond=None)[0]
-    beta = wf.coef
-    c_vec = delta - jmat @ beta
-    nobs = pa.nobs
-    k_all = kx + p
-    dfr = nobs - k_all
-    ee = float(ew @ ew) + float(t_i @ (r**2))
-    sigma2 = ee / max(dfr, 1)
-    bread_w = wf.bread if wf.bread is not None else np.zeros((0, 0))
-    bread = np.zeros((k_all, k_all))
-    bread[:kx, :kx] = bread_w
-    bread[kx:, kx:] = bread_u
-    scores = np.column_stack([grouper(pa.codes, pa.n).weighted_sums(ew, pa.x), u * (t_i * r)[:, None]])
-    factor = (pa.n / (pa.n - 1.0)) * ((nobs - 1.0) / max(nobs - k_all, 1)) if pa.n > 1 else np.nan
-    cov_new = sigma2 * bread
-    cl_new = factor * (bread @ (scores.T @ scores) @ bread)
-    # from (beta, delta) to the output order (const, X, Z, means): c = delta - J beta
-    tmat = np.zeros((k_all, k_all))
-    tmat[1 : 1 + kx, :kx] = np.eye(kx)
-    rows_u = [0, *range(1 + kx, 1 + kx + kz), *range(1 + kx + kz, k_all)]
-    for a, row in enumerate(rows_u):
-        tmat[row, kx + a] = 1.0
-        tmat[row, :kx] = -jmat[a]
-    coef = np.concatenate([[c_vec[0]], beta, c_vec[1 : 1 + kz], c_vec[1 + kz :]])
+    design = np.empty((pa.nobs, 1 + kx + kz + len(cols)), order="F")  # columns filled one by one
+    design[:, 0] = 1.0
+    design[:, 1 : 1 + kx] = pa.x
+    design[:, 1 + kx : 1 + kx + kz] = pa.z
+    for k, c in enumerate(cols):  # loop over columns
+        np.take(np.ascontiguousarray(pa.xbar[:, pa.x_names.index(c)]), pa.codes,
+                out=design[:, 1 + kx + kz + k], mode="clip")
     mean_names = tuple(f"mean({c})" for c in cols)
-    fit = Fit((CONST, *pa.x_names, *pa.z_names, *mean_names), coef, tmat @ cov_new @ tmat.T,
-              tmat @ cl_new @ tmat.T, sigma2, int(dfr), nobs)
+    fit, _ = ols(design, pa.y, (CONST, *pa.x_names, *pa.z_names, *mean_names), pa.codes, pa.n,
+                 const_col=0, overwrite=True)
     idx = fit.index([f"mean({c})" for c in tested_cols])
     b = fit.coef[idx]
     v = fit.cov_cluster[np.ix_(idx, idx)]
@@ -593,13 +697,12 @@ def mundlak(
 
 
 def hausman_within_random(wf: Fit, re: Fit, columns: list[str] | None = None) -> WaldTest:
-    """Hausman test of within against random effects on the time-varying coefficients.
-
-    ``columns`` limits the comparison (default every within coefficient).
-    """
+    """Hausman test of within against random effects on the named time-varying coefficients
+    (default every within coefficient), both covariances at the within fit's sigma2_e."""
     cols = list(wf.names) if columns is None else list(columns)
     i_re, i_w = re.index(cols), wf.index(cols)
-    return contrast(re.coef[i_re], re.cov[np.ix_(i_re, i_re)], wf.coef[i_w], wf.cov[np.ix_(i_w, i_w)])
+    v_re = scaled_cov(re, wf.sigma2)
+    return contrast(re.coef[i_re], v_re[np.ix_(i_re, i_re)], wf.coef[i_w], wf.cov[np.ix_(i_w, i_w)])
 
 
 # --------------------------------------------------------------------------- Hausman-Taylor
@@ -617,7 +720,7 @@ class HausmanTaylor:
     over-identifying restriction every C equals the Sargan statistic and cannot say
     which instrument is at fault). ``rest_sargan`` holds the Sargan statistic of the
     instrument set without that mean: a C test is only meaningful when that rest is
-    itself accepted.
+    itself accepted. ``k1`` and ``g2`` are the counts of the order condition.
     """
 
     fit: Fit
@@ -626,6 +729,9 @@ class HausmanTaylor:
     hausman_within: WaldTest | None
     c_tests: dict[str, WaldTest | None] = field(default_factory=dict)
     rest_sargan: dict[str, WaldTest] = field(default_factory=dict)
+    k1: int = 0
+    g2: int = 0
+    unit_fit: Fit | None = None
 
 
 def _reorder(fit: Fit, names: list[str]) -> Fit | None:
@@ -637,6 +743,56 @@ def _reorder(fit: Fit, names: list[str]) -> Fit | None:
                fit.df_resid, fit.nobs)
 
 
+@dataclass(frozen=True)
+class HTSpec:
+    """The Hausman-Taylor set-up: roles and which columns the within fit identifies.
+
+    ``x1`` exogenous time-varying columns (period effects among them), ``x2`` correlated
+    ones, ``z1`` and ``z2`` time-invariant; ``means`` the X1 columns whose unit means are
+    instruments (period effects excluded); ``within`` the X columns whose within
+    deviations the within fit identifies (they instrument themselves); ``compared`` the
+    coefficients in the within vs Hausman-Taylor contrast (period effects excluded).
+    An X1 column outside ``within`` is identified through its own unit mean alone (it
+    acts as Z1 at the unit level); an X2 column outside it needs an excluded mean like
+    a Z2 column.
+    """
+
+    x1: tuple[str, ...]
+    x2: tuple[str, ...]
+    z1: tuple[str, ...]
+    z2: tuple[str, ...]
+    means: tuple[str, ...]
+    within: tuple[str, ...]
+    compared: tuple[str, ...]
+
+    @classmethod
+    def plain(cls, x1: list[str], x2: list[str], z1: list[str], z2: list[str],
+              means: list[str] | None = None) -> HTSpec:
+        """Every X identified within, every X1 mean an instrument unless ``means`` says otherwise."""
+        m = tuple(x1) if means is None else tuple(means)
+        return cls(tuple(x1), tuple(x2), tuple(z1), tuple(z2), m, tuple(x1) + tuple(x2), tuple(x1) + tuple(x2))
+
+    @property
+    def x1_between_only(self) -> tuple[str, ...]:
+        """X1 columns the within fit cannot identify (identified by their unit means)."""
+        return tuple(c for c in self.means if c not in self.within)
+
+    @property
+    def x2_between_only(self) -> tuple[str, ...]:
+        """X2 columns the within fit cannot identify (they need excluded means, like Z2)."""
+        return tuple(c for c in self.x2 if c not in self.within)
+
+    @property
+    def k1(self) -> int:
+        """Excluded unit means: the X1 means beyond those that identify their own column."""
+        return len(self.means) - len(self.x1_between_only)
+
+    @property
+    def g2(self) -> int:
+        """Unit-level endogenous columns: Z2 and the X2 columns identified between units only."""
+        return len(self.z2) + len(self.x2_between_only)
+
+
 def hausman_taylor(
     pa: PanelArrays,
     x1: list[str],
@@ -645,44 +801,38 @@ def hausman_taylor(
     z2: list[str],
     within_fit: Fit | None = None,
     mean_instruments: list[str] | None = None,
+    spec: HTSpec | None = None,
 ) -> HausmanTaylor | None:
     """The Hausman-Taylor estimator exactly as methods.md section 4; None when k1 < g2.
 
     Coefficients are ordered X1, X2, const, Z1, Z2. ``mean_instruments`` names the X1
-    columns whose unit means serve as instruments (default all X1; period dummies are
-    left out by the caller) and k1 counts them. The Sargan statistic (N times the
-    uncentred R2 of the transformed residuals on the instruments) and the contrast
-    with the within fit are given when k1 > g2, else None.
+    columns whose unit means serve as instruments (default all X1; period effects are
+    left out by the caller); ``spec`` gives the whole set-up instead (see HTSpec). The
+    Sargan statistic (N times the uncentred R2 of the transformed residuals on the
+    instruments) and the contrast with the within fit are given when k1 > g2, else None.
     """
-    means = list(x1) if mean_instruments is None else list(mean_instruments)
-    k1, g2 = len(means), len(z2)
+    sp = spec if spec is not None else HTSpec.plain(x1, x2, z1, z2, mean_instruments)
+    k1, g2 = sp.k1, sp.g2
     if k1 < g2:
         return None
+    x1, x2, z1, z2 = list(sp.x1), list(sp.x2), list(sp.z1), list(sp.z2)
+    means, wcols = list(sp.means), list(sp.within)
     sub = pa.select(x1 + x2, z1 + z2)
-    wf = _reorder(within_fit, x1 + x2) if within_fit is not None else None
+    wf = _reorder(within_fit, wcols) if within_fit is not None else None
     if wf is None:
-        wf = within(sub)[0]
+        wf = within(sub, wcols)[0]
     sigma2_e = wf.sigma2
-    nx = len(x1) + len(x2)
-    xbar1 = sub.xbar[:, [sub.x_names.index(c) for c in means]]
-    zi = sub.zbar
-    # step 2: unit-level 2SLS of d on [1, Z1, Z2], instruments [1, Z1, X1 means]
-    d = sub.ybar - sub.xbar @ wf.coef if nx else sub.ybar.copy()
-    design_u = np.column_stack([np.ones(sub.n), zi])
-    instr_u = np.column_stack([np.ones(sub.n), zi[:, : len(z1)], xbar1])
-    unit_codes = np.arange(sub.n)
-    _, r = tsls(design_u, instr_u, d, (CONST, *z1, *z2), unit_codes, sub.n)
-    sigma2_u = max(0.0, float(np.mean(r**2)) - sigma2_e * float(np.mean(1.0 / sub.counts)))
-    theta = _theta(sigma2_e, sigma2_u, sub.counts)
-    full = _ht_arrays(sub, x1, x2, z1, z2, means, theta)
-    L = sub.x.shape[1] + len(means) + 1 + len(z1)
-    K = 1 + sub.x.shape[1] + sub.z.shape[1]
-    instr, design, ys = full[:, :L], full[:, L : L + K], full[:, L + K]
-    gram = full.T @ full
-    names = (*x1, *x2, CONST, *z1, *z2)
-    fit, _ = tsls(design, instr, ys, names, sub.codes, sub.n, gram=gram)
+    unit_fit, theta, sigma2_u = _ht_unit_step(sub, sp, wf)
+    nwc = len(wcols)
+    L = nwc + len(means) + 1 + len(z1)
+    K = 1 + len(x1) + len(x2) + len(z1) + len(z2)
+    prepared = _iv_arrays(_ht_arrays(sub, sp, theta), L, K, instr_const=nwc + len(means), design_const=0)
+    # design order in the arrays: const, X1, X2, Z1, Z2; reported as X1, X2, const, Z1, Z2
+    gram = prepared.full.T @ prepared.full
+    raw, _ = _tsls_prepared(prepared, gram, (CONST, *x1, *x2, *z1, *z2), sub.codes, sub.n)
+    fit = _reorder(raw, [*x1, *x2, CONST, *z1, *z2])
     ia, iw, iy = list(range(L)), list(range(L, L + K)), L + K
-    base = _gram_iv(gram, ia, iw, iy)
+    base = gram_iv(gram, ia, iw, iy)
     sargan = hw = None
     # an exact fit (no residual variation, e.g. a tiny panel) leaves both statistics undefined
     exact = not base.e_e > 0
@@ -691,52 +841,76 @@ def hausman_taylor(
         if not exact:
             stat = float(sub.nobs * base.e_pa_e / base.e_e)
             sargan = WaldTest(stat, dof, float(chi2_sf(stat, dof)))
-        idx = list(range(nx))
-        hw = contrast(fit.coef[idx], fit.cov[np.ix_(idx, idx)], wf.coef, wf.cov, df=dof)
+        comp = [c for c in sp.compared if c in wcols]
+        if comp:
+            i_ht, i_w = fit.index(comp), wf.index(comp)
+            v_ht = scaled_cov(fit, sigma2_e)
+            hw = contrast(fit.coef[i_ht], v_ht[np.ix_(i_ht, i_ht)], wf.coef[i_w], wf.cov[np.ix_(i_w, i_w)])
+    c_tests, rest_sargan = _c_tests(gram, base, sp, L, K, sub.nobs, exact)
+    return HausmanTaylor(fit, Components(sigma2_u, sigma2_e, theta), sargan, hw, c_tests, rest_sargan,
+                         k1, g2, unit_fit)
+
+
+def _ht_unit_step(sub: PanelArrays, sp: HTSpec, wf: Fit) -> tuple[Fit, np.ndarray, float]:
+    """Step 2: the unit-level 2SLS of d_i = y_bar_i - X_bar_i beta_W on [1, Z1, Z2 and the
+    means of X columns the within fit cannot identify] with instruments [1, Z1, X1 means];
+    returns (its fit, theta per unit, sigma2_u)."""
+    wcols = list(sp.within)
+    xw = [sub.x_names.index(c) for c in wcols]
+    d = sub.ybar - sub.xbar[:, xw] @ wf.coef if wcols else sub.ybar.copy()
+    zi = sub.zbar
+    z1n = len(sp.z1)
+    b1 = [sub.x_names.index(c) for c in sp.x1_between_only]
+    b2 = [sub.x_names.index(c) for c in sp.x2_between_only]
+    design_u = np.column_stack([np.ones(sub.n), zi[:, :z1n], sub.xbar[:, b1], zi[:, z1n:], sub.xbar[:, b2]])
+    instr_u = np.column_stack([np.ones(sub.n), zi[:, :z1n], sub.xbar[:, [sub.x_names.index(c) for c in sp.means]]])
+    names = (CONST, *sp.z1, *sp.x1_between_only, *sp.z2, *sp.x2_between_only)
+    unit_fit, r = tsls(design_u, instr_u, d, names, np.arange(sub.n), sub.n, instr_const=0, design_const=0)
+    sigma2_u = max(0.0, float(np.mean(r**2)) - wf.sigma2 * float(np.mean(1.0 / sub.counts)))
+    return unit_fit, _theta(wf.sigma2, sigma2_u, sub.counts), sigma2_u
+
+
+def _ht_arrays(sub: PanelArrays, sp: HTSpec, theta: np.ndarray) -> np.ndarray:
+    """Steps 3-4 of Hausman-Taylor in one (N, L + K + 1) array: the instruments
+    A = [X - X means (within-identified columns), X1 means, 1, Z1], the transformed
+    design (const, X1, X2, Z1, Z2) and the transformed outcome, filled column by column."""
+    wcols, means, z1 = list(sp.within), list(sp.means), list(sp.z1)
+    nwc, nx, nz = len(wcols), len(sp.x1) + len(sp.x2), sub.z.shape[1]
+    L = nwc + len(means) + 1 + len(z1)
+    K = 1 + nx + nz
+    full = np.empty((sub.nobs, L + K + 1), order="F")  # columns contiguous: filled one by one
+    full[:, :nwc] = sub.within_deviations(wcols)
+    for m, c in enumerate(means):
+        np.take(np.ascontiguousarray(sub.xbar[:, sub.x_names.index(c)]), sub.codes, out=full[:, nwc + m],
+                mode="clip")
+    full[:, nwc + len(means)] = 1.0
+    for j in range(len(z1)):
+        full[:, nwc + len(means) + 1 + j] = sub.z[:, j]
+    _, ys = quasi_demean(sub, theta, out=full[:, L : L + K])
+    full[:, L + K] = ys
+    return full
+
+
+def _c_tests(gram: np.ndarray, base: GramIV, sp: HTSpec, L: int, K: int, nobs: int,
+             exact: bool) -> tuple[dict[str, WaldTest | None], dict[str, WaldTest]]:
+    """Difference-in-Sargan test of each excluded X1 mean and the Sargan test of the rest."""
     c_tests: dict[str, WaldTest | None] = {}
     rest_sargan: dict[str, WaldTest] = {}
-    # the unit means sit after the len(x1) + len(x2) within deviations in the instruments
-    first_mean = nx
-    scale = base.e_e / sub.nobs
-    for j, c in enumerate(means):  # loop over the few X1 means
-        if len(means) - 1 <= g2 or exact:  # the rest just identified: every C would equal the Sargan
+    ia, iw, iy = list(range(L)), list(range(L, L + K)), L + K
+    first_mean = len(sp.within)  # the unit means sit after the within deviations
+    scale = base.e_e / nobs
+    for j, c in enumerate(sp.means):  # loop over the few X1 means
+        if c in sp.x1_between_only:
+            continue  # this mean identifies its own column: it is not an excluded instrument
+        if sp.k1 - 1 <= sp.g2 or exact:  # the rest just identified: every C would equal the Sargan
             c_tests[c] = None
             continue
         keep = [i for i in ia if i != first_mean + j]
-        restricted = _gram_iv(gram, keep, iw, iy)
+        restricted = gram_iv(gram, keep, iw, iy)
         stat = max(0.0, (base.e_pa_e - restricted.e_pa_e) / scale)
         c_tests[c] = WaldTest(stat, 1, float(chi2_sf(stat, 1)))
         if restricted.e_e > 0:
-            rest = float(sub.nobs * restricted.e_pa_e / restricted.e_e)
-            dof_r = len(means) - 1 - g2
+            rest = float(nobs * restricted.e_pa_e / restricted.e_e)
+            dof_r = sp.k1 - 1 - sp.g2
             rest_sargan[c] = WaldTest(rest, dof_r, float(chi2_sf(rest, dof_r)))
-    return HausmanTaylor(fit, Components(sigma2_u, sigma2_e, theta), sargan, hw, c_tests, rest_sargan)
-
-
-def _ht_arrays(
-    sub: PanelArrays, x1: list[str], x2: list[str], z1: list[str], z2: list[str], means: list[str],
-    theta: np.ndarray,
-) -> np.ndarray:
-    """Steps 3-4 of Hausman-Taylor in one (N, L + K + 1) array: the instruments
-    A = [X - X means, X1 means, 1, Z1], the transformed design (X1, X2, const, Z1, Z2)
-    and the transformed outcome, filled column by column."""
-    nx = len(x1) + len(x2)
-    nz = sub.z.shape[1]
-    L = nx + len(means) + 1 + len(z1)
-    K = 1 + nx + nz
-    full = np.empty((sub.nobs, L + K + 1), order="F")  # columns contiguous: filled one by one
-    codes = sub.codes
-    buf = np.empty(sub.nobs)
-    for j in range(nx):  # loop over columns, never over units
-        np.take(np.ascontiguousarray(sub.xbar[:, j]), codes, out=buf, mode="clip")
-        np.subtract(sub.x[:, j], buf, out=full[:, j])
-    for m, c in enumerate(means):
-        np.take(np.ascontiguousarray(sub.xbar[:, sub.x_names.index(c)]), codes, out=full[:, nx + m], mode="clip")
-    full[:, nx + len(means)] = 1.0
-    for j in range(len(z1)):
-        full[:, nx + len(means) + 1 + j] = sub.z[:, j]
-    # design order X1, X2, const, Z1, Z2 from the const, X, Z order of _quasi_demean
-    order = [L + nx] + [L + j for j in range(nx)] + [L + nx + 1 + j for j in range(nz)]
-    _, ys = _quasi_demean(sub, theta, out=full[:, L : L + K], order=[o - L for o in order])
-    full[:, L + K] = ys
-    return full
+    return c_tests, rest_sargan

@@ -2,12 +2,20 @@
 estimators, instrument strength and the findings an analyst needs before fitting a
 fixed-effects, random-effects or Hausman-Taylor model.
 
-The flow: load and validate once; take each regressor's kind from the profile's
-variation pass; build numeric arrays (text columns become indicators ``col=value``
-with the most common level as base, period dummies ``period=<value>``); find what
-the data cannot identify with a sequential rank-revealing factorisation in a stated
-order; fit the rest with auditor.models; measure strength with auditor.strength;
-turn the numbers into findings.
+The flow is a chain of typed stages, each a frozen value built from the ones before:
+
+- :class:`Sample`: the complete rows, the numeric design columns (text columns become
+  indicators ``col=value`` with the most common level as base; ``--period-effects``
+  adds ``period=<value>``), each regressor's kind from the profile's variation pass;
+- :class:`Design`: which design column is a period effect (added dummies, then the
+  user's own period-only regressors), time-varying (X) or time-invariant (Z);
+- identification (auditor.identification): what each fit can estimate;
+- :class:`Roles`: X1, X2, Z1, Z2 and the Hausman-Taylor set-up;
+- :class:`Fits`: within, between, random effects, Mundlak, Hausman-Taylor;
+- :class:`Validity` and :class:`Strength`: which X1 means may serve as instruments
+  and how strong they are;
+- :func:`readiness_findings` turns all of it into findings, and
+  :class:`InstrumentsResult` is the document.
 """
 
 from __future__ import annotations
@@ -22,11 +30,12 @@ from typing import Any
 import numpy as np
 import polars as pl
 
-from auditor import models, strength
+from auditor import attrition, identification, instrument_sets, models, strength
 from auditor.config import Settings, load_settings
 from auditor.errors import fail, short_list
 from auditor.findings import Finding, make, sort_findings
 from auditor.load import INTERNAL, PERIOD_ID, UNIT_ID, Panel, load_panel
+from auditor.pvalues import format_p
 
 SECTION = "instruments"
 ROLES = ("X1", "X2", "Z1", "Z2")
@@ -37,16 +46,19 @@ class InstrumentsResult:
     """Everything ``panel-audit instruments`` reports; ``to_dict()`` is the contract's JSON.
 
     ``roles`` maps X1/X2/Z1/Z2 to column names (the constant is always in Z1 and not
-    listed); ``roles_declared`` is false when X2 was suggested from the data.
-    ``columns`` describes each regressor as used (kind, role, within share).
-    Estimates are dicts of ``coef``/``se``/``se_cluster`` keyed by column name.
+    listed; period effects are exogenous and listed in X1 and in ``period_effects``);
+    ``roles_declared`` is false when X2 was suggested from the data. ``columns``
+    describes each regressor as used (kind, role, within share, the fits that identify
+    it). Estimates are dicts of ``coef``/``se``/``se_cluster`` keyed by column name.
     """
 
     outcome: str
     roles: dict[str, list[str]]
     roles_declared: bool
+    period_effects: tuple[str, ...]
     columns: tuple[dict[str, Any], ...]
     not_identified: tuple[dict[str, Any], ...]
+    near_collinear: tuple[dict[str, Any], ...]
     order_condition: dict[str, Any]
     strength: tuple[dict[str, Any], ...]
     x2_strength: tuple[dict[str, Any], ...]
@@ -80,8 +92,10 @@ class InstrumentsResult:
                 "sample": self.sample,
                 "roles": self.roles,
                 "roles_declared": self.roles_declared,
+                "period_effects": list(self.period_effects),
                 "columns": list(self.columns),
                 "not_identified": list(self.not_identified),
+                "near_collinear": list(self.near_collinear),
                 "order_condition": self.order_condition,
                 "strength": list(self.strength),
                 "x2_strength": list(self.x2_strength),
@@ -158,41 +172,449 @@ def _missing(col: str, dtype: pl.DataType) -> pl.Expr:
     return e
 
 
-# --------------------------------------------------------------------------- rank
+# Kept for callers of the first release: the rank pass now lives in auditor.identification.
+sequential_rank = identification.sequential_rank
 
 
-def sequential_rank(gram: np.ndarray, tol: float) -> tuple[list[int], dict[int, list[int]]]:
-    """Columns kept and set aside by a rank-revealing pass in the given column order.
+# --------------------------------------------------------------------------- stage 1: the sample
 
-    Equivalent to a QR factorisation with the columns taken in order: column j is set
-    aside when its residual sum of squares, after projecting on the columns kept
-    before it, is at most ``tol`` times its own. Works on the cross-product matrix
-    (scaled to unit diagonal). Returns (kept indices, {set-aside index: indices of the
-    kept columns it depends on}).
+
+@dataclass(frozen=True)
+class Sample:
+    """The complete rows and their numeric design columns.
+
+    ``design_cols`` pairs each design column with the regressor it comes from;
+    ``added_periods`` are the dummies ``--period-effects`` added (every period present
+    but the first); ``num`` holds unit codes, period codes, the outcome as ``__pa_y`` and
+    every design column as Float64.
     """
-    k = gram.shape[0]
-    diag = np.diag(gram).copy()
-    kept: list[int] = []
-    dropped: dict[int, list[int]] = {}
-    scale = np.where(diag > 0, 1.0 / np.sqrt(np.where(diag > 0, diag, 1.0)), 0.0)
-    g = gram * scale[:, None] * scale[None, :]
-    for j in range(k):  # loop over the few columns
-        if diag[j] <= 0:
-            dropped[j] = []
+
+    outcome: str
+    kinds: dict[str, str]
+    info: dict[str, dict[str, Any]]
+    num: pl.DataFrame
+    design_cols: tuple[tuple[str, str], ...]
+    added_periods: tuple[str, ...]
+    base_levels: dict[str, Any]
+    constant_text: tuple[str, ...]
+    periods_present: tuple[int, ...]
+    rows_keyed: int
+    dropped: int
+    miss_counts: dict[str, int]
+    treated: tuple[tuple[str, str, int], ...]  # (column, its kind before, units changed)
+    invariant: tuple[str, ...]
+
+
+def _treat_as_invariant(frame: pl.DataFrame, c: str, dtype: pl.DataType) -> tuple[pl.DataFrame, int]:
+    """Replace ``c`` by each unit's most common value (ties: the smallest); returns the frame and
+    the number of units that had more than one value."""
+    modes = (
+        frame.filter(~_missing(c, dtype))
+        .group_by([UNIT_ID, c]).len()
+        .sort([UNIT_ID, "len", c], descending=[False, True, False])
+        .group_by(UNIT_ID, maintain_order=True)
+        .agg(pl.col(c).first().alias("__pa_mode"), pl.len().alias("__pa_values"))
+    )
+    changed = int((modes["__pa_values"] > 1).sum())
+    frame = frame.join(modes.select(UNIT_ID, "__pa_mode"), on=UNIT_ID, how="left").with_columns(
+        pl.col("__pa_mode").alias(c)
+    ).drop("__pa_mode")
+    return frame, changed
+
+
+def _sample(panel: Panel, outcome: str, regs: list[str], period_effects: bool, invariant: list[str],
+            settings: Settings) -> Sample:
+    """Stage 1: kinds, --treat-as-invariant, complete cases and the numeric design columns."""
+    from auditor.variation import compute_variation
+
+    var = compute_variation(dataclasses.replace(panel, columns=(outcome, *regs)), settings)
+    info = {r["name"]: r for r in var.columns.to_dicts()}
+    kinds = {c: info[c]["kind"] for c in (outcome, *regs)}
+    schema = panel.schema
+    frame = panel.frame.select([UNIT_ID, PERIOD_ID, outcome, *regs])
+    treated = []
+    for c in invariant:
+        frame, changed = _treat_as_invariant(frame, c, schema[c])
+        treated.append((c, kinds[c], changed))
+        kinds[c] = "time-invariant"
+
+    rows_keyed = frame.height
+    used = (outcome, *regs)
+    miss_counts = frame.select([_missing(c, schema[c]).sum().alias(c) for c in used]).row(0, named=True)
+    frame = frame.filter(~pl.any_horizontal([_missing(c, schema[c]) for c in used]))
+    dropped = rows_keyed - frame.height
+    if frame.height == 0:
+        worst = sorted(miss_counts, key=lambda c: -miss_counts[c])[:3]
+        raise fail("instruments-no-complete-rows", rows=rows_keyed, dropped=dropped,
+                   worst=", ".join(f"'{c}' ({miss_counts[c]} missing)" for c in worst))
+    if frame.select(pl.col(UNIT_ID).n_unique()).item() < 2:
+        label = panel.unit_labels([int(frame[UNIT_ID][0])])
+        raise fail("instruments-one-unit", unit=", ".join(str(v) for v in label[0].values()) if label else "?")
+
+    exprs: list[pl.Expr] = [pl.col(UNIT_ID), pl.col(PERIOD_ID), pl.col(outcome).cast(pl.Float64).alias("__pa_y")]
+    design_cols: list[tuple[str, str]] = []
+    base_levels: dict[str, Any] = {}
+    constant_text: list[str] = []
+    limit = int(settings.get(SECTION, "max_levels"))
+    for c in regs:
+        if not _is_text(schema[c]):
+            exprs.append(pl.col(c).cast(pl.Float64).alias(c))
+            design_cols.append((c, c))
             continue
-        if kept:
-            gk = g[np.ix_(kept, kept)]
-            c = g[kept, j]
-            coef = np.linalg.solve(gk, c)
-            resid = 1.0 - float(c @ coef)
+        counts = frame.group_by(pl.col(c).cast(pl.String)).len().sort(["len", c], descending=[True, False])
+        if counts.height > limit:
+            raise fail("instruments-too-many-levels", column=c, levels=counts.height, limit=limit)
+        levels = counts[c].to_list()
+        base_levels[c] = levels[0]
+        if len(levels) == 1:
+            constant_text.append(c)
+        for lev in levels[1:]:
+            name = f"{c}={lev}"
+            exprs.append((pl.col(c).cast(pl.String) == lev).cast(pl.Float64).alias(name))
+            design_cols.append((name, c))
+    periods_present = tuple(sorted(frame[PERIOD_ID].unique().to_list()))
+    added: list[str] = []
+    if period_effects:
+        for p in periods_present[1:]:  # loop over periods, not rows
+            name = f"period={panel.grid[p]}"
+            exprs.append((pl.col(PERIOD_ID) == p).cast(pl.Float64).alias(name))
+            added.append(name)
+    return Sample(outcome, kinds, info, frame.select(exprs), tuple(design_cols), tuple(added), base_levels,
+                  tuple(constant_text), periods_present, rows_keyed, dropped, miss_counts, tuple(treated),
+                  tuple(invariant))
+
+
+# --------------------------------------------------------------------------- stage 2: the design
+
+
+@dataclass(frozen=True)
+class Design:
+    """Each design column's class and the numeric panel the fits see.
+
+    ``periods`` are the period effects (the added dummies first, then the user's
+    period-only regressors), ``x`` the other time-varying columns (nearly-time-invariant
+    ones included), ``z`` the time-invariant ones, ``constant`` columns with one value.
+    ``pa`` holds every column of ``periods + x`` in X and of ``z`` in Z.
+    """
+
+    periods: tuple[str, ...]
+    x: tuple[str, ...]
+    z: tuple[str, ...]
+    constant: tuple[str, ...]
+    col_kind: dict[str, str]
+    pa: models.PanelArrays
+    unbalanced: bool
+    period: np.ndarray  # each row's index in the period grid
+
+
+def _design(sample: Sample) -> Design:
+    """Stage 2: period effects, X and Z from the kinds, and the numeric arrays."""
+    periods, x, z, constant = list(sample.added_periods), [], [], list(sample.constant_text)
+    col_kind: dict[str, str] = {p: "period-only" for p in sample.added_periods}
+    for name, parent in sample.design_cols:
+        k = sample.kinds[parent]
+        col_kind[name] = k
+        if k == "constant":
+            constant.append(name)
+        elif k == "time-invariant":
+            z.append(name)
+        elif k == "period-only":
+            periods.append(name)
         else:
-            coef = np.zeros(0)
-            resid = 1.0
-        if resid <= tol:
-            dropped[j] = [kept[i] for i in range(len(kept)) if abs(coef[i]) > 1e-6]
+            x.append(name)
+    num = sample.num
+    codes_raw = num[UNIT_ID].to_numpy().astype(np.int64)
+    _, codes = np.unique(codes_raw, return_inverse=True)
+
+    def matrix(cols: list[str]) -> np.ndarray:
+        if not cols:
+            return np.zeros((num.height, 0))
+        return np.asfortranarray(num.select(cols).to_numpy().astype(float))
+
+    y = num["__pa_y"].to_numpy().astype(float)
+    xcols = periods + x
+    pa = models.PanelArrays(codes=codes.astype(np.int64), n=int(codes.max()) + 1, y=y, x=matrix(xcols),
+                            x_names=tuple(xcols), z=matrix(z), z_names=tuple(z))
+    period = num[PERIOD_ID].to_numpy().astype(np.int64)
+    return Design(tuple(periods), tuple(x), tuple(z), tuple(constant), col_kind, pa, not pa.balanced_counts, period)
+
+
+def _moved_to_z(design: Design, moved: tuple[str, ...]) -> Design:
+    """The design with time-varying columns that have no within variation to speak of moved to Z."""
+    pa = design.pa
+    keep = [c for c in pa.x_names if c not in moved]
+    xi = [pa.x_names.index(c) for c in keep]
+    mi = [pa.x_names.index(c) for c in moved]
+    new = models.PanelArrays(codes=pa.codes, n=pa.n, y=pa.y, x=np.asfortranarray(pa.x[:, xi]), x_names=tuple(keep),
+                             z=np.asfortranarray(np.column_stack([pa.z, pa.x[:, mi]])),
+                             z_names=(*pa.z_names, *moved))
+    return dataclasses.replace(design, x=tuple(c for c in design.x if c not in moved), z=(*design.z, *moved),
+                               col_kind={**design.col_kind, **{c: "time-invariant" for c in moved}}, pa=new)
+
+
+# --------------------------------------------------------------------------- stage 4: roles
+
+
+@dataclass(frozen=True)
+class Roles:
+    """X1, X2, Z1, Z2 (X1 includes the period effects, which are exogenous) and the
+    Hausman-Taylor set-up built from them and from what the within fit identifies."""
+
+    x1: tuple[str, ...]
+    x2: tuple[str, ...]
+    z1: tuple[str, ...]
+    z2: tuple[str, ...]
+    declared: bool
+    spec: models.HTSpec
+
+    @property
+    def order_met(self) -> bool:
+        """The order condition k1 >= g2."""
+        return self.spec.k1 >= self.spec.g2
+
+    def as_dict(self) -> dict[str, list[str]]:
+        """The contract's ``roles``."""
+        return {"X1": list(self.x1), "X2": list(self.x2), "Z1": list(self.z1), "Z2": list(self.z2)}
+
+
+def _roles(design: Design, ident: identification.Identification, corr: list[str] | None,
+           mundlak_p: dict[str, float | None], alpha: float, expand: dict[str, list[str]]) -> Roles:
+    """Stage 4: roles from the declaration (or, without one, X2 from the Mundlak evidence)."""
+    x_user = ident.levels_x(ident.x)
+    z_names = ident.levels_z(ident.z)
+    periods = list(ident.periods)
+    declared = corr is not None
+    if declared:
+        corr_cols: set[str] = set()
+        for c in corr or []:
+            corr_cols.update(expand.get(c, [c]))
+        x2 = [c for c in x_user if c in corr_cols]
+        z2 = [c for c in z_names if c in corr_cols]
+    else:
+        x2 = [c for c in x_user if mundlak_p.get(c) is not None and mundlak_p[c] < alpha]
+        z2 = []
+    x1_user = [c for c in x_user if c not in x2]
+    z1 = [c for c in z_names if c not in z2]
+    x1 = x1_user + periods
+    spec = models.HTSpec(
+        x1=tuple(x1), x2=tuple(x2), z1=tuple(z1), z2=tuple(z2), means=tuple(x1_user),
+        within=tuple(c for c in ident.within if c in x1 or c in x2),
+        compared=tuple(c for c in ident.within if c in x1_user or c in x2),
+    )
+    return Roles(tuple(x1), tuple(x2), tuple(z1), tuple(z2), declared, spec)
+
+
+# --------------------------------------------------------------------------- stage 5: fits
+
+
+@dataclass(frozen=True)
+class Fits:
+    """The diagnostic fits (None where they cannot be computed) and the tests that compare them."""
+
+    within: models.Fit | None
+    between: models.Fit | None
+    random: models.Fit | None
+    components: models.Components | None
+    mundlak: models.Mundlak | None
+    hausman_taylor: models.HausmanTaylor | None
+    hausman_random: models.WaldTest | None
+    too_few_units: bool
+    unit_parameters: int
+    units: int
+    richer: dict[str, instrument_sets.RicherFit | None] = dataclasses.field(default_factory=dict)
+    richer_note: str | None = None
+    attrition: dict[str, Any] | None = None
+
+
+def _early_fits(design: Design, ident: identification.Identification, outcome_invariant: bool,
+                pool: ThreadPoolExecutor) -> tuple[models.Fit | None, models.Fit | None, models.Mundlak | None,
+                                                    Any, bool, int]:
+    """Within, between and Mundlak now; random effects started in ``pool``. Returns (within,
+    between, mundlak, random-effects job, too few units, unit-level parameters)."""
+    pa = design.pa
+    wf = models.within(pa, list(ident.within))[0] if not outcome_invariant else None
+    k_unit = 1 + len(ident.between_z) + len(ident.between_means)
+    too_few = pa.n <= k_unit
+    if too_few:
+        return wf, None, None, None, True, k_unit
+    bf, _ = models.between(pa, list(ident.between_means), list(ident.between_z))
+    lev = pa.select(ident.levels_x(pa.x_names), ident.levels_z(ident.z))
+    mu = models.mundlak(lev, mean_columns=[*ident.mundlak_tested, *ident.mundlak_controls],
+                        tested=list(ident.mundlak_tested))
+    job = pool.submit(models.random_effects, lev, wf, bf) if wf is not None else None
+    return wf, bf, mu, job, False, k_unit
+
+
+def _late_fits(design: Design, ident: identification.Identification, roles: Roles, wf: models.Fit | None,
+               bf: models.Fit | None, mu: models.Mundlak | None, job: Any, too_few: bool,
+               k_unit: int) -> Fits:
+    """Hausman-Taylor beside the running random-effects job, then the Hausman contrast."""
+    ht = None
+    if roles.order_met and job is not None:
+        lev = design.pa.select(list(roles.x1) + list(roles.x2), list(roles.z1) + list(roles.z2))
+        ht = models.hausman_taylor(lev, [], [], [], [], within_fit=wf, spec=roles.spec)
+    re = comp = h = None
+    if job is not None:
+        re, comp = job.result()
+        compared = [c for c in ident.within if c in ident.x]  # period effects excluded
+        if compared:
+            h = models.hausman_within_random(wf, re, compared)
+    return Fits(wf, bf, re, comp, mu, ht, h, too_few, k_unit, design.pa.n)
+
+
+def _beyond(design: Design, ident: identification.Identification, roles: Roles, fits: Fits,
+            settings: Settings) -> Fits:
+    """Amemiya-MaCurdy and Breusch-Mizon-Schmidt beside Hausman-Taylor (at its theta), and the
+    Nijman-Verbeek attrition test on the within fit."""
+    richer: dict[str, instrument_sets.RicherFit | None] = {instrument_sets.AM: None, instrument_sets.BMS: None}
+    note = None
+    ht = fits.hausman_taylor
+    if ht is not None:
+        _, dense = np.unique(design.period, return_inverse=True)
+        periods = int(dense.max()) + 1
+        sp = roles.spec
+        size = 2 + len(sp.z1) + len(sp.means) * (periods + 1) + periods + len(sp.x2) * periods
+        limit = int(settings.get(SECTION, "richer_max_instruments"))
+        if size > limit:
+            note = (f"not computed: the richer instrument sets would hold about {size} unit-level columns "
+                    f"(instruments.richer_max_instruments is {limit})")
+        elif 2 * size >= design.pa.n:
+            note = (f"not computed: about {size} unit-level instrument columns for {design.pa.n} units (they need "
+                    "more than twice as many units as columns, or the first stage fits the units almost exactly)")
         else:
-            kept.append(j)
-    return kept, dropped
+            lev = design.pa.select(list(roles.x1) + list(roles.x2), list(roles.z1) + list(roles.z2))
+            for which in richer:
+                richer[which] = instrument_sets.fit(lev, sp, ht.components.theta, dense.astype(np.int64), periods,
+                                                    which, ht.fit, tol=float(settings.get(SECTION, "collinear_tol")))
+    attrition_test = None
+    if fits.within is not None and ident.within:
+        attrition_test = attrition.nijman_verbeek(design.pa, list(ident.within), design.period)
+    return dataclasses.replace(fits, richer=richer, richer_note=note, attrition=attrition_test)
+
+
+# --------------------------------------------------------------------------- stage 6: validity
+
+
+@dataclass(frozen=True)
+class Validity:
+    """Per excluded X1 mean: its difference-in-Sargan p and its state (see strength.USABLE_STATE)."""
+
+    c_p: dict[str, float | None]
+    states: dict[str, tuple[str, str]]
+
+
+def _validity(roles: Roles, ht: models.HausmanTaylor | None, test_alpha: float) -> Validity:
+    """Which excluded X1 means the over-identification tests accept, reject, or cannot judge.
+
+    With a Z2 column the Mundlak evidence is disturbed (Z2 is correlated with u_i and with
+    the X1 means), so the over-identification tests decide. A mean is invalid when its
+    difference-in-Sargan (C) test rejects while the Sargan test of the other means
+    accepts. The other means are accepted when the Sargan test of the whole set accepts,
+    or when a mean was found invalid (the set without it is accepted); when the whole set
+    is rejected and no single mean can be blamed (with one over-identifying restriction
+    there are no C tests at all) they are undecided. Just identified, nothing can be
+    tested and validity is assumed.
+    """
+    c_p: dict[str, float | None] = {}
+    states: dict[str, tuple[str, str]] = {}
+    if ht is None or not roles.spec.g2:
+        return Validity(c_p, states)
+    excluded = [c for c in roles.spec.means if c not in roles.spec.x1_between_only]
+    culprits = []
+    for c in excluded:
+        t, rest = ht.c_tests.get(c), ht.rest_sargan.get(c)
+        c_p[c] = None if t is None else t.p
+        if t is not None and t.p is not None and rest is not None and rest.p is not None:
+            if t.p < test_alpha <= rest.p:
+                culprits.append(c)
+    if ht.sargan is None or ht.sargan.p is None:
+        return Validity(c_p, {c: ("assumed", "just identified, assumed") for c in excluded})
+    basis = "c-test" if any(v is not None for v in c_p.values()) else "sargan"
+    for c in excluded:
+        if c in culprits:
+            states[c] = ("invalid", "c-test")
+        elif ht.sargan.p >= test_alpha:
+            states[c] = ("accepted", basis)
+        elif culprits:
+            states[c] = ("accepted", f"c-test; the set without {', '.join(culprits)} is accepted")
+        else:
+            states[c] = ("undecided", "sargan rejects the set; no single mean can be blamed")
+    return Validity(c_p, states)
+
+
+# --------------------------------------------------------------------------- stage 7: strength
+
+
+@dataclass(frozen=True)
+class Strength:
+    """Instrument strength rows for the unit-level endogenous columns, X2 first stages,
+    the candidate search and the suggested sets."""
+
+    rows: tuple[dict[str, Any], ...]
+    cragg_donald: float | None
+    candidates: tuple[dict[str, Any], ...]
+    suggestion: tuple[dict[str, Any], ...]
+    x2_rows: tuple[dict[str, Any], ...]
+
+
+def _strength(design: Design, ident: identification.Identification, roles: Roles, fits: Fits,
+              validity: Validity, settings: Settings, pool: ThreadPoolExecutor) -> Strength:
+    """Stage 7: Z2 strength (and X2 identified between units only), the X2 first stages beside it."""
+    get = lambda key: settings.get(SECTION, key)  # noqa: E731
+    size, thumb, lee = int(get("stock_yogo_size")), float(get("rule_of_thumb_f")), float(get("lee_f"))
+    sp, pa = roles.spec, design.pa
+    excluded = [c for c in sp.means if c not in sp.x1_between_only]
+    x2_within = [c for c in roles.x2 if c in sp.within]
+    x2_job = None
+    if x2_within and fits.hausman_taylor is not None:
+        x2_job = pool.submit(strength.x2_first_stage, pa, list(sp.within), x2_within, list(roles.z1),
+                             fits.hausman_taylor.components.theta, list(sp.means))
+    rows: list[dict[str, Any]] = []
+    cd = None
+    cands: list[dict[str, Any]] = []
+    sugg: list[dict[str, Any]] = []
+    if sp.g2 and not fits.too_few_units:
+        rows, cd = strength.z2_strength(pa, excluded, list(roles.z1), list(roles.z2), size=size, rule_of_thumb=thumb,
+                                        order_met=roles.order_met, included_means=sp.x1_between_only,
+                                        endogenous_means=sp.x2_between_only)
+        for r in rows:
+            f = r["partial_f"]
+            r["p"] = strength.f_pvalue(f, r["df"])
+            r["at_least_rule_of_thumb"] = None if f is None else bool(f >= thumb)
+            r["at_least_lee"] = None if f is None else bool(f >= lee)
+        _anderson_rubin(rows, design, roles, fits, excluded, float(get("anderson_rubin_level")))
+        mundlak_p = {r["column"]: r["p"] for r in fits.mundlak.per_column} if fits.mundlak is not None else {}
+        if roles.z2:
+            cands, sugg = strength.candidates(
+                pa, excluded, list(roles.z1), list(roles.z2), mundlak_p, alpha=float(get("mundlak_alpha")),
+                size=size, rule_of_thumb=thumb, max_exhaustive=int(get("exhaustive_candidates")),
+                c_p=validity.c_p, states=validity.states or None, included_means=sp.x1_between_only)
+    x2_rows = x2_job.result() if x2_job is not None else []
+    for r in x2_rows:
+        r["within_share"] = ident.within_share.get(r["endogenous"])
+    return Strength(tuple(rows), cd, tuple(cands), tuple(sugg), tuple(x2_rows))
+
+
+def _anderson_rubin(rows: list[dict[str, Any]], design: Design, roles: Roles, fits: Fits, excluded: list[str],
+                    level: float) -> None:
+    """Attach the Anderson-Rubin set to the strength row when there is one unit-level endogenous
+    column and it is a Z2 column; otherwise say why it is not computed."""
+    sp, pa = roles.spec, design.pa
+    for r in rows:
+        r["anderson_rubin"] = None
+    if len(rows) != 1 or sp.x2_between_only or fits.within is None or not roles.order_met:
+        why = ("several unit-level endogenous columns" if len(rows) > 1 else
+               "the endogenous column is an X2 column identified between units only" if sp.x2_between_only else
+               "no within fit or the order condition fails")
+        for r in rows:
+            r["anderson_rubin_note"] = f"not computed: {why} (the set is for one Z2 column)"
+        return
+    wf = fits.within
+    d = pa.ybar - pa.xbar[:, [pa.x_names.index(c) for c in wf.names]] @ wf.coef if wf.names else pa.ybar.copy()
+    z = pa.zbar[:, pa.z_names.index(rows[0]["endogenous"])]
+    included = strength.unit_included(pa, list(roles.z1), sp.x1_between_only)
+    rows[0]["anderson_rubin"] = strength.anderson_rubin(d, z, included, pa.xbar[:, [pa.x_names.index(c)
+                                                                                       for c in excluded]], level)
 
 
 # --------------------------------------------------------------------------- the command
@@ -234,465 +656,377 @@ def instruments(
 
 def _run(panel: Panel, outcome: str, regs: list[str], corr: list[str] | None, period_effects: bool,
          invariant: list[str], settings: Settings) -> InstrumentsResult:
-    from auditor.variation import compute_variation
-
     get = lambda key: settings.get(SECTION, key)  # noqa: E731
-    findings: list[Finding] = []
-    n_examples = int(get("examples"))
+    sample = _sample(panel, outcome, regs, period_effects, invariant, settings)
+    design = _design(sample)
+    ident = identification.decide(design.pa, design.periods, design.x, design.z, tol=float(get("collinear_tol")),
+                                  near_r2=float(get("near_collinear_r2")))
+    if ident.moved_to_z:
+        design = _moved_to_z(design, ident.moved_to_z)
+    outcome_invariant = sample.kinds[outcome] in ("time-invariant", "constant")
+    expand: dict[str, list[str]] = {}
+    for name, parent in sample.design_cols:
+        expand.setdefault(parent, []).append(name)
+    alpha, test_alpha = float(get("mundlak_alpha")), float(get("test_alpha"))
+    # Fits that do not feed one another run side by side in a second thread (numpy
+    # releases the interpreter lock): random effects beside the roles and Hausman-Taylor,
+    # the X2 first stages beside the Z2 strength. Findings are sorted at the end.
+    with ThreadPoolExecutor(max_workers=1) as pool:
+        wf, bf, mu, job, too_few, k_unit = _early_fits(design, ident, outcome_invariant, pool)
+        mundlak_p = {r["column"]: r["p"] for r in mu.per_column} if mu is not None else {}
+        roles = _roles(design, ident, corr, mundlak_p, alpha, expand)
+        fits = _beyond(design, ident, roles, _late_fits(design, ident, roles, wf, bf, mu, job, too_few, k_unit),
+                       settings)
+        validity = _validity(roles, fits.hausman_taylor, test_alpha)
+        stren = _strength(design, ident, roles, fits, validity, settings, pool)
+    findings = readiness_findings(sample, design, ident, roles, fits, validity, stren, settings)
+    return _document(panel, sample, design, ident, roles, fits, stren, findings, settings)
 
-    # kinds from the profile's variation pass, on the columns used only
-    var = compute_variation(dataclasses.replace(panel, columns=(outcome, *regs)), settings)
-    info = {r["name"]: r for r in var.columns.to_dicts()}
-    kinds = {c: info[c]["kind"] for c in (outcome, *regs)}
 
-    schema = panel.schema
-    frame = panel.frame.select([UNIT_ID, PERIOD_ID, outcome, *regs])
+# --------------------------------------------------------------------------- the document
 
-    # --treat-as-invariant: the unit's most common value (ties: the smallest)
-    for c in invariant:
-        modes = (
-            frame.filter(~_missing(c, schema[c]))
-            .group_by([UNIT_ID, c]).len()
-            .sort([UNIT_ID, "len", c], descending=[False, True, False])
-            .group_by(UNIT_ID, maintain_order=True)
-            .agg(pl.col(c).first().alias("__pa_mode"), pl.len().alias("__pa_values"))
-        )
-        changed = int((modes["__pa_values"] > 1).sum())
-        frame = frame.join(modes.select(UNIT_ID, "__pa_mode"), on=UNIT_ID, how="left").with_columns(
-            pl.col("__pa_mode").alias(c)
-        ).drop("__pa_mode")
-        old = kinds[c]
-        kinds[c] = "time-invariant"
-        findings.append(make(
+
+def _tests(fits: Fits, roles: Roles, alpha: float) -> dict[str, Any]:
+    tests: dict[str, Any] = {"mundlak": None, "hausman_within_random": None, "overidentification": None,
+                             "hausman_within_ht": None}
+    if fits.mundlak is not None:
+        mu = fits.mundlak
+        tests["mundlak"] = {**mu.to_dict(), "alpha": alpha,
+                            "flagged": [r["column"] for r in mu.per_column if r["p"] is not None and r["p"] < alpha]}
+    if fits.hausman_random is not None:
+        tests["hausman_within_random"] = fits.hausman_random.to_dict()
+    ht = fits.hausman_taylor
+    if ht is not None and ht.sargan is not None:
+        tests["overidentification"] = {**ht.sargan.to_dict(), "name": "Sargan"}
+    if ht is not None and ht.hausman_within is not None:
+        tests["hausman_within_ht"] = ht.hausman_within.to_dict()
+    by_est: dict[str, Any] = {"hausman_taylor": tests["overidentification"]}
+    against: dict[str, Any] = {}
+    for name, rf in fits.richer.items():
+        by_est[name] = None if rf is None or rf.sargan is None else {**rf.sargan.to_dict(), "name": "Sargan"}
+        against[name] = None if rf is None or rf.against_ht is None else rf.against_ht.to_dict()
+    tests["overidentification_by_estimator"] = by_est if ht is not None else None
+    tests["hausman_against_ht"] = against if ht is not None else None
+    tests["attrition"] = fits.attrition
+    return tests
+
+
+def _document(panel: Panel, sample: Sample, design: Design, ident: identification.Identification, roles: Roles,
+              fits: Fits, stren: Strength, findings: list[Finding], settings: Settings) -> InstrumentsResult:
+    get = lambda key: settings.get(SECTION, key)  # noqa: E731
+    estimates: dict[str, Any] = {
+        "within": fits.within.to_dict() if fits.within is not None else None,
+        "between": fits.between.to_dict() if fits.between is not None else None,
+        "random": fits.random.to_dict() if fits.random is not None else None,
+        "mundlak": fits.mundlak.fit.to_dict() if fits.mundlak is not None else None,
+        "hausman_taylor": fits.hausman_taylor.fit.to_dict() if fits.hausman_taylor is not None else None,
+    }
+    for name in (instrument_sets.AM, instrument_sets.BMS):
+        rf = fits.richer.get(name)
+        estimates[name] = rf.estimates() if rf is not None else None
+
+    components = fits.components.to_dict() if fits.components is not None else None
+    if fits.hausman_taylor is not None:
+        components = {**(components or {}), "hausman_taylor": fits.hausman_taylor.components.to_dict()}
+    role_of = {c: r for r, cols in roles.as_dict().items() for c in cols}
+    not_id = [d.to_dict() for d in _set_aside(sample, design, ident)]
+    lost_everywhere = {d["column"] for d in not_id if "hausman_taylor" in d["fits"] and "within" in d["fits"]}
+    columns = []
+    kind = {**design.col_kind, **{c: "time-invariant" for c in ident.moved_to_z}}
+    for name, parent in [(p, None) for p in sample.added_periods] + list(sample.design_cols):
+        fits_of = [f for f in identification.ALL_FITS if ident.identifies(f, name)]
+        columns.append({
+            "column": name,
+            "source": parent,
+            "kind": kind.get(name, "period-only"),
+            "role": role_of.get(name) or ("not-identified" if name in lost_everywhere or not fits_of else None),
+            "period_effect": name in design.periods,
+            "identified_by": fits_of,
+            "within_share": ident.within_share.get(name),
+            "base_level": sample.base_levels.get(parent) if parent in sample.base_levels else None,
+        })
+    sample_doc = {
+        "rows": int(design.pa.nobs), "units": int(design.pa.n), "rows_dropped": int(sample.dropped),
+        "periods": len(sample.periods_present), "period_effects": bool(sample.added_periods),
+        "balanced": not design.unbalanced,
+    }
+    return InstrumentsResult(
+        outcome=sample.outcome,
+        roles=roles.as_dict(),
+        roles_declared=roles.declared,
+        period_effects=tuple(ident.periods),
+        columns=tuple(columns),
+        not_identified=tuple(not_id),
+        near_collinear=tuple({"column": n.column, "fit": n.fit, "r2": n.r2, "with": list(n.with_)}
+                             for n in ident.near),
+        order_condition={"k1": roles.spec.k1, "g2": roles.spec.g2, "met": roles.order_met},
+        strength=stren.rows,
+        x2_strength=stren.x2_rows,
+        cragg_donald=stren.cragg_donald,
+        candidates=stren.candidates,
+        suggestion=stren.suggestion,
+        tests=_tests(fits, roles, float(get("mundlak_alpha"))),
+        estimates=estimates,
+        variance_components=components,
+        sample=sample_doc,
+        reference_f={"rule_of_thumb": float(get("rule_of_thumb_f")), "lee": float(get("lee_f"))},
+        findings=tuple(sort_findings(findings)),
+        source=panel.source,
+    )
+
+
+def _set_aside(sample: Sample, design: Design, ident: identification.Identification) -> list[identification.Dependence]:
+    """Every column some fit sets aside: constants first, then what identification found."""
+    out = [identification.Dependence(c, "constant", (), identification.ALL_FITS) for c in design.constant]
+    return out + list(ident.set_aside)
+
+
+# --------------------------------------------------------------------------- findings
+
+
+def readiness_findings(sample: Sample, design: Design, ident: identification.Identification, roles: Roles,
+                       fits: Fits, validity: Validity, stren: Strength, settings: Settings) -> list[Finding]:
+    """Every finding of ``instruments``, from the stages' values (no statistic is computed here)."""
+    out: list[Finding] = []
+    out += _sample_findings(sample, settings)
+    out += _identification_findings(sample, design, ident, settings)
+    out += _fit_findings(sample, roles, fits, settings)
+    out += _instrument_findings(roles, fits, validity, stren, settings)
+    return out
+
+
+def _sample_findings(sample: Sample, settings: Settings) -> list[Finding]:
+    out = []
+    for c, old, changed in sample.treated:
+        out.append(make(
             "treated-as-invariant", settings,
             f"'{c}' ({old}) was replaced by each unit's most common value, changing {changed} units, "
             "so it now enters as time-invariant and any real changes in it are ignored.",
             column=c, count=changed,
         ))
-
-    # complete cases of the outcome and every regressor
-    rows_keyed = frame.height
-    miss_counts = frame.select([_missing(c, schema[c]).sum().alias(c) for c in (outcome, *regs)]).row(0, named=True)
-    frame = frame.filter(~pl.any_horizontal([_missing(c, schema[c]) for c in (outcome, *regs)]))
-    dropped = rows_keyed - frame.height
-    if frame.height == 0:
-        worst = sorted(miss_counts, key=lambda c: -miss_counts[c])[:3]
-        raise fail("instruments-no-complete-rows", rows=rows_keyed, dropped=dropped,
-                   worst=", ".join(f"'{c}' ({miss_counts[c]} missing)" for c in worst))
-    n_units = frame.select(pl.col(UNIT_ID).n_unique()).item()
-    if n_units < 2:
-        code = frame[UNIT_ID][0]
-        label = panel.unit_labels([int(code)])
-        raise fail("instruments-one-unit", unit=", ".join(str(v) for v in label[0].values()) if label else code)
-    if dropped:
-        worst = [c for c in sorted(miss_counts, key=lambda c: -miss_counts[c]) if miss_counts[c]][:3]
-        findings.append(make(
+    if sample.dropped:
+        mc = sample.miss_counts
+        worst = [c for c in sorted(mc, key=lambda c: -mc[c]) if mc[c]][:3]
+        out.append(make(
             "rows-dropped", settings,
-            f"{dropped} of {rows_keyed} rows lack the outcome or a regressor and are left out of every fit, "
-            f"which changes the sample the models describe (most missing: "
-            f"{', '.join(f'{c} {miss_counts[c]}' for c in worst)}).",
-            count=dropped,
+            f"{sample.dropped} of {sample.rows_keyed} rows lack the outcome or a regressor and are left out of every "
+            f"fit, which changes the sample the models describe (most missing: "
+            f"{', '.join(f'{c} {mc[c]}' for c in worst)}).",
+            count=sample.dropped,
         ))
-
-    # numeric design columns: indicators for text, floats for the rest
-    design_cols: list[tuple[str, str]] = []  # (name, parent)
-    exprs: list[pl.Expr] = [pl.col(UNIT_ID), pl.col(PERIOD_ID), pl.col(outcome).cast(pl.Float64).alias("__pa_y")]
-    not_identified: list[dict[str, Any]] = []
-    base_levels: dict[str, Any] = {}
-    for c in regs:
-        if _is_text(schema[c]):
-            counts = frame.group_by(pl.col(c).cast(pl.String)).len().sort(["len", c], descending=[True, False])
-            levels = counts[c].to_list()
-            base_levels[c] = levels[0]
-            if len(levels) == 1:
-                not_identified.append({"column": c, "reason": "constant", "with": []})
-                continue
-            for lev in levels[1:]:
-                name = f"{c}={lev}"
-                exprs.append((pl.col(c).cast(pl.String) == lev).cast(pl.Float64).alias(name))
-                design_cols.append((name, c))
-        else:
-            exprs.append(pl.col(c).cast(pl.Float64).alias(c))
-            design_cols.append((c, c))
-    periods_present = sorted(frame[PERIOD_ID].unique().to_list())
-    period_cols: list[str] = []
-    if period_effects:
-        for p in periods_present[1:]:  # loop over periods, not rows
-            name = f"period={panel.grid[p]}"
-            exprs.append((pl.col(PERIOD_ID) == p).cast(pl.Float64).alias(name))
-            period_cols.append(name)
-    num = frame.select(exprs)
-
-    # roles from kinds
-    expand: dict[str, list[str]] = {}
-    for name, parent in design_cols:
-        expand.setdefault(parent, []).append(name)
-    user_x: list[str] = []
-    user_z: list[str] = []
-    col_kind: dict[str, str] = {}
-    for name, parent in design_cols:
-        k = kinds[parent]
-        col_kind[name] = k
-        absorbed = bool(info[parent].get("absorbed_by_time")) and parent not in invariant
-        if k == "constant":
-            not_identified.append({"column": name, "reason": "constant", "with": []})
-        elif k == "time-invariant":
-            user_z.append(name)
-        elif k == "period-only" and period_effects:
-            not_identified.append({"column": name, "reason": "period-only", "with": ["period effects"]})
-        elif absorbed and period_effects:
-            not_identified.append({"column": name, "reason": "absorbed-by-time", "with": ["period effects"]})
-        else:
-            user_x.append(name)
-            if k == "nearly-time-invariant":
-                findings.append(make(
-                    "nearly-invariant-regressor", settings,
-                    f"'{name}' changes for only {info[parent]['units_changing']} units, so as a time-varying "
-                    f"regressor its within coefficient rests on those few changes (pass --treat-as-invariant "
-                    f"{parent} if they are coding errors).",
-                    column=name, count=info[parent]["units_changing"],
-                ))
-
-    codes_raw = num[UNIT_ID].to_numpy().astype(np.int64)
-    uniq, codes = np.unique(codes_raw, return_inverse=True)
-    n = len(uniq)
-    y = num["__pa_y"].to_numpy().astype(float)
-    tol = float(get("collinear_tol"))
-
-    def matrix(cols: list[str]) -> np.ndarray:
-        if not cols:
-            return np.zeros((len(y), 0))
-        return num.select(cols).to_numpy().astype(float)
-
-    # within rank: period dummies first, then the user's X in order
-    order = period_cols + user_x
-    xmat = matrix(order)
-    counts = np.bincount(codes, minlength=n).astype(float)
-    xbar = models.unit_means(codes, n, xmat, counts)
-    xw = xmat - xbar[codes]
-    if order:
-        gram = xw.T @ xw
-        wss = np.diag(gram).copy()
-        overall = counts @ xbar / counts.sum()
-        tss = wss + counts @ ((xbar - overall) ** 2)  # TSS = WSS + BSS (methods.md section 2)
-        share_of = {c: (float(w / t) if t > 0 else None) for c, w, t in zip(order, wss, tss, strict=True)}
-        no_within = [j for j in range(len(order)) if tss[j] > 0 and wss[j] <= tol * tss[j]]
-        for j in no_within:
-            gram[j, :] = 0.0
-            gram[:, j] = 0.0
-        kept, dep = sequential_rank(gram, tol)
-    else:
-        kept, dep, no_within = [], {}, []
-        share_of = {}
-    moved_to_z = [order[j] for j in no_within if order[j] in user_x]
-    for j, with_ in dep.items():
-        name = order[j]
-        if j in no_within:
-            continue
-        not_identified.append({"column": name, "reason": "collinear-within",
-                               "with": [order[i] for i in with_] or ["the unit effects"]})
-    kept_names = {order[j] for j in kept}
-    x_period = [c for c in period_cols if c in kept_names]
-    x_user = [c for c in user_x if c in kept_names]
-    z_all = user_z + moved_to_z
-    for c in moved_to_z:
-        col_kind[c] = "time-invariant"
-
-    # unit-level rank: [1, Z, X means] in that order
-    zmat_rows = matrix(z_all)
-    zbar = models.unit_means(codes, n, zmat_rows, counts)
-    x_names = x_user + x_period
-    xi_kept = [order.index(c) for c in x_names]
-    ub = np.column_stack([np.ones(n), zbar, xbar[:, xi_kept]])
-    unit_names = ["const", *z_all, *[f"mean({c})" for c in x_names]]
-    ugram = ub.T @ ub
-    ukept, udep = sequential_rank(ugram, tol)
-    z_names = [z for i, z in enumerate(z_all, start=1) if i in ukept]
-    for j, with_ in udep.items():
-        if 1 <= j <= len(z_all):
-            not_identified.append({"column": z_all[j - 1], "reason": "collinear-between",
-                                   "with": [unit_names[i] for i in with_]})
-    mean_columns = [c for i, c in enumerate(x_names, start=1 + len(z_all)) if i in ukept]
-    zi = [z_all.index(c) for c in z_names]
-    pa = models.PanelArrays(codes=codes, n=n, y=y, x=xmat[:, xi_kept], x_names=tuple(x_names),
-                            z=zmat_rows[:, zi], z_names=tuple(z_names))
-
-    for item in not_identified:
-        findings.append(make(
-            "not-identified", settings, _not_identified_message(item), column=item["column"],
-        ))
-
-    # outcome and unit counts
-    outcome_invariant = kinds[outcome] in ("time-invariant", "constant")
-    if outcome_invariant:
-        findings.append(make(
+    if sample.kinds[sample.outcome] in ("time-invariant", "constant"):
+        out.append(make(
             "outcome-time-invariant", settings,
-            f"'{outcome}' never changes within a unit, so a within (fixed-effects) model has nothing to explain "
-            "and only between-unit comparisons are possible.",
-            column=outcome,
+            f"'{sample.outcome}' never changes within a unit, so a within (fixed-effects) model has nothing to "
+            "explain and only between-unit comparisons are possible.",
+            column=sample.outcome,
         ))
-    k_unit = 1 + len(z_names) + len(mean_columns)
-    too_few = n <= k_unit
-    if too_few:
-        findings.append(make(
-            "too-few-units", settings,
-            f"{n} units cannot identify {k_unit} unit-level parameters (constant, time-invariant regressors and "
-            "unit means), so the between, random-effects, Mundlak and Hausman-Taylor fits are not computed.",
-            count=n,
-        ))
-
-    # ---- fits
-    alpha = float(get("mundlak_alpha"))
-    test_alpha = float(get("test_alpha"))
-    estimates: dict[str, Any] = {"within": None, "between": None, "random": None, "mundlak": None,
-                                 "hausman_taylor": None}
-    tests: dict[str, Any] = {"mundlak": None, "hausman_within_random": None, "overidentification": None,
-                             "hausman_within_ht": None}
-    components: dict[str, Any] | None = None
-    wf = bf = mu = None
-    # Fits that do not feed one another run side by side in a second thread (numpy
-    # releases the interpreter lock): random effects beside the roles and
-    # Hausman-Taylor, the X2 first stages beside the Z2 strength. Findings are sorted
-    # at the end, so the order they are made in does not matter.
-    pool = ThreadPoolExecutor(max_workers=1)
-    random_job = None
-    if not outcome_invariant:
-        wf, ew = models.within(pa)
-        estimates["within"] = wf.to_dict()
-    if not too_few:
-        bf, _ = models.between(pa, mean_columns)
-        estimates["between"] = bf.to_dict()
-        mundlak_tested = [c for c in x_user if c in mean_columns]
-        mu = models.mundlak(pa, mean_columns, tested=mundlak_tested,
-                            within_fit=(wf, ew) if wf is not None else None)
-        tests["mundlak"] = {**mu.to_dict(), "alpha": alpha,
-                            "flagged": [r["column"] for r in mu.per_column if r["p"] is not None and r["p"] < alpha]}
-        estimates["mundlak"] = mu.fit.to_dict()
-        if wf is not None:
-            random_job = pool.submit(models.random_effects, pa, wf, bf)
-    mundlak_p: dict[str, float | None] = {}
-    if mu is not None:
-        mundlak_p = {r["column"]: r["p"] for r in mu.per_column}
-
-    # ---- roles
-    declared = corr is not None
-    corr_cols: set[str] = set()
-    for c in corr or []:
-        corr_cols.update(expand.get(c, [c]))
-    if declared:
-        x2 = [c for c in x_user if c in corr_cols]
-        z2 = [c for c in z_names if c in corr_cols]
-    else:
-        x2 = [c for c in x_user if (mundlak_p.get(c) is not None and mundlak_p[c] < alpha)]
-        z2 = []
-        findings.append(make(
-            "correlated-not-declared", settings,
-            "No regressor was declared correlated with the unit effect: X2 is suggested from the Mundlak evidence "
-            f"({', '.join(x2) or 'none'}), which assumes every time-invariant regressor is exogenous, and whether "
-            "a time-invariant regressor is correlated cannot be tested from the data, so any Z2 must be declared "
-            "with --correlated.",
-            count=len(x2),
-        ))
-    x1 = [c for c in x_user if c not in x2] + x_period
-    z1 = [c for c in z_names if c not in z2]
-    mean_instr = [c for c in x_user if c not in x2 and c in mean_columns]
-    k1, g2 = len(mean_instr), len(z2)
-    order_met = k1 >= g2
-    if not order_met:
-        findings.append(make(
-            "order-condition", settings,
-            f"With {k1} exogenous time-varying regressors (X1) for {g2} correlated time-invariant ones (Z2) "
-            "the Hausman-Taylor model is not identified: declare fewer regressors correlated or add "
-            "exogenous time-varying ones.",
-            count=g2 - k1,
-        ))
-
-    # invalid instruments and correlated-with-effect
-    if mu is not None:
-        if mu.joint.p is not None and mu.joint.p < alpha:
-            findings.append(make(
-                "correlated-with-effect", settings,
-                f"The Mundlak test finds the unit means of the time-varying regressors jointly significant "
-                f"(p = {mu.joint.p:.3g}), so some regressors are correlated with the unit effect and random "
-                "effects would be biased.",
-                count=sum(1 for r in mu.per_column if r["p"] is not None and r["p"] < alpha),
-                examples=[{"column": r["column"], "p": float(f"{r['p']:.3g}")} for r in mu.per_column
-                          if r["p"] is not None and r["p"] < alpha][:n_examples],
-            ))
-    # ---- Hausman-Taylor (beside random effects, when both are fitted)
-    ht = None
-    if order_met and random_job is not None:
-        ht = models.hausman_taylor(pa, x1, x2, z1, z2, within_fit=wf, mean_instruments=mean_instr)
-    if random_job is not None:
-        re, comp = random_job.result()
-        estimates["random"] = re.to_dict()
-        components = comp.to_dict()
-        if x_user:
-            h = models.hausman_within_random(wf, re, x_user)
-            tests["hausman_within_random"] = h.to_dict()
-            if h.p is not None and h.p < test_alpha:
-                findings.append(make(
-                    "random-effects-rejected", settings,
-                    f"The Hausman test rejects random effects (p = {h.p:.3g}), so its estimates of the "
-                    "time-varying coefficients are likely biased and within or Hausman-Taylor should be used.",
-                ))
-            if h.positive_definite is False:
-                findings.append(make(
-                    "hausman-not-positive-definite", settings,
-                    f"In the Hausman test {h.note}, so the test has fewer degrees of freedom than coefficients.",
-                ))
-    if ht is not None:
-        estimates["hausman_taylor"] = ht.fit.to_dict()
-        if ht.sargan is not None:
-            tests["overidentification"] = {**ht.sargan.to_dict(), "name": "Sargan"}
-            tests["hausman_within_ht"] = ht.hausman_within.to_dict()
-            bad = [(nm, t) for nm, t in (("Sargan", ht.sargan), ("within vs Hausman-Taylor", ht.hausman_within))
-                   if t.p is not None and t.p < test_alpha]
-            for nm, t in bad:
-                findings.append(make(
-                    "overidentification-rejected", settings,
-                    f"The {nm} test rejects the over-identifying restrictions (p = {t.p:.3g}), so at least one "
-                    "X1 column is probably correlated with the unit effect and the Hausman-Taylor estimates "
-                    "are suspect.",
-                ))
-        components = {**(components or {}), "hausman_taylor": ht.components.to_dict()}
-
-    # validity of each X1 mean as an instrument. With a Z2 column the Mundlak evidence is
-    # disturbed (Z2 is correlated with u_i and with the X1 means), so the over-identification
-    # tests decide: the difference-in-Sargan (C) test where the other means still
-    # over-identify the model (invalid when C rejects and the Sargan of the rest accepts);
-    # with one over-identifying restriction the Sargan test of the whole set, which cannot
-    # single a column out; just identified, nothing can be tested and validity is assumed.
-    c_tests: dict[str, float | None] = {}
-    invalid: dict[str, tuple[bool, str]] = {}
-    if ht is not None and z2:
-        for c in mean_instr:
-            t, rest = ht.c_tests.get(c), ht.rest_sargan.get(c)
-            c_tests[c] = None if t is None else t.p
-            if t is not None and t.p is not None and rest is not None and rest.p is not None:
-                invalid[c] = (t.p < test_alpha and rest.p >= test_alpha, "c-test")
-            elif ht.sargan is not None:
-                invalid[c] = (False, "sargan" if ht.sargan.p >= test_alpha else "sargan rejects, column unknown")
-            else:
-                invalid[c] = (False, "just identified, assumed")
-    if declared:
-        for c in mean_instr:
-            cp, mp = c_tests.get(c), mundlak_p.get(c)
-            if invalid.get(c, (False, ""))[0]:
-                text = (f"the difference-in-Sargan test of its unit mean gives p = {cp:.3g} while the other "
-                        "instruments pass")
-            elif c not in invalid and mp is not None and mp < alpha:
-                text = f"its Mundlak p = {mp:.3g} says it is correlated with the unit effect"
-            else:
-                continue
-            findings.append(make(
-                "invalid-instrument", settings,
-                f"'{c}' is declared exogenous (X1) but {text}, so its unit mean is probably an invalid instrument "
-                "and Hausman-Taylor would be biased.",
-                column=c,
-            ))
-
-    # ---- strength
-    size = int(get("stock_yogo_size"))
-    thumb = float(get("rule_of_thumb_f"))
-    lee = float(get("lee_f"))
-    z_rows: list[dict[str, Any]] = []
-    cd = None
-    cands: list[dict[str, Any]] = []
-    sugg: list[dict[str, Any]] = []
-    x2_rows: list[dict[str, Any]] = []
-    x2_job = None
-    if x2 and ht is not None:
-        x2_job = pool.submit(strength.x2_first_stage, pa, x1, x2, z1, ht.components.theta, means=mean_instr)
-    if z2 and not too_few:
-        z_rows, cd = strength.z2_strength(pa, mean_instr, z1, z2, size=size, rule_of_thumb=thumb,
-                                          order_met=order_met)
-        for r in z_rows:
-            f = r["partial_f"]
-            r["p"] = strength.f_pvalue(f, r["df"])
-            r["at_least_rule_of_thumb"] = None if f is None else bool(f >= thumb)
-            r["at_least_lee"] = None if f is None else bool(f >= lee)
-            if r["verdict"] == "weak":
-                basis = "conditional F" if r["verdict_basis"] == "conditional_f" else "first-stage F"
-                value = r["conditional_f"] if r["verdict_basis"] == "conditional_f" else f
-                crit = r["critical_value"] if r["critical_value"] is not None else thumb
-                findings.append(make(
-                    "weak-instrument", settings,
-                    f"The unit means of X1 explain '{r['endogenous']}' weakly ({basis} {value:.3g} below "
-                    f"{crit:.4g}), so its Hausman-Taylor coefficient is imprecise and biased towards random effects.",
-                    column=r["endogenous"],
-                ))
-        cands, sugg = strength.candidates(pa, mean_instr, z1, z2, mundlak_p, alpha=alpha, size=size,
-                                          rule_of_thumb=thumb, max_exhaustive=int(get("exhaustive_candidates")),
-                                          c_p=c_tests, invalid=invalid)
-    within_share = {c: share_of.get(c) for c in pa.x_names}
-    if x2_job is not None:
-        x2_rows = x2_job.result()
-        for r in x2_rows:
-            share = within_share.get(r["endogenous"])
-            r["within_share"] = share
-            if share is not None and share < float(get("weak_within_share")):
-                findings.append(make(
-                    "weak-within-variation", settings,
-                    f"Only {share:.1%} of the variation of '{r['endogenous']}' is within units, so its own within "
-                    "deviation is a weak instrument and its Hausman-Taylor coefficient is imprecise.",
-                    column=r["endogenous"],
-                ))
-
-    pool.shutdown()
-
-    # ---- the document
-    roles = {"X1": x1, "X2": x2, "Z1": z1, "Z2": z2}
-    role_of = {c: r for r, cols in roles.items() for c in cols}
-    not_id_cols = {d["column"] for d in not_identified}
-    columns = []
-    for name, parent in design_cols + [(p, None) for p in period_cols]:
-        columns.append({
-            "column": name,
-            "source": parent,
-            "kind": col_kind.get(name, "period-only"),
-            "role": role_of.get(name) or ("not-identified" if name in not_id_cols else None),
-            "within_share": within_share.get(name),
-            "base_level": base_levels.get(parent) if parent in base_levels else None,
-        })
-    sample = {
-        "rows": int(len(y)), "units": int(n), "rows_dropped": int(dropped), "periods": len(periods_present),
-        "period_effects": period_effects,
-    }
-    return InstrumentsResult(
-        outcome=outcome,
-        roles=roles,
-        roles_declared=declared,
-        columns=tuple(columns),
-        not_identified=tuple(not_identified),
-        order_condition={"k1": k1, "g2": g2, "met": order_met},
-        strength=tuple(z_rows),
-        x2_strength=tuple(x2_rows),
-        cragg_donald=cd,
-        candidates=tuple(cands),
-        suggestion=tuple(sugg),
-        tests=tests,
-        estimates=estimates,
-        variance_components=components,
-        sample=sample,
-        reference_f={"rule_of_thumb": thumb, "lee": lee},
-        findings=sort_findings(findings),
-        source=panel.source,
-    )
+    return out
 
 
-def _not_identified_message(item: dict[str, Any]) -> str:
-    c, reason, with_ = item["column"], item["reason"], item.get("with") or []
+_FIT_WORDS = {"within": "within", "between": "between", "random": "random-effects", "mundlak": "Mundlak",
+              "hausman_taylor": "Hausman-Taylor"}
+
+
+def _listing(names: Sequence[str], limit: int = 6) -> str:
+    names = list(names)
+    if len(names) <= limit:
+        return ", ".join(names)
+    return f"{', '.join(names[:3])}, ..., {names[-1]} ({len(names)} columns)"
+
+
+def dependence_message(dep: identification.Dependence) -> str:
+    """One plain sentence (or two) on why a column is set aside and by which fits."""
+    c, reason, with_ = dep.column, dep.reason, [w for w in dep.with_ if w != "const"]
+    everywhere = set(dep.fits) >= set(identification.ALL_FITS)
     if reason == "constant":
         return f"'{c}' has one value everywhere, so no model can estimate its coefficient and it is left out."
+    members = _listing(with_) if with_ else "the constant"
+    choice = (f" The coefficients of {members} in {'every fit' if everywhere else 'the within fit'} depend on "
+              "which member of this set is left out; the other coefficients do not.") if with_ else ""
     if reason == "period-only":
-        return (f"'{c}' varies only across periods, so with period effects in the model its coefficient is not "
-                "identified and it is left out.")
-    if reason == "absorbed-by-time":
-        return (f"'{c}' moves in step with the periods for every unit (like age), so with unit and period effects "
-                "its coefficient is not identified and it is left out.")
-    if reason == "collinear-within":
-        return (f"Within units '{c}' is an exact linear combination of {', '.join(with_)}, so its within "
-                "coefficient is not identified and it is left out; the other coefficients do not depend on this choice.")
-    return (f"Across units '{c}' is an exact linear combination of {', '.join(with_)}, so its coefficient is not "
-            "identified and it is left out.")
+        return (f"'{c}' varies only across periods and the other period effects ({members}) already span it, so no "
+                f"fit can estimate its coefficient and it is left out.{choice}")
+    if not everywhere and reason in ("absorbed-by-time", "collinear-within"):
+        how = ("moves in step with the period effects" if reason == "absorbed-by-time"
+               else "is an exact linear combination of")
+        kept = ", ".join(_FIT_WORDS[f] for f in identification.LEVELS_FITS)
+        return (f"Within units '{c}' {how} {members}, so the within fit cannot estimate it and sets it aside; the "
+                f"{kept} fits keep it, since in levels it is identified.{choice}")
+    if dep.fits == (identification.BETWEEN,):
+        return (f"Across units the mean of '{c}' is an exact linear combination of {members}, so the between fit "
+                "leaves it out; the other fits keep it.")
+    return (f"'{c}' is an exact linear combination of {members} in levels and within units, so no fit can "
+            f"estimate its coefficient and it is left out.{choice}")
+
+
+def _identification_findings(sample: Sample, design: Design, ident: identification.Identification,
+                             settings: Settings) -> list[Finding]:
+    out = []
+    for name, parent in sample.design_cols:
+        if sample.kinds[parent] == "nearly-time-invariant" and name in ident.x:
+            units = sample.info[parent]["units_changing"]
+            out.append(make(
+                "nearly-invariant-regressor", settings,
+                f"'{name}' changes for only {units} units, so as a time-varying regressor its within coefficient "
+                f"rests on those few changes (pass --treat-as-invariant {parent} if they are coding errors).",
+                column=name, count=units,
+            ))
+    for dep in _set_aside(sample, design, ident):
+        out.append(make("not-identified", settings, dependence_message(dep), column=dep.column))
+    for near in ident.near:
+        where = "within units" if near.fit == "within" else "in levels"
+        out.append(make(
+            "near-collinear", settings,
+            f"{where.capitalize()} {near.r2:.4%} of the variation of '{near.column}' is explained by "
+            f"{_listing(near.with_)}; it is kept (only exact dependence sets a column aside), but its coefficient "
+            "is imprecise and sensitive to small changes in the data.",
+            column=near.column,
+        ))
+    return out
+
+
+def _fit_findings(sample: Sample, roles: Roles, fits: Fits, settings: Settings) -> list[Finding]:
+    out = []
+    test_alpha = float(settings.get(SECTION, "test_alpha"))
+    alpha = float(settings.get(SECTION, "mundlak_alpha"))
+    n_examples = int(settings.get(SECTION, "examples"))
+    if fits.too_few_units:
+        out.append(make(
+            "too-few-units", settings,
+            f"{fits.units} units cannot identify {fits.unit_parameters} unit-level parameters (constant, "
+            "time-invariant regressors and unit means), so the between, random-effects, Mundlak and "
+            "Hausman-Taylor fits are not computed.",
+            count=fits.units,
+        ))
+    if not roles.declared:
+        out.append(make(
+            "correlated-not-declared", settings,
+            "No regressor was declared correlated with the unit effect: X2 is suggested from the Mundlak evidence "
+            f"({', '.join(roles.x2) or 'none'}), which assumes every time-invariant regressor is exogenous, and "
+            "whether a time-invariant regressor is correlated cannot be tested from the data, so any Z2 must be "
+            "declared with --correlated.",
+            count=len(roles.x2),
+        ))
+    if not roles.order_met:
+        sp = roles.spec
+        out.append(make(
+            "order-condition", settings,
+            f"With {sp.k1} excluded unit means of exogenous time-varying regressors (X1) for {sp.g2} correlated "
+            "columns identified between units only (Z2) the Hausman-Taylor model is not identified: declare fewer "
+            "regressors correlated or add exogenous time-varying ones.",
+            count=sp.g2 - sp.k1,
+        ))
+    mu = fits.mundlak
+    if mu is not None and mu.joint.p is not None and mu.joint.p < alpha:
+        flagged = [r for r in mu.per_column if r["p"] is not None and r["p"] < alpha]
+        out.append(make(
+            "correlated-with-effect", settings,
+            f"The Mundlak test finds the unit means of the time-varying regressors jointly significant "
+            f"(p = {format_p(mu.joint.p)}): the evidence is against the random-effects assumption that no "
+            "time-varying regressor is correlated with the unit effect, and if it fails the random-effects "
+            "estimates are inconsistent.",
+            count=len(flagged),
+            examples=[{"column": r["column"], "p": r["p"]} for r in flagged][:n_examples],
+        ))
+    h = fits.hausman_random
+    if h is not None and h.p is not None and h.p < test_alpha:
+        out.append(make(
+            "random-effects-rejected", settings,
+            f"The Hausman test rejects equal within and random-effects coefficients (p = {format_p(h.p)}): the "
+            "evidence is against the random-effects assumption, under which both are consistent; if it fails, "
+            "the random-effects estimates of the time-varying coefficients are inconsistent.",
+        ))
+    if h is not None and h.note:
+        out.append(make("hausman-not-positive-definite", settings,
+                        f"In the Hausman test {h.note}, so the test has fewer degrees of freedom than coefficients."))
+    out += _beyond_findings(fits, test_alpha, settings)
+    ht = fits.hausman_taylor
+    if ht is not None:
+        for nm, t in (("Sargan", ht.sargan), ("within vs Hausman-Taylor", ht.hausman_within)):
+            if t is not None and t.p is not None and t.p < test_alpha:
+                out.append(make(
+                    "overidentification-rejected", settings,
+                    f"The {nm} test rejects the over-identifying restrictions (p = {format_p(t.p)}): the evidence "
+                    "is against the exogeneity of at least one X1 column's unit mean, and if one is correlated with "
+                    "the unit effect the Hausman-Taylor estimates are inconsistent.",
+                ))
+    return out
+
+
+def _beyond_findings(fits: Fits, test_alpha: float, settings: Settings) -> list[Finding]:
+    """Attrition, and the extra restrictions of the richer instrument sets."""
+    out = []
+    a = fits.attrition
+    if a is not None and a["p"] is not None and a["p"] < test_alpha:
+        out.append(make(
+            "selective-attrition", settings,
+            f"The Nijman-Verbeek test finds that being observed in the next period is related to the outcome "
+            f"within units (t = {a['t']:.3g}, p = {format_p(a['p'])}): leaving the panel appears related to the "
+            "idiosyncratic error, so the within estimates on the observed rows may be inconsistent.",
+        ))
+    for name, rf in fits.richer.items():
+        if rf is None:
+            continue
+        label = instrument_sets.NAMES[name]
+        for what, t in (("Sargan test", rf.sargan), ("contrast with Hausman-Taylor", rf.against_ht)):
+            if t is not None and t.p is not None and t.p < test_alpha:
+                out.append(make(
+                    "richer-set-rejected", settings,
+                    f"The {label} {what} rejects (p = {format_p(t.p)}): the evidence is against the stronger "
+                    f"exogeneity its extra instruments assume, and if it fails the {label} estimates are "
+                    "inconsistent.",
+                ))
+    if fits.richer_note:
+        out.append(make("richer-sets-skipped", settings, f"Amemiya-MaCurdy and Breusch-Mizon-Schmidt are "
+                                                          f"{fits.richer_note}."))
+    return out
+
+
+def _instrument_findings(roles: Roles, fits: Fits, validity: Validity, stren: Strength,
+                         settings: Settings) -> list[Finding]:
+    out = []
+    alpha = float(settings.get(SECTION, "mundlak_alpha"))
+    thumb = float(settings.get(SECTION, "rule_of_thumb_f"))
+    mundlak_p = {r["column"]: r["p"] for r in fits.mundlak.per_column} if fits.mundlak is not None else {}
+    if roles.declared:
+        for c in roles.spec.means:
+            state = validity.states.get(c)
+            cp, mp = validity.c_p.get(c), mundlak_p.get(c)
+            if state is not None and state[0] == "invalid":
+                text = (f"the difference-in-Sargan test of its unit mean gives p = {format_p(cp)} while the other "
+                        "instruments pass")
+            elif state is None and mp is not None and mp < alpha:
+                text = f"its Mundlak p = {format_p(mp)} says it is correlated with the unit effect"
+            else:
+                continue
+            out.append(make(
+                "invalid-instrument", settings,
+                f"'{c}' is declared exogenous (X1) but {text}, so its unit mean is probably an invalid instrument "
+                "and the Hausman-Taylor estimates would be inconsistent.",
+                column=c,
+            ))
+    for r in stren.rows:
+        if r["verdict"] != "weak":
+            continue
+        basis = "conditional F" if r["verdict_basis"] == "conditional_f" else "first-stage F"
+        value = r["conditional_f"] if r["verdict_basis"] == "conditional_f" else r["partial_f"]
+        crit = r["critical_value"] if r["critical_value"] is not None else thumb
+        out.append(make(
+            "weak-instrument", settings,
+            f"The unit means of X1 explain '{r['endogenous']}' weakly ({basis} {value:.3g} below {crit:.4g}, "
+            f"{r['critical_source']}), so its Hausman-Taylor coefficient is imprecise and, in finite samples, "
+            "biased towards random effects.",
+            column=r["endogenous"],
+        ))
+    weak_share = float(settings.get(SECTION, "weak_within_share"))
+    for r in stren.x2_rows:
+        share = r.get("within_share")
+        if share is not None and share < weak_share:
+            out.append(make(
+                "weak-within-variation", settings,
+                f"Only {share:.1%} of the variation of '{r['endogenous']}' is within units, so its own within "
+                "deviation is a weak instrument and its Hausman-Taylor coefficient is imprecise.",
+                column=r["endogenous"],
+            ))
+    return out

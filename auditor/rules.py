@@ -473,10 +473,14 @@ def _gx_value(v: Any) -> Any:
     return v
 
 
-def build_expectations(columns: list[ColumnRules] | tuple[ColumnRules, ...]) -> list[Any]:
+def build_expectations(
+    columns: list[ColumnRules] | tuple[ColumnRules, ...], alias: dict[str, str] | None = None
+) -> list[Any]:
     """The great-expectations expectation objects for the row rules of ``columns``.
 
     Each carries ``meta = {"rule": ..., "column": ...}`` naming the contract rule.
+    ``alias``: the name each column has in the batch (great-expectations refuses an
+    empty column name), when it differs from its own.
     """
     gx = _gx()
     E = gx.expectations
@@ -485,7 +489,7 @@ def build_expectations(columns: list[ColumnRules] | tuple[ColumnRules, ...]) -> 
         def meta(rule: str, col: ColumnRules = col) -> dict[str, str]:
             return {"rule": rule, "column": col.name}
 
-        c = col.name
+        c = col.name if alias is None else alias[col.name]
         if col.min is not None:
             out.append(E.ExpectColumnValuesToBeBetween(column=c, min_value=_gx_value(col.min), meta=meta("min")))
         if col.max is not None:
@@ -513,6 +517,10 @@ def build_expectations(columns: list[ColumnRules] | tuple[ColumnRules, ...]) -> 
     return out
 
 
+def _has_row_rules(col: ColumnRules) -> bool:
+    return any(v not in (None, False) for v in (col.min, col.max, col.allowed, col.max_missing, col.pattern, col.unique))
+
+
 def to_pandas_once(frame: pl.DataFrame) -> Any:
     """``frame`` as a pandas DataFrame in which every value compares as in the data.
 
@@ -527,6 +535,14 @@ def to_pandas_once(frame: pl.DataFrame) -> Any:
     """
     import pandas as pd
 
+    # 128-bit integers have no pandas or arrow-to-pandas type: exact Python ints (objects)
+    wide = [c for c, dt in frame.schema.items() if dt in (pl.Int128, pl.UInt128)]
+    if wide:
+        order = frame.columns
+        out = to_pandas_once(frame.drop(wide))
+        for c in wide:
+            out[c] = pd.Series(frame[c].to_list(), dtype=object)
+        return out[order]
     casts: list[pl.Expr] = []
     nullable: dict[Any, Any] = {}
     counts = frame.null_count().row(0, named=True) if frame.width else {}
@@ -555,7 +571,8 @@ def to_pandas_once(frame: pl.DataFrame) -> Any:
 def _row_rules_gx(
     columns: list[ColumnRules], panel: Panel, limit: int, timings: dict[str, float]
 ) -> dict[str, list[RuleResult]]:
-    expectations = build_expectations(columns)
+    alias = {c.name: f"c{i}" for i, c in enumerate(columns)}  # the batch's column names
+    expectations = build_expectations(columns, alias)
     if not expectations:
         timings.setdefault("conversion", 0.0)
         timings.setdefault("expectations", 0.0)
@@ -566,7 +583,7 @@ def _row_rules_gx(
     clock = _time.perf_counter()
     names = sorted({e.meta["column"] for e in expectations}, key=list(panel.schema).index)
     frame = panel.frame
-    pdf = to_pandas_once(frame.select(names))
+    pdf = to_pandas_once(frame.select(pl.col(n).alias(alias[n]) for n in names))
     timings["conversion"] = _time.perf_counter() - clock
 
     clock = _time.perf_counter()
@@ -594,7 +611,7 @@ def _row_rules_gx(
     located: dict[tuple[str, str], Any] = {}
     if failing_keys:
         again = [
-            e for e in build_expectations(columns)
+            e for e in build_expectations(columns, alias)
             if (e.meta["column"], e.meta["rule"]) in failing_keys
         ]
         located = validate(again, "panel_audit_examples", "SUMMARY")
@@ -1141,6 +1158,12 @@ def export_suite(rules_path: str | Path) -> dict[str, Any]:
     gx = _gx()
     gx.get_context(mode="ephemeral")  # suites need an active context
     suite = gx.ExpectationSuite(name=Path(rules_path).stem)
+    for col in contract.columns:
+        if not col.name.strip() and _has_row_rules(col):
+            raise fail(
+                "contract-engine", rule="(any)", column=col.name,
+                reason="an expectation suite needs a column name; name the column in the data and the contract",
+            )  # fmt: skip
     for e in build_expectations(contract.columns):
         suite.add_expectation(e)
     doc = suite.to_json_dict()

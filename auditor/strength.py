@@ -65,6 +65,17 @@ class FirstStage:
     df: tuple[int, int]
 
 
+def _centred(included: np.ndarray, *arrays: np.ndarray) -> tuple[np.ndarray, ...]:
+    """Copies with every column centred on its mean except the constant (``included[:, 0]``),
+    so that partialling on [1, ...] keeps its digits when a column holds 100,000 plus a small
+    variation (the constant absorbs the shift either way: every statistic here is unchanged)."""
+    inc = np.array(included, dtype=float)
+    if inc.shape[1] > 1:
+        inc[:, 1:] -= inc[:, 1:].mean(axis=0)
+    rest = tuple(np.asarray(a, dtype=float) - np.asarray(a, dtype=float).mean(axis=0) for a in arrays)
+    return (inc, *rest)
+
+
 def _residualise(target: np.ndarray, on: np.ndarray) -> np.ndarray:
     if on.shape[1] == 0:
         return target
@@ -83,9 +94,10 @@ def first_stage(endog: np.ndarray, included: np.ndarray, excluded: np.ndarray) -
     dfd = n - g - k
     if k == 0 or dfd <= 0:
         return FirstStage(None, None, None, (k, dfd))
+    included, endog, excluded = _centred(included, endog, excluded)
     e_r = _residualise(endog, included)
     full = np.column_stack([included, excluded])
-    xtx_inv = np.linalg.pinv(full.T @ full)
+    xtx_inv = models.equilibrated_inv(full.T @ full)
     coef = xtx_inv @ (full.T @ endog)
     e_u = endog - full @ coef
     rss_r, rss_u = float(e_r @ e_r), float(e_u @ e_u)
@@ -96,7 +108,7 @@ def first_stage(endog: np.ndarray, included: np.ndarray, excluded: np.ndarray) -
     cov_hc1 = (n / (n - g - k)) * (xtx_inv @ meat @ xtx_inv)
     b = coef[g:]
     v = cov_hc1[g:, g:]
-    robust = float(b @ np.linalg.pinv(v) @ b) / k
+    robust = float(b @ models.equilibrated_inv(v) @ b) / k
     return FirstStage(float(partial_f), robust, 1.0 - rss_u / rss_r, (k, dfd))
 
 
@@ -111,6 +123,7 @@ def cragg_donald(endog: np.ndarray, included: np.ndarray, excluded: np.ndarray) 
     k = excluded.shape[1]
     if k == 0 or n - g - k <= 0:
         return None
+    included, endog, excluded = _centred(included, endog, excluded)
     yt = _residualise(endog, included)
     xt = _residualise(excluded, included)
     proj, *_ = np.linalg.lstsq(xt, yt, rcond=None)
@@ -138,6 +151,7 @@ def sanderson_windmeijer(endog: np.ndarray, included: np.ndarray, excluded: np.n
     dfn, dfd = k - p + 1, n - g - k
     if dfn <= 0 or dfd <= 0:
         return [None] * p
+    included, endog, excluded = _centred(included, endog, excluded)
     yt = _residualise(endog, included)
     xt = _residualise(excluded, included)
     proj, *_ = np.linalg.lstsq(xt, yt, rcond=None)
@@ -166,6 +180,18 @@ def verdict(f_value: float | None, critical: float | None, fallback: float) -> s
     return "strong" if f_value >= (critical if critical is not None else fallback) else "weak"
 
 
+def unit_included(pa: models.PanelArrays, z1: list[str], included_means: list[str] | tuple[str, ...]) -> np.ndarray:
+    """The included unit-level columns [1, Z1, unit means of X1 columns the within fit
+    cannot identify (they identify themselves)]."""
+    return np.column_stack([np.ones(pa.n), pa.zbar[:, [pa.z_names.index(c) for c in z1]],
+                            pa.xbar[:, [pa.x_names.index(c) for c in included_means]]])
+
+
+def critical_label(size: int) -> str:
+    """Where a critical value comes from, for the maximal size in use."""
+    return f"Stock-Yogo 2005, {int(size)}% maximal size"
+
+
 def z2_strength(
     pa: models.PanelArrays,
     x1: list[str],
@@ -175,25 +201,32 @@ def z2_strength(
     size: int = 10,
     rule_of_thumb: float = 10.0,
     order_met: bool = True,
+    included_means: list[str] | tuple[str, ...] = (),
+    endogenous_means: list[str] | tuple[str, ...] = (),
 ) -> tuple[list[dict[str, Any]], float | None]:
-    """The contract's ``strength`` rows for the Z2 columns and the Cragg-Donald statistic.
+    """The contract's ``strength`` rows for the unit-level endogenous columns and the Cragg-Donald statistic.
 
-    With one Z2 column its verdict compares the partial F with Stock-Yogo
-    (1 endogenous, k1 instruments); with several, the Sanderson-Windmeijer F with
-    Stock-Yogo (1 endogenous, k1 - g2 + 1 instruments), as Sanderson and Windmeijer
-    (2016) propose. Cragg-Donald is None for fewer than two Z2 columns.
+    ``x1``: the X1 columns whose unit means are the excluded instruments; ``z1`` and
+    ``included_means`` (X1 columns identified by their own means) the included ones;
+    the endogenous columns are ``z2`` and the unit means of ``endogenous_means`` (X2
+    columns the within fit cannot identify). With one endogenous column its verdict
+    compares the partial F with Stock-Yogo (1 endogenous, k1 instruments); with
+    several, the Sanderson-Windmeijer F with Stock-Yogo (1 endogenous, k1 - g2 + 1
+    instruments), as Sanderson and Windmeijer (2016) propose. Cragg-Donald is None for
+    fewer than two endogenous columns.
     """
-    if not z2:
+    targets = [(c, "Z2") for c in z2] + [(c, "X2 (between units only)") for c in endogenous_means]
+    if not targets:
         return [], None
-    xi = [pa.x_names.index(c) for c in x1]
-    included = np.column_stack([np.ones(pa.n), pa.zbar[:, [pa.z_names.index(c) for c in z1]]])
-    excluded = pa.xbar[:, xi]
-    endog = pa.zbar[:, [pa.z_names.index(c) for c in z2]]
-    g2, k1 = len(z2), len(x1)
+    included = unit_included(pa, z1, included_means)
+    excluded = pa.xbar[:, [pa.x_names.index(c) for c in x1]]
+    endog = np.column_stack([pa.zbar[:, [pa.z_names.index(c) for c in z2]],
+                             pa.xbar[:, [pa.x_names.index(c) for c in endogenous_means]]])
+    g2, k1 = len(targets), len(x1)
     cd = cragg_donald(endog, included, excluded) if g2 >= 2 and order_met else None
     sw = sanderson_windmeijer(endog, included, excluded) if g2 >= 2 and order_met else [None] * g2
     rows = []
-    for j, col in enumerate(z2):
+    for j, (col, role) in enumerate(targets):
         fs = first_stage(endog[:, j], included, excluded)
         if g2 == 1:
             basis, basis_f, crit = "partial_f", fs.partial_f, stock_yogo(1, k1, size)
@@ -203,14 +236,16 @@ def z2_strength(
         rows.append(
             {
                 "endogenous": col,
-                "role": "Z2",
+                "role": role,
                 "instruments": list(x1),
+                "included": [*z1, *[f"mean({c})" for c in included_means]],
                 "partial_f": fs.partial_f,
                 "robust_f": fs.robust_f,
                 "partial_r2": fs.partial_r2,
                 "df": [fs.df[0], fs.df[1]],
                 "critical_value": crit,
-                "critical_source": "Stock-Yogo 2005, 10% maximal size" if crit is not None else "rule of thumb F >= 10",
+                "critical_size": int(size) if crit is not None else None,
+                "critical_source": critical_label(size) if crit is not None else f"rule of thumb F >= {rule_of_thumb:g}",
                 "conditional_f": sw[j],
                 "verdict_basis": basis,
                 "verdict": verd,
@@ -220,43 +255,39 @@ def z2_strength(
 
 
 def x2_first_stage(
-    pa: models.PanelArrays, x1: list[str], x2: list[str], z1: list[str], theta: np.ndarray,
-    means: list[str] | None = None,
+    pa: models.PanelArrays, within_cols: list[str], x2: list[str], z1: list[str], theta: np.ndarray,
+    means: list[str],
 ) -> list[dict[str, Any]]:
     """Observation-level first stage of each quasi-demeaned X2 column on the HT instruments.
 
-    Instruments A = [X - X means, X1 means, 1, Z1]; ``means`` names the X1 columns
-    whose unit means enter (default all X1). Per X2 column: ``own_f``, the
-    squared classical t of its own within deviation (its clustered variance is zero by
+    Instruments A = [X - X means (``within_cols``, the columns the within fit
+    identifies), X1 means (``means``), 1, Z1]. Per X2 column: ``own_f``, the squared
+    classical t of its own within deviation (its clustered variance is zero by
     construction, since within deviations sum to zero in every unit);
     ``other_f_cluster``, the unit-clustered Wald F (divided by its df) of the X1 means
     and Z1, which carry the between part of the column; and the regression's R2.
     """
     if not x2:
         return []
-    mean_cols = list(x1) if means is None else list(means)
-    th = theta[pa.codes]
-    xcols = x1 + x2
-    xi = [pa.x_names.index(c) for c in xcols]
     zi1 = [pa.z_names.index(c) for c in z1]
-    # A = [X - X means, X1 means, 1, Z1], filled column by column
-    a = np.empty((pa.nobs, len(xi) + len(mean_cols) + 1 + len(zi1)), order="F")  # columns contiguous
-    for k, j in enumerate(xi):  # loop over columns, never over units
-        np.take(np.ascontiguousarray(pa.xbar[:, j]), pa.codes, out=a[:, k], mode="clip")
-        np.subtract(pa.x[:, j], a[:, k], out=a[:, k])
-    base = len(xi)
-    for k, c in enumerate(mean_cols):
-        np.take(np.ascontiguousarray(pa.xbar[:, pa.x_names.index(c)]), pa.codes, out=a[:, base + k], mode="clip")
-    a[:, base + len(mean_cols)] = 1.0
+    nw = len(within_cols)
+    a = np.empty((pa.nobs, nw + len(means) + 1 + len(zi1)), order="F")  # columns contiguous
+    a[:, :nw] = pa.within_deviations(within_cols)
+    for k, c in enumerate(means):
+        np.take(np.ascontiguousarray(pa.xbar[:, pa.x_names.index(c)]), pa.codes, out=a[:, nw + k], mode="clip")
+    a[:, nw + len(means)] = 1.0
     for k, j in enumerate(zi1):
-        np.take(np.ascontiguousarray(pa.zbar[:, j]), pa.codes, out=a[:, base + len(mean_cols) + 1 + k], mode="clip")
-    names = [f"dev({c})" for c in xcols] + [f"mean({c})" for c in mean_cols] + ["const"] + list(z1)
-    other = [f"mean({c})" for c in mean_cols] + list(z1)
+        np.take(np.ascontiguousarray(pa.zbar[:, j]), pa.codes, out=a[:, nw + len(means) + 1 + k], mode="clip")
+    names = [f"dev({c})" for c in within_cols] + [f"mean({c})" for c in means] + ["const"] + list(z1)
+    other = [f"mean({c})" for c in means] + list(z1)
     out = []
-    bread = np.linalg.pinv(a.T @ a)
+    const = nw + len(means)
+    shifts = models.orthogonalise(a, a[:, const].copy(), skip=const)
+    del shifts  # the instruments' span is all that matters here; the constant's coefficient is not reported
+    bread = models.equilibrated_inv(a.T @ a)
     for c in x2:  # loop over the few X2 columns
         j = pa.x_names.index(c)
-        target = pa.x[:, j] - th * np.take(np.ascontiguousarray(pa.xbar[:, j]), pa.codes, mode="clip")
+        target = pa.x[:, j] - models.gather(theta * pa.xbar[:, j], pa.codes)
         fit, e = models.ols(a, target, names, pa.codes, pa.n, bread=bread)
         own = fit.index([f"dev({c})"])
         rest = fit.index(other)
@@ -268,7 +299,7 @@ def x2_first_stage(
             {
                 "endogenous": c,
                 "role": "X2",
-                "instruments": [f"{c} (within deviation)"] + [f"{x} (unit mean)" for x in mean_cols] + list(z1),
+                "instruments": [f"{c} (within deviation)"] + [f"{x} (unit mean)" for x in means] + list(z1),
                 "own_f": float(own_t**2),
                 "other_f_cluster": None if other_w.statistic is None else other_w.statistic / other_w.df,
                 "r2": 1.0 - float(e @ e) / tss if tss > 0 else None,
@@ -278,6 +309,11 @@ def x2_first_stage(
 
 
 # --------------------------------------------------------------------------- candidates
+
+
+#: candidate states: validity accepted by a test, assumed (nothing to test), rejected, or
+#: undecided (the set is rejected and no single mean can be blamed)
+USABLE_STATE = {"accepted": True, "assumed": True, "invalid": False, "undecided": None}
 
 
 def candidates(
@@ -292,35 +328,37 @@ def candidates(
     rule_of_thumb: float = 10.0,
     max_exhaustive: int = 12,
     c_p: dict[str, float | None] | None = None,
-    invalid: dict[str, tuple[bool, str]] | None = None,
+    states: dict[str, tuple[str, str]] | None = None,
+    included_means: list[str] | tuple[str, ...] = (),
 ) -> tuple[list[dict[str, Any]], list[dict[str, Any]]]:
-    """Per (Z2, X1) the partial F of that X1 mean alone, its Mundlak p and whether it is usable;
+    """Per (Z2, X1) the partial F of that X1 mean alone, its Mundlak p and its validity state;
     and per Z2 the suggested set.
 
-    A candidate is unusable when its Mundlak p is below ``alpha`` (it behaves like X2,
-    so as an instrument it would be correlated with u_i). ``invalid`` replaces that
-    rule for the columns it names with the caller's (verdict, basis), for example from
-    the over-identification tests; ``c_p`` is shown beside. The suggestion is the set of
-    usable candidates whose joint partial F is largest relative to its critical value
-    (Stock-Yogo for that many instruments, else the rule of thumb): every subset when
-    there are at most ``max_exhaustive`` usable candidates, a greedy forward search
-    otherwise. Subset statistics come from one cross-product matrix per Z2 column.
+    ``states`` gives, per X1 column, (state, basis) from the over-identification tests,
+    the state one of USABLE_STATE; a column it does not name is judged by its Mundlak p
+    (``invalid`` below ``alpha``, else ``accepted``). ``usable`` is true, false or null
+    (undecided). The suggestion is the set of usable candidates whose joint partial F
+    is largest relative to its critical value (Stock-Yogo for that many instruments,
+    else the rule of thumb): every subset when there are at most ``max_exhaustive``
+    usable candidates, a greedy forward search otherwise. When no candidate is usable
+    but some are undecided, the suggestion is drawn from those and says so
+    (``basis: "undecided"``). Subset statistics come from one cross-product matrix per
+    Z2 column.
     """
     rows: list[dict[str, Any]] = []
     suggestions: list[dict[str, Any]] = []
     if not z2 or not x1:
         return rows, suggestions
-    zi1 = [pa.z_names.index(c) for c in z1]
-    included = np.column_stack([np.ones(pa.n), pa.zbar[:, zi1]])
+    included, excl = _centred(unit_included(pa, z1, included_means), pa.xbar[:, [pa.x_names.index(c) for c in x1]])
     g = included.shape[1]
-    excl = pa.xbar[:, [pa.x_names.index(c) for c in x1]]
     xt = _residualise(excl, included)
     # scale for a well-conditioned cross-product
     scale = np.sqrt(np.sum(xt**2, axis=0))
     scale[scale == 0] = 1.0
     xt = xt / scale
     for col in z2:
-        zt = _residualise(pa.zbar[:, pa.z_names.index(col)], included)
+        target = pa.zbar[:, pa.z_names.index(col)]
+        zt = _residualise(target - target.mean(), included)
         rss_r = float(zt @ zt)
         gram = xt.T @ xt
         cross = xt.T @ zt
@@ -339,46 +377,22 @@ def candidates(
             rss_u = rss_r - ess
             return (ess / k) / (rss_u / dfd) if rss_u > 0 else None
 
-        usable_idx = []
+        usable_idx, undecided_idx = [], []
         for i, x in enumerate(x1):
             p = mundlak_p.get(x)
-            cp = (c_p or {}).get(x)
-            if invalid is not None and x in invalid:
-                usable, basis = not invalid[x][0], invalid[x][1]
+            if states is not None and x in states:
+                state, basis = states[x]
             else:
-                usable, basis = p is None or p >= alpha, "mundlak"
+                state, basis = ("invalid" if p is not None and p < alpha else "accepted"), "mundlak"
+            usable = USABLE_STATE[state]
             if usable:
                 usable_idx.append(i)
+            elif usable is None:
+                undecided_idx.append(i)
             rows.append({"endogenous": col, "instrument": x, "partial_f": joint((i,)), "mundlak_p": p,
-                         "c_p": cp, "usable_basis": basis, "usable": bool(usable)})
-
-        def score(subset: tuple[int, ...]) -> float:
-            f = joint(subset)
-            if f is None:
-                return -np.inf
-            crit = stock_yogo(1, len(subset), size) or rule_of_thumb
-            return f / crit
-
-        best: tuple[int, ...] = ()
-        if usable_idx:
-            if len(usable_idx) <= max_exhaustive:
-                subsets = itertools.chain.from_iterable(
-                    itertools.combinations(usable_idx, r) for r in range(1, len(usable_idx) + 1)
-                )
-                best = max(subsets, key=score)
-            else:
-                chosen: list[int] = []
-                left = list(usable_idx)
-                current = -np.inf
-                while left:
-                    cand = max(left, key=lambda i: score(tuple(chosen + [i])))
-                    s = score(tuple(chosen + [cand]))
-                    if s <= current:
-                        break
-                    chosen.append(cand)
-                    left.remove(cand)
-                    current = s
-                best = tuple(chosen)
+                         "c_p": (c_p or {}).get(x), "usable_basis": basis, "state": state, "usable": usable})
+        pool, basis = (usable_idx, "usable") if usable_idx else (undecided_idx, "undecided")
+        best = _best_subset(pool, joint, size, rule_of_thumb, max_exhaustive)
         f_best = joint(best) if best else None
         crit = stock_yogo(1, len(best), size) if best else None
         suggestions.append(
@@ -387,10 +401,43 @@ def candidates(
                 "instruments": [x1[i] for i in best],
                 "partial_f": f_best,
                 "critical_value": crit,
+                "critical_source": critical_label(size) if crit is not None else f"rule of thumb F >= {rule_of_thumb:g}",
                 "verdict": verdict(f_best, crit, rule_of_thumb) if best else "not-identified",
+                "basis": basis if best else None,
+                "set_rejected": bool(best) and basis == "undecided",
             }
         )
     return rows, suggestions
+
+
+def _best_subset(pool: list[int], joint: Any, size: int, rule_of_thumb: float,
+                 max_exhaustive: int) -> tuple[int, ...]:
+    """The subset of ``pool`` whose joint F is largest relative to its critical value."""
+
+    def score(subset: tuple[int, ...]) -> float:
+        f = joint(subset)
+        if f is None:
+            return -np.inf
+        crit = stock_yogo(1, len(subset), size) or rule_of_thumb
+        return f / crit
+
+    if not pool:
+        return ()
+    if len(pool) <= max_exhaustive:
+        subsets = itertools.chain.from_iterable(itertools.combinations(pool, r) for r in range(1, len(pool) + 1))
+        return max(subsets, key=score)
+    chosen: list[int] = []
+    left = list(pool)
+    current = -np.inf
+    while left:
+        cand = max(left, key=lambda i: score(tuple(chosen + [i])))
+        s = score(tuple(chosen + [cand]))
+        if s <= current:
+            break
+        chosen.append(cand)
+        left.remove(cand)
+        current = s
+    return tuple(chosen)
 
 
 def f_pvalue(f_value: float | None, df: tuple[int, int] | list[int]) -> float | None:
@@ -398,3 +445,57 @@ def f_pvalue(f_value: float | None, df: tuple[int, int] | list[int]) -> float | 
     if f_value is None or df[0] <= 0 or df[1] <= 0:
         return None
     return f_sf(f_value, df[0], df[1])
+
+
+# --------------------------------------------------------------------------- Anderson-Rubin
+
+
+def anderson_rubin(d: np.ndarray, z2: np.ndarray, included: np.ndarray, excluded: np.ndarray,
+                   level: float = 0.95) -> dict[str, Any] | None:
+    """The Anderson-Rubin (1949) confidence set for the coefficient of one unit-level endogenous column.
+
+    ``d`` (n,) is y_bar_i - X_bar_i beta_W (Hausman-Taylor step 2), ``z2`` (n,) the endogenous
+    column, ``included`` (n, g; the constant first) and ``excluded`` (n, k) the included and
+    excluded instruments (methods.md section 8). b0 is in the set when the F test of the
+    excluded coefficients in the regression of d - b0 z2 on [included, excluded] does not
+    reject at ``level``: with P the projection on the partialled excluded instruments and
+    kappa = F_crit k / (n - g - k), that is a b0^2 - 2 b b0 + c <= 0 for the quadratic form
+    v'(P - kappa (I - P)) v of v = d - b0 z2. Returns ``{"level", "intervals", "kind"}``:
+    pieces [lo, hi] with None for an infinite end; kind ``interval``, ``two rays``,
+    ``whole line`` or ``empty``.
+    """
+    from auditor.pvalues import f_isf
+
+    n, g = included.shape
+    k = excluded.shape[1]
+    dfd = n - g - k
+    if k == 0 or dfd <= 0:
+        return None
+    included, d, z2, excluded = _centred(included, d, z2, excluded)
+    dt, zt, xt = (_residualise(v, included) for v in (d, z2, excluded))
+    coef_d, *_ = np.linalg.lstsq(xt, dt, rcond=None)
+    coef_z, *_ = np.linalg.lstsq(xt, zt, rcond=None)
+    pd_, pz = xt @ coef_d, xt @ coef_z
+    kappa = f_isf(1.0 - level, k, dfd) * k / dfd
+    a = (1 + kappa) * float(zt @ pz) - kappa * float(zt @ zt)
+    b = (1 + kappa) * float(zt @ pd_) - kappa * float(zt @ dt)
+    c = (1 + kappa) * float(dt @ pd_) - kappa * float(dt @ dt)
+    scale = max(abs(a), abs(b), abs(c), 1e-300)
+    if abs(a) <= 1e-12 * scale:  # linear: -2 b b0 + c <= 0
+        if abs(b) <= 1e-12 * scale:
+            kind, pieces = ("whole line", [[None, None]]) if c <= 0 else ("empty", [])
+        else:
+            root = float(c / (2 * b))
+            kind, pieces = "ray", [[root, None]] if b > 0 else [[None, root]]
+        return {"level": level, "intervals": pieces, "kind": kind}
+    disc = b * b - a * c
+    if a > 0:
+        if disc < 0:
+            return {"level": level, "intervals": [], "kind": "empty"}
+        r = np.sqrt(disc)
+        return {"level": level, "intervals": [[float((b - r) / a), float((b + r) / a)]], "kind": "interval"}
+    if disc <= 0:
+        return {"level": level, "intervals": [[None, None]], "kind": "whole line"}
+    r = np.sqrt(disc)
+    lo, hi = sorted((float((b - r) / a), float((b + r) / a)))
+    return {"level": level, "intervals": [[None, lo], [hi, None]], "kind": "two rays"}

@@ -335,4 +335,69 @@ def structure_findings(panel: Panel, s: Structure, settings: Settings) -> list[F
                 count=d["singleton_units"],
             )
         )
+    twins = key_twins(panel, int(settings.get("profile", "examples")))
+    if twins is not None:
+        units, groups, examples = twins
+        out.append(
+            make(
+                "unit-key-twins",
+                settings,
+                f"{units} units in {groups} groups have ids that differ only by Unicode form (composed or "
+                "decomposed accents, full-width letters) or invisible characters (zero-width, "
+                "direction marks); they are counted as different units: if they are one unit, "
+                "write its id one way.",
+                count=units,
+                examples=examples,
+            )
+        )
     return out
+
+
+_INVISIBLE = r"\p{Cf}"  # format characters: zero-width, direction marks, soft hyphen, ...
+
+
+def key_twins(panel: Panel, limit: int) -> tuple[int, int, list[dict[str, Any]]] | None:
+    """(units, groups, examples) of unit ids that become equal once written in Unicode
+    normal form NFKC without format characters, or None when there are none.
+
+    One pass over the units table (one row per unit), in polars; only text key columns
+    are compared this way (the other key columns must be equal as they are)."""
+    keys = list(panel.unit)
+    text = [k for k in keys if panel.units.schema[k] == pl.String]
+    if not text or panel.n_units < 2:
+        return None
+    folded = [pl.col(k).str.normalize("NFKC").str.replace_all(_INVISIBLE, "").alias(f"__pa_fold_{i}")
+              for i, k in enumerate(text)]
+    table = panel.units.select(keys).with_columns(folded)
+    names = [f"__pa_fold_{i}" for i in range(len(text))]
+    altered = pl.any_horizontal([pl.col(n) != pl.col(k) for n, k in zip(names, text, strict=True)])
+    if not table.select(altered.fill_null(False).any()).item():
+        return None
+    group = [*names, *(k for k in keys if k not in text)]
+    sizes = table.group_by(group).agg(pl.len().alias("__pa_n")).filter(pl.col("__pa_n") > 1)
+    if sizes.height == 0:
+        return None
+    shown = sizes.sort(group).head(limit)
+    members = table.join(shown.select(group), on=group, how="semi", nulls_equal=True).sort(group)
+    examples = []
+    for _, rows in members.group_by(group, maintain_order=True):
+        ids = rows.select(keys).to_dicts()
+        for other in ids[1:]:
+            examples.append({**ids[0], "twin": " ".join(str(other[k]) for k in keys),
+                             "differs_by": _difference(ids[0], other, text)})
+    return int(sizes["__pa_n"].sum()), sizes.height, examples[:limit]
+
+
+def _difference(a: dict[str, Any], b: dict[str, Any], text: list[str]) -> str:
+    """How two twin ids differ, for an example: invisible characters (listed), or form."""
+    import unicodedata
+
+    hidden = sorted({f"U+{ord(ch):04X}" for k in text for ch in str(a[k]) + str(b[k])
+                     if unicodedata.category(ch) == "Cf"})
+    if hidden:
+        return "invisible characters " + " ".join(hidden)
+
+    def wide(v: dict[str, Any]) -> str:
+        return " ".join(f"U+{ord(ch):04X}" for k in text for ch in str(v[k]) if not ch.isascii()) or "none"
+
+    return f"Unicode form: non-ASCII characters {wide(a)} here, {wide(b)} in the twin"

@@ -44,6 +44,7 @@ import polars as pl
 from auditor.load import PERIOD_ID, UNIT_ID, Panel
 
 DENSE_CELLS = 50_000_000  # units x periods up to which the count matrix is held dense
+DENSE_PERIODS = 400  # beyond this many periods the period system stays sparse (no P x P matrix)
 BITMASK_PERIODS = 63  # participation patterns as bit masks up to this many periods
 MAX_WORKERS = 4  # threads of the column pass, at most
 EARLY_ROWS = 65_536  # rows checked first when a one-value-per-period test can fail early
@@ -84,7 +85,7 @@ class ColumnStats:
     m2_i: np.ndarray | None = None
     rhs: np.ndarray | None = None
     wss: float | None = None
-    system: np.ndarray | None = None
+    system: np.ndarray | SparsePeriods | None = None
 
 
 @dataclass(frozen=True)
@@ -102,7 +103,7 @@ class UnitPass:
     unit_rows: np.ndarray
     counts: np.ndarray | None
     structure: pl.DataFrame | None
-    system: np.ndarray | None = None
+    system: np.ndarray | SparsePeriods | None = None
 
 
 def feasible(panel: Panel) -> bool:
@@ -158,7 +159,8 @@ def run_frame(
 
     schema = frame.schema
     numbers = [c for c in columns if _is_number(schema[c])]
-    others = [c for c in columns if c not in set(numbers)]
+    number_set = set(numbers)  # a set built per column made 100,000 columns quadratic
+    others = [c for c in columns if c not in number_set]
     # Every column is independent work: text coding and coded statistics, and the
     # number pass with its exact value count, are tasks for a pool of threads (numpy
     # and polars release the interpreter lock), beside the count matrix's structure
@@ -256,6 +258,8 @@ def period_matrix(
     the :func:`count_matrix` of these rows, when known; ``unit_rows`` and
     ``period_rows`` its sums, when known.
     """
+    if n_periods > DENSE_PERIODS:
+        return SparsePeriods.from_rows(u, t, n_units, n_periods)
     if counts is None and n_units * n_periods <= DENSE_CELLS:
         counts = count_matrix(u, t, n_units, n_periods)
     if counts is not None:
@@ -270,6 +274,83 @@ def period_matrix(
     w = np.divide(1.0, t_i, out=np.zeros(n_units), where=t_i > 0)
     cwc = (m.T @ (sparse.diags(w) @ m)).toarray()
     return np.diag(np.asarray(m.sum(axis=0)).ravel()) - cwc
+
+
+@dataclass(frozen=True)
+class SparsePeriods:
+    """D' M_U D of many periods, never formed: the unit x period row counts C (sparse),
+    the weights 1/T_i and the period row counts n_t, so that D' M_U D v =
+    n_t v - C' (w * (C v)). Memory grows with the rows, not with P x P; the normal
+    equations are solved by conjugate gradients (:meth:`explained`)."""
+
+    counts: Any  # scipy.sparse CSR matrix, units x periods
+    w: np.ndarray
+    n_t: np.ndarray
+
+    @classmethod
+    def from_rows(cls, u: np.ndarray, t: np.ndarray, n_units: int, n_periods: int) -> SparsePeriods:
+        """The system of rows with unit codes ``u`` and period indices ``t``."""
+        from scipy import sparse
+
+        m = sparse.coo_matrix((np.ones(u.size), (u, t)), shape=(n_units, n_periods)).tocsr()
+        m.sum_duplicates()
+        t_i = np.asarray(m.sum(axis=1)).ravel()
+        w = np.divide(1.0, t_i, out=np.zeros(n_units), where=t_i > 0)
+        return cls(m, w, np.asarray(m.sum(axis=0)).ravel())
+
+    def __add__(self, other: SparsePeriods) -> SparsePeriods:
+        """The system of two disjoint sets of units (partitions of a panel)."""
+        from scipy import sparse
+
+        return SparsePeriods(
+            sparse.vstack([self.counts, other.counts]).tocsr(), np.concatenate([self.w, other.w]), self.n_t + other.n_t
+        )
+
+    def times(self, v: np.ndarray) -> np.ndarray:
+        """(D' M_U D) v for a vector or a matrix of columns ``v``."""
+        cv = self.counts @ v
+        cv *= self.w if v.ndim == 1 else self.w[:, None]
+        out = self.counts.T @ cv
+        nv = self.n_t * v if v.ndim == 1 else self.n_t[:, None] * v
+        return nv - out
+
+    def explained(self, rhs: np.ndarray, *, tolerance: float = 1e-11, most: int | None = None) -> np.ndarray:
+        """rhs' (D' M_U D)^+ rhs for each column of ``rhs`` (periods x columns): the sum
+        of squares that period effects explain, NaN for a column not solved.
+
+        Jacobi-preconditioned conjugate gradients from zero: the system is singular
+        (constant on each connected set of periods) but consistent, since each column
+        of ``rhs`` sums to zero over every such set, so the iterates stay in its range
+        and converge to the explained sum of squares. A column is solved when its
+        residual is below ``tolerance`` times its right-hand side; ``most`` iterations
+        (default 4 P + 100) at most."""
+        b = rhs if rhs.ndim == 2 else rhs[:, None]
+        diag = self.n_t - np.asarray(self.counts.multiply(self.counts).T @ self.w).ravel()
+        d = np.where(diag > 1e-12 * max(float(self.n_t.max(initial=0.0)), 1.0), diag, 1.0)[:, None]
+        x = np.zeros_like(b)
+        r = b.copy()
+        z = r / d
+        p = z.copy()
+        rz = (r * z).sum(axis=0)
+        bound = tolerance * np.linalg.norm(b, axis=0)
+        active = np.linalg.norm(r, axis=0) > bound
+        for _ in range(most if most is not None else 4 * b.shape[0] + 100):
+            if not active.any():
+                break
+            ap = self.times(p)
+            pap = (p * ap).sum(axis=0)
+            alpha = np.divide(rz, pap, out=np.zeros_like(rz), where=active & (pap > 0))
+            x += alpha * p
+            r -= alpha * ap
+            active &= np.linalg.norm(r, axis=0) > bound
+            z = r / d
+            rz_new = (r * z).sum(axis=0)
+            beta = np.divide(rz_new, rz, out=np.zeros_like(rz), where=rz > 0)
+            p = z + beta * p
+            rz = rz_new
+        out = (b * x).sum(axis=0)
+        out[active] = np.nan
+        return out
 
 
 @dataclass(frozen=True)
@@ -485,6 +566,9 @@ def _number(ctx: _Context, s: pl.Series, shift: float | None = None, count_value
 
     if whole and max(abs(vmin), abs(vmax)) < 2.0**52:
         changing = m2_i > 0
+    elif whole and s.dtype.is_integer():  # beyond 2**52 floats cannot tell neighbours apart
+        changing = _integer_changing(ctx, s)
+        common["one_value"] = _integer_one_value(ctx, s)
     else:
         changing = _float_changing(x, finite, all_finite, ctx, n_i, mean_i, m2_i, shift, vmin, vmax)
     rhs = wss = system = None
@@ -553,6 +637,26 @@ def _number_values(
     np.copyto(buf, v)
     buf.sort()
     return _runs(buf)
+
+
+def _integer_one_value(ctx: _Context, s: pl.Series) -> bool:
+    """Whether every period holds at most one distinct integer of ``s``, compared exactly."""
+    per_period = pl.DataFrame({"t": ctx.t, "v": s}).group_by("t").agg(pl.col("v").drop_nulls().n_unique())
+    return bool(per_period["v"].max() <= 1) if per_period.height else True
+
+
+def _integer_changing(ctx: _Context, s: pl.Series) -> np.ndarray:
+    """Units holding two different integers, compared exactly in the column's own type
+    (int64 and uint64 extremes, 128-bit integers): a unit changes when its minimum and
+    maximum differ (methods.md, section 3: at least two distinct values)."""
+    per_unit = (
+        pl.DataFrame({"u": ctx.u, "v": s})
+        .group_by("u")
+        .agg((pl.col("v").max() != pl.col("v").min()).fill_null(False).alias("changes"))
+    )
+    out = np.zeros(ctx.n_units, dtype=bool)
+    out[per_unit["u"].to_numpy()] = per_unit["changes"].to_numpy()
+    return out
 
 
 def _float_changing(

@@ -31,7 +31,7 @@ from auditor import unitpass
 from auditor.config import Settings
 from auditor.findings import Finding, make
 from auditor.load import PERIOD_ID, UNIT_ID, Panel, integer_codes
-from auditor.unitpass import ColumnStats, period_matrix
+from auditor.unitpass import ColumnStats, SparsePeriods, period_matrix
 
 KINDS = ("constant", "period-only", "time-invariant", "nearly-time-invariant", "time-varying")
 
@@ -108,7 +108,8 @@ def _text(col: str, dtype: pl.DataType) -> pl.Expr:
 
 
 def _orderable(dtype: pl.DataType) -> bool:
-    return not isinstance(dtype, pl.List | pl.Array | pl.Struct | pl.Object | pl.Null)
+    # nested types (lists, arrays, structs, maps) have no order: counted, never compared
+    return not (dtype.is_nested() or isinstance(dtype, pl.Object | pl.Null))
 
 
 def prepared(
@@ -156,11 +157,14 @@ def unit_exprs(panel: Panel, columns: Sequence[str] | None = None) -> list[pl.Ex
     for c in panel.columns if columns is None else columns:
         a, dt = names[c], panel.schema[c]
         src = f"{a}:x" if is_numeric(dt) else f"{a}:v"
+        # integers keep their own type for the extremes: as floats, neighbours beyond
+        # 2**53 (int64 and uint64 extremes) would look equal
+        ext = f"{a}:v" if dt.is_integer() else src
         if is_numeric(dt) or _orderable(dt):
             out += [
                 pl.col(src).count().alias(f"{a}:n"),
-                pl.col(src).min().alias(f"{a}:min" if is_numeric(dt) else f"{a}:tmin"),
-                pl.col(src).max().alias(f"{a}:max" if is_numeric(dt) else f"{a}:tmax"),
+                pl.col(ext).min().alias(f"{a}:min" if is_numeric(dt) else f"{a}:tmin"),
+                pl.col(ext).max().alias(f"{a}:max" if is_numeric(dt) else f"{a}:tmax"),
             ]
         else:
             out += [pl.col(src).count().alias(f"{a}:n"), pl.col(src).n_unique().alias(f"{a}:nu")]
@@ -252,7 +256,7 @@ class Passes:
     stats: dict[str, ColumnStats]
     per_unit: pl.DataFrame | None
     period_rows: np.ndarray
-    system: np.ndarray | None = None
+    system: np.ndarray | SparsePeriods | None = None
     streaming: bool = False
     duplicate_cells: pl.DataFrame | None = None
     unit_means: dict[str, np.ndarray] = field(default_factory=dict)
@@ -347,9 +351,16 @@ def _polars_passes(
     for c in cols:
         a, dt = names[c], schema[c]
         v = pl.col(f"{a}:v")
-        if not _orderable(dt):
+        if not _orderable(dt) and not dt.is_nested():  # objects, nulls: no value table
             counted.append(c)
             queries.append(prepared(panel, [c], names).select(v.n_unique().alias("d"), pl.lit(0).alias("top")))
+            continue
+        if not _orderable(dt):  # lists, structs, maps: counted by value, as in memory
+            counted.append(c)
+            queries.append(
+                prepared(panel, [c], names).select(v).filter(v.is_not_null()).group_by(v).len()
+                .select(pl.len().alias("d"), pl.col("len").max().alias("top"))
+            )
             continue
         present = n_keyed - int(g[f"{a}:null"]) - int(g.get(f"{a}:nan") or 0)
         distinct = int(g[f"{a}:distinct"])
@@ -564,6 +575,11 @@ def _joined(
     )
 
 
+def _number_value(v: Any) -> Any:
+    """An extreme for an example: integers as they are, other numbers as floats."""
+    return v if isinstance(v, int) and not isinstance(v, bool) else float(v)
+
+
 def _one_value_from(pp: pl.DataFrame, a: str) -> bool:
     """Whether every period holds at most one value, from the per-period table."""
     if f"{a}:pmin" in pp.columns:
@@ -592,15 +608,16 @@ def _stats_from_tables(
     extra: dict[str, Any] = {}
     if moments is not None:
         mean_i = moments[1][codes]
-        lo, hi = pu[f"{a}:min"].to_numpy(), pu[f"{a}:max"].to_numpy()
+        lo_s, hi_s = pu[f"{a}:min"], pu[f"{a}:max"]
         seen = n_i > 0
         if dt.is_float():
+            lo, hi = lo_s.to_numpy(), hi_s.to_numpy()
             unit_mean_abs = np.abs(np.where(seen, mean_i, 0.0) + shift)
             changing = seen & ((hi - lo) > tol * (1.0 + unit_mean_abs))
-        else:
-            changing = seen & (hi != lo)
+        else:  # integers compared in their own type, booleans as 0/1
+            changing = seen & (hi_s != lo_s).fill_null(False).to_numpy()
         idx = np.flatnonzero(changing)[:k]
-        examples = tuple((int(codes[i]), float(lo[i]), float(hi[i])) for i in idx)
+        examples = tuple((int(codes[i]), _number_value(lo_s[int(i)]), _number_value(hi_s[int(i)])) for i in idx)
         extra = {
             "shift": shift,
             "vmin": g.get(f"{a}:min"),
@@ -649,6 +666,7 @@ def compute_variation(panel: Panel, settings: Settings, passes: Passes | None = 
             changing_examples={},
         )
     numeric = [c for c in cols if is_numeric(schema[c])]
+    numeric_set = set(numeric)  # membership per column: a list would be quadratic in columns
     passes = passes if passes is not None else run_passes(panel, settings)
 
     # --- arithmetic on the small tables ------------------------------------------------
@@ -682,7 +700,7 @@ def compute_variation(panel: Panel, settings: Settings, passes: Passes | None = 
             "non_finite": st.non_finite,
             "binary": False,
         }
-        if c in numeric and st.mean_i is not None and st.m2_i is not None:
+        if c in numeric_set and st.mean_i is not None and st.m2_i is not None:
             if st.n_i.size and int(st.n_i.min()) > 0:  # every unit has a value: no copies
                 rec.update(decompose(st.n_i, st.mean_i, st.m2_i))
             else:
@@ -822,12 +840,13 @@ def _absorbed(
     within deviations) come from the ordered pass; streaming reads the rows again.
     """
     cut = float(settings.get("profile", "absorbed_r2"))
+    numeric_set = set(numeric)
     todo = [
         r for r in records
-        if r["name"] in numeric and r["kind"] in ("time-varying", "nearly-time-invariant")
+        if r["name"] in numeric_set and r["kind"] in ("time-varying", "nearly-time-invariant")
     ]
     for r in records:
-        if r["name"] in numeric:
+        if r["name"] in numeric_set:
             r["absorbed_by_time"] = r["kind"] == "period-only"
             r["time_r2"] = 1.0 if r["kind"] == "period-only" else None
     n_keyed = panel.rows - panel.missing_keys
@@ -836,18 +855,29 @@ def _absorbed(
         return basis
     if passes.streaming:
         return _absorbed_streaming(panel, todo, passes, settings, cut)
-    systems: dict[int, tuple[np.ndarray, np.ndarray]] = {}
+    # columns sharing one system (every row has a value) are solved together
+    groups: dict[int, tuple[Any, list[dict[str, Any]]]] = {}
     for r in todo:
         st = passes.stats[r["name"]]
         matrix = st.system if st.system is not None else passes.system
         if st.rhs is None or st.wss is None or matrix is None:
             continue
-        if id(matrix) not in systems:
-            systems[id(matrix)] = np.linalg.eigh(matrix)
-        r2 = _explained(st.rhs, st.wss, systems[id(matrix)])
-        r["time_r2"] = r2
-        r["absorbed_by_time"] = bool(r2 is not None and r2 >= cut)
+        groups.setdefault(id(matrix), (matrix, []))[1].append(r)
+    for matrix, rows in groups.values():
+        stats = [passes.stats[r["name"]] for r in rows]
+        shares = _explained_shares(
+            np.column_stack([st.rhs for st in stats]), [float(st.wss or 0.0) for st in stats], _solver(matrix)
+        )
+        for r, r2 in zip(rows, shares, strict=True):
+            r["time_r2"] = r2
+            r["absorbed_by_time"] = bool(r2 is not None and r2 >= cut)
     return basis
+
+
+def _solver(matrix: np.ndarray | SparsePeriods) -> tuple[np.ndarray, np.ndarray] | SparsePeriods:
+    """What :func:`_explained` needs of a period system: the eigen-decomposition of a
+    dense one (at most ``unitpass.DENSE_PERIODS`` periods), a sparse one as it is."""
+    return matrix if isinstance(matrix, SparsePeriods) else np.linalg.eigh(matrix)
 
 
 def _absorbed_streaming(
@@ -895,9 +925,11 @@ def _absorbed_streaming(
     return basis
 
 
-def _period_system(u: np.ndarray, t: np.ndarray, n_units: int, n_periods: int) -> tuple[np.ndarray, np.ndarray]:
-    """Eigen-decomposition (values, vectors) of D' M_U D, period dummies D after unit demeaning."""
-    return np.linalg.eigh(period_matrix(u, t, n_units, n_periods))
+def _period_system(
+    u: np.ndarray, t: np.ndarray, n_units: int, n_periods: int
+) -> tuple[np.ndarray, np.ndarray] | SparsePeriods:
+    """D' M_U D, period dummies D after unit demeaning, ready for :func:`_explained`."""
+    return _solver(period_matrix(u, t, n_units, n_periods))
 
 
 def time_r2(
@@ -906,7 +938,7 @@ def time_r2(
     x: np.ndarray,
     n_units: int,
     n_periods: int,
-    system: tuple[np.ndarray, np.ndarray],
+    system: tuple[np.ndarray, np.ndarray] | SparsePeriods,
     means: np.ndarray | None = None,
 ) -> float | None:
     """Share of the within variation of ``x`` explained by period effects (None when WSS = 0).
@@ -921,16 +953,30 @@ def time_r2(
     return _explained(np.bincount(t, weights=xt, minlength=n_periods), float(xt @ xt), system)
 
 
-def _explained(rhs: np.ndarray, wss: float, system: tuple[np.ndarray, np.ndarray]) -> float | None:
-    """R2 of period effects from the per-period sums of within deviations ``rhs`` and WSS."""
-    if not wss > 0:
-        return None
-    vals, vecs = system
-    n_periods = vals.size
-    keep = vals > max(vals.max(), 0.0) * 1e-12 * n_periods
-    proj = vecs[:, keep].T @ rhs
-    explained = float((proj**2 / vals[keep]).sum())
-    return float(min(max(explained / wss, 0.0), 1.0))
+def _explained(
+    rhs: np.ndarray, wss: float, system: tuple[np.ndarray, np.ndarray] | SparsePeriods
+) -> float | None:
+    """R2 of period effects from the per-period sums of within deviations ``rhs`` and WSS
+    (None when WSS is 0, or when a sparse system was not solved)."""
+    return _explained_shares(rhs[:, None], [wss], system)[0]
+
+
+def _explained_shares(
+    rhs: np.ndarray, wss: Sequence[float], system: tuple[np.ndarray, np.ndarray] | SparsePeriods
+) -> list[float | None]:
+    """:func:`_explained` for each column of ``rhs`` (periods x columns)."""
+    if isinstance(system, SparsePeriods):
+        explained = system.explained(rhs)
+    else:
+        vals, vecs = system
+        keep = vals > max(vals.max(), 0.0) * 1e-12 * vals.size
+        basis, kept = vecs[:, keep].T, vals[keep]
+        explained = np.array([float(((basis @ rhs[:, j]) ** 2 / kept).sum()) for j in range(rhs.shape[1])])
+    out: list[float | None] = []
+    for e, w in zip(explained, wss, strict=True):
+        ok = w > 0 and np.isfinite(e)
+        out.append(float(min(max(float(e) / w, 0.0), 1.0)) if ok else None)
+    return out
 
 
 def variation_findings(panel: Panel, v: Variation, settings: Settings) -> list[Finding]:

@@ -154,6 +154,10 @@ def test_not_identified_columns_are_named_with_their_reason():
                        "price": "period-only", "age": "absorbed-by-time"}
     x_sum = next(i for i in r.not_identified if i["column"] == "x_sum")
     assert sorted(x_sum["with"]) == ["x1", "x2"]
+    # methods.md section 4: exact in levels too, so every fit loses it; age only within units
+    assert x_sum["fits"] == ["within", "between", "random", "mundlak", "hausman_taylor"]
+    age = next(i for i in r.not_identified if i["column"] == "age")
+    assert age["fits"] == ["within"] and "age" in r.estimates["random"]["coef"]
     assert sum(1 for f in r.findings if f.check == "not-identified") == 5
     assert "x1" in r.estimates["within"]["coef"] and "x_sum" not in r.estimates["within"]["coef"]
 

@@ -119,7 +119,9 @@ def test_mundlak_matches_statsmodels_pooled_ols_clustered(grunfeld10):
 
 def test_hausman_within_random_equals_direct_formula(grunfeld10):
     # oracle: the Hausman (1978) statistic written out with the statsmodels dummy-OLS within fit
-    # and the Baltagi-checked random-effects covariance; d'(V_W - V_RE)^-1 d, chi-square(2)
+    # and the Baltagi-checked random-effects covariance, d'(V_W - V_RE)^-1 d, chi-square(2); the
+    # random-effects covariance is rescaled to the within fit's sigma2_e (the README's convention,
+    # common practice: then V_W - V_RE is positive semi-definite)
     from scipy import stats
 
     pa = _arrays(grunfeld10)
@@ -129,11 +131,13 @@ def test_hausman_within_random_equals_direct_formula(grunfeld10):
     re, _ = models.random_effects(pa)
     i = re.index(["value", "capital"])
     dvec = bw - re.coef[i]
-    h = float(dvec @ np.linalg.solve(vw - re.cov[np.ix_(i, i)], dvec))
+    v_re = re.cov[np.ix_(i, i)] * ref.scale / re.sigma2
+    h = float(dvec @ np.linalg.solve(vw - v_re, dvec))
     test = models.hausman_within_random(models.within(pa)[0], re)
     assert test.statistic == pytest.approx(h, rel=1e-6)
     assert test.p == pytest.approx(stats.chi2.sf(h, 2), rel=1e-6)
-    assert test.positive_definite is True
+    assert test.df == 2 and test.positive_definite is True
+    assert np.all(np.linalg.eigvalsh(vw - v_re) > 0)
 
 
 def test_contrast_reports_a_matrix_that_is_not_positive_definite():

@@ -176,13 +176,14 @@ def test_script_column_name_appears_only_escaped(small_profile):
     assert not any(t == "script" for t, _ in parse(page).tags)
 
 
-def test_control_characters_in_names_are_dropped():
+def test_control_characters_in_names_are_shown_escaped():
     from auditor.profile import profile
 
     frame = orchard_frame().rename({"yield_t": "yield\x1b[31m_t\x07"})
     page = report.render_html(profile(frame, unit="orchard", time="season"))
     assert "\x1b" not in page and "\x07" not in page
-    assert "yield[31m_t" in page
+    # shown as code points (html-escaped), so the name stays recognisable and distinct
+    assert "yield&lt;U+001B&gt;[31m_t&lt;U+0007&gt;" in page
 
 
 def test_no_outside_resource_is_referenced(small_profile):

@@ -568,8 +568,9 @@ def test_an_exception_inside_great_expectations_is_exit_2_naming_the_rule(tmp_pa
 
     def mixed(frame):
         pdf = real(frame)
-        pdf["age"] = pdf["age"].astype(object)
-        pdf.loc[0, "age"] = "ten"
+        col = pdf.columns[0]  # the batch's name for 'age', the one ruled column
+        pdf[col] = pdf[col].astype(object)
+        pdf.loc[0, col] = "ten"
         return pdf
 
     monkeypatch.setattr(rules_mod, "to_pandas_once", mixed)

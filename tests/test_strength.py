@@ -179,7 +179,7 @@ def test_x2_first_stage_own_f_matches_statsmodels_ols():
     pa = _sim_arrays(d)
     ht = models.hausman_taylor(pa, ["x1a", "x1b"], ["x2"], ["z1"], ["z2"])
     theta = ht.components.theta
-    out = strength.x2_first_stage(pa, ["x1a", "x1b"], ["x2"], ["z1"], theta)
+    out = strength.x2_first_stage(pa, ["x1a", "x1b", "x2"], ["x2"], ["z1"], theta, ["x1a", "x1b"])
     g = d.groupby("unit")
     mean = g[["x1a", "x1b", "x2"]].transform("mean")
     th = theta[d["unit"].to_numpy()]

@@ -88,7 +88,6 @@ STYLE: dict[str, Any] = {
 
 WIDTH = 9.0  # inches; the report's column width
 MAX_BARS = 120  # beyond this many bars a series is drawn as one filled area (small, fast SVG)
-_CONTROL = re.compile(r"[\x00-\x1f\x7f-\x9f]")
 
 
 def _mpl() -> Any:
@@ -124,9 +123,12 @@ def _new_figure(height: float, *, nrows: int = 1, height_ratios: Sequence[float]
 
 
 def plain(text: Any, limit: int = 36) -> str:
-    """``text`` made safe for a figure label: no control characters, ``$`` taken
-    literally (no math mode), shortened to ``limit`` characters with an ellipsis."""
-    s = _CONTROL.sub(" ", str(text))
+    """``text`` made safe for a figure label: acting characters shown as ``<U+XXXX>``
+    (the one sanitiser, auditor.report.sanitise), ``$`` taken literally (no math
+    mode), shortened to ``limit`` characters with an ellipsis."""
+    from auditor.report.sanitise import visible
+
+    s = visible(text)
     if len(s) > limit:
         s = s[: limit - 1] + "\u2026"
     return s.replace("$", r"\$")
@@ -568,6 +570,69 @@ def first_stage_strength(
     handles.append(Line2D([], [], color=MUTED, linestyle=(0, (4, 3)), label="rule of thumb"))
     handles.append(Line2D([], [], color=MUTED, linestyle=(0, (1, 2)), label="t-test size bound"))
     fig.legend(handles=handles, loc="outside lower center", ncols=len(handles))
+    return fig
+
+
+@_styled
+def anderson_rubin_set(strength: Sequence[Mapping[str, Any]], estimates: Mapping[str, Any] | None) -> Figure:
+    """Where can the correlated fixed coefficient lie? The Anderson-Rubin set beside the
+    Hausman-Taylor 95% interval (estimate +- 1.96 classical standard errors), on the coefficient's axis.
+
+    ``strength`` rows carry ``anderson_rubin`` (``intervals`` with None for an infinite end,
+    ``kind``); ``estimates`` is the contract's ``estimates.hausman_taylor``. A ray is drawn to the
+    edge of the axis with an arrow head; an empty set is said in words. Returns the Figure.
+    """
+    _mpl()
+    title = "Where can the correlated fixed coefficient lie?"
+    rows = [r for r in strength if r.get("anderson_rubin") is not None]
+    fig = _new_figure(max(1.9, 1.3 + 0.55 * max(len(rows), 1)))
+    ax = fig.axes[0]
+    if not rows:
+        return _empty(fig, ax, title, "no Anderson-Rubin set was computed")
+    coef = (estimates or {}).get("coef") or {}
+    se = (estimates or {}).get("se") or {}
+    finite = []
+    for r in rows:
+        for lo, hi in r["anderson_rubin"]["intervals"]:
+            finite += [v for v in (lo, hi) if v is not None]
+        c, s = coef.get(r["endogenous"]), se.get(r["endogenous"])
+        if c is not None and s is not None:
+            finite += [c - 1.96 * s, c + 1.96 * s]
+    lo_ax, hi_ax = (min(finite), max(finite)) if finite else (-1.0, 1.0)
+    pad = 0.25 * max(hi_ax - lo_ax, 1e-9)
+    lo_ax, hi_ax = lo_ax - pad, hi_ax + pad
+    labels = []
+    for i, r in enumerate(rows):
+        y = len(rows) - 1 - i
+        ar = r["anderson_rubin"]
+        for lo, hi in ar["intervals"]:
+            a, b = (lo_ax if lo is None else lo), (hi_ax if hi is None else hi)
+            ax.plot([a, b], [y + 0.12, y + 0.12], color=BLUE, linewidth=5, solid_capstyle="butt")
+            for end, edge, head in ((lo, lo_ax, "<"), (hi, hi_ax, ">")):
+                if end is None:
+                    ax.plot([edge], [y + 0.12], marker=head, color=BLUE, markersize=7)
+        if ar.get("kind") == "empty":
+            ax.text((lo_ax + hi_ax) / 2, y + 0.12, "empty set: the instruments reject the model at every value",
+                    ha="center", va="center", fontsize=7.5, color=VERMILLION)
+        c, s = coef.get(r["endogenous"]), se.get(r["endogenous"])
+        if c is not None and s is not None:
+            ax.plot([c - 1.96 * s, c + 1.96 * s], [y - 0.18, y - 0.18], color=ORANGE, linewidth=3,
+                    solid_capstyle="butt")
+            ax.plot([c], [y - 0.18], marker="o", color=INK, markersize=4)
+        labels.append(plain(r.get("endogenous"), 30))
+    ax.set_yticks(list(range(len(rows)))[::-1], labels)
+    ax.set_ylim(-0.7, len(rows) - 0.3)
+    ax.set_xlim(lo_ax, hi_ax)
+    ax.xaxis.grid(True)
+    ax.set_axisbelow(True)
+    ax.set_xlabel("coefficient")
+    ax.set_title(title)
+    from matplotlib.lines import Line2D
+
+    level = int(round(100 * float(rows[0]["anderson_rubin"].get("level", 0.95))))
+    handles = [Line2D([], [], color=BLUE, linewidth=5, label=f"Anderson-Rubin {level}% set"),
+               Line2D([], [], color=ORANGE, linewidth=3, label="Hausman-Taylor 95% interval")]
+    fig.legend(handles=handles, loc="outside lower center", ncols=2)
     return fig
 
 

@@ -5,13 +5,14 @@ The renderer shows what the statistics modules computed; it computes nothing of
 its own beyond formatting, except the quantiles of the shifted columns that the
 new-wave figure draws (a display summary of at most a few columns). Every text
 taken from the data (column names, values, categories, labels) goes through
-``esc``: control characters removed, then ``html.escape``.
+``esc``: acting characters shown as ``<U+XXXX>`` (auditor.report.sanitise),
+then ``html.escape``.
 """
 
 from __future__ import annotations
 
+import contextlib
 import html
-import re
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, replace
 from datetime import UTC, datetime
@@ -20,11 +21,12 @@ from typing import TYPE_CHECKING, Any
 
 import auditor
 from auditor.errors import fail
+from auditor.report.sanitise import visible
 
 if TYPE_CHECKING:  # pragma: no cover
     from auditor.config import Settings
+    from auditor.outputs import OutputSet
 
-_CONTROL = re.compile(r"[\x00-\x08\x0b-\x1f\x7f-\x9f]")
 _RANK = {"error": 0, "warning": 1, "note": 2}
 
 SECTIONS: tuple[tuple[str, str], ...] = (
@@ -44,6 +46,7 @@ FIGURE_FILES: dict[str, str] = {
     "within-share": "within_share.png",
     "missing-map": "missing_map.png",
     "first-stage": "first_stage_f.png",
+    "anderson-rubin": "anderson_rubin_set.png",
     "wave-shift": "wave_shift.png",
     "shifted-distributions": "shifted_distributions.png",
 }
@@ -53,9 +56,10 @@ FIGURE_FILES: dict[str, str] = {
 
 
 def esc(value: Any, limit: int = 200) -> str:
-    """``value`` as safe HTML text: control characters dropped, shortened to
+    """``value`` as safe HTML text: acting characters (controls, bidirectional and
+    zero-width ones) shown as ``<U+XXXX>`` by the one sanitiser, shortened to
     ``limit`` characters (with an ellipsis), then escaped with ``html.escape``."""
-    s = _CONTROL.sub("", "" if value is None else str(value))
+    s = visible(value)
     if len(s) > limit:
         s = s[: limit - 1] + "\u2026"
     return html.escape(s, quote=True)
@@ -237,6 +241,9 @@ def build_figures(
         out["first-stage"] = fg.first_stage_strength(
             instruments["strength"], rule_of_thumb=lim.f_rule_of_thumb, t_test_bound=lim.f_t_test
         )
+        if any(r.get("anderson_rubin") for r in instruments["strength"]):
+            out["anderson-rubin"] = fg.anderson_rubin_set(
+                instruments["strength"], (instruments.get("estimates") or {}).get("hausman_taylor"))
     if comparison is not None and comparison.get("columns"):
         out["wave-shift"] = fg.wave_shift(comparison["columns"], max_columns=lim.figure_columns)
         if quantiles:
@@ -560,10 +567,7 @@ def _readiness(doc: Mapping[str, Any], svgs: Mapping[str, str], lim: Limits) -> 
              f"<td><b>X2</b> {_names(roles.get('X2'))}</td></tr>"
              f"<tr><th>fixed over time</th><td><b>Z1</b> {_names(roles.get('Z1'))}</td>"
              f"<td><b>Z2</b> {_names(roles.get('Z2'))}</td></tr></tbody></table>"]
-    ni = doc.get("not_identified") or []
-    if ni:
-        parts.append("<p>Not identified: " + ", ".join(
-            f"<code>{esc(x.get('column'), 60)}</code> ({esc(x.get('reason'))})" for x in ni) + ".</p>")
+    parts.append(_identified(doc))
     oc = doc.get("order_condition") or {}
     if oc:
         met = "met" if oc.get("met") else "<b>not met</b>"
@@ -579,38 +583,26 @@ def _readiness(doc: Mapping[str, Any], svgs: Mapping[str, str], lim: Limits) -> 
         rows = [[f"<code>{esc(s.get('endogenous'), 60)}</code>", esc(s.get("role")), _names(s.get("instruments")),
                  _num(s.get("partial_f")), _num(s.get("robust_f")), _num(s.get("partial_r2")),
                  esc("; ".join(str(d) for d in s.get("df") or [])), _num(s.get("critical_value")),
-                 esc(s.get("verdict"))] for s in strength]
+                 esc(s.get("verdict")), _ar_cell(s)] for s in strength]
         parts.append("<h3>First stages</h3>")
         parts.append(_table(["regressor", "role", "instruments", "partial F", "robust F", "partial R\u00b2",
-                             "df", "critical value", "verdict"], rows, numeric=[3, 4, 5, 7]))
-    cands = doc.get("candidates") or []
-    if cands:
-        rows = [[f"<code>{esc(c.get('endogenous'), 60)}</code>", f"<code>{esc(c.get('instrument'), 60)}</code>",
-                 _num(c.get("partial_f")), _p(c.get("mundlak_p")), "yes" if c.get("usable") else "no"]
-                for c in cands[: lim.columns]]
-        parts.append("<h3>Candidate instruments</h3>")
-        parts.append(_table(["regressor", "candidate", "partial F alone", "Mundlak p", "usable"], rows,
-                            numeric=[2, 3]))
-    tests = doc.get("tests") or {}
-    labels = {"mundlak": "Mundlak: unit means of X jointly zero",
-              "hausman_within_random": "Hausman: within against random effects",
-              "overidentification": "Over-identifying restrictions (Sargan)",
-              "hausman_within_ht": "Hausman: within against Hausman-Taylor"}
-    trows = []
-    for key, t in tests.items():
-        if not isinstance(t, Mapping):
-            trows.append([esc(labels.get(key, key)), "\u2013", "\u2013", "not computed"])
-            continue
-        trows.append([esc(labels.get(key, key)), _num(t.get("statistic")), _int(t.get("df")), _p(t.get("p"))])
+                             "df", "critical value", "verdict", "Anderson-Rubin set"], rows, numeric=[3, 4, 5, 7]))
+        parts.append(_figure(svgs, "anderson-rubin",
+                             "Blue: the values of the coefficient the Anderson-Rubin test does not reject (robust "
+                             "to weak instruments; an arrow marks an unbounded end). Orange: the Hausman-Taylor "
+                             "estimate \u00b1 1.96 standard errors, which is reliable only with strong instruments."))
+    parts.append(_candidates(doc, lim))
+    trows = _test_rows(doc.get("tests") or {})
     if trows:
         parts.append("<h3>Tests</h3>")
         parts.append(_table(["test", "statistic", "df", "p"], trows, cls="pa-narrow", numeric=[1, 2, 3]))
     est = {k: v for k, v in (doc.get("estimates") or {}).items() if isinstance(v, Mapping)}
     if est:
+        periods = set(doc.get("period_effects") or [])
         names: list[str] = []
         for v in est.values():
             for n in (v.get("coef") or {}):
-                if n not in names:
+                if n not in names and n not in periods and not (n.startswith("mean(") and n[5:-1] in periods):
                     names.append(n)
         erows = []
         for n in names[: lim.columns]:
@@ -621,17 +613,117 @@ def _readiness(doc: Mapping[str, Any], svgs: Mapping[str, str], lim: Limits) -> 
                 pm = f'<br><span class="pa-quiet">\u00b1 {_num(s, 3)}</span>' if s is not None else ""
                 r.append("\u2013" if c is None else f"{_num(c, 4)}{pm}")
             erows.append(r)
-        pretty = {"within": "within", "between": "between", "random": "random effects",
-                  "mundlak": "Mundlak", "hausman_taylor": "Hausman-Taylor"}
+        pretty = {**_FIT_NAMES, "amemiya_macurdy": "Amemiya-MaCurdy",
+                  "breusch_mizon_schmidt": "Breusch-Mizon-Schmidt"}
         parts.append("<h3>Estimates (coefficient \u00b1 standard error)</h3>")
         parts.append(_table(["regressor", *[esc(pretty.get(k, k)) for k in est]], erows,
                             numeric=list(range(1, len(est) + 1))))
+        if periods:
+            parts.append(_note(f"The {len(periods)} period effects are estimated in every fit and not shown "
+                               "(see the JSON document)."))
     vc = doc.get("variance_components") or {}
     if vc:
         parts.append(_facts([("sd of unit effect", _num(vc.get("sigma_u"))),
                              ("sd of idiosyncratic error", _num(vc.get("sigma_e"))),
                              ("mean quasi-demeaning weight", _num(vc.get("theta_mean")))]))
     parts.append("</section>")
+    return "".join(parts)
+
+
+_FIT_NAMES = {"within": "within", "between": "between", "random": "random effects", "mundlak": "Mundlak",
+              "hausman_taylor": "Hausman-Taylor"}
+
+
+def _identified(doc: Mapping[str, Any]) -> str:
+    """Period effects, and which fits set which column aside."""
+    out = []
+    periods = doc.get("period_effects") or []
+    if periods:
+        out.append(f"<p>Period effects ({len(periods)}: {_names(periods[:3])}{', ...' if len(periods) > 3 else ''}) "
+                   "are exogenous, each instrumented by itself; they do not count in k1 and are left out of the "
+                   "contrasts.</p>")
+    for x in doc.get("not_identified") or []:
+        fits = list(x.get("fits") or [])
+        where = "every fit" if len(fits) >= len(_FIT_NAMES) else ", ".join(_FIT_NAMES.get(f, str(f)) for f in fits)
+        with_ = list(x.get("with") or [])
+        shown = _names(with_[:4]) + (", ..." if len(with_) > 4 else "")
+        out.append(f"<p>Not identified by {esc(where)}: <code>{esc(x.get('column'), 60)}</code> "
+                   f"({esc(x.get('reason'))}{'; with ' + shown if with_ else ''}).</p>")
+    return "".join(out)
+
+
+_TEST_LABELS = {"mundlak": "Mundlak: unit means of X jointly zero",
+                "hausman_within_random": "Hausman: within against random effects",
+                "overidentification": "Over-identifying restrictions (Sargan)",
+                "hausman_within_ht": "Hausman: within against Hausman-Taylor",
+                "attrition": "Attrition (Nijman-Verbeek): next period observed"}
+_NESTED_TESTS = {"overidentification_by_estimator": "Sargan, {}", "hausman_against_ht": "Hausman: Hausman-Taylor "
+                 "against {}"}
+_ESTIMATOR_NAMES = {"hausman_taylor": "Hausman-Taylor", "amemiya_macurdy": "Amemiya-MaCurdy",
+                    "breusch_mizon_schmidt": "Breusch-Mizon-Schmidt"}
+
+
+def _test_rows(tests: Mapping[str, Any]) -> list[list[str]]:
+    """One row per test; the per-estimator groups (Sargan of each, contrasts against
+    Hausman-Taylor) one row per estimator."""
+    rows = []
+
+    def row(label: str, t: Any) -> list[str]:
+        if not isinstance(t, Mapping):
+            return [esc(label), "\u2013", "\u2013", "not computed"]
+        return [esc(label), _num(t.get("statistic")), _int(t.get("df")), _p(t.get("p"))]
+
+    for key, t in tests.items():
+        if key in _NESTED_TESTS:
+            if not isinstance(t, Mapping):
+                continue
+            for name, sub in t.items():
+                if key == "overidentification_by_estimator" and name == "hausman_taylor":
+                    continue  # the Sargan row above
+                rows.append(row(_NESTED_TESTS[key].format(_ESTIMATOR_NAMES.get(name, name)), sub))
+            continue
+        rows.append(row(_TEST_LABELS.get(key, key), t))
+    return rows
+
+
+def _ar_cell(row: Mapping[str, Any]) -> str:
+    ar = row.get("anderson_rubin")
+    if not isinstance(ar, Mapping):
+        return '<span class="pa-quiet">not computed</span>' if row.get("anderson_rubin_note") else "\u2013"
+    if ar.get("kind") == "empty":
+        return "empty (rejected at every value)"
+    if ar.get("kind") == "whole line":
+        return "the whole line"
+
+    def end(v: Any, sign: str) -> str:
+        return f"{sign}\u221e" if v is None else _num(v, 4)
+
+    minus = "\u2212"
+    return " or ".join(f"[{end(lo, minus)}, {end(hi, '+')}]" for lo, hi in ar.get("intervals") or [])
+
+
+_STATE_WORDS = {"accepted": "yes", "assumed": "yes (assumed)", "invalid": "no", "undecided": "undecided"}
+
+
+def _candidates(doc: Mapping[str, Any], lim: Limits) -> str:
+    """Each X1 unit mean alone as an instrument, and the suggested set (saying when the set is rejected)."""
+    cands = doc.get("candidates") or []
+    if not cands:
+        return ""
+    rows = [[f"<code>{esc(c.get('endogenous'), 60)}</code>", f"<code>{esc(c.get('instrument'), 60)}</code>",
+             _num(c.get("partial_f")), _p(c.get("mundlak_p")), _p(c.get("c_p")),
+             esc(_STATE_WORDS.get(c.get("state"), "yes" if c.get("usable") else "no"))]
+            for c in cands[: lim.columns]]
+    parts = ["<h3>Candidate instruments</h3>",
+             _table(["regressor", "candidate", "partial F alone", "Mundlak p", "C-test p", "usable"], rows,
+                    numeric=[2, 3, 4])]
+    for sg in doc.get("suggestion") or []:
+        text = (f"Suggested for <code>{esc(sg.get('endogenous'), 60)}</code>: {_names(sg.get('instruments'))} "
+                f"(F {_num(sg.get('partial_f'))}, {esc(sg.get('verdict'))}).")
+        if sg.get("set_rejected"):
+            text += (" The over-identification tests reject the instrument set and no single mean can be blamed, "
+                     "so the validity of these instruments is not established.")
+        parts.append(f"<p>{text}</p>")
     return "".join(parts)
 
 
@@ -857,6 +949,9 @@ def instruments_fragment(result: Any, *, figures: bool = True) -> str:
     if figures and doc.get("strength"):
         svgs["first-stage"] = fg.to_svg(fg.first_stage_strength(
             doc["strength"], rule_of_thumb=lim.f_rule_of_thumb, t_test_bound=lim.f_t_test), name="first-stage")
+        if any(r.get("anderson_rubin") for r in doc["strength"]):
+            svgs["anderson-rubin"] = fg.to_svg(fg.anderson_rubin_set(
+                doc["strength"], (doc.get("estimates") or {}).get("hausman_taylor")), name="anderson-rubin")
     items = [{**dict(f), "source": "model readiness"} for f in doc.get("findings", []) or []]
     items.sort(key=lambda d: _RANK.get(str(d.get("severity")), 9))
     return _fragment([_findings(items, lim), _readiness(doc, svgs, lim)])
@@ -880,14 +975,6 @@ def compare_fragment(result: Any, *, figures: bool = True) -> str:
 # --- writing ---------------------------------------------------------------------------
 
 
-def _input_paths(data: Any) -> list[Path]:
-    if data is None or hasattr(data, "columns"):  # a frame: nothing on disk to protect
-        return []
-    from auditor.sources import resolve_inputs
-
-    return list(resolve_inputs(data))
-
-
 def write_report(
     data: Any,
     *,
@@ -903,6 +990,7 @@ def write_report(
     force: bool = False,
     period_effects: bool = False,
     treat_as_invariant: Sequence[str] = (),
+    outputs: OutputSet | None = None,
 ) -> Path:
     """Audit ``data`` and write the HTML report to ``out``; return the path written.
 
@@ -911,7 +999,7 @@ def write_report(
     return build_report(
         data, unit=unit, time=time, out=out, outcome=outcome, regressors=regressors, correlated=correlated,
         against=against, png_dir=png_dir, settings=settings, force=force, period_effects=period_effects,
-        treat_as_invariant=treat_as_invariant,
+        treat_as_invariant=treat_as_invariant, outputs=outputs,
     ).path
 
 
@@ -939,6 +1027,7 @@ def build_report(
     force: bool = False,
     period_effects: bool = False,
     treat_as_invariant: Sequence[str] = (),
+    outputs: OutputSet | None = None,
 ) -> ReportRun:
     """Audit ``data`` and write the HTML report to ``out``.
 
@@ -948,27 +1037,56 @@ def build_report(
     wave: the profile and the model readiness describe the appended panel (base +
     new), and the new-wave section compares the wave with the base. With ``png_dir``
     each figure is also written there as a PNG (names in ``FIGURE_FILES``). Refuses
-    (exit 2) to write over an input, or over an existing file unless ``force``;
-    every file is written through a temporary file and a rename, so an interrupted
-    run leaves no partial file. Returns the ReportRun (path and findings).
+    (exit 2) to write over an input (the data files, the base, a rules file), over a
+    symbolic link, one path twice, or over an existing file unless ``force``. The page
+    and the figures are published together or not at all (auditor.outputs), so a full
+    disk or an interrupt leaves no partial file and no page without its figures.
+    ``outputs``: the caller's OutputSet, which then also publishes and keeps them.
+    Returns the ReportRun (path and findings).
     """
     from auditor.config import Settings as _Settings
     from auditor.config import load_settings
-    from auditor.outputs import check_output_path, write_atomic
+    from auditor.outputs import OutputSet, input_files
 
-    if not isinstance(settings, _Settings):
-        settings = load_settings(settings)
-    inputs = _input_paths(data) + _input_paths(against)
-    out_path = check_output_path(out, force=force, inputs=inputs)
-    png_path = Path(png_dir) if png_dir is not None else None
-    if png_path is not None:
-        if png_path.exists() and not png_path.is_dir():
-            raise fail("report-png-dir-not-folder", path=png_dir)
-        for file in FIGURE_FILES.values():
-            check_output_path(png_path / file, force=force, inputs=inputs)
-    if (outcome is None) != (not regressors):
-        raise fail("report-model-needs-both")
+    own = outputs is None
+    if outputs is None:
+        rules = settings if isinstance(settings, str | Path) else None
+        outputs = OutputSet(force=force, inputs=input_files(data, against, files=[rules]))
+    with contextlib.ExitStack() as stack:
+        if own:
+            stack.enter_context(outputs)
+        if not isinstance(settings, _Settings):
+            settings = load_settings(settings)
+        out_path = outputs.claim(out, "the report (--out)")
+        png_path = Path(png_dir) if png_dir is not None else None
+        if png_path is not None:
+            if png_path.exists() and not png_path.is_dir():
+                raise fail("report-png-dir-not-folder", path=png_dir)
+            for file in FIGURE_FILES.values():
+                outputs.claim(png_path / file, "a figure of --png-dir")
+        if (outcome is None) != (not regressors):
+            raise fail("report-model-needs-both")
+        result, inst, comp, quantiles, lim = _report_parts(
+            data, unit, time, outcome, regressors, correlated, against, settings, period_effects, treat_as_invariant)
+        inst_doc, comp_doc = _as_dict(inst), _as_dict(comp)
+        drawn = build_figures(result, inst_doc, comp_doc, quantiles=quantiles, limits=lim)
+        page = render_html(result, inst_doc, comp_doc, figures=drawn, settings=settings)
+        outputs.stage(out_path, page)
+        if png_path is not None:
+            from auditor.report.figures import to_png
 
+            for name, fig in drawn.items():
+                outputs.stage(png_path / FIGURE_FILES[name], to_png(fig))
+        outputs.publish()
+    findings = (*result.findings, *(inst.findings if inst is not None else ()),
+                *(comp.wave_findings if comp is not None else ()))
+    return ReportRun(path=out_path, findings=tuple(findings))
+
+
+def _report_parts(data: Any, unit: Any, time: str, outcome: str | None, regressors: Sequence[str] | None,
+                  correlated: Sequence[str] | None, against: Any, settings: Settings, period_effects: bool,
+                  treat_as_invariant: Sequence[str]) -> tuple[Any, Any, Any, Any, Limits]:
+    """The profile (of base + new with ``against``), model readiness and the comparison behind a report."""
     from auditor.profile import profile, profile_panel
 
     comp = None
@@ -980,7 +1098,8 @@ def build_report(
         from auditor.waves import compare
 
         comp = compare(against, data, unit=unit, time=time, settings=settings, appended=True)
-        assert comp.appended is not None and comp.sides is not None
+        if comp.appended is None or comp.sides is None:
+            raise RuntimeError("compare(appended=True) returned no appended panel")
         result = profile_panel(comp.appended, settings)
         model_data = comp.appended.frame.drop([c for c in INTERNAL if c in comp.appended.frame.columns])
         base, new = comp.sides
@@ -995,17 +1114,6 @@ def build_report(
         from auditor.readiness import instruments
 
         inst = instruments(model_data, unit=unit, time=time, outcome=outcome, regressors=list(regressors),
-                           correlated=list(correlated) if correlated else None, settings=settings,
+                           correlated=None if correlated is None else list(correlated), settings=settings,
                            period_effects=period_effects, treat_as_invariant=list(treat_as_invariant))
-    inst_doc, comp_doc = _as_dict(inst), _as_dict(comp)
-    drawn = build_figures(result, inst_doc, comp_doc, quantiles=quantiles, limits=lim)
-    page = render_html(result, inst_doc, comp_doc, figures=drawn, settings=settings)
-    written = write_atomic(out_path, page, force=force, inputs=inputs)
-    if png_path is not None:
-        from auditor.report.figures import to_png
-
-        for name, fig in drawn.items():
-            write_atomic(png_path / FIGURE_FILES[name], to_png(fig), force=force, inputs=inputs)
-    findings = (*result.findings, *(inst.findings if inst is not None else ()),
-                *(comp.wave_findings if comp is not None else ()))
-    return ReportRun(path=written, findings=tuple(findings))
+    return result, inst, comp, quantiles, lim

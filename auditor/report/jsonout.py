@@ -26,5 +26,10 @@ def clean(value: Any) -> Any:
 
 
 def dumps(document: dict[str, Any]) -> str:
-    """The document as indented JSON text, ``allow_nan=False``, ending in a newline."""
-    return json.dumps(clean(document), indent=2, ensure_ascii=False, allow_nan=False) + "\n"
+    """The document as indented JSON text, ``allow_nan=False``, ending in a newline.
+
+    Characters that act on a terminal (controls, bidirectional and zero-width ones)
+    are written as ``\\uXXXX`` escapes: the same values, safe to print."""
+    from auditor.report.sanitise import json_escaped
+
+    return json_escaped(json.dumps(clean(document), indent=2, ensure_ascii=False, allow_nan=False)) + "\n"

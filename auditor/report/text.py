@@ -3,31 +3,31 @@
 Layout (the project's own): a few lines of panel facts, the findings grouped by
 severity with counts and examples, then one table of columns (kind, within
 share, units changing, missing share). Colour only on a terminal, never when
-NO_COLOR is set; data-derived text is stripped of control characters.
+NO_COLOR is set; data-derived text goes through the one sanitiser
+(auditor.report.sanitise), which shows acting characters as ``<U+XXXX>``.
 """
 
 from __future__ import annotations
 
 import os
-import re
 import shutil
 import sys
 from collections.abc import Iterable, Sequence
 from typing import TYPE_CHECKING, Any
 
 from auditor.findings import SEVERITIES, Finding, counts_by_severity
+from auditor.report.sanitise import visible
 
 if TYPE_CHECKING:  # pragma: no cover
     from auditor.profile import ProfileResult
 
-_CONTROL = re.compile(r"[\x00-\x08\x0b-\x1f\x7f-\x9f\u200b-\u200f\u202a-\u202e\u2066-\u2069]")
 _COLOURS = {"error": "31;1", "warning": "33", "note": "36", "dim": "2", "bold": "1"}
 
 
 def safe(text: Any) -> str:
-    """``text`` as one printable line: control characters removed, newlines as spaces."""
-    s = str(text).replace("\r\n", " ").replace("\n", " ").replace("\t", " ")
-    return _CONTROL.sub("", s)
+    """``text`` as one printable line: controls, format characters and separators
+    (newlines too) written ``<U+XXXX>`` by the one sanitiser (auditor.report.sanitise)."""
+    return visible(text)
 
 
 def use_colour(stream: Any = None) -> bool:
@@ -57,7 +57,8 @@ def wrap(text: str, width: int, indent: int) -> list[str]:
     """``text`` wrapped to ``width`` with a hanging ``indent``."""
     import textwrap
 
-    return textwrap.wrap(text, width=max(20, width), subsequent_indent=" " * indent, break_long_words=True) or [""]
+    return textwrap.wrap(text, width=max(20, width), subsequent_indent=" " * indent, break_long_words=True,
+                         break_on_hyphens=False) or [""]
 
 
 def fmt_num(value: Any, digits: int = 3) -> str:

@@ -27,7 +27,7 @@ def _name(r: RuleResult) -> str:
 
 
 def _example_text(example: dict[str, Any]) -> str:
-    return ", ".join(f"{k}={safe(v)}" for k, v in example.items())
+    return ", ".join(f"{safe(k)}={safe(v)}" for k, v in example.items())
 
 
 def render(
@@ -61,11 +61,11 @@ def render(
             continue
         lines.append("")
         lines.append(paint(title, "bold", color))
-        subj_w = min(24, max(len(_subject(r)) for r in group))
-        rule_w = max(len(_name(r)) for r in group)
+        subj_w = min(24, max(len(safe(_subject(r))) for r in group))
+        rule_w = max(len(safe(_name(r))) for r in group)
         for r in group:
             count = "-" if r.failing is None else str(r.failing)
-            head = f"  {clip(safe(_subject(r)), subj_w):<{subj_w}}  {_name(r):<{rule_w}}  {count:>8}  "
+            head = f"  {clip(safe(_subject(r)), subj_w):<{subj_w}}  {safe(_name(r)):<{rule_w}}  {count:>8}  "
             body = wrap(safe(r.message), width - len(head), 0)
             lines.append(head + body[0])
             lines.extend(" " * len(head) + b for b in body[1:])
@@ -80,6 +80,6 @@ def render(
         lines.append("")
         lines.append(paint("Holding", "bold", color))
         for subject, names in folded.items():
-            text = f"  {safe(subject)}: " + ", ".join(names)
+            text = f"  {safe(subject)}: " + ", ".join(safe(n) for n in names)
             lines.extend(wrap(text, width, 4))
     return "\n".join(lines) + "\n"

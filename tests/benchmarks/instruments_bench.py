@@ -80,6 +80,14 @@ def main(argv: list[str] | None = None) -> int:
         print(line("panel-audit profile DATA --json", fmt_s(a.seconds)))
         print(line("panel-audit instruments DATA (8 regressors) --json", fmt_s(b.seconds)))
         print(line("instruments / profile", f"{ratio:.2f}x", "<= 3x", ratio <= 3))
+        # the case identification per fit is about: a trend-like regressor beside period effects
+        c = best([cli, "instruments", str(data), *keys, "--outcome", "y", "--regressors", REGRESSORS + ",tree_age",
+                  "--correlated", CORRELATED, "--period-effects"], args.repeat)
+        if c.code in (0, 1):
+            print(line("instruments + tree_age --period-effects", fmt_s(c.seconds)))
+            print(line("  / profile", f"{c.seconds / a.seconds:.2f}x"))
+        else:
+            print(f"the --period-effects run failed: exit {c.code}: {c.stderr.strip()[-300:]}")
         print(line("peak RSS profile", fmt_mib(a.rss_mib)))
         print(line("peak RSS instruments", fmt_mib(b.rss_mib)))
         print(line("roles", json.dumps(doc["roles"])))

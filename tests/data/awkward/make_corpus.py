@@ -126,6 +126,70 @@ def corpus() -> dict[str, bytes]:
     hn.append("\x1b]0;owned\x07OR-9,2020,1,1,1")
     hn.append("\x1b]0;owned\x07OR-9,2020,1,1,1")
     files["hostile_names.csv"] = ("\n".join(hn) + "\n").encode()
+    files.update(_second_round())
+    return files
+
+
+def _keys_007(header: str, extra: int = 0) -> bytes:
+    """``header`` then units 007 and 7 (two units as text, one as numbers) in 2020-2021,
+    with ``extra`` filler cells before the two keys and the value."""
+    lines = [header]
+    for i, u in enumerate(["007", "7"]):
+        for t in (2020, 2021):
+            lines.append(",".join(["1"] * extra + [u, str(t), str(i * 10 + t - 2019)]))
+    return ("\n".join(lines) + "\n").encode("utf-8")
+
+
+def _second_round() -> dict[str, bytes]:
+    """Files of the second robustness round (issue 19)."""
+    files: dict[str, bytes] = {}
+    # a header cell with a trailing space, and one with doubled quotes
+    files["header_trailing_space.csv"] = _keys_007("orchard_id ,season,yield_t")
+    files["header_quotes.csv"] = _keys_007('"orchard ""id""",season,yield_t')
+    # a header longer than 64 KiB with the keys after byte 65,536
+    filler = [f"filler_column_{j:05d}" for j in range(3500)]  # 20 bytes each: 70,000 bytes
+    files["header_long.csv"] = _keys_007(",".join([*filler, "orchard_id", "season", "yield_t"]), extra=3500)
+    # a two-byte character (é, C3 A9) whose bytes straddle byte 65,536, then the keys
+    head = "x" * 65_535 + "é"  # 'é' takes bytes 65,536 and 65,537 (1-based): split by a 64 KiB cut
+    straddle = _keys_007(f"{head},orchard_id,season,yield_t", extra=1)
+    assert straddle[65_535:65_537] == b"\xc3\xa9"
+    files["header_straddle.csv"] = straddle
+    # a real duplicate name past 64 KiB
+    dup = [f"filler_column_{j:05d}" for j in range(3500)]
+    files["header_duplicate_far.csv"] = _keys_007(
+        ",".join([*dup, "orchard_id", "season", "filler_column_03499"]), extra=3500
+    )
+    # the same id written three ways (composed é, e + combining accent, a zero-width space),
+    # and two plainly different ids
+    tw = ["orchard_id,season,yield_t"]
+    for i, u in enumerate(["OR-caf\u00e9", "OR-cafe\u0301", "OR-\u200bcafé", "OR-0001", "OR-0002"]):
+        for t in (2020, 2021):
+            tw.append(f"{u},{t},{i + t - 2019}")
+    files["unicode_twins.csv"] = ("\n".join(tw) + "\n").encode("utf-8")
+    # bidirectional overrides, zero-width characters, C1 controls and a hyperlink escape in
+    # column names, unit ids and category levels
+    names = ["rain\u202emm", "zero\u200bwidth", "c1\u009b31m", "link\x1b]8;;http://example.invalid\x1b\\x"]
+    hb = [",".join(["orchard_id", "season", *names])]
+    for i, u in enumerate(["OR-1", "OR-\u202e2", "OR-\u200d3", "OR-\u20664"]):
+        for t in (2020, 2021, 2022):
+            level = "LM" if (i + t) % 2 else "S\u202eD"
+            hb.append(",".join([u, str(t), f"{i * 3 + t - 2019}.5", level, str(i + t % 3), level]))
+    files["hostile_bidi.csv"] = ("\n".join(hb) + "\n").encode("utf-8")
+
+    # rules files: a 17-byte recursive alias, a billion laughs, a 5,000-digit number,
+    # Latin-1 bytes, and legitimate aliases
+    files["rules_alias_loop.yaml"] = b"profile: &x [*x]\n"
+    laughs = ['a: &a ["lol", "lol", "lol", "lol", "lol", "lol", "lol", "lol", "lol"]']
+    for j in range(1, 10):
+        prev, cur = chr(ord("a") + j - 1), chr(ord("a") + j)
+        laughs.append(f"{cur}: &{cur} [" + ", ".join([f"*{prev}"] * 9) + "]")
+    files["rules_laughs.yaml"] = ("\n".join(laughs) + "\n").encode()
+    files["rules_long_number.yaml"] = ("profile:\n  few_switchers: " + "9" * 5000 + "\n").encode()
+    files["rules_latin1.yaml"] = "severities:\n  gaps: note\n# caf\u00e9 au lait\n".encode("latin-1")
+    files["rules_aliases.yaml"] = (
+        b"thresholds:\n  profile:\n    high_missing_share: &share 0.30\n"
+        b"  compare:\n    missing_jump: *share\n"
+    )
     return files
 
 
