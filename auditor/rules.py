@@ -517,7 +517,7 @@ def build_expectations(
     return out
 
 
-def _has_row_rules(col: ColumnRules) -> bool:
+def _column_has_row_rules(col: ColumnRules) -> bool:
     return any(v not in (None, False) for v in (col.min, col.max, col.allowed, col.max_missing, col.pattern, col.unique))
 
 
@@ -1159,7 +1159,7 @@ def export_suite(rules_path: str | Path) -> dict[str, Any]:
     gx.get_context(mode="ephemeral")  # suites need an active context
     suite = gx.ExpectationSuite(name=Path(rules_path).stem)
     for col in contract.columns:
-        if not col.name.strip() and _has_row_rules(col):
+        if not col.name.strip() and _column_has_row_rules(col):
             raise fail(
                 "contract-engine", rule="(any)", column=col.name,
                 reason="an expectation suite needs a column name; name the column in the data and the contract",
