@@ -387,7 +387,6 @@ RANGES: dict[tuple[str, str], tuple[float | None, float | None, str]] = {
     ("check", "draft_level_min_units"): _COUNT,
     ("check", "draft_missing_margin"): _SHARE,
     ("check", "draft_attrition_margin"): _SHARE,
-    ("check", "draft_periods_listed"): _COUNT,
 }
 _EXCLUSIVE: dict[tuple[str, str], tuple[bool, bool]] = {
     ("profile", "float_tolerance"): (False, True),
