@@ -42,6 +42,16 @@ CATALOGUE: dict[str, str] = {
     "no-glob-match": "no files match '{pattern}'",
     "too-large": "'{path}' ({size}) does not fit in memory here and cannot be streamed: {reason}",
     "out-of-memory": "the data does not fit in memory; use Parquet input with --streaming",
+    "engine-needs-parquet": (
+        "--engine dask reads Parquet files; {found} is {what}: convert it to Parquet, or use --engine memory"
+    ),
+    "engine-dask-missing": (
+        "--engine dask needs the dask and distributed packages, which are not installed here: "
+        "pip install 'panel-auditor[dask]'"
+    ),
+    "engine-no-scheduler": "cannot reach the dask scheduler at '{address}': {reason}; start one with 'dask scheduler'",
+    "engine-scheduler-without-dask": "--scheduler names a dask scheduler; it needs --engine dask",
+    "engine-conflict": "{detail}",
     "internal-problem": "internal problem ({kind}: {detail}); rerun with --debug and report it",
     # --- rule and threshold files ---------------------------------------------
     "rules-not-found": "rules file '{path}' not found",
@@ -144,6 +154,10 @@ class AuditError(Exception):
         super().__init__(message)
         self.code = code
         self.message = message
+
+    def __reduce__(self) -> tuple[Any, ...]:
+        # raised on a dask worker, it travels to the client pickled
+        return (AuditError, (self.code, self.message))
 
 
 def fail(code: str, **fields: Any) -> AuditError:

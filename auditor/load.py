@@ -62,6 +62,12 @@ class Panel:
     load_findings: tuple[Any, ...] = field(default_factory=tuple)
     eager: pl.DataFrame | None = None
     by_period: pl.LazyFrame | None = None
+    engine: str = ""  # the engine that computes the statistics ("" : memory or streaming, as loaded)
+
+    @property
+    def engine_name(self) -> str:
+        """``in-memory``, ``streaming`` or ``dask``: the engine of the profile's ``panel.engine``."""
+        return self.engine or ("streaming" if self.streaming else "in-memory")
 
     @property
     def n_units(self) -> int:
@@ -175,6 +181,14 @@ def memory_bytes() -> int:
         return 0
 
 
+def open_input(
+    data: Any, text_columns: Sequence[str], settings: Any = None
+) -> tuple[pl.LazyFrame, str, tuple[Path, ...], list[Any], bool]:
+    """(lazy frame over every input, description, input paths, load findings, whether
+    every input is a binary file); text columns of text files are read as text."""
+    return _to_lazy(data, text_columns, settings)
+
+
 def _to_lazy(
     data: Any, text_columns: Sequence[str], settings: Any = None
 ) -> tuple[pl.LazyFrame, str, tuple[Path, ...], list[Any], bool]:
@@ -223,21 +237,8 @@ def _to_lazy(
     return lf, desc, tuple(paths), findings, binary
 
 
-def load_panel(
-    data: Any,
-    unit: str | Sequence[str],
-    time: str,
-    *,
-    streaming: bool | None = None,
-    settings: Any = None,
-) -> Panel:
-    """Validate ``data`` as a panel keyed by ``unit`` (one or more columns) and ``time``.
-
-    ``data`` is a path, a list of paths, a folder, a glob, or a pandas/polars frame.
-    ``streaming`` forces (True) or forbids (False) the polars streaming engine;
-    None chooses it for binary inputs larger than the configured memory share.
-    Raises AuditError (exit 2) naming what was found.
-    """
+def parse_keys(unit: str | Sequence[str], time: str) -> tuple[tuple[str, ...], str]:
+    """The unit key columns and the time column, checked: named, and none twice."""
     units = parse_unit(unit)
     time = str(time).strip()
     if not time:
@@ -248,8 +249,11 @@ def load_panel(
             if k == time and k in units:
                 raise fail("unit-is-time", column=k)
             raise fail("key-repeated", column=k)
+    return units, time
 
-    lf, source, inputs, load_findings, binary = _to_lazy(data, units, settings)
+
+def checked_schema(lf: pl.LazyFrame, source: str, keys: Sequence[str]) -> dict[str, pl.DataType]:
+    """The schema of ``lf``, every key column present in it."""
     try:
         schema = dict(lf.collect_schema())
     except pl.exceptions.PolarsError as exc:
@@ -260,55 +264,53 @@ def load_panel(
     for k in keys:
         if k not in schema:
             raise fail("unknown-column", column=k, available=short_list(c for c in schema if c not in INTERNAL))
+    return schema
 
-    if streaming is None:
-        streaming = False
-        if binary and inputs:
-            share = 0.25
-            if settings is not None:
-                share = float(settings.get("profile", "streaming_memory_share"))
-            total = sum(p.stat().st_size for p in inputs)
-            mem = memory_bytes()
-            streaming = bool(mem) and total > share * mem
-    engine = "streaming" if streaming else "auto"
-    if not streaming:  # read once; every later query runs on the frame in memory
-        try:
-            lf = lf.collect().lazy()
-        except pl.exceptions.PolarsError as exc:
-            raise fail("corrupt-file", path=source, format="data", reason=str(exc).splitlines()[0][:200]) from None
 
-    unnumbered = lf  # without row numbers: filters on it reach the file reader
-    lf = lf.with_row_index(ROW_ID)
-    # Float keys: NaN counts as missing, like null.
-    def _missing(col: str) -> pl.Expr:
-        dt = schema[col]
-        e = pl.col(col).is_null()
-        if dt.is_float():
-            e = e | pl.col(col).is_nan()
-        return e
+def key_missing(col: str, dtype: pl.DataType) -> pl.Expr:
+    """Whether a key value is missing (null, or NaN for a float key)."""
+    e = pl.col(col).is_null()
+    return e | pl.col(col).is_nan() if dtype.is_float() else e
 
-    missing_any = pl.any_horizontal([_missing(k) for k in keys])
-    summary = lf.select(
+
+def key_counts(keys: Sequence[str], schema: dict[str, pl.DataType]) -> list[pl.Expr]:
+    """Rows, rows with a missing key, and missing values per key column (one row)."""
+    missing_any = pl.any_horizontal([key_missing(k, schema[k]) for k in keys])
+    return [
         pl.len().alias("rows"),
         missing_any.sum().alias("missing"),
-        *[_missing(k).sum().alias(f"null:{k}") for k in keys],
-    ).collect(engine=engine)
-    rows = int(summary["rows"][0])
-    if rows == 0:
-        raise fail("empty-file", path=source) if inputs else fail("empty-frame")
-    for k in keys:
-        if int(summary[f"null:{k}"][0]) == rows:
-            raise fail("key-all-null", column=k, rows=rows)
-    missing = int(summary["missing"][0])
-    missing_examples: tuple[dict[str, Any], ...] = ()
-    if missing:
-        ex = lf.filter(missing_any).select(ROW_ID, *keys).head(5).collect(engine=engine)
-        missing_examples = tuple(
-            {"row": int(r[ROW_ID]) + 1, **{k: r[k] for k in keys}} for r in ex.iter_rows(named=True)
-        )
+        *[key_missing(k, schema[k]).sum().alias(f"null:{k}") for k in keys],
+    ]
 
-    keyed = lf.filter(~missing_any)
-    distinct_times = keyed.select(pl.col(time).unique()).collect(engine=engine).to_series()
+
+def check_key_counts(counts: dict[str, Any], keys: Sequence[str], source: str, from_files: bool) -> tuple[int, int]:
+    """(rows, rows with a missing key) from :func:`key_counts`, refusing an empty input or
+    a key column without any value."""
+    rows = int(counts["rows"])
+    if rows == 0:
+        raise fail("empty-file", path=source) if from_files else fail("empty-frame")
+    for k in keys:
+        if int(counts[f"null:{k}"]) == rows:
+            raise fail("key-all-null", column=k, rows=rows)
+    return rows, int(counts["missing"])
+
+
+@dataclass(frozen=True)
+class PeriodGrid:
+    """The period grid of a panel: ``labels`` (JSON values) at ``positions`` on the
+    ``frequency`` scale, ``step`` and ``irregular`` neighbours, and ``time_map`` (each raw
+    time value and its period index ``__pa_period``)."""
+
+    labels: tuple[Any, ...]
+    positions: tuple[int, ...]
+    frequency: str
+    step: int | None
+    irregular: tuple[tuple[Any, Any], ...]
+    time_map: pl.DataFrame
+
+
+def period_grid(time: str, distinct_times: pl.Series) -> PeriodGrid:
+    """The grid of the distinct time values present (methods.md, section 1)."""
     scale = scale_for(time, distinct_times)
     order = sorted(range(len(scale.positions)), key=lambda i: scale.positions[i])
     # Several raw values may share one position (e.g. "2019" and 2019 as text): one period.
@@ -328,6 +330,62 @@ def load_panel(
     step, irregular_pairs = grid_step(positions_sorted)
     label_at = dict(zip(positions_sorted, labels_sorted, strict=True))
     irregular = tuple((label_at[a], label_at[b]) for a, b in irregular_pairs)
+    return PeriodGrid(tuple(labels_sorted), tuple(positions_sorted), scale.frequency, step, irregular, time_map)
+
+
+def load_panel(
+    data: Any,
+    unit: str | Sequence[str],
+    time: str,
+    *,
+    streaming: bool | None = None,
+    settings: Any = None,
+) -> Panel:
+    """Validate ``data`` as a panel keyed by ``unit`` (one or more columns) and ``time``.
+
+    ``data`` is a path, a list of paths, a folder, a glob, or a pandas/polars frame.
+    ``streaming`` forces (True) or forbids (False) the polars streaming engine;
+    None chooses it for binary inputs larger than the configured memory share.
+    Raises AuditError (exit 2) naming what was found.
+    """
+    units, time = parse_keys(unit, time)
+    keys = (*units, time)
+    lf, source, inputs, load_findings, binary = _to_lazy(data, units, settings)
+    schema = checked_schema(lf, source, keys)
+
+    if streaming is None:
+        streaming = False
+        if binary and inputs:
+            share = 0.25
+            if settings is not None:
+                share = float(settings.get("profile", "streaming_memory_share"))
+            total = sum(p.stat().st_size for p in inputs)
+            mem = memory_bytes()
+            streaming = bool(mem) and total > share * mem
+    engine = "streaming" if streaming else "auto"
+    if not streaming:  # read once; every later query runs on the frame in memory
+        try:
+            lf = lf.collect().lazy()
+        except pl.exceptions.PolarsError as exc:
+            raise fail("corrupt-file", path=source, format="data", reason=str(exc).splitlines()[0][:200]) from None
+
+    unnumbered = lf  # without row numbers: filters on it reach the file reader
+    lf = lf.with_row_index(ROW_ID)
+    missing_any = pl.any_horizontal([key_missing(k, schema[k]) for k in keys])
+    summary = lf.select(key_counts(keys, schema)).collect(engine=engine)
+    rows, missing = check_key_counts(summary.row(0, named=True), keys, source, bool(inputs))
+    missing_examples: tuple[dict[str, Any], ...] = ()
+    if missing:
+        ex = lf.filter(missing_any).select(ROW_ID, *keys).head(5).collect(engine=engine)
+        missing_examples = tuple(
+            {"row": int(r[ROW_ID]) + 1, **{k: r[k] for k in keys}} for r in ex.iter_rows(named=True)
+        )
+
+    keyed = lf.filter(~missing_any)
+    distinct_times = keyed.select(pl.col(time).unique()).collect(engine=engine).to_series()
+    grid_ = period_grid(time, distinct_times)
+    time_map, step, irregular = grid_.time_map, grid_.step, grid_.irregular
+    labels_sorted, positions_sorted = list(grid_.labels), list(grid_.positions)
 
     # Unit codes: dense ranks of the key (composite keys rank as a struct), 0-based, in key order.
     key = pl.col(units[0]) if len(units) == 1 else pl.struct(list(units))
@@ -366,7 +424,7 @@ def load_panel(
         time=time,
         grid=tuple(labels_sorted),
         grid_position=tuple(positions_sorted),
-        frequency=scale.frequency,
+        frequency=grid_.frequency,
         step=step,
         irregular=irregular,
         rows=rows,

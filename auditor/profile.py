@@ -12,8 +12,8 @@ import polars as pl
 from auditor.config import Settings, load_settings
 from auditor.findings import Finding, sort_findings
 from auditor.load import Panel, load_panel
+from auditor.moments import Passes
 from auditor.structure import compute_structure, structure_findings
-from auditor.structure import unit_exprs as structure_unit_exprs
 from auditor.variation import compute_variation, run_passes, variation_findings
 
 
@@ -87,27 +87,42 @@ def profile(
     rules: str | Path | None = None,
     settings: Settings | None = None,
     streaming: bool | None = None,
+    engine: str = "auto",
+    scheduler: str | None = None,
 ) -> ProfileResult:
     """Profile ``data`` (a path, paths, or a pandas/polars frame) keyed by ``unit`` and ``time``.
 
     ``rules`` is a rules file overriding the shipped thresholds (or pass ``settings``).
-    Raises AuditError for input that cannot be used.
+    ``engine``: ``auto`` (memory or streaming by the input's size), ``memory``,
+    ``streaming`` or ``dask`` (Parquet input on a dask cluster: the one at ``scheduler``,
+    or a local one started for the run); ``streaming`` True / False is the older
+    shorthand for the streaming and memory engines. Raises AuditError for input that
+    cannot be used.
     """
     from auditor import progress
+    from auditor.engines import resolve_engine
 
     if settings is None:
         settings = load_settings(rules)
+    name = resolve_engine(engine, streaming, scheduler)
+    if name == "dask":
+        from auditor.cluster import profile_passes
+
+        run = profile_passes(data, unit, time, settings, scheduler)
+        return profile_panel(run.panel, settings, run.passes)
     with progress.step("reading the panel"):
-        panel = load_panel(data, unit, time, streaming=streaming, settings=settings)
+        panel = load_panel(data, unit, time, streaming={"memory": False, "streaming": True}.get(name), settings=settings)
     return profile_panel(panel, settings)
 
 
-def profile_panel(panel: Panel, settings: Settings) -> ProfileResult:
-    """The profile of an already loaded panel."""
+def profile_panel(panel: Panel, settings: Settings, passes: Passes | None = None) -> ProfileResult:
+    """The profile of an already loaded panel (``passes``: its statistics, when an engine
+    computed them already)."""
     from auditor import progress
 
-    with progress.step(f"grouped pass over {panel.rows:,} rows"):
-        passes = run_passes(panel, settings, extra_unit=structure_unit_exprs(panel))
+    if passes is None:
+        with progress.step(f"grouped pass over {panel.rows:,} rows"):
+            passes = run_passes(panel, settings)
     with progress.step("structure and variation"):
         s = compute_structure(panel, settings, passes.per_unit, passes.duplicate_cells)
         v = compute_variation(panel, settings, passes)

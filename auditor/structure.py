@@ -253,7 +253,7 @@ def compute_structure(
         "attrition": attrition,
         "missing_periods": [list(pair) for pair in panel.irregular],
         "grid_step": panel.step,
-        "engine": "streaming" if panel.streaming else "in-memory",
+        "engine": panel.engine_name,
     }
     return Structure(
         summary=summary,

@@ -49,30 +49,31 @@ def test_streaming_equals_in_memory(parquet) -> None:
 def test_streaming_in_many_partitions_of_units_equals_in_memory(parquet, monkeypatch) -> None:
     # ranges of units read one at a time: per-unit figures joined in unit order, per-period
     # sums and the period dummies' matrices added up; equal to one pass to 1e-12
-    import auditor.variation as variation
+    import auditor.engines as engines
 
-    monkeypatch.setattr(variation, "PARTITION_ROWS", 97)
+    monkeypatch.setattr(engines, "PARTITION_ROWS", 97)
     calls = []
-    original = variation.unitpass.run_frame
-    monkeypatch.setattr(variation.unitpass, "run_frame", lambda *a, **k: calls.append(1) or original(*a, **k))
+    original = engines.moments.shard
+    monkeypatch.setattr(engines.moments, "shard", lambda *a, **k: calls.append(1) or original(*a, **k))
     streamed = _doc(parquet, True)
     assert len(calls) >= 20  # 2,000-odd rows in ranges of about 97 rows
     assert _approx(streamed, _doc(parquet, False))
 
 
 def test_streaming_in_small_batches_merges_exactly(parquet, monkeypatch) -> None:
-    # the polars streaming pass (composite keys, more than 63 periods): per-unit moments
-    # merged across batches (Chan, Golub and LeVeque) equal one pass to 1e-12
-    import auditor.variation as variation
+    # the row-batch pass (composite keys): units split across batches, per-unit moments
+    # merged exactly (Chan, Golub and LeVeque) and a second pass with the merged unit
+    # means, equal to one pass to 1e-12
+    import auditor.engines as engines
 
-    monkeypatch.setattr(variation, "partitioned", lambda panel: False)
-    monkeypatch.setattr(variation, "MOMENT_BATCH_ROWS", 97)
+    monkeypatch.setattr(engines, "by_unit_ranges", lambda panel: False)
+    monkeypatch.setattr(engines, "BATCH_ROWS", 97)
     assert _approx(_doc(parquet, True), _doc(parquet, False))
 
 
 def test_streaming_with_text_keys_and_duplicates_in_partitions(tmp_path, monkeypatch) -> None:
     # text unit keys are ranged by their sorted order; duplicate cells and gaps found per range
-    import auditor.variation as variation
+    import auditor.engines as engines
 
     rng = np.random.default_rng(11)
     n, periods = 150, 5
@@ -87,7 +88,7 @@ def test_streaming_with_text_keys_and_duplicates_in_partitions(tmp_path, monkeyp
     df = pl.concat([df, df.slice(10, 3)])
     path = tmp_path / "hh.parquet"
     df.write_parquet(path)
-    monkeypatch.setattr(variation, "PARTITION_ROWS", 50)
+    monkeypatch.setattr(engines, "PARTITION_ROWS", 50)
     streamed = auditor.profile(path, "hh", "wave", streaming=True).to_dict()
     whole = auditor.profile(path, "hh", "wave", streaming=False).to_dict()
     assert streamed["panel"].pop("engine") == "streaming"
@@ -96,14 +97,15 @@ def test_streaming_with_text_keys_and_duplicates_in_partitions(tmp_path, monkeyp
     assert _approx(streamed, whole)
 
 
-def test_streaming_with_missing_and_non_finite_values_equals_in_memory(tmp_path, monkeypatch) -> None:
+@pytest.mark.parametrize("ranges", [True, False], ids=["unit-ranges", "row-batches"])
+def test_streaming_with_missing_and_non_finite_values_equals_in_memory(tmp_path, monkeypatch, ranges) -> None:
     # whole-column counts of a streaming panel come from each column read whole and sorted:
     # nulls, NaN, infinities, the first finite value, finite extremes and distinct values
     # must equal the in-memory pass, for floats (64 and 32 bit), integers with nulls,
     # booleans, dates and text
     import datetime as dt
 
-    import auditor.variation as variation
+    import auditor.engines as engines
 
     rng = np.random.default_rng(23)
     n, periods = 120, 6
@@ -134,7 +136,9 @@ def test_streaming_with_missing_and_non_finite_values_equals_in_memory(tmp_path,
     ).sample(fraction=0.9, seed=5)
     path = tmp_path / "farms.parquet"
     df.write_parquet(path)
-    monkeypatch.setattr(variation, "PARTITION_ROWS", 101)
+    monkeypatch.setattr(engines, "PARTITION_ROWS", 101)
+    monkeypatch.setattr(engines, "BATCH_ROWS", 101)
+    monkeypatch.setattr(engines, "by_unit_ranges", lambda panel: ranges)
     streamed = _doc(path, True, "farm", "year")
     whole = _doc(path, False, "farm", "year")
     cols = {c["name"]: c for c in streamed["columns"]}
