@@ -45,11 +45,25 @@ def _common(p: argparse.ArgumentParser, keys: bool = True) -> None:
 
 
 def _engine_flags(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--engine", choices=("auto", "memory", "streaming", "dask"), default="auto",
+                   help="which engine computes the statistics: auto (memory or streaming by the input's size), "
+                        "memory, streaming (larger-than-memory Parquet) or dask (Parquet on a dask cluster)")
+    p.add_argument("--scheduler", metavar="ADDRESS", default=None,
+                   help="with --engine dask: a running dask scheduler (tcp://host:port); without it a local "
+                        "cluster of worker processes is started for the run and closed after it")
     g = p.add_mutually_exclusive_group()
     g.add_argument("--streaming", dest="streaming", action="store_const", const=True, default=None,
-                   help="force the polars streaming engine (larger-than-memory Parquet)")
+                   help="shorthand for --engine streaming")
     g.add_argument("--in-memory", dest="streaming", action="store_const", const=False,
-                   help="force reading the panel into memory")
+                   help="shorthand for --engine memory")
+
+
+def _engine(args: argparse.Namespace) -> dict[str, Any]:
+    """The engine options of a command, checked (``engine``, ``scheduler``)."""
+    from auditor.engines import resolve_engine
+
+    name = resolve_engine(args.engine, args.streaming, args.scheduler)
+    return {"engine": name, "scheduler": args.scheduler}
 
 
 def _csv_list(text: str | None) -> list[str]:
@@ -204,7 +218,7 @@ def _cmd_profile(args: argparse.Namespace) -> int:
     from auditor.profile import profile
     from auditor.report.text import render
 
-    result = profile(_data(args), args.unit, args.time, settings=_settings(args), streaming=args.streaming)
+    result = profile(_data(args), args.unit, args.time, settings=_settings(args), **_engine(args))
     return _emit(args, result, render)
 
 

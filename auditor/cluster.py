@@ -57,6 +57,7 @@ from auditor.load import (
 
 PARTITION_ROWS = 2_000_000  # rows per partition (whole row groups; a larger row group is sliced)
 MAX_LOCAL_WORKERS = 4  # worker processes of a local cluster, at most (one per core)
+CONNECT_TIMEOUT = "5s"  # to reach a scheduler given by --scheduler
 
 
 @dataclass(frozen=True)
@@ -74,9 +75,12 @@ class Partition:
     columns: tuple[str, ...]
 
 
-def partitions(paths: Sequence[Path], schema: dict[str, pl.DataType], rows: int = PARTITION_ROWS) -> list[Partition]:
-    """The partitions of Parquet files ``paths`` read as one panel with ``schema``."""
+def partitions(paths: Sequence[Path], schema: dict[str, pl.DataType], rows: int | None = None) -> list[Partition]:
+    """The partitions of Parquet files ``paths`` read as one panel with ``schema`` (about
+    ``rows`` rows each, default :data:`PARTITION_ROWS`)."""
     import pyarrow.parquet as pq
+
+    rows = PARTITION_ROWS if rows is None else rows
 
     out: list[Partition] = []
     before = 0
@@ -230,7 +234,7 @@ def connect(scheduler: str | None) -> Iterator[Any]:
         raise fail("engine-dask-missing") from None
     if scheduler:
         try:
-            client = distributed.Client(scheduler, timeout="10s")
+            client = distributed.Client(scheduler, timeout=CONNECT_TIMEOUT)
         except (OSError, TimeoutError) as exc:
             raise fail("engine-no-scheduler", address=scheduler, reason=str(exc).splitlines()[0][:200]) from None
         try:

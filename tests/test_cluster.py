@@ -1,0 +1,171 @@
+"""The dask engine (auditor/cluster.py) on a real distributed.LocalCluster of 2 worker
+processes started by these tests and closed at the end, whatever happens.
+
+Claim checked: ``--engine dask`` gives the memory engine's document (to 1e-12 relative,
+counts, kinds and findings exactly) on a panel held as one Parquet file per wave, so
+that every unit has rows in several partitions, with NaN, infinities, nulls, text,
+dates, duplicate and missing keys. The oracle of the figures themselves is in
+tests/test_moments.py (exact arithmetic); here the two engines must agree.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import json
+
+import numpy as np
+import polars as pl
+import pytest
+from conftest import approx_equal
+
+import auditor
+
+distributed = pytest.importorskip("distributed")
+
+
+@pytest.fixture(scope="module")
+def scheduler():
+    cluster = distributed.LocalCluster(
+        n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None, silence_logs=40
+    )
+    try:
+        yield cluster.scheduler_address
+    finally:
+        cluster.close()
+
+
+def write_waves(folder, seed: int = 7, n: int = 150, periods: int = 5) -> pl.DataFrame:
+    """An invented registry of beehives, one Parquet file per season."""
+    rng = np.random.default_rng(seed)
+    hive = np.repeat(np.arange(1000, 1000 + n), periods)
+    season = np.tile(np.arange(2015, 2015 + periods), n)
+    rows = hive.size
+    honey = 30 + np.repeat(rng.normal(0, 5, n), periods) + rng.normal(0, 2, rows)
+    honey[rng.integers(0, rows, 12)] = np.nan
+    honey[rng.integers(0, rows, 4)] = np.inf
+    frame = pl.DataFrame(
+        {
+            "hive": hive,
+            "season": season,
+            "honey_kg": honey,
+            "frames": rng.integers(5, 12, rows),
+            "colonies": np.repeat(rng.integers(1, 4, n), periods).astype(np.int64),
+            "apiary": np.repeat(np.array(["north", "mill", "ridge"])[rng.integers(0, 3, n)], periods),
+            "queen": np.array(["old", "new"])[rng.integers(0, 2, rows)],
+            "inspected": [dt.date(2015, 5, 1) + dt.timedelta(days=int(d)) for d in rng.integers(0, 90, rows)],
+            "level": np.repeat(rng.normal(0, 1, n), periods) * 1e-3 + 1e9,  # 1e9 + small noise
+        }
+    ).with_columns(
+        pl.when(pl.int_range(pl.len()) % 23 == 3).then(None).otherwise(pl.col("frames")).alias("frames"),
+        pl.when(pl.int_range(pl.len()) % 17 == 5).then(None).otherwise(pl.col("queen")).alias("queen"),
+        pl.when(pl.int_range(pl.len()) % 97 == 1).then(None).otherwise(pl.col("hive")).alias("hive"),  # missing keys
+    ).sample(fraction=0.9, seed=seed)
+    frame = pl.concat([frame, frame.head(2)])  # two duplicate keys
+    folder.mkdir(parents=True, exist_ok=True)
+    for year in range(2015, 2015 + periods):
+        frame.filter(pl.col("season") == year).write_parquet(folder / f"season_{year}.parquet", row_group_size=40)
+    return frame
+
+
+def without_engine(doc: dict) -> dict:
+    assert doc["panel"].pop("engine") in ("dask", "in-memory")
+    return doc
+
+
+@pytest.fixture(scope="module")
+def waves(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("hives") / "waves"
+    write_waves(folder)
+    return folder
+
+
+def test_profile_on_the_cluster_equals_the_memory_engine(scheduler, waves, monkeypatch):
+    import auditor.cluster as cluster
+
+    monkeypatch.setattr(cluster, "PARTITION_ROWS", 30)  # one partition per row group of 40 rows
+    parts = cluster.partitions(sorted(waves.glob("*.parquet")), dict(pl.scan_parquet(waves).collect_schema()))
+    assert len(parts) > 10
+    on_cluster = auditor.profile(waves, "hive", "season", engine="dask", scheduler=scheduler)
+    memory = auditor.profile(waves, "hive", "season", engine="memory")
+    a, b = without_engine(on_cluster.to_dict()), without_engine(memory.to_dict())
+    assert a["panel"]["duplicate_keys"] == 2 and a["panel"]["missing_keys"] > 0
+    kinds = {c["name"]: c["kind"] for c in a["columns"]}
+    assert kinds["apiary"] == "time-invariant" and kinds["honey_kg"] == "time-varying"
+    assert approx_equal(a, b, rel=1e-12, abs_=1e-15)
+
+
+def test_profile_command_with_a_scheduler(scheduler, waves, cli):
+    glob = str(waves / "*.parquet")
+    got = cli("profile", glob, "--unit", "hive", "--time", "season", "--json", "--engine", "dask",
+              "--scheduler", scheduler, "--fail-on", "never")
+    assert got.returncode == 0, got.stderr
+    want = cli("profile", glob, "--unit", "hive", "--time", "season", "--json", "--in-memory", "--fail-on", "never")
+    assert approx_equal(without_engine(json.loads(got.stdout)), without_engine(json.loads(want.stdout)), 1e-12, 1e-15)
+
+
+def test_profile_command_starts_and_closes_a_local_cluster(waves, cli):
+    got = cli("profile", str(waves), "--unit", "hive", "--time", "season", "--json", "--engine", "dask",
+              "--fail-on", "never", timeout=300)
+    assert got.returncode == 0, got.stderr
+    assert json.loads(got.stdout)["panel"]["engine"] == "dask"
+
+
+def test_dask_engine_refuses_text_files(tmp_path, cli):
+    path = tmp_path / "hives.csv"
+    pl.DataFrame({"hive": [1, 1, 2], "season": [1, 2, 1], "x": [1.0, 2.0, 3.0]}).write_csv(path)
+    got = cli("profile", str(path), "--unit", "hive", "--time", "season", "--engine", "dask")
+    assert got.returncode == 2
+    assert got.stderr.startswith("panel-audit: error: --engine dask reads Parquet files")
+
+
+def test_scheduler_needs_the_dask_engine(waves, cli):
+    got = cli("profile", str(waves), "--unit", "hive", "--time", "season", "--scheduler", "tcp://127.0.0.1:1")
+    assert got.returncode == 2 and "needs --engine dask" in got.stderr
+
+
+def test_engine_and_its_shorthand_must_agree(waves, cli):
+    got = cli("profile", str(waves), "--unit", "hive", "--time", "season", "--engine", "dask", "--in-memory")
+    assert got.returncode == 2 and "--in-memory contradicts --engine dask" in got.stderr
+
+
+def test_an_unreachable_scheduler_is_a_clear_error(waves, cli):
+    got = cli("profile", str(waves), "--unit", "hive", "--time", "season", "--engine", "dask",
+              "--scheduler", "tcp://127.0.0.1:9", timeout=120)
+    assert got.returncode == 2
+    assert got.stderr.startswith("panel-audit: error: cannot reach the dask scheduler at 'tcp://127.0.0.1:9'")
+
+
+def test_without_the_dask_extra_the_engine_says_how_to_install_it(monkeypatch):
+    import sys
+
+    from auditor import cluster
+    from auditor.errors import AuditError
+
+    monkeypatch.setitem(sys.modules, "distributed", None)  # as if not installed
+    with pytest.raises(AuditError) as err, cluster.connect(None):
+        pass
+    assert err.value.code == "engine-dask-missing" and "pip install 'panel-auditor[dask]'" in err.value.message
+
+
+def test_an_unknown_engine_name_is_refused():
+    from auditor.errors import AuditError
+
+    with pytest.raises(AuditError, match="--engine must be one of auto, memory, streaming, dask"):
+        auditor.profile("unused.parquet", "hive", "season", engine="spark")
+
+
+def test_help_and_the_memory_engine_never_import_dask(waves):
+    import subprocess
+    import sys
+
+    code = (
+        "import sys, auditor.cli, auditor; "
+        "auditor.profile(sys.argv[1], 'hive', 'season', engine='memory'); "
+        "print(sorted(m for m in sys.modules if m.split('.')[0] in ('dask', 'distributed')))"
+    )
+    out = subprocess.run([sys.executable, "-c", code, str(waves)], capture_output=True, text=True, check=True)
+    assert out.stdout.strip() == "[]"
+    helped = subprocess.run(
+        [sys.executable, "-X", "importtime", "-m", "auditor.cli", "profile", "--help"], capture_output=True, text=True
+    )
+    assert helped.returncode == 0 and "dask" not in helped.stderr and "distributed" not in helped.stderr
