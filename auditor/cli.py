@@ -96,6 +96,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--period-effects", action="store_true", help="add a dummy for each period but the first")
     p.add_argument("--treat-as-invariant", metavar="COL", action="append", default=[],
                    help="use a nearly-time-invariant column's most common value within each unit")
+    _engine_flags(p)
 
     p = sub.add_parser("compare", help="a new wave against the panel so far")
     p.add_argument("base", metavar="BASE")
@@ -237,6 +238,7 @@ def _cmd_instruments(args: argparse.Namespace) -> int:
         period_effects=args.period_effects,
         treat_as_invariant=list(args.treat_as_invariant),
         settings=_settings(args),
+        **_engine(args),
     )
     return _emit(args, result, render)
 

@@ -106,8 +106,9 @@ def partitions(paths: Sequence[Path], schema: dict[str, pl.DataType], rows: int 
 
 def _slices(path: Path, start: int, length: int, rows: int, before: int, casts: Any, absent: Any,
             columns: tuple[str, ...]) -> list[Partition]:
-    """Row groups of ``length`` rows as partitions: one, or equal slices of a large group."""
-    pieces = max(1, int(np.ceil(length / (2 * rows))))
+    """Row groups of ``length`` rows as partitions of about ``rows`` rows (a large group in
+    equal slices)."""
+    pieces = max(1, int(round(length / rows)))
     edges = np.linspace(0, length, pieces + 1).round().astype(np.int64)
     return [
         Partition(str(path), start + int(a), int(b - a), before + int(a), casts, absent, columns)
@@ -190,8 +191,7 @@ def _buckets(s: moments.Shard, buckets: int) -> list[dict[str, moments.Values]]:
 def _count_bucket(*parts: dict[str, moments.Values]) -> dict[str, tuple[int, int]]:
     out: dict[str, tuple[int, int]] = {}
     for c in parts[0]:
-        merged = moments.merge_stream((p[c] for p in parts), moments.merge_values)
-        counted = merged.counts()
+        counted = moments.merge_all_values([p[c] for p in parts]).counts()
         assert counted is not None
         out[c] = counted
     return out
@@ -202,6 +202,11 @@ def _refine(part: Partition, unit: tuple[str, ...], time: str, units: pl.DataFra
             the_plan: moments.Plan) -> moments.Refinement:
     frame = _coded(part, unit, time, units, time_map, schema, columns)
     return moments.refine(frame, the_plan, n_units=units.height, n_periods=n_periods)
+
+
+_SHELL = Panel(lazy=pl.LazyFrame(), unit=(), time="", grid=(), grid_position=(), frequency="", step=None,
+               irregular=(), rows=0, missing_keys=0, missing_key_examples=(), columns=(), schema={},
+               units=pl.DataFrame(), source="")
 
 
 def _peak_rss() -> int:
@@ -243,7 +248,7 @@ def connect(scheduler: str | None) -> Iterator[Any]:
             client.close()
         return
     cluster = distributed.LocalCluster(
-        n_workers=local_workers(), threads_per_worker=1, processes=True, dashboard_address=None,
+        n_workers=local_workers(), threads_per_worker=1, processes=True, dashboard_address=":0",
         silence_logs=logging.ERROR,
     )  # fmt: skip
     try:
@@ -302,38 +307,47 @@ def load(data: Any, unit: str | Sequence[str], time: str, settings: Settings) ->
     return shell, parts
 
 
-def profile_passes(
-    data: Any, unit: str | Sequence[str], time: str, settings: Settings, scheduler: str | None = None
-) -> DaskRun:
-    """The panel and every column's statistics of Parquet ``data``, computed on a dask
-    cluster (``scheduler``: its address; None starts a local one for the run)."""
-    from dataclasses import replace
+class Session:
+    """One dask run over the partitions of a panel: the client, the unit table and the
+    period grid on every worker once the survey has built them."""
 
-    from auditor import progress
+    def __init__(self, client: Any, shell: Panel, parts: list[Partition], settings: Settings) -> None:
+        self.client, self.shell, self.parts, self.settings = client, shell, parts, settings
+        self.tol = float(settings.get("profile", "float_tolerance"))
+        self.examples = int(settings.get("profile", "examples"))
+        self.peaks: dict[str, int] = {}
 
-    shell, parts = load(data, unit, time, settings)
-    tol, k = float(settings.get("profile", "float_tolerance")), int(settings.get("profile", "examples"))
-    units_cols, time_col, schema = shell.unit, shell.time, shell.schema
-    keys = (*units_cols, time_col)
-    columns = shell.columns
-    with connect(scheduler) as client:
-        with progress.step(f"survey of {len(parts)} partitions on the cluster"):
-            survey = _tree(client, [client.submit(_survey, p, units_cols, time_col, schema, pure=False)
-                                    for p in parts], _merge_surveys).result()
-        rows, missing = check_key_counts(survey.counts, keys, shell.source, True)
-        grid = period_grid(time_col, survey.times)
-        table = survey.units.sort(list(units_cols)).with_row_index(UNIT_ID)
-        table = table.select(pl.col(UNIT_ID).cast(pl.UInt32), *units_cols)
-        panel = replace(
+    def survey(self) -> Panel:
+        """Round 1: the panel's rows, missing keys, period grid and unit table."""
+        from dataclasses import replace
+
+        from auditor import progress
+
+        shell, client = self.shell, self.client
+        with progress.step(f"survey of {len(self.parts)} partitions on the cluster"):
+            survey = _tree(client, [client.submit(_survey, p, shell.unit, shell.time, shell.schema, pure=False)
+                                    for p in self.parts], _merge_surveys).result()
+        rows, missing = check_key_counts(survey.counts, (*shell.unit, shell.time), shell.source, True)
+        grid = period_grid(shell.time, survey.times)
+        table = survey.units.sort(list(shell.unit)).with_row_index(UNIT_ID)
+        table = table.select(pl.col(UNIT_ID).cast(pl.UInt32), *shell.unit)
+        self.panel = replace(
             shell, grid=grid.labels, grid_position=grid.positions, frequency=grid.frequency, step=grid.step,
             irregular=grid.irregular, rows=rows, missing_keys=missing,
             missing_key_examples=tuple(sorted(survey.missing_examples, key=lambda e: e["row"])[:5]), units=table,
         )  # fmt: skip
-        n_periods = len(grid.labels)
-        common = (units_cols, time_col, client.scatter(table, broadcast=True),
-                  client.scatter(grid.time_map, broadcast=True), schema, columns, n_periods)
+        self.common = (shell.unit, shell.time, client.scatter(table, broadcast=True),
+                       client.scatter(grid.time_map, broadcast=True), shell.schema)
+        return self.panel
+
+    def passes(self, columns: Sequence[str]) -> moments.Passes:
+        """Rounds 2 and 3 for ``columns``: the kernel, value buckets, the second pass."""
+        from auditor import progress
+
+        client, parts, cols = self.client, self.parts, tuple(columns)
+        n_periods = self.panel.n_periods
         with progress.step(f"moments of {len(parts)} partitions on the cluster"):
-            shards = [client.submit(_shard, p, *common, tol, pure=False) for p in parts]
+            shards = [client.submit(_shard, p, *self.common, cols, n_periods, self.tol, pure=False) for p in parts]
             buckets = max(4, 2 * len(client.scheduler_info().get("workers", {})))
             cut = [client.submit(_buckets, s, buckets, pure=False) for s in shards]
             picks = [[client.submit(operator.getitem, c, b, pure=False) for c in cut] for b in range(buckets)]
@@ -343,16 +357,151 @@ def profile_passes(
             merged = _tree(client, stripped, moments.merge).result()
             counted = _combine_counts(client.gather(counted_f))
         with progress.step("second pass on the cluster"):
-            the_plan = moments.plan(merged, tolerance=tol, examples=k)
+            the_plan = moments.plan(merged, tolerance=self.tol, examples=self.examples)
             plan_f = client.scatter(the_plan, broadcast=True)
             refined = _tree(
-                client, [client.submit(_refine, p, *common, plan_f, pure=False) for p in parts],
+                client, [client.submit(_refine, p, *self.common, cols, n_periods, plan_f, pure=False) for p in parts],
                 moments.merge_refinements, plan_f,
             ).result()  # fmt: skip
-        peaks = client.run(_peak_rss)
-    passes = moments.finish(merged, examples=k, tolerance=tol, refinement=refined, the_plan=the_plan,
-                            counted=counted)
-    return DaskRun(panel, passes, len(parts), dict(peaks))
+        self.peaks = dict(client.run(_peak_rss))
+        return moments.finish(merged, examples=self.examples, tolerance=self.tol, refinement=refined,
+                              the_plan=the_plan, counted=counted)
+
+    def sample(self, outcome: str, regs: list[str], period_effects: bool, invariant: list[str]) -> Any:
+        """The instruments command's sample from the partitions: kinds from the kernel's
+        passes over the outcome and regressors, --treat-as-invariant modes, complete rows,
+        text levels and periods present, then the unit cross-products of the design
+        (:func:`auditor.moments.cross_products`), merged exactly; the sample holds their
+        equivalent rows (:func:`auditor.moments.equivalent_rows`)."""
+        from dataclasses import replace
+
+        from auditor import progress, readiness
+        from auditor.variation import compute_variation
+
+        client, panel = self.client, self.panel
+        used = (outcome, *regs)
+        passes = self.passes(used)
+        var = compute_variation(replace(panel, columns=used), self.settings, passes)
+        info = {r["name"]: r for r in var.columns.to_dicts()}
+        kinds = {c: info[c]["kind"] for c in used}
+        n_periods = panel.n_periods
+        args = (*self.common, used)
+        treated, modes = [], {}
+        with progress.step("the model sample on the cluster"):
+            for c in invariant:
+                counts = _tree(client, [client.submit(_unit_values, p, *args, c, pure=False) for p in self.parts],
+                               _merge_unit_values, c).result()
+                modes[c], changed = readiness.unit_modes(counts, c)
+                treated.append((c, kinds[c], changed))
+                kinds[c] = "time-invariant"
+            modes_f = client.scatter([modes], broadcast=True)[0]  # a dict would scatter item by item
+            texts = [c for c in regs if readiness._is_text(panel.schema[c])]
+            facts = _tree(client, [client.submit(_complete_facts, p, *args, modes_f, texts, pure=False)
+                                   for p in self.parts], _merge_complete_facts).result()
+            rows_keyed, miss = facts["rows"], facts["missing"]
+            dropped = rows_keyed - facts["complete"]
+            if facts["complete"] == 0:
+                raise readiness._no_complete_rows(rows_keyed, dropped, miss)
+            readiness._check_units(panel, facts["units"])
+            periods_present = tuple(sorted(facts["periods"].to_list()))
+            limit = int(self.settings.get(readiness.SECTION, "max_levels"))
+            design = (facts["levels"], periods_present, period_effects, limit)
+            d = readiness.design_columns(panel, outcome, regs, *design)  # refuses too many levels here
+            names = ["__pa_y", *[name for name, _ in d.design_cols], *d.added]
+            cross = _tree(client, [client.submit(_cross, p, *args, modes_f, outcome, regs, design, names,
+                                                 panel.grid, n_periods, pure=False) for p in self.parts],
+                          moments.merge_cross).result()
+        self.peaks = dict(client.run(_peak_rss))
+        num, weights, unit_rows, means = readiness.equivalent_num(cross)
+        return readiness.Sample(outcome, kinds, info, num, d.design_cols, d.added, d.base_levels, d.constant_text,
+                                periods_present, rows_keyed, dropped, miss, tuple(treated), tuple(invariant),
+                                weights=weights, unit_rows=unit_rows, unit_means=means)
+
+
+@contextmanager
+def session(data: Any, unit: str | Sequence[str], time: str, settings: Settings,
+            scheduler: str | None) -> Iterator[Session]:
+    """A :class:`Session` over Parquet ``data``, surveyed, on the cluster at ``scheduler``
+    (or a local one for the run)."""
+    shell, parts = load(data, unit, time, settings)
+    with connect(scheduler) as client:
+        run = Session(client, shell, parts, settings)
+        run.survey()
+        yield run
+
+
+def profile_passes(
+    data: Any, unit: str | Sequence[str], time: str, settings: Settings, scheduler: str | None = None
+) -> DaskRun:
+    """The panel and every column's statistics of Parquet ``data``, computed on a dask
+    cluster (``scheduler``: its address; None starts a local one for the run)."""
+    with session(data, unit, time, settings, scheduler) as run:
+        passes = run.passes(run.panel.columns)
+    return DaskRun(run.panel, passes, len(run.parts), run.peaks)
+
+
+def _unit_values(part: Partition, unit: tuple[str, ...], time: str, units: pl.DataFrame, time_map: pl.DataFrame,
+                 schema: dict[str, pl.DataType], columns: tuple[str, ...], c: str) -> pl.DataFrame:
+    from auditor.readiness import value_counts_by_unit
+
+    frame = _coded(part, unit, time, units, time_map, schema, columns)
+    return value_counts_by_unit(frame, c, schema[c])
+
+
+def _merge_unit_values(a: pl.DataFrame, b: pl.DataFrame, c: str) -> pl.DataFrame:
+    return pl.concat([a, b]).group_by([UNIT_ID, c]).agg(pl.col("len").sum())
+
+
+def _model_rows(part: Partition, unit: tuple[str, ...], time: str, units: pl.DataFrame, time_map: pl.DataFrame,
+                schema: dict[str, pl.DataType], columns: tuple[str, ...], modes: dict[str, pl.DataFrame]) -> pl.DataFrame:
+    """A partition's keyed rows of the model's columns, --treat-as-invariant applied."""
+    from auditor.readiness import with_modes
+
+    frame = _coded(part, unit, time, units, time_map, schema, columns)
+    frame = frame.select(UNIT_ID, PERIOD_ID, *columns)
+    for c, m in modes.items():
+        frame = with_modes(frame, c, m)
+    return frame
+
+
+def _complete_facts(part: Partition, unit: tuple[str, ...], time: str, units: pl.DataFrame, time_map: pl.DataFrame,
+                    schema: dict[str, pl.DataType], columns: tuple[str, ...], modes: dict[str, pl.DataFrame],
+                    texts: list[str]) -> dict[str, Any]:
+    from auditor import readiness
+
+    frame = _model_rows(part, unit, time, units, time_map, schema, columns, modes)
+    full = readiness.complete(frame, columns, schema)
+    return {
+        "rows": frame.height, "complete": full.height, "missing": readiness.missing_counts(frame, columns, schema),
+        "levels": {c: readiness.level_counts(full, c) for c in texts}, "periods": full[PERIOD_ID].unique(),
+        "units": full[UNIT_ID].unique(),
+    }
+
+
+def _merge_complete_facts(a: dict[str, Any], b: dict[str, Any]) -> dict[str, Any]:
+    return {
+        "rows": a["rows"] + b["rows"], "complete": a["complete"] + b["complete"],
+        "missing": {c: a["missing"][c] + b["missing"][c] for c in a["missing"]},
+        "levels": {c: pl.concat([a["levels"][c], b["levels"][c]]).group_by(c).agg(pl.col("len").sum())
+                   for c in a["levels"]},
+        "periods": pl.concat([a["periods"], b["periods"]]).unique(),
+        "units": pl.concat([a["units"], b["units"]]).unique(),
+    }
+
+
+def _cross(part: Partition, unit: tuple[str, ...], time: str, units: pl.DataFrame, time_map: pl.DataFrame,
+           schema: dict[str, pl.DataType], columns: tuple[str, ...], modes: dict[str, pl.DataFrame], outcome: str,
+           regs: list[str], design: tuple[Any, ...], names: list[str], grid: tuple[Any, ...],
+           n_periods: int) -> moments.CrossProducts:
+    from dataclasses import replace
+
+    from auditor import readiness
+
+    frame = _model_rows(part, unit, time, units, time_map, schema, columns, modes)
+    full = readiness.complete(frame, columns, schema)
+    shell = replace(_SHELL, schema=schema, grid=grid)
+    d = readiness.design_columns(shell, outcome, regs, *design)
+    return moments.cross_products(full.select(d.exprs), names, n_units=units.height)
 
 
 def _combine_counts(buckets: list[dict[str, tuple[int, int]]]) -> dict[str, tuple[int, int]]:

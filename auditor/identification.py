@@ -158,12 +158,15 @@ def _rank_pass(gram: np.ndarray, tol: float) -> _Pass:
     return _Pass(kept, dependent, share, coefficients)
 
 
-def _blocked_gram(block: Callable[[int, int], np.ndarray], nrows: int, k: int) -> np.ndarray:
-    """sum over row blocks of block' block, so no centred N x k copy is held at once."""
+def _blocked_gram(block: Callable[[int, int], np.ndarray], nrows: int, k: int,
+                  weights: np.ndarray | None = None) -> np.ndarray:
+    """sum over row blocks of block' W block (W the row weights, when given), so no
+    centred N x k copy is held at once."""
     g = np.zeros((k, k))
     for start in range(0, nrows, _CHUNK):  # loop over row blocks, not rows
-        b = block(start, min(nrows, start + _CHUNK))
-        g += b.T @ b
+        stop = min(nrows, start + _CHUNK)
+        b = block(start, stop)
+        g += b.T @ (b if weights is None else b * weights[start:stop, None])
     return g
 
 
@@ -174,19 +177,20 @@ def _within_gram(pa: PanelArrays, cols: list[str]) -> np.ndarray:
     def block(a: int, b: int) -> np.ndarray:
         return pa.x[a:b, xi] - xbar[pa.codes[a:b]]
 
-    return _blocked_gram(block, pa.nobs, len(cols))
+    return _blocked_gram(block, pa.rows, len(cols), pa.weights)
 
 
 def _levels_gram(pa: PanelArrays, xcols: list[str], zcols: list[str]) -> tuple[np.ndarray, np.ndarray]:
     xi = [pa.x_names.index(c) for c in xcols]
     zi = [pa.z_names.index(c) for c in zcols]
-    mx = pa.x[:, xi].mean(axis=0) if xi else np.zeros(0)
-    mz = pa.z[:, zi].mean(axis=0) if zi else np.zeros(0)
+    w = pa.weights
+    mx = np.average(pa.x[:, xi], axis=0, weights=w) if xi else np.zeros(0)
+    mz = np.average(pa.z[:, zi], axis=0, weights=w) if zi else np.zeros(0)
 
     def block(a: int, b: int) -> np.ndarray:
         return np.column_stack([pa.x[a:b, xi] - mx, pa.z[a:b, zi] - mz])
 
-    return _blocked_gram(block, pa.nobs, len(xcols) + len(zcols)), np.concatenate([mx, mz])
+    return _blocked_gram(block, pa.rows, len(xcols) + len(zcols), w), np.concatenate([mx, mz])
 
 
 def _with_constant(p: _Pass, j: int, means: np.ndarray, gram: np.ndarray) -> bool:

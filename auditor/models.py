@@ -116,6 +116,12 @@ class PanelArrays:
     ``codes`` are unit codes 0..n-1 (every code present), ``x`` the time-varying
     regressors in levels (N, kx), period effects included, and ``z`` the
     time-invariant ones without the constant (N, kz).
+
+    ``weights`` (per row) and ``unit_rows`` (T_i per unit) are given when the rows are
+    the equivalent rows of :func:`auditor.moments.equivalent_rows` (the dask engine):
+    every unit's rows then carry equal weights summing to T_i, and every weighted sum
+    of products equals the sum over the panel's own rows. Each fit scales its rows by
+    the square roots of the weights (:meth:`scaled`); ``nobs`` is then the sum of T_i.
     """
 
     codes: np.ndarray
@@ -125,22 +131,46 @@ class PanelArrays:
     x_names: tuple[str, ...]
     z: np.ndarray
     z_names: tuple[str, ...]
+    weights: np.ndarray | None = None
+    unit_rows: np.ndarray | None = None
+    means: np.ndarray | None = None  # given unit means (n, 1 + kx + kz) of [y, X, Z], with equivalent rows
     counts: np.ndarray = field(init=False, repr=False)
     ybar: np.ndarray = field(init=False, repr=False)
     xbar: np.ndarray = field(init=False, repr=False)
     zbar: np.ndarray = field(init=False, repr=False)
 
     def __post_init__(self) -> None:
-        counts = np.bincount(self.codes, minlength=self.n).astype(float)
+        rows = np.bincount(self.codes, minlength=self.n).astype(float)  # equal weights within a unit
+        counts = rows if self.unit_rows is None else np.asarray(self.unit_rows, dtype=float)
         object.__setattr__(self, "counts", counts)
-        object.__setattr__(self, "ybar", unit_means(self.codes, self.n, self.y, counts))
-        object.__setattr__(self, "xbar", unit_means(self.codes, self.n, _two_d(self.x), counts))
-        object.__setattr__(self, "zbar", unit_means(self.codes, self.n, _two_d(self.z), counts))
+        if self.means is not None:  # the unit moments' own means, exact where the rows' would round
+            kx = _two_d(self.x).shape[1]
+            object.__setattr__(self, "ybar", np.ascontiguousarray(self.means[:, 0]))
+            object.__setattr__(self, "xbar", np.ascontiguousarray(self.means[:, 1 : 1 + kx]))
+            object.__setattr__(self, "zbar", np.ascontiguousarray(self.means[:, 1 + kx :]))
+            return
+        object.__setattr__(self, "ybar", unit_means(self.codes, self.n, self.y, rows))
+        object.__setattr__(self, "xbar", unit_means(self.codes, self.n, _two_d(self.x), rows))
+        object.__setattr__(self, "zbar", unit_means(self.codes, self.n, _two_d(self.z), rows))
 
     @property
     def nobs(self) -> int:
-        """N, the number of rows."""
+        """N, the number of the panel's rows (the sum of T_i)."""
+        return int(self.y.shape[0]) if self.unit_rows is None else int(round(float(self.counts.sum())))
+
+    @property
+    def rows(self) -> int:
+        """The number of rows held (N, or fewer equivalent rows)."""
         return int(self.y.shape[0])
+
+    def scaled(self, a: np.ndarray) -> np.ndarray:
+        """``a`` (rows, or rows x columns) with each row times the square root of its weight,
+        in place; ``a`` itself without weights."""
+        if self.weights is None:
+            return a
+        root = np.sqrt(self.weights)
+        a *= root if a.ndim == 1 else root[:, None]
+        return a
 
     @property
     def balanced_counts(self) -> bool:
@@ -180,7 +210,8 @@ class PanelArrays:
         values = {
             "codes": self.codes, "n": self.n, "y": self.y, "x": self.x[:, xi], "x_names": tuple(x_cols),
             "z": self.z[:, zi], "z_names": tuple(z_cols), "counts": self.counts, "ybar": self.ybar,
-            "xbar": self.xbar[:, xi], "zbar": self.zbar[:, zi],
+            "xbar": self.xbar[:, xi], "zbar": self.zbar[:, zi], "weights": self.weights, "unit_rows": self.unit_rows,
+            "means": None,
         }
         for key, value in values.items():  # the unit means are reused, not recomputed
             object.__setattr__(out, key, value)
@@ -188,7 +219,7 @@ class PanelArrays:
 
     def within_deviations(self, cols: list[str] | tuple[str, ...]) -> np.ndarray:
         """X - X_bar_i for the named X columns, (N, k) column-major, filled column by column."""
-        out = np.empty((self.nobs, len(cols)), order="F")
+        out = np.empty((self.rows, len(cols)), order="F")
         for k, c in enumerate(cols):  # loop over columns, never over units
             j = self.x_names.index(c)
             np.take(np.ascontiguousarray(self.xbar[:, j]), self.codes, out=out[:, k], mode="clip")
@@ -328,6 +359,7 @@ def ols(
     bread: np.ndarray | None = None,
     const_col: int | None = None,
     overwrite: bool = False,
+    nobs: int | None = None,
 ) -> tuple[Fit, np.ndarray]:
     """Least squares of ``y`` on ``design`` (N, K); returns (Fit, residuals).
 
@@ -336,9 +368,11 @@ def ols(
     ``const_col``). ``const_col`` names the position of the constant (or transformed
     constant) column: the other columns are orthogonalised against it before the
     cross-products, and the constant's coefficient is mapped back. ``overwrite`` lets
-    that step work in ``design`` itself.
+    that step work in ``design`` itself. ``nobs``: the panel's rows when ``design`` holds
+    weighted equivalent rows (scaled by the square roots of their weights).
     """
-    nobs, k = design.shape
+    rows, k = design.shape
+    nobs = rows if nobs is None else nobs
     if k == 0:
         e = y.copy()
         dfr = nobs if df_resid is None else df_resid
@@ -444,11 +478,11 @@ def tsls(
 
 
 def _tsls_prepared(prepared: _IVArrays, gram: np.ndarray, names: tuple[str, ...] | list[str],
-                   codes: np.ndarray, n: int) -> tuple[Fit, np.ndarray]:
+                   codes: np.ndarray, n: int, nobs: int | None = None) -> tuple[Fit, np.ndarray]:
     """2SLS from arrays built by :func:`_iv_arrays` and their cross-product matrix ``gram``
-    (one pass more for residuals and clustered scores)."""
+    (one pass more for residuals and clustered scores); ``nobs`` as in :func:`ols`."""
     full, L, k = prepared.full, prepared.n_instr, prepared.n_design
-    nobs = full.shape[0]
+    nobs = full.shape[0] if nobs is None else nobs
     piv = gram_iv(gram, list(range(L)), list(range(L, L + k)), L + k)
     coef = piv.coef
     a, w, yy = full[:, :L], full[:, L : L + k], full[:, L + k]
@@ -471,10 +505,10 @@ def within(pa: PanelArrays, columns: list[str] | tuple[str, ...] | None = None) 
     sigma2 = e'e / (N - n - K_X) (methods.md section 4).
     """
     cols = list(pa.x_names) if columns is None else list(columns)
-    xw = pa.within_deviations(cols)
-    yw = pa.y - gather(pa.ybar, pa.codes)
+    xw = pa.scaled(pa.within_deviations(cols))
+    yw = pa.scaled(pa.y - gather(pa.ybar, pa.codes))
     dfr = pa.nobs - pa.n - xw.shape[1]
-    return ols(xw, yw, cols, pa.codes, pa.n, df_resid=dfr)
+    return ols(xw, yw, cols, pa.codes, pa.n, df_resid=dfr, nobs=pa.nobs)
 
 
 def between(pa: PanelArrays, mean_columns: list[str] | None = None,
@@ -526,10 +560,10 @@ def quasi_demean(pa: PanelArrays, theta: np.ndarray, out: np.ndarray | None = No
     th = np.take(theta, pa.codes, mode="clip")
     kx, kz = pa.x.shape[1], pa.z.shape[1]
     k = 1 + kx + kz
-    design = np.empty((pa.nobs, k), order="F") if out is None else out  # columns filled one by one
+    design = np.empty((pa.rows, k), order="F") if out is None else out  # columns filled one by one
     pos = list(range(k)) if order is None else order
     np.subtract(1.0, th, out=design[:, pos[0]])
-    buf = np.empty(pa.nobs)
+    buf = np.empty(pa.rows)
     for j in range(kx):  # loop over columns, never over units
         np.take(np.ascontiguousarray(theta * pa.xbar[:, j]), pa.codes, out=buf, mode="clip")
         np.subtract(pa.x[:, j], buf, out=design[:, pos[1 + j]])
@@ -554,7 +588,8 @@ def random_effects(
     sigma2_u = max(0.0, bf.sigma2 - sigma2_e * float(np.mean(1.0 / pa.counts)))
     theta = _theta(sigma2_e, sigma2_u, pa.counts)
     design, ys = quasi_demean(pa, theta)
-    fit, _ = ols(design, ys, (CONST, *pa.x_names, *pa.z_names), pa.codes, pa.n, const_col=0, overwrite=True)
+    fit, _ = ols(pa.scaled(design), pa.scaled(ys), (CONST, *pa.x_names, *pa.z_names), pa.codes, pa.n, const_col=0,
+                 overwrite=True, nobs=pa.nobs)
     return fit, Components(sigma2_u, sigma2_e, theta)
 
 
@@ -672,7 +707,7 @@ def mundlak(
     cols = list(pa.x_names) if mean_columns is None else list(mean_columns)
     tested_cols = cols if tested is None else [c for c in tested if c in cols]
     kx, kz = len(pa.x_names), len(pa.z_names)
-    design = np.empty((pa.nobs, 1 + kx + kz + len(cols)), order="F")  # columns filled one by one
+    design = np.empty((pa.rows, 1 + kx + kz + len(cols)), order="F")  # columns filled one by one
     design[:, 0] = 1.0
     design[:, 1 : 1 + kx] = pa.x
     design[:, 1 + kx : 1 + kx + kz] = pa.z
@@ -680,8 +715,8 @@ def mundlak(
         np.take(np.ascontiguousarray(pa.xbar[:, pa.x_names.index(c)]), pa.codes,
                 out=design[:, 1 + kx + kz + k], mode="clip")
     mean_names = tuple(f"mean({c})" for c in cols)
-    fit, _ = ols(design, pa.y, (CONST, *pa.x_names, *pa.z_names, *mean_names), pa.codes, pa.n,
-                 const_col=0, overwrite=True)
+    fit, _ = ols(pa.scaled(design), pa.scaled(pa.y.copy()), (CONST, *pa.x_names, *pa.z_names, *mean_names),
+                 pa.codes, pa.n, const_col=0, overwrite=True, nobs=pa.nobs)
     idx = fit.index([f"mean({c})" for c in tested_cols])
     b = fit.coef[idx]
     v = fit.cov_cluster[np.ix_(idx, idx)]
@@ -826,10 +861,10 @@ def hausman_taylor(
     nwc = len(wcols)
     L = nwc + len(means) + 1 + len(z1)
     K = 1 + len(x1) + len(x2) + len(z1) + len(z2)
-    prepared = _iv_arrays(_ht_arrays(sub, sp, theta), L, K, instr_const=nwc + len(means), design_const=0)
+    prepared = _iv_arrays(sub.scaled(_ht_arrays(sub, sp, theta)), L, K, instr_const=nwc + len(means), design_const=0)
     # design order in the arrays: const, X1, X2, Z1, Z2; reported as X1, X2, const, Z1, Z2
     gram = prepared.full.T @ prepared.full
-    raw, _ = _tsls_prepared(prepared, gram, (CONST, *x1, *x2, *z1, *z2), sub.codes, sub.n)
+    raw, _ = _tsls_prepared(prepared, gram, (CONST, *x1, *x2, *z1, *z2), sub.codes, sub.n, nobs=sub.nobs)
     fit = _reorder(raw, [*x1, *x2, CONST, *z1, *z2])
     ia, iw, iy = list(range(L)), list(range(L, L + K)), L + K
     base = gram_iv(gram, ia, iw, iy)
@@ -878,7 +913,7 @@ def _ht_arrays(sub: PanelArrays, sp: HTSpec, theta: np.ndarray) -> np.ndarray:
     nwc, nx, nz = len(wcols), len(sp.x1) + len(sp.x2), sub.z.shape[1]
     L = nwc + len(means) + 1 + len(z1)
     K = 1 + nx + nz
-    full = np.empty((sub.nobs, L + K + 1), order="F")  # columns contiguous: filled one by one
+    full = np.empty((sub.rows, L + K + 1), order="F")  # columns contiguous: filled one by one
     full[:, :nwc] = sub.within_deviations(wcols)
     for m, c in enumerate(means):
         np.take(np.ascontiguousarray(sub.xbar[:, sub.x_names.index(c)]), sub.codes, out=full[:, nwc + m],

@@ -855,27 +855,42 @@ def _examples_from(ext: pl.DataFrame, units: np.ndarray, nested: bool, text: boo
 def chan(
     n_a: np.ndarray, mean_a: np.ndarray, m2_a: np.ndarray, n_b: np.ndarray, mean_b: np.ndarray, m2_b: np.ndarray
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """(count, mean, centred sum of squares) of the union of two parts, elementwise
+    """(count, mean, centred sum of squares) of the union of two parts, per group
     (Chan, Golub and LeVeque 1979). Means are on one scale; a part with no values
-    contributes nothing (its mean is ignored)."""
+    contributes nothing (its mean is ignored).
+
+    Scalars per group: ``mean`` (g,), ``m2`` (g,). Vectors per group (several columns
+    over the same rows): ``mean`` (g, k) and ``m2`` the centred cross-products (g, k, k),
+    whose update is M_a + M_b + d d' n_a n_b / n.
+    """
     n = n_a + n_b
     nf = n.astype(np.float64)
     w = np.divide(n_b, nf, out=np.zeros(nf.shape), where=n > 0)
     delta = mean_b - mean_a
-    mean = np.where(n_a == 0, mean_b, np.where(n_b == 0, mean_a, mean_a + delta * w))
-    m2 = np.where(
-        (n_a == 0) | (n_b == 0), m2_a * (n_a > 0) + m2_b * (n_b > 0), m2_a + m2_b + delta * delta * n_a * w
-    )
+    if delta.ndim == 2:  # vectors: per-group weights broadcast over the columns
+        w, only_a, only_b = w[:, None], (n_b == 0)[:, None], (n_a == 0)[:, None]
+        outer = delta[:, :, None] * delta[:, None, :]
+        cross_w, a3, b3 = (n_a * w[:, 0])[:, None, None], (n_b == 0)[:, None, None], (n_a == 0)[:, None, None]
+    else:
+        only_a, only_b = n_b == 0, n_a == 0
+        outer, cross_w, a3, b3 = delta * delta, n_a * w, only_a, only_b
+    mean = np.where(only_b, mean_b, np.where(only_a, mean_a, mean_a + delta * w))
+    m2 = np.where(b3, m2_b, np.where(a3, m2_a, m2_a + m2_b + outer * cross_w))
     return n, mean, m2
 
 
-def _union(a: np.ndarray, b: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """(sorted union of two sorted code arrays, positions of a in it, positions of b)."""
+def _union(a: np.ndarray, b: np.ndarray, n_units: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(sorted union of two sorted arrays of codes below ``n_units``, positions of a in it,
+    positions of b): a mark per unit and a running count, no sort."""
     if a.size and b.size and a[-1] < b[0]:  # disjoint and in order (ranges of units)
         units = np.concatenate([a, b])
         return units, np.arange(a.size), np.arange(a.size, units.size)
-    units = np.union1d(a, b)
-    return units, np.searchsorted(units, a), np.searchsorted(units, b)
+    mark = np.zeros(n_units, dtype=bool)
+    mark[a] = True
+    mark[b] = True
+    units = np.flatnonzero(mark)
+    position = np.cumsum(mark) - 1
+    return units, position[a], position[b]
 
 
 def _spread(arr: np.ndarray, idx: np.ndarray, size: int, fill: Any = 0) -> np.ndarray:
@@ -896,7 +911,7 @@ def _overlap(ia: np.ndarray, ib: np.ndarray, size: int) -> tuple[np.ndarray, np.
 def merge(a: Shard, b: Shard) -> Shard:
     """The statistics of the rows of ``a`` and ``b`` together, exactly (units may have
     rows in both). ``a`` comes first in row order (its first values win)."""
-    units, ia, ib = _union(a.units, b.units)
+    units, ia, ib = _union(a.units, b.units, a.n_units)
     size = int(units.size)
     ka, kb = _overlap(ia, ib, size)
     whole = a.whole and b.whole and ka.size == 0
@@ -987,18 +1002,23 @@ def _same_kind(a: np.ndarray, b: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 
 def merge_values(a: Values, b: Values) -> Values:
     """Value counts of two shards together (a final count does not merge: not counted)."""
-    if a.table is None or b.table is None:
+    return merge_all_values([a, b])
+
+
+def merge_all_values(parts: Sequence[Values]) -> Values:
+    """Value counts of several shards together, in one sort (a final count does not merge)."""
+    if not parts or any(p.table is None for p in parts):
         return Values()
-    if isinstance(a.table, tuple):
-        v = np.concatenate([a.table[0], b.table[0]])
-        c = np.concatenate([a.table[1], b.table[1]])
+    if isinstance(parts[0].table, tuple):
+        v = np.concatenate([p.table[0] for p in parts])
+        c = np.concatenate([p.table[1] for p in parts])
         order = np.argsort(v, kind="stable")
         v, c = v[order], c[order]
         if v.size == 0:
             return Values(table=(v, c))
         starts = np.flatnonzero(np.r_[True, v[1:] != v[:-1]])
         return Values(table=(v[starts], np.add.reduceat(c, starts)))
-    both = pl.concat([a.table, b.table])
+    both = pl.concat([p.table for p in parts])
     return Values(table=both.group_by("value").agg(pl.col("count").sum()))
 
 
@@ -1303,6 +1323,124 @@ class SparsePeriods:
         out[active] = np.nan
         return out
 
+
+# --------------------------------------------------------------------------- cross-products
+
+
+@dataclass(frozen=True)
+class CrossProducts:
+    """Per-unit sufficient statistics of several columns over the same rows (the design
+    of a panel model): for each local unit (global codes ``units``) the rows ``n``, a
+    reference row ``ref`` (one of the unit's own rows), the sums of the values less it
+    (``total``) and the centred cross-products (``cross``, units x k x k). Everything
+    the within, between, random-effects, Mundlak and Hausman-Taylor fits need of the rows.
+
+    Sums rather than means are kept and merged: sums of whole numbers (indicators, period
+    dummies) stay exact through any merge, so their unit means are the rows' own.
+    """
+
+    n_units: int
+    columns: tuple[str, ...]
+    units: np.ndarray
+    n: np.ndarray
+    ref: np.ndarray
+    total: np.ndarray
+    cross: np.ndarray
+
+    @property
+    def means(self) -> np.ndarray:
+        """The unit means (units x k)."""
+        return self.ref + np.divide(self.total, self.n[:, None], out=np.zeros(self.total.shape),
+                                    where=self.n[:, None] > 0)
+
+
+def cross_products(frame: pl.DataFrame, columns: Sequence[str], *, n_units: int) -> CrossProducts:
+    """:class:`CrossProducts` of ``columns`` over the rows of ``frame`` (every row used:
+    filter incomplete rows first), unit codes in ``__pa_unit``."""
+    u, units = local_units(frame[UNIT_ID].to_numpy(), n_units)
+    m, k = units.size, len(columns)
+    x = frame.select(columns).to_numpy().astype(np.float64) if k else np.zeros((frame.height, 0))
+    n = np.bincount(u, minlength=m)
+    last = np.zeros(m, dtype=np.intp)
+    last[u] = np.arange(u.size)
+    ref = x[last] if u.size else np.zeros((m, k))
+    dev = x - ref[u]  # centred on one of the unit's own rows first (methods.md, section 2)
+    total = np.column_stack([np.bincount(u, weights=dev[:, j], minlength=m) for j in range(k)]) if k else ref[:, :0]
+    dev -= np.divide(total, n[:, None], out=np.zeros((m, k)), where=n[:, None] > 0)[u]
+    cross = np.zeros((m, k, k))
+    for a in range(k):  # loops over the few columns, never over rows or units
+        for b in range(a, k):
+            cross[:, a, b] = cross[:, b, a] = np.bincount(u, weights=dev[:, a] * dev[:, b], minlength=m)
+    return CrossProducts(n_units, tuple(columns), units, n, ref, total, cross)
+
+
+def merge_cross(a: CrossProducts, b: CrossProducts) -> CrossProducts:
+    """Two shards' cross-products together, exactly (:func:`chan`, vector form)."""
+    units, ia, ib = _union(a.units, b.units, a.n_units)
+    size, k = units.size, len(a.columns)
+    n = _spread(a.n, ia, size) + _spread(b.n, ib, size)
+    ref, total, cross = np.zeros((size, k)), np.zeros((size, k)), np.zeros((size, k, k))
+    ref[ib], total[ib], cross[ib] = b.ref, b.total, b.cross
+    keep = a.n > 0
+    ref[ia[keep]], total[ia[keep]], cross[ia[keep]] = a.ref[keep], a.total[keep], a.cross[keep]
+    ka, kb = _overlap(ia, ib, size)
+    if ka.size:
+        na, nb = a.n[ka], b.n[kb]
+        base = np.where((na > 0)[:, None], a.ref[ka], b.ref[kb])
+        # both sums re-based on one of the unit's own rows: exact for whole numbers
+        sa = a.total[ka] + na[:, None] * (a.ref[ka] - base)
+        sb = b.total[kb] + nb[:, None] * (b.ref[kb] - base)
+        la = np.divide(sa, na[:, None], out=np.zeros(sa.shape), where=na[:, None] > 0)
+        lb = np.divide(sb, nb[:, None], out=np.zeros(sb.shape), where=nb[:, None] > 0)
+        _, _, c = chan(na, la, a.cross[ka], nb, lb, b.cross[kb])
+        p = ib[kb]
+        ref[p], total[p], cross[p] = base, sa + sb, c
+    return CrossProducts(a.n_units, a.columns, units, n, ref, total, cross)
+
+
+def _helmert(r: int) -> np.ndarray:
+    """An r x (r - 1) matrix of orthonormal columns orthogonal to the vector of ones."""
+    h = np.zeros((r, r - 1))
+    for j in range(1, r):  # loop over the few columns of one small matrix
+        h[:j, j - 1] = 1.0
+        h[j, j - 1] = -float(j)
+        h[:, j - 1] /= np.sqrt(j * (j + 1.0))
+    return h
+
+
+def equivalent_rows(cp: CrossProducts) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Rows that carry the same sums and cross-products as each unit's own rows.
+
+    Unit i (n_i rows, means m_i, centred cross-products C_i) becomes r_i = min(n_i,
+    k + 1) rows m_i + d_ij, each of weight n_i / r_i, with sum_j d_ij = 0 and
+    sum_j (n_i / r_i) d_ij d_ij' = C_i (from the eigenvectors of C_i). Every weighted
+    sum over these rows of a product of two columns of the form (a unit-level value +
+    a column's within deviation) equals the sum over the unit's own rows (the cross
+    terms vanish since deviations sum to zero within a unit), so the fits on them are
+    the fits on the panel. Returns (unit code per row, values rows x k, weight per row).
+    """
+    k = len(cp.columns)
+    r = np.minimum(cp.n, k + 1).astype(np.int64)
+    order = np.argsort(r, kind="stable")
+    codes, values, weights = [], [], []
+    means = cp.means
+    for size in np.unique(r[r > 0]):  # groups of units with the same row count (at most k + 1)
+        idx = order[r[order] == size]
+        if size == 1:
+            d = np.zeros((idx.size, 1, k))
+        else:
+            vals, vecs = np.linalg.eigh(cp.cross[idx])  # ascending eigenvalues
+            top = np.sqrt(np.clip(vals[:, -(size - 1):], 0.0, None))  # (g, size - 1)
+            basis = _helmert(int(size))  # (size, size - 1)
+            d = np.einsum("rj,gj,gkj->grk", basis, top, vecs[:, :, -(size - 1):])
+            d *= np.sqrt(size / cp.n[idx])[:, None, None]
+            d[np.diagonal(cp.cross[idx], axis1=1, axis2=2)[:, None, :].repeat(size, 1) <= 0] = 0.0  # constant in the unit
+        codes.append(np.repeat(cp.units[idx], size))
+        values.append((means[idx][:, None, :] + d).reshape(-1, k))
+        weights.append(np.repeat(cp.n[idx] / size, size))
+    if not codes:
+        return np.zeros(0, dtype=np.int64), np.zeros((0, k)), np.zeros(0)
+    return np.concatenate(codes), np.concatenate(values), np.concatenate(weights)
 
 
 # --------------------------------------------------------------------------- derived figures

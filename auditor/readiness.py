@@ -185,8 +185,10 @@ class Sample:
 
     ``design_cols`` pairs each design column with the regressor it comes from;
     ``added_periods`` are the dummies ``--period-effects`` added (every period present
-    but the first); ``num`` holds unit codes, period codes, the outcome as ``__pa_y`` and
-    every design column as Float64.
+    but the first); ``num`` holds unit codes, the outcome as ``__pa_y`` and every design
+    column as Float64: the complete rows themselves (with their period codes), or, from
+    the dask engine or :func:`equivalent_sample`, the equivalent rows of the unit
+    moments with their ``weights`` and each unit's ``unit_rows`` (T_i, by sorted unit code).
     """
 
     outcome: str
@@ -203,23 +205,114 @@ class Sample:
     miss_counts: dict[str, int]
     treated: tuple[tuple[str, str, int], ...]  # (column, its kind before, units changed)
     invariant: tuple[str, ...]
+    weights: np.ndarray | None = None
+    unit_rows: np.ndarray | None = None
+    unit_means: pl.DataFrame | None = None  # with equivalent rows: each unit's means (sorted unit order)
+
+
+def unit_modes(counts: pl.DataFrame, c: str) -> tuple[pl.DataFrame, int]:
+    """Each unit's most common value of ``c`` (ties: the smallest) from (unit, value, len)
+    counts; returns (unit, ``__pa_mode``) and the number of units with more than one value."""
+    modes = (
+        counts.sort([UNIT_ID, "len", c], descending=[False, True, False])
+        .group_by(UNIT_ID, maintain_order=True)
+        .agg(pl.col(c).first().alias("__pa_mode"), pl.len().alias("__pa_values"))
+    )
+    return modes.select(UNIT_ID, "__pa_mode"), int((modes["__pa_values"] > 1).sum())
+
+
+def value_counts_by_unit(frame: pl.DataFrame, c: str, dtype: pl.DataType) -> pl.DataFrame:
+    """(unit, value, len): how often each unit holds each non-missing value of ``c``."""
+    return frame.filter(~_missing(c, dtype)).group_by([UNIT_ID, c]).len()
+
+
+def with_modes(frame: pl.DataFrame, c: str, modes: pl.DataFrame) -> pl.DataFrame:
+    """``frame`` with ``c`` replaced by each unit's mode (--treat-as-invariant)."""
+    return frame.join(modes, on=UNIT_ID, how="left", maintain_order="left").with_columns(
+        pl.col("__pa_mode").alias(c)
+    ).drop("__pa_mode")
 
 
 def _treat_as_invariant(frame: pl.DataFrame, c: str, dtype: pl.DataType) -> tuple[pl.DataFrame, int]:
     """Replace ``c`` by each unit's most common value (ties: the smallest); returns the frame and
     the number of units that had more than one value."""
-    modes = (
-        frame.filter(~_missing(c, dtype))
-        .group_by([UNIT_ID, c]).len()
-        .sort([UNIT_ID, "len", c], descending=[False, True, False])
-        .group_by(UNIT_ID, maintain_order=True)
-        .agg(pl.col(c).first().alias("__pa_mode"), pl.len().alias("__pa_values"))
-    )
-    changed = int((modes["__pa_values"] > 1).sum())
-    frame = frame.join(modes.select(UNIT_ID, "__pa_mode"), on=UNIT_ID, how="left").with_columns(
-        pl.col("__pa_mode").alias(c)
-    ).drop("__pa_mode")
-    return frame, changed
+    modes, changed = unit_modes(value_counts_by_unit(frame, c, dtype), c)
+    return with_modes(frame, c, modes), changed
+
+
+def complete(frame: pl.DataFrame, used: Sequence[str], schema: dict[str, pl.DataType]) -> pl.DataFrame:
+    """The rows with every used column present (finite, for floats)."""
+    return frame.filter(~pl.any_horizontal([_missing(c, schema[c]) for c in used]))
+
+
+def missing_counts(frame: pl.DataFrame, used: Sequence[str], schema: dict[str, pl.DataType]) -> dict[str, int]:
+    """Missing (null, NaN or infinite) values of each used column."""
+    return frame.select([_missing(c, schema[c]).sum().alias(c) for c in used]).row(0, named=True)
+
+
+def level_counts(frame: pl.DataFrame, c: str) -> pl.DataFrame:
+    """(``c`` as text, len) over the rows of ``frame``."""
+    return frame.group_by(pl.col(c).cast(pl.String)).len()
+
+
+@dataclass(frozen=True)
+class DesignColumns:
+    """The numeric design: one expression per column of ``num`` and what they are."""
+
+    exprs: tuple[pl.Expr, ...]
+    design_cols: tuple[tuple[str, str], ...]
+    added: tuple[str, ...]
+    base_levels: dict[str, Any]
+    constant_text: tuple[str, ...]
+
+
+def design_columns(panel: Panel, outcome: str, regs: list[str], levels: dict[str, pl.DataFrame],
+                   periods_present: Sequence[int], period_effects: bool, limit: int) -> DesignColumns:
+    """The outcome as ``__pa_y`` and the design columns as Float64: numbers as they are,
+    text as indicators ``col=value`` (the most common level the base; ``levels`` holds
+    each text regressor's level counts on the complete rows), ``period=<value>`` for
+    every period present but the first with ``period_effects``."""
+    schema = panel.schema
+    exprs: list[pl.Expr] = [pl.col(UNIT_ID), pl.col(PERIOD_ID), pl.col(outcome).cast(pl.Float64).alias("__pa_y")]
+    design_cols: list[tuple[str, str]] = []
+    base_levels: dict[str, Any] = {}
+    constant_text: list[str] = []
+    for c in regs:
+        if not _is_text(schema[c]):
+            exprs.append(pl.col(c).cast(pl.Float64).alias(c))
+            design_cols.append((c, c))
+            continue
+        counts = levels[c].sort(["len", c], descending=[True, False])
+        if counts.height > limit:
+            raise fail("instruments-too-many-levels", column=c, levels=counts.height, limit=limit)
+        names = counts[c].to_list()
+        base_levels[c] = names[0]
+        if len(names) == 1:
+            constant_text.append(c)
+        for lev in names[1:]:
+            name = f"{c}={lev}"
+            exprs.append((pl.col(c).cast(pl.String) == lev).cast(pl.Float64).alias(name))
+            design_cols.append((name, c))
+    added: list[str] = []
+    if period_effects:
+        for p in list(periods_present)[1:]:  # loop over periods, not rows
+            name = f"period={panel.grid[p]}"
+            exprs.append((pl.col(PERIOD_ID) == p).cast(pl.Float64).alias(name))
+            added.append(name)
+    return DesignColumns(tuple(exprs), tuple(design_cols), tuple(added), base_levels, tuple(constant_text))
+
+
+def _check_units(panel: Panel, units: pl.Series) -> None:
+    """At least two units with complete rows."""
+    if units.n_unique() < 2:
+        label = panel.unit_labels([int(units[0])])
+        raise fail("instruments-one-unit", unit=", ".join(str(v) for v in label[0].values()) if label else "?")
+
+
+def _no_complete_rows(rows_keyed: int, dropped: int, miss_counts: dict[str, int]) -> Exception:
+    worst = sorted(miss_counts, key=lambda c: -miss_counts[c])[:3]
+    return fail("instruments-no-complete-rows", rows=rows_keyed, dropped=dropped,
+                worst=", ".join(f"'{c}' ({miss_counts[c]} missing)" for c in worst))
 
 
 def _sample(panel: Panel, outcome: str, regs: list[str], period_effects: bool, invariant: list[str],
@@ -240,48 +333,53 @@ def _sample(panel: Panel, outcome: str, regs: list[str], period_effects: bool, i
 
     rows_keyed = frame.height
     used = (outcome, *regs)
-    miss_counts = frame.select([_missing(c, schema[c]).sum().alias(c) for c in used]).row(0, named=True)
-    frame = frame.filter(~pl.any_horizontal([_missing(c, schema[c]) for c in used]))
+    miss_counts = missing_counts(frame, used, schema)
+    frame = complete(frame, used, schema)
     dropped = rows_keyed - frame.height
     if frame.height == 0:
-        worst = sorted(miss_counts, key=lambda c: -miss_counts[c])[:3]
-        raise fail("instruments-no-complete-rows", rows=rows_keyed, dropped=dropped,
-                   worst=", ".join(f"'{c}' ({miss_counts[c]} missing)" for c in worst))
-    if frame.select(pl.col(UNIT_ID).n_unique()).item() < 2:
-        label = panel.unit_labels([int(frame[UNIT_ID][0])])
-        raise fail("instruments-one-unit", unit=", ".join(str(v) for v in label[0].values()) if label else "?")
-
-    exprs: list[pl.Expr] = [pl.col(UNIT_ID), pl.col(PERIOD_ID), pl.col(outcome).cast(pl.Float64).alias("__pa_y")]
-    design_cols: list[tuple[str, str]] = []
-    base_levels: dict[str, Any] = {}
-    constant_text: list[str] = []
-    limit = int(settings.get(SECTION, "max_levels"))
-    for c in regs:
-        if not _is_text(schema[c]):
-            exprs.append(pl.col(c).cast(pl.Float64).alias(c))
-            design_cols.append((c, c))
-            continue
-        counts = frame.group_by(pl.col(c).cast(pl.String)).len().sort(["len", c], descending=[True, False])
-        if counts.height > limit:
-            raise fail("instruments-too-many-levels", column=c, levels=counts.height, limit=limit)
-        levels = counts[c].to_list()
-        base_levels[c] = levels[0]
-        if len(levels) == 1:
-            constant_text.append(c)
-        for lev in levels[1:]:
-            name = f"{c}={lev}"
-            exprs.append((pl.col(c).cast(pl.String) == lev).cast(pl.Float64).alias(name))
-            design_cols.append((name, c))
+        raise _no_complete_rows(rows_keyed, dropped, miss_counts)
+    _check_units(panel, frame[UNIT_ID])
     periods_present = tuple(sorted(frame[PERIOD_ID].unique().to_list()))
-    added: list[str] = []
-    if period_effects:
-        for p in periods_present[1:]:  # loop over periods, not rows
-            name = f"period={panel.grid[p]}"
-            exprs.append((pl.col(PERIOD_ID) == p).cast(pl.Float64).alias(name))
-            added.append(name)
-    return Sample(outcome, kinds, info, frame.select(exprs), tuple(design_cols), tuple(added), base_levels,
-                  tuple(constant_text), periods_present, rows_keyed, dropped, miss_counts, tuple(treated),
+    levels = {c: level_counts(frame, c) for c in regs if _is_text(schema[c])}
+    d = design_columns(panel, outcome, regs, levels, periods_present, period_effects,
+                       int(settings.get(SECTION, "max_levels")))
+    return Sample(outcome, kinds, info, frame.select(d.exprs), d.design_cols, d.added, d.base_levels,
+                  d.constant_text, periods_present, rows_keyed, dropped, miss_counts, tuple(treated),
                   tuple(invariant))
+
+
+def design_names(sample: Sample) -> list[str]:
+    """The numeric columns of a sample's ``num``: the outcome, then the design columns."""
+    return ["__pa_y", *[name for name, _ in sample.design_cols], *sample.added_periods]
+
+
+def equivalent_num(cp: Any) -> tuple[pl.DataFrame, np.ndarray, np.ndarray, pl.DataFrame]:
+    """(``num`` frame, row weights, T_i by sorted unit, unit means by sorted unit) of the
+    equivalent rows of merged unit moments (:func:`auditor.moments.equivalent_rows`)."""
+    from auditor.moments import equivalent_rows
+
+    codes, values, weights = equivalent_rows(cp)
+    num = pl.DataFrame({UNIT_ID: pl.Series(UNIT_ID, codes, dtype=pl.Int64),
+                        **{c: values[:, j] for j, c in enumerate(cp.columns)}})
+    seen = cp.n > 0
+    means = pl.DataFrame({c: cp.means[seen, j] for j, c in enumerate(cp.columns)})
+    return num, weights, cp.n[seen].astype(np.float64), means
+
+
+def equivalent_sample(sample: Sample, shards: int = 1, seed: int = 0) -> Sample:
+    """The sample with its rows replaced by the equivalent rows of their unit moments,
+    computed over ``shards`` random shards of the rows and merged (as the dask engine
+    does across partitions): the fits on it equal the fits on the rows."""
+    from auditor import moments
+
+    cols = design_names(sample)
+    num = sample.num
+    n_units = int(num[UNIT_ID].max()) + 1
+    deal = np.random.default_rng(seed).integers(0, shards, num.height)
+    parts = [moments.cross_products(num.filter(pl.Series(deal == k)), cols, n_units=n_units) for k in range(shards)]
+    merged = moments.merge_stream(parts, moments.merge_cross)
+    eq, weights, unit_rows, means = equivalent_num(merged)
+    return dataclasses.replace(sample, num=eq, weights=weights, unit_rows=unit_rows, unit_means=means)
 
 
 # --------------------------------------------------------------------------- stage 2: the design
@@ -304,7 +402,7 @@ class Design:
     col_kind: dict[str, str]
     pa: models.PanelArrays
     unbalanced: bool
-    period: np.ndarray  # each row's index in the period grid
+    period: np.ndarray | None  # each row's index in the period grid (None for equivalent rows)
 
 
 def _design(sample: Sample) -> Design:
@@ -333,9 +431,14 @@ def _design(sample: Sample) -> Design:
 
     y = num["__pa_y"].to_numpy().astype(float)
     xcols = periods + x
+    means = None
+    if sample.unit_means is not None:
+        means = sample.unit_means.select(["__pa_y", *xcols, *z]).to_numpy().astype(float)
     pa = models.PanelArrays(codes=codes.astype(np.int64), n=int(codes.max()) + 1, y=y, x=matrix(xcols),
-                            x_names=tuple(xcols), z=matrix(z), z_names=tuple(z))
-    period = num[PERIOD_ID].to_numpy().astype(np.int64)
+                            x_names=tuple(xcols), z=matrix(z), z_names=tuple(z), weights=sample.weights,
+                            unit_rows=sample.unit_rows, means=means)
+    # the rows' periods (None for the equivalent rows of unit moments, which have none)
+    period = num[PERIOD_ID].to_numpy().astype(np.int64) if PERIOD_ID in num.columns else None
     return Design(tuple(periods), tuple(x), tuple(z), tuple(constant), col_kind, pa, not pa.balanced_counts, period)
 
 
@@ -347,7 +450,9 @@ def _moved_to_z(design: Design, moved: tuple[str, ...]) -> Design:
     mi = [pa.x_names.index(c) for c in moved]
     new = models.PanelArrays(codes=pa.codes, n=pa.n, y=pa.y, x=np.asfortranarray(pa.x[:, xi]), x_names=tuple(keep),
                              z=np.asfortranarray(np.column_stack([pa.z, pa.x[:, mi]])),
-                             z_names=(*pa.z_names, *moved))
+                             z_names=(*pa.z_names, *moved), weights=pa.weights, unit_rows=pa.unit_rows,
+                             means=None if pa.weights is None else np.column_stack([pa.ybar, pa.xbar[:, xi], pa.zbar,
+                                                                                    pa.xbar[:, mi]]))
     return dataclasses.replace(design, x=tuple(c for c in design.x if c not in moved), z=(*design.z, *moved),
                                col_kind={**design.col_kind, **{c: "time-invariant" for c in moved}}, pa=new)
 
@@ -424,6 +529,7 @@ class Fits:
     richer: dict[str, instrument_sets.RicherFit | None] = dataclasses.field(default_factory=dict)
     richer_note: str | None = None
     attrition: dict[str, Any] | None = None
+    attrition_note: str | None = None
 
 
 def _early_fits(design: Design, ident: identification.Identification, outcome_invariant: bool,
@@ -469,6 +575,11 @@ def _beyond(design: Design, ident: identification.Identification, roles: Roles, 
     richer: dict[str, instrument_sets.RicherFit | None] = {instrument_sets.AM: None, instrument_sets.BMS: None}
     note = None
     ht = fits.hausman_taylor
+    if design.period is None:  # equivalent rows of unit moments (the dask engine) carry no periods
+        note = ("not computed on the dask engine: their instruments are each unit's values period by period, "
+                "which the unit moments do not keep; run with --engine memory for them") if ht is not None else None
+        return dataclasses.replace(fits, richer=richer, richer_note=note, attrition=None, attrition_note=(
+            "not computed on the dask engine: the test needs each row's period, which the unit moments do not keep"))
     if ht is not None:
         _, dense = np.unique(design.period, return_inverse=True)
         periods = int(dense.max()) + 1
@@ -632,13 +743,18 @@ def instruments(
     treat_as_invariant: Sequence[str] = (),
     settings: Settings | None = None,
     rules: str | Path | None = None,
+    engine: str = "auto",
+    scheduler: str | None = None,
 ) -> InstrumentsResult:
     """Model readiness of ``outcome`` on ``regressors`` in the panel ``data``.
 
     ``correlated`` names the regressors suspected of correlation with the unit effect
     (None: suggest X2 from the Mundlak evidence; an empty list: none). Text columns
-    may be named whole or by indicator (``soil=SD``). Raises AuditError for input
-    that cannot be used.
+    may be named whole or by indicator (``soil=SD``). ``engine`` and ``scheduler`` as
+    in :func:`auditor.profile.profile`: with ``dask`` the sample and the unit
+    cross-products of the design are computed on the cluster, and the fits run on
+    their equivalent rows (:func:`auditor.moments.equivalent_rows`). Raises AuditError
+    for input that cannot be used.
     """
     from auditor.pvalues import preload
 
@@ -649,15 +765,27 @@ def instruments(
     corr = None if correlated is None else _names(correlated)
     invariant = _names(list(treat_as_invariant))
     outcome = str(outcome).strip()
-    panel = load_panel(data, unit, time, settings=settings)
+    from auditor.engines import resolve_engine
+
+    name = resolve_engine(engine, None, scheduler)
+    if name == "dask":
+        from auditor import cluster
+
+        shell, _ = cluster.load(data, unit, time, settings)
+        _validate(shell, outcome, regs, corr, invariant)
+        with cluster.session(data, unit, time, settings, scheduler) as run:
+            sample = run.sample(outcome, regs, bool(period_effects), invariant)
+        return _run(run.panel, outcome, regs, corr, bool(period_effects), invariant, settings, sample=sample)
+    panel = load_panel(data, unit, time, streaming={"memory": False, "streaming": True}.get(name), settings=settings)
     _validate(panel, outcome, regs, corr, invariant)
     return _run(panel, outcome, regs, corr, bool(period_effects), invariant, settings)
 
 
 def _run(panel: Panel, outcome: str, regs: list[str], corr: list[str] | None, period_effects: bool,
-         invariant: list[str], settings: Settings) -> InstrumentsResult:
+         invariant: list[str], settings: Settings, sample: Sample | None = None) -> InstrumentsResult:
     get = lambda key: settings.get(SECTION, key)  # noqa: E731
-    sample = _sample(panel, outcome, regs, period_effects, invariant, settings)
+    if sample is None:
+        sample = _sample(panel, outcome, regs, period_effects, invariant, settings)
     design = _design(sample)
     ident = identification.decide(design.pa, design.periods, design.x, design.z, tol=float(get("collinear_tol")),
                                   near_r2=float(get("near_collinear_r2")))
@@ -708,6 +836,8 @@ def _tests(fits: Fits, roles: Roles, alpha: float) -> dict[str, Any]:
     tests["overidentification_by_estimator"] = by_est if ht is not None else None
     tests["hausman_against_ht"] = against if ht is not None else None
     tests["attrition"] = fits.attrition
+    if fits.attrition_note:
+        tests["attrition_note"] = fits.attrition_note
     return tests
 
 

@@ -271,7 +271,7 @@ def x2_first_stage(
         return []
     zi1 = [pa.z_names.index(c) for c in z1]
     nw = len(within_cols)
-    a = np.empty((pa.nobs, nw + len(means) + 1 + len(zi1)), order="F")  # columns contiguous
+    a = np.empty((pa.rows, nw + len(means) + 1 + len(zi1)), order="F")  # columns contiguous
     a[:, :nw] = pa.within_deviations(within_cols)
     for k, c in enumerate(means):
         np.take(np.ascontiguousarray(pa.xbar[:, pa.x_names.index(c)]), pa.codes, out=a[:, nw + k], mode="clip")
@@ -282,19 +282,21 @@ def x2_first_stage(
     other = [f"mean({c})" for c in means] + list(z1)
     out = []
     const = nw + len(means)
+    pa.scaled(a)  # weighted equivalent rows (the dask engine): sums of products as over the panel's rows
     shifts = models.orthogonalise(a, a[:, const].copy(), skip=const)
     del shifts  # the instruments' span is all that matters here; the constant's coefficient is not reported
     bread = models.equilibrated_inv(a.T @ a)
     for c in x2:  # loop over the few X2 columns
         j = pa.x_names.index(c)
         target = pa.x[:, j] - models.gather(theta * pa.xbar[:, j], pa.codes)
-        fit, e = models.ols(a, target, names, pa.codes, pa.n, bread=bread)
+        fit, e = models.ols(a, pa.scaled(target.copy()), names, pa.codes, pa.n, bread=bread, nobs=pa.nobs)
         own = fit.index([f"dev({c})"])
         rest = fit.index(other)
         own_t = fit.coef[own[0]] / fit.se[own[0]] if fit.se[own[0]] > 0 else np.inf
         other_w = models.wald(fit.coef[rest], fit.cov_cluster[np.ix_(rest, rest)])
-        centred = target - target.mean()
-        tss = float(centred @ centred)
+        w = np.ones(target.size) if pa.weights is None else pa.weights
+        centred = target - float(np.average(target, weights=w))
+        tss = float((centred * w) @ centred)
         out.append(
             {
                 "endogenous": c,

@@ -26,7 +26,7 @@ distributed = pytest.importorskip("distributed")
 @pytest.fixture(scope="module")
 def scheduler():
     cluster = distributed.LocalCluster(
-        n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None, silence_logs=40
+        n_workers=2, threads_per_worker=1, processes=True, dashboard_address=":0", silence_logs=40
     )
     try:
         yield cluster.scheduler_address
@@ -169,3 +169,65 @@ def test_help_and_the_memory_engine_never_import_dask(waves):
         [sys.executable, "-X", "importtime", "-m", "auditor.cli", "profile", "--help"], capture_output=True, text=True
     )
     assert helped.returncode == 0 and "dask" not in helped.stderr and "distributed" not in helped.stderr
+
+
+def write_model_waves(folder, seed: int = 3, n: int = 220, periods: int = 6) -> None:
+    """An invented Hausman-Taylor design of market gardens, unbalanced, one Parquet file per
+    season: exogenous x1a, x1b, a trend, a correlated x2 and z2, a text soil class, a
+    nearly-invariant training column with a few coding errors, missing values."""
+    rng = np.random.default_rng(seed)
+    u, a, b = (rng.normal(size=n) for _ in range(3))
+    unit, t = np.repeat(np.arange(n), periods), np.tile(np.arange(periods), n)
+    rows = unit.size
+    z2 = 0.9 * a + 0.6 * b + 0.8 * u + rng.normal(scale=0.5, size=n)
+    x1a = a[unit] + rng.normal(size=rows)
+    x1b = b[unit] + rng.normal(size=rows)
+    x2 = 0.8 * u[unit] + rng.normal(size=rows)
+    trend = rng.integers(0, 15, size=n)[unit] + t
+    soil = np.array(["loam", "sand", "clay"])[rng.integers(0, 3, n)][unit]
+    training = np.repeat(rng.integers(0, 4, n), periods).astype(float)
+    training[rng.integers(0, rows, 6)] += 1  # coding errors: nearly time-invariant
+    y = 1 + 0.5 * x1a + 0.3 * x1b + 0.7 * x2 + z2[unit] + 0.05 * trend + u[unit] + rng.normal(size=rows)
+    y[rng.integers(0, rows, 9)] = np.nan
+    frame = pl.DataFrame({"garden": unit, "season": 2010 + t, "y": y, "x1a": x1a, "x1b": x1b, "x2": x2,
+                          "trend": trend, "z2": z2[unit], "soil": soil, "training": training})
+    frame = frame.sample(fraction=0.85, seed=seed)
+    folder.mkdir(parents=True, exist_ok=True)
+    for year in range(2010, 2010 + periods):
+        frame.filter(pl.col("season") == year).write_parquet(folder / f"season_{year}.parquet", row_group_size=70)
+
+
+@pytest.mark.parametrize(
+    "options",
+    [
+        {"correlated": ["x2", "z2"], "period_effects": True, "treat_as_invariant": ["training"]},
+        {"correlated": None},
+    ],
+    ids=["hausman-taylor-with-period-effects", "roles-from-mundlak"],
+)
+def test_instruments_on_the_cluster_equal_the_memory_engine(scheduler, tmp_path, monkeypatch, options):
+    # the issue's bar: the memory engine's coefficients to 1e-9 (here the whole document)
+    import auditor.cluster as cluster
+    from auditor.readiness import instruments
+
+    folder = tmp_path / "gardens"
+    write_model_waves(folder)
+    monkeypatch.setattr(cluster, "PARTITION_ROWS", 50)
+    regs = ["x1a", "x1b", "x2", "trend", "z2", "soil", "training"]
+    kw = {"unit": "garden", "time": "season", "outcome": "y", "regressors": regs, **options}
+    memory = instruments(folder, engine="memory", **kw).to_dict()
+    on_cluster = instruments(folder, engine="dask", scheduler=scheduler, **kw).to_dict()
+    assert memory["estimates"]["hausman_taylor"] is not None or options["correlated"] is None
+    assert approx_equal(on_cluster, memory, rel=1e-9, abs_=1e-12)
+
+
+def test_instruments_command_with_a_scheduler(scheduler, tmp_path, cli):
+    folder = tmp_path / "gardens"
+    write_model_waves(folder, seed=8)
+    args = ["instruments", str(folder), "--unit", "garden", "--time", "season", "--outcome", "y",
+            "--regressors", "x1a,x1b,x2,z2,soil", "--correlated", "x2,z2", "--json", "--fail-on", "never"]
+    got = cli(*args, "--engine", "dask", "--scheduler", scheduler)
+    assert got.returncode == 0, got.stderr
+    want = cli(*args, "--engine", "memory")
+    a, b = json.loads(got.stdout), json.loads(want.stdout)
+    assert approx_equal(a["estimates"], b["estimates"], 1e-9, 1e-12) and a["roles"] == b["roles"]
