@@ -1269,6 +1269,13 @@ class SparsePeriods:
     n_t: np.ndarray
 
     @classmethod
+    def from_rows(cls, u: np.ndarray, t: np.ndarray, n_units: int, n_periods: int) -> SparsePeriods:
+        """The system of rows with unit codes ``u`` and period indices ``t``."""
+        from scipy import sparse
+
+        return cls.from_counts(sparse.coo_matrix((np.ones(u.size), (u, t)), shape=(n_units, n_periods)))
+
+    @classmethod
     def from_counts(cls, counts: Any) -> SparsePeriods:
         """The system of the rows counted per (unit, period) in ``counts`` (sparse, units x periods)."""
         m = counts.astype(np.float64).tocsr()

@@ -9,8 +9,8 @@ within / between decomposition itself is :func:`auditor.moments.decompose`.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
 from collections.abc import Sequence
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np

@@ -970,7 +970,7 @@ class _Comparison:
 
         from concurrent.futures import ThreadPoolExecutor
 
-        from auditor.unitpass import workers
+        from auditor.moments import workers
 
         with ThreadPoolExecutor(max_workers=workers()) as pool:  # numpy's sorts release the GIL
             return dict(zip(self.numeric, pool.map(prepare, self.numeric), strict=True))
@@ -1142,7 +1142,7 @@ class _Comparison:
 
         from concurrent.futures import ThreadPoolExecutor
 
-        from auditor.unitpass import workers
+        from auditor.moments import workers
 
         with ThreadPoolExecutor(max_workers=workers()) as pool:  # numpy releases the GIL in these loops
             return dict(zip(jump, pool.map(learn, jump), strict=True))

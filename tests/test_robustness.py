@@ -329,7 +329,7 @@ def _two_way_r2(u: np.ndarray, t: np.ndarray, x: np.ndarray) -> float:
 
 
 def test_many_periods_match_least_squares_without_a_dense_system():
-    from auditor.unitpass import DENSE_PERIODS, SparsePeriods
+    from auditor.moments import DENSE_PERIODS, SparsePeriods
     from auditor.variation import run_passes
 
     rng = np.random.default_rng(19)
@@ -357,7 +357,7 @@ def test_many_periods_match_least_squares_without_a_dense_system():
 
 def test_a_chain_of_overlapping_units_converges():
     # each unit spans three consecutive periods: the slowest case for iterative solvers
-    from auditor.unitpass import SparsePeriods
+    from auditor.moments import SparsePeriods
     from auditor.variation import _explained
 
     rng = np.random.default_rng(4)

@@ -644,7 +644,7 @@ def test_draft_passes_its_own_data_as_a_property_over_column_types(tmp_path_fact
 
 def test_profile_of_a_narrow_integer_column_spanning_its_type(tmp_path):
     # found by the property above: Int8 values -128 and 0 wrapped around in their own type
-    # when tallied (unitpass), and the profile ended in an internal problem
+    # when tallied (the moments kernel), and the profile ended in an internal problem
     import auditor
 
     f = pl.DataFrame({"id": [0, 1, 2, 3], "t": [2000] * 4, "c": pl.Series([None, 127, 0, -128], dtype=pl.Int8)})
