@@ -261,12 +261,18 @@ def connect(scheduler: str | None) -> Iterator[Any]:
         cluster.close()
 
 
+MERGE_PRIORITY = 10  # merges run before new partitions are read, so few shards wait in memory
+
+
 def _tree(client: Any, futures: list[Any], combine: Callable[..., Any], *extra: Any) -> Any:
-    """Futures merged pairwise on the workers, in order; the future of the result."""
+    """Futures merged pairwise on the workers, in order; the future of the result. Merges
+    have priority over reading new partitions: a shard waits for its partner, not for
+    every partition to be read."""
     level = list(futures)
     while len(level) > 1:
         level = [
-            client.submit(combine, level[i], level[i + 1], *extra, pure=False) if i + 1 < len(level) else level[i]
+            client.submit(combine, level[i], level[i + 1], *extra, pure=False, priority=MERGE_PRIORITY)
+            if i + 1 < len(level) else level[i]
             for i in range(0, len(level), 2)
         ]
     return level[0]
@@ -349,10 +355,13 @@ class Session:
         with progress.step(f"moments of {len(parts)} partitions on the cluster"):
             shards = [client.submit(_shard, p, *self.common, cols, n_periods, self.tol, pure=False) for p in parts]
             buckets = max(4, 2 * len(client.scheduler_info().get("workers", {})))
-            cut = [client.submit(_buckets, s, buckets, pure=False) for s in shards]
-            picks = [[client.submit(operator.getitem, c, b, pure=False) for c in cut] for b in range(buckets)]
+            # a shard's value tables leave it in buckets at once: the shard itself waits for its merge
+            urgent = MERGE_PRIORITY + 1
+            cut = [client.submit(_buckets, s, buckets, pure=False, priority=urgent) for s in shards]
+            picks = [[client.submit(operator.getitem, c, b, pure=False, priority=urgent) for c in cut]
+                     for b in range(buckets)]
             counted_f = [client.submit(_count_bucket, *pb, pure=False) for pb in picks]
-            stripped = [client.submit(moments.strip_values, s, pure=False) for s in shards]
+            stripped = [client.submit(moments.strip_values, s, pure=False, priority=urgent) for s in shards]
             del shards, cut, picks
             merged = _tree(client, stripped, moments.merge).result()
             counted = _combine_counts(client.gather(counted_f))

@@ -849,6 +849,22 @@ def _examples_from(ext: pl.DataFrame, units: np.ndarray, nested: bool, text: boo
     return tuple((int(c), shown(got[int(c)][0]), shown(got[int(c)][1])) for c in units if int(c) in got)
 
 
+def changes(frame: pl.DataFrame, columns: Sequence[str], *, n_units: int, n_periods: int, tolerance: float,
+            examples: int = 0) -> dict[str, tuple[np.ndarray, tuple[tuple[int, Any, Any], ...]]]:
+    """Which units change in each column (methods.md, section 3: the test every command
+    uses), from a frame holding every row of its units; per column (a mask by unit code,
+    the first ``examples`` changing units as (unit code, low, high))."""
+    whole = shard(frame, columns, n_units=n_units, n_periods=n_periods, whole=True, count="none",
+                  examples=examples, tolerance=tolerance)
+    out = {}
+    for c, col in whole.columns.items():
+        assert col.finals is not None
+        changing = np.zeros(n_units, dtype=bool)
+        changing[whole.units] = col.finals.changing
+        out[c] = (changing, col.finals.examples)
+    return out
+
+
 # --------------------------------------------------------------------------- merging
 
 
@@ -1122,9 +1138,14 @@ def bucket_values(v: Values, buckets: int) -> list[Values]:
         vals, counts = v.table
         h = (vals.view(np.uint64) * np.uint64(0x9E3779B97F4A7C15)) >> np.uint64(40)
         b = (h % np.uint64(buckets)).astype(np.intp)
-        return [Values(table=(vals[b == k], counts[b == k])) for k in range(buckets)]
-    t = v.table.with_columns((pl.col("value").hash(seed=11) % buckets).alias("__b"))
-    return [Values(table=t.filter(pl.col("__b") == k).drop("__b")) for k in range(buckets)]
+        order = np.argsort(b, kind="stable")  # one sort, then contiguous pieces (each still sorted)
+        edges = np.searchsorted(b[order], np.arange(buckets + 1))
+        vs, cs = vals[order], counts[order]
+        return [Values(table=(vs[edges[k] : edges[k + 1]], cs[edges[k] : edges[k + 1]])) for k in range(buckets)]
+    t = v.table.with_columns((pl.col("value").hash(seed=11) % buckets).cast(pl.Int64).alias("__b"))
+    parts = {int(key[0]): part.drop("__b") for key, part in t.partition_by("__b", as_dict=True).items()}
+    empty = v.table.clear()
+    return [Values(table=parts.get(k, empty)) for k in range(buckets)]
 
 
 def strip_values(s: Shard) -> Shard:

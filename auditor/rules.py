@@ -909,7 +909,7 @@ def _within_rules(
             n = counts[col.name]
             examples: tuple[dict[str, Any], ...] = ()
             if n:
-                per_unit = changing_units(panel, col.name, tol).head(limit)
+                per_unit = changing_units(panel, col.name, tol, limit)
                 labels = panel.unit_labels(per_unit[UNIT_ID].to_list())
                 examples = tuple(
                     clean({**lab, "values": [a, b]})
@@ -1024,86 +1024,31 @@ def _changes(dtype: pl.DataType, values: pl.Expr) -> pl.Expr:
 
 
 def invariant_counts(panel: Panel, columns: list[str], tolerance: float) -> dict[str, int]:
-    """For each column, the number of units whose non-missing values differ.
-
-    Floats differ when (max - min) > tolerance * (1 + |unit mean|) (methods.md);
-    other types when a unit holds more than one distinct value. Numbers, text, dates
-    and booleans by one stable sort of the rows by unit and per-unit reductions in
-    numpy (text and categories by their codes of one categorical cast); other types
-    by a polars grouped distinct count.
-    """
-    import numpy as np
-
-    units = panel.frame.get_column(UNIT_ID).to_numpy()
-    order = np.argsort(units, kind="stable")
-    sorted_units = units[order]
-    out: dict[str, int] = {}
-    rest: list[str] = []
-    for c in columns:
-        values = _orderable(panel.frame.get_column(c))
-        if values is None:
-            rest.append(c)
-            continue
-        x = values[order]
-        keep = ~np.isnan(x)
-        x, u = x[keep], sorted_units[keep]
-        if not x.size:
-            out[c] = 0
-            continue
-        starts = np.r_[0, np.nonzero(u[1:] != u[:-1])[0] + 1]
-        lo, hi = np.minimum.reduceat(x, starts), np.maximum.reduceat(x, starts)
-        if panel.schema[c].is_float():
-            mean = np.add.reduceat(x, starts) / np.diff(np.r_[starts, x.size])
-            out[c] = int(np.count_nonzero((hi - lo) > tolerance * (1 + np.abs(mean))))
-        else:
-            out[c] = int(np.count_nonzero(hi != lo))
-    if rest:
-        aggs = [(missing_as_null(c, panel.schema[c]).drop_nulls().n_unique() > 1).alias(c) for c in rest]
-        per_unit = panel.frame.group_by(UNIT_ID).agg(aggs)
-        out.update(per_unit.select([pl.col(c).fill_null(False).sum() for c in rest]).row(0, named=True))
-    return {c: int(out[c]) for c in columns}
+    """For each column, the number of units whose usable values differ: the moments
+    kernel's test (methods.md, section 3; floats by the tolerance, infinities left out,
+    integers compared exactly), the one the profile's ``units_changing`` counts."""
+    found = _units_changing(panel, columns, tolerance, 0)
+    return {c: int(found[c][0].sum()) for c in columns}
 
 
-def _orderable(s: pl.Series) -> Any:
-    """``s`` as float64 numbers that order and compare like its values (missing and NaN as
-    NaN), or None when no such form is exact: integers beyond 2**53, lists, structs."""
-    dt = s.dtype
-    if dt.is_float():
-        return s.cast(pl.Float64).to_numpy()
-    if dt.is_integer() or dt == pl.Boolean or dt == pl.Date or isinstance(dt, pl.Datetime | pl.Duration):
-        phys = s.to_physical()
-        lo, hi = phys.min(), phys.max()
-        if lo is not None and max(abs(int(lo)), abs(int(hi))) > 2**53:
-            return None
-        return phys.cast(pl.Float64).to_numpy()
-    if dt == pl.String or isinstance(dt, pl.Categorical | pl.Enum):
-        # codes of one cast: equal codes exactly for equal texts
-        return s.cast(pl.String).cast(pl.Categorical).to_physical().cast(pl.Float64).to_numpy()
-    return None
-
-
-def changing_units(panel: Panel, column: str, tolerance: float) -> pl.DataFrame:
-    """Units whose non-missing values of ``column`` differ, with two of their values.
-
-    The same test as :func:`invariant_counts`. Returns columns ``__pa_unit``,
-    ``first`` and ``other`` (for floats the unit's lowest and highest value; else
-    its first value by period and one that differs from it), sorted by unit code.
-    """
-    dtype = panel.schema[column]
-    v = missing_as_null(column, dtype)
-    base = panel.frame.select(UNIT_ID, PERIOD_ID, v.alias("v")).drop_nulls("v")
-    if dtype.is_float():
-        stats = base.group_by(UNIT_ID).agg(
-            pl.col("v").min().alias("lo"), pl.col("v").max().alias("hi"), pl.col("v").mean().alias("mean")
-        )
-        bad = stats.filter((pl.col("hi") - pl.col("lo")) > tolerance * (1 + pl.col("mean").abs()))
-        return bad.select(UNIT_ID, pl.col("lo").alias("first"), pl.col("hi").alias("other")).sort(UNIT_ID)
-    stats = base.sort(UNIT_ID, PERIOD_ID).group_by(UNIT_ID).agg(
-        pl.col("v").n_unique().alias("n"),
-        pl.col("v").first().alias("first"),
-        pl.col("v").filter(pl.col("v") != pl.col("v").first()).first().alias("other"),
+def changing_units(panel: Panel, column: str, tolerance: float, limit: int | None = None) -> pl.DataFrame:
+    """Units whose usable values of ``column`` differ (:func:`invariant_counts`), the first
+    ``limit`` of them (all by default), with their lowest and highest value: columns
+    ``__pa_unit``, ``first`` and ``other``, sorted by unit code."""
+    _, shown = _units_changing(panel, [column], tolerance, panel.n_units if limit is None else limit)[column]
+    return pl.DataFrame(
+        {UNIT_ID: pl.Series(UNIT_ID, [e[0] for e in shown], dtype=pl.UInt32),
+         "first": [e[1] for e in shown], "other": [e[2] for e in shown]},
+        strict=False,
     )
-    return stats.filter(pl.col("n") > 1).select(UNIT_ID, "first", "other").sort(UNIT_ID)
+
+
+def _units_changing(panel: Panel, columns: list[str], tolerance: float, examples: int) -> dict[str, Any]:
+    from auditor.moments import changes
+
+    frame = panel.frame.select(UNIT_ID, PERIOD_ID, *columns)
+    return changes(frame, columns, n_units=panel.n_units, n_periods=panel.n_periods, tolerance=tolerance,
+                   examples=examples)
 
 
 def step_changes(panel: Panel, columns: list[str]) -> pl.DataFrame:

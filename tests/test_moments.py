@@ -358,3 +358,23 @@ def test_fits_on_equivalent_rows_equal_the_fits_on_the_rows_wagepan(monkeypatch)
     monkeypatch.setattr(readiness, "_sample", lambda *a, **k: readiness.equivalent_sample(rows_sample(*a, **k), 3))
     moments_doc = without_period_by_period(readiness.instruments(d, **kw).to_dict())
     assert approx_equal(moments_doc, rows_doc, rel=1e-9, abs_=1e-12)
+
+
+def test_check_and_profile_share_one_test_of_a_unit_that_changes(tmp_path):
+    # methods.md sections 2-3: infinities are counted and left out of every statistic, so a
+    # unit holding 2.5, inf, 2.5 does not change; the contract's invariant rule and the
+    # profile's units_changing use the same test (the kernel's), floats by the tolerance
+    import auditor
+    from auditor.rules import check
+
+    frame = pl.DataFrame({
+        "plot": [1, 1, 1, 2, 2, 2, 3, 3, 3],
+        "year": [1, 2, 3] * 3,
+        "depth": [2.5, float("inf"), 2.5, 4.0, 4.0 + 1e-12, 4.0, 7.0, 7.5, float("nan")],
+    })
+    rules = tmp_path / "contract.yaml"
+    rules.write_text("panel: {unit: plot, time: year}\ncolumns:\n  depth: {invariant: true}\n")
+    inv = next(r for r in check(frame, rules=rules).rules if r.rule == "invariant")
+    profiled = auditor.profile(frame, "plot", "year").columns.filter(pl.col("name") == "depth")
+    assert inv.failing == profiled["units_changing"].item() == 1  # plot 3 only
+    assert inv.examples[0]["plot"] == 3 and inv.examples[0]["values"] == [7.0, 7.5]
