@@ -103,6 +103,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("new", metavar="NEW")
     _common(p)
     p.add_argument("--merged", action="store_true", help="also profile base and new together")
+    _engine_flags(p)
 
     p = sub.add_parser("check", help="check a panel against a contract (rules file)")
     p.add_argument("data", nargs="+", metavar="DATA")
@@ -144,6 +145,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", required=True, metavar="FILE.html")
     p.add_argument("--png-dir", metavar="DIR", help="also write each figure as PNG here")
     p.add_argument("--force", action="store_true", help="replace an existing --out file")
+    _engine_flags(p)
 
     p = sub.add_parser("demo", help="write the invented orchard panel and its report, print the profile")
     p.add_argument("--out", metavar="DIR", help="folder for the demo files (default: a new temporary folder)")
@@ -247,7 +249,8 @@ def _cmd_compare(args: argparse.Namespace) -> int:
     from auditor.report.text_compare import render
     from auditor.waves import compare
 
-    result = compare(args.base, args.new, unit=args.unit, time=args.time, merged=args.merged, settings=_settings(args))
+    result = compare(args.base, args.new, unit=args.unit, time=args.time, merged=args.merged, settings=_settings(args),
+                     **_engine(args))
     return _emit(args, result, render)
 
 
@@ -320,6 +323,7 @@ def _cmd_report(args: argparse.Namespace) -> int:
             period_effects=args.period_effects,
             treat_as_invariant=list(args.treat_as_invariant),
             outputs=outs,
+            **_engine(args),
         )
         if args.json:
             from auditor.profile import tool_info

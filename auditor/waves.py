@@ -463,10 +463,11 @@ def _describe(data: Any) -> str:
     return f"'{data}'"
 
 
-def _profile(data: Any, units: tuple[str, ...], time: str, settings: Settings) -> Any:
+def _profile(data: Any, units: tuple[str, ...], time: str, settings: Settings, engine: str = "auto",
+             scheduler: str | None = None) -> Any:
     from auditor.profile import profile
 
-    return profile(data, unit=list(units), time=time, settings=settings)
+    return profile(data, unit=list(units), time=time, settings=settings, engine=engine, scheduler=scheduler)
 
 
 def period_scale(
@@ -513,6 +514,8 @@ def compare(
     settings: Settings | None = None,
     rules: Any = None,
     appended: bool = False,
+    engine: str = "auto",
+    scheduler: str | None = None,
 ) -> CompareResult:
     """Compare a new wave ``new`` with the panel held so far ``base``.
 
@@ -522,7 +525,13 @@ def compare(
     on the result (for the report of the appended panel). Returns a CompareResult; shares are
     fractions, the PSI and KS statistic dimensionless. Raises AuditError (exit 2)
     when a side cannot serve (no common keys, an empty new wave, unreadable files).
+    ``engine`` and ``scheduler`` as in :func:`auditor.profile.profile`: with ``dask`` the
+    base's profile runs on the cluster; the wave-against-base checks still read the
+    base's rows on this machine (README, "On a cluster").
     """
+    from auditor.engines import resolve_engine
+
+    name = resolve_engine(engine, None, scheduler)
     # scipy.stats (for the KS p-values) takes a second or more to import: in a thread,
     # beside the base profile, whose polars work releases the GIL
     preload("scipy.stats")
@@ -532,12 +541,12 @@ def compare(
     time = str(time).strip()
     newp = _load_side(new, units, time, "new wave", settings)
     try:
-        prof = _profile(base, units, time, settings)
+        prof = _profile(base, units, time, settings, name, scheduler)
     except AuditError as exc:
         if exc.code == "unknown-column":
             _load_side(base, units, time, "base", settings)  # re-raise with the compare wording
         raise
-    basep: Panel = prof.data
+    basep: Panel = prof.data if name != "dask" else _load_side(base, units, time, "base", settings)
     run = _Comparison(basep, newp, prof, settings, merged, base, new)
     result = run.run()
     if appended:

@@ -16,7 +16,7 @@ import json
 import numpy as np
 import polars as pl
 import pytest
-from conftest import approx_equal, without_period_by_period
+from conftest import PERIOD_BY_PERIOD, approx_equal, without_period_by_period
 
 import auditor
 
@@ -236,3 +236,30 @@ def test_instruments_command_with_a_scheduler(scheduler, tmp_path, cli):
     want = cli(*args, "--engine", "memory")
     a, b = without_period_by_period(json.loads(got.stdout)), without_period_by_period(json.loads(want.stdout))
     assert approx_equal(a["estimates"], b["estimates"], 1e-9, 1e-12) and a["roles"] == b["roles"]
+
+
+def test_compare_on_the_cluster_equals_the_memory_engine(scheduler, tmp_path, cli):
+    # the base's profile runs on the cluster; the document is the memory engine's
+    base = tmp_path / "base"
+    frame = write_waves(base, seed=12, periods=5)
+    nxt = tmp_path / "season_2020.parquet"
+    frame.filter(pl.col("season") == 2019).with_columns(pl.lit(2020).alias("season")).write_parquet(nxt)
+    args = ["compare", str(base), str(nxt), "--unit", "hive", "--time", "season", "--json", "--fail-on", "never"]
+    got = cli(*args, "--engine", "dask", "--scheduler", scheduler)
+    assert got.returncode == 0, got.stderr
+    want = cli(*args, "--engine", "memory")
+    assert approx_equal(json.loads(got.stdout), json.loads(want.stdout), 1e-12, 1e-15)
+
+
+def test_report_on_the_cluster_shows_the_memory_engines_figures(scheduler, waves, tmp_path):
+    from auditor.report.html import build_report
+
+    kw = {"unit": "hive", "time": "season", "outcome": "honey_kg", "regressors": ["frames", "colonies", "apiary"],
+          "correlated": []}
+    on_cluster = build_report(waves, out=tmp_path / "dask.html", engine="dask", scheduler=scheduler, **kw)
+    memory = build_report(waves, out=tmp_path / "memory.html", engine="memory", **kw)
+    def shown(run):
+        return [f.to_dict() for f in run.findings if f.check not in PERIOD_BY_PERIOD]
+
+    assert approx_equal(shown(on_cluster), shown(memory), 1e-9, 1e-12)
+    assert "not computed on the dask engine" in on_cluster.path.read_text()

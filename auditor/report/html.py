@@ -991,6 +991,8 @@ def write_report(
     period_effects: bool = False,
     treat_as_invariant: Sequence[str] = (),
     outputs: OutputSet | None = None,
+    engine: str = "auto",
+    scheduler: str | None = None,
 ) -> Path:
     """Audit ``data`` and write the HTML report to ``out``; return the path written.
 
@@ -999,7 +1001,7 @@ def write_report(
     return build_report(
         data, unit=unit, time=time, out=out, outcome=outcome, regressors=regressors, correlated=correlated,
         against=against, png_dir=png_dir, settings=settings, force=force, period_effects=period_effects,
-        treat_as_invariant=treat_as_invariant, outputs=outputs,
+        treat_as_invariant=treat_as_invariant, outputs=outputs, engine=engine, scheduler=scheduler,
     ).path
 
 
@@ -1028,6 +1030,8 @@ def build_report(
     period_effects: bool = False,
     treat_as_invariant: Sequence[str] = (),
     outputs: OutputSet | None = None,
+    engine: str = "auto",
+    scheduler: str | None = None,
 ) -> ReportRun:
     """Audit ``data`` and write the HTML report to ``out``.
 
@@ -1042,7 +1046,9 @@ def build_report(
     and the figures are published together or not at all (auditor.outputs), so a full
     disk or an interrupt leaves no partial file and no page without its figures.
     ``outputs``: the caller's OutputSet, which then also publishes and keeps them.
-    Returns the ReportRun (path and findings).
+    ``engine`` and ``scheduler`` as in :func:`auditor.profile.profile` (with ``dask`` and
+    ``against``, the base's profile runs on the cluster and the appended panel's sections
+    on this machine). Returns the ReportRun (path and findings).
     """
     from auditor.config import Settings as _Settings
     from auditor.config import load_settings
@@ -1067,7 +1073,8 @@ def build_report(
         if (outcome is None) != (not regressors):
             raise fail("report-model-needs-both")
         result, inst, comp, quantiles, lim = _report_parts(
-            data, unit, time, outcome, regressors, correlated, against, settings, period_effects, treat_as_invariant)
+            data, unit, time, outcome, regressors, correlated, against, settings, period_effects, treat_as_invariant,
+            engine, scheduler)
         inst_doc, comp_doc = _as_dict(inst), _as_dict(comp)
         drawn = build_figures(result, inst_doc, comp_doc, quantiles=quantiles, limits=lim)
         page = render_html(result, inst_doc, comp_doc, figures=drawn, settings=settings)
@@ -1085,7 +1092,8 @@ def build_report(
 
 def _report_parts(data: Any, unit: Any, time: str, outcome: str | None, regressors: Sequence[str] | None,
                   correlated: Sequence[str] | None, against: Any, settings: Settings, period_effects: bool,
-                  treat_as_invariant: Sequence[str]) -> tuple[Any, Any, Any, Any, Limits]:
+                  treat_as_invariant: Sequence[str], engine: str = "auto",
+                  scheduler: str | None = None) -> tuple[Any, Any, Any, Any, Limits]:
     """The profile (of base + new with ``against``), model readiness and the comparison behind a report."""
     from auditor.profile import profile, profile_panel
 
@@ -1093,11 +1101,14 @@ def _report_parts(data: Any, unit: Any, time: str, outcome: str | None, regresso
     quantiles = None
     lim = Limits.from_settings(settings)
     model_data = data
+    model_engine = {"engine": engine, "scheduler": scheduler}
     if against is not None:
         from auditor.load import INTERNAL, PERIOD_ID
         from auditor.waves import compare
 
-        comp = compare(against, data, unit=unit, time=time, settings=settings, appended=True)
+        comp = compare(against, data, unit=unit, time=time, settings=settings, appended=True, engine=engine,
+                       scheduler=scheduler)
+        model_engine = {"engine": "memory", "scheduler": None}  # the appended panel is held here
         if comp.appended is None or comp.sides is None:
             raise RuntimeError("compare(appended=True) returned no appended panel")
         result = profile_panel(comp.appended, settings)
@@ -1108,12 +1119,13 @@ def _report_parts(data: Any, unit: Any, time: str, outcome: str | None, regresso
         quantiles = shift_quantiles(last, new.frame, _as_dict(comp) or {},
                                     columns=lim.shift_columns, points=lim.quantiles)
     else:
-        result = profile(data, unit=unit, time=time, settings=settings)
+        result = profile(data, unit=unit, time=time, settings=settings, engine=engine, scheduler=scheduler)
     inst = None
     if outcome is not None and regressors:
         from auditor.readiness import instruments
 
         inst = instruments(model_data, unit=unit, time=time, outcome=outcome, regressors=list(regressors),
                            correlated=None if correlated is None else list(correlated), settings=settings,
-                           period_effects=period_effects, treat_as_invariant=list(treat_as_invariant))
+                           period_effects=period_effects, treat_as_invariant=list(treat_as_invariant),
+                           **model_engine)
     return result, inst, comp, quantiles, lim
