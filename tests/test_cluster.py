@@ -263,3 +263,57 @@ def test_report_on_the_cluster_shows_the_memory_engines_figures(scheduler, waves
 
     assert approx_equal(shown(on_cluster), shown(memory), 1e-9, 1e-12)
     assert "not computed on the dask engine" in on_cluster.path.read_text()
+
+
+def test_an_off_by_one_in_the_kernel_fails_every_driver(scheduler, waves, tmp_path, monkeypatch):
+    # a mutation check: each unit's mean divided by n_i + 1 instead of n_i inside the kernel
+    # (auditor.moments._centred) must take every engine away from an outside oracle, exact
+    # rational arithmetic of methods.md section 2 (tests/test_moments.py); unplanted, every
+    # engine equals it to 1e-12. One file sorted by unit in row groups of 40 rows: most units
+    # inside one partition with several rows, some split between two.
+    import distributed
+
+    import auditor.cluster as cluster
+    import auditor.moments as moments
+    from test_moments import exact_figures
+
+    frame = pl.read_parquet(waves).drop_nulls(["hive", "season"]).sort("hive", "season")
+    data = tmp_path / "hives.parquet"
+    frame.write_parquet(data, row_group_size=40)
+    monkeypatch.setattr(cluster, "PARTITION_ROWS", 40)
+    want = exact_figures(frame["hive"].to_numpy(), frame["honey_kg"].to_numpy())
+    waves = data
+
+    def within_sd(engine: str) -> float:
+        doc = auditor.profile(waves, "hive", "season", engine=engine,
+                              scheduler=scheduler if engine == "dask" else None).to_dict()
+        return next(c["within_sd"] for c in doc["columns"] if c["name"] == "honey_kg")
+
+    def plant() -> None:
+        import auditor.moments as m
+
+        if not hasattr(m, "_unplanted"):
+            m._unplanted = m._centred
+            m._centred = lambda xf, uu, ref, n_i, a, b: m._unplanted(xf, uu, ref, n_i + 1, a, b)
+
+    def unplant() -> None:
+        import auditor.moments as m
+
+        if hasattr(m, "_unplanted"):
+            m._centred = m._unplanted
+            del m._unplanted
+
+    engines = ("memory", "streaming", "dask")
+    for engine in engines:
+        assert within_sd(engine) == pytest.approx(want["within_sd"], rel=1e-12), engine
+    with distributed.Client(scheduler) as client:
+        try:
+            plant()
+            client.run(plant)
+            planted = {engine: within_sd(engine) for engine in engines}
+        finally:
+            unplant()
+            client.run(unplant)
+    assert not hasattr(moments, "_unplanted")
+    for engine, got in planted.items():
+        assert got != pytest.approx(want["within_sd"], rel=1e-6), engine

@@ -378,3 +378,31 @@ def test_check_and_profile_share_one_test_of_a_unit_that_changes(tmp_path):
     profiled = auditor.profile(frame, "plot", "year").columns.filter(pl.col("name") == "depth")
     assert inv.failing == profiled["units_changing"].item() == 1  # plot 3 only
     assert inv.examples[0]["plot"] == 3 and inv.examples[0]["values"] == [7.0, 7.5]
+
+
+@pytest.mark.parametrize("split", ["whole", "rows", "periods"])
+def test_integers_beyond_two_to_the_52_change_exactly_across_shards(split):
+    # neighbouring int64 values near 2**62 share one float64; oracle: Python's own integers
+    big = 2**62
+    frame = pl.DataFrame({
+        "unit": [0, 0, 0, 1, 1, 1, 2, 2, 2],
+        "period": [0, 1, 2] * 3,
+        "code": [big, big + 1, big, big, big, big, 5, 5, 6],  # unit 0 and unit 2 change
+    }).with_columns(pl.col("unit").alias(UNIT_ID), pl.col("period").cast(pl.UInt32).alias(PERIOD_ID))
+    kw = {"n_units": 3, "n_periods": 3, "examples": 3, "tolerance": TOL}
+    if split == "whole":
+        got = moments.finish(moments.shard(frame, ["code"], whole=True, **kw), examples=3, tolerance=TOL)
+    else:
+        deal = frame["period"].to_numpy() if split == "periods" else np.array([0, 1, 0, 1, 0, 1, 0, 1, 1])
+        pieces = [frame.filter(pl.Series(deal == k)) for k in np.unique(deal)]
+        merged = moments.merge_all(moments.shard(p, ["code"], whole=False, count="table", **kw) for p in pieces)
+        the_plan = moments.plan(merged, tolerance=TOL, examples=3)
+        refined = moments.merge_all_refinements((moments.refine(p, the_plan, n_units=3, n_periods=3) for p in pieces),
+                                                the_plan)
+        got = moments.finish(merged, examples=3, tolerance=TOL, refinement=refined, the_plan=the_plan)
+    st_ = got.stats["code"]
+    values = frame["code"].to_list()
+    want = {u for u in range(3) if len({v for w, v in zip(frame["unit"].to_list(), values, strict=True) if w == u}) > 1}
+    assert set(np.flatnonzero(st_.changing).tolist()) == want == {0, 2}
+    assert st_.examples[0] == (0, big, big + 1)  # the extremes as integers, exactly
+    assert st_.one_value is False  # period 0 holds big and 5

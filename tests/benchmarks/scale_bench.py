@@ -112,19 +112,7 @@ def scale_runs(folder: Path, sizes: list[float], periods: int, repeat: int) -> N
                 print(line("      net of the fixed cost", f"{(s - fixed) / (s0 - fixed):.2f}x"))
 
 
-PARTITIONED_SCRIPT = """
-import sys, time
-import polars as pl
-from auditor.merge import partitioned_figures
-source, unit, period, numeric, parts = sys.argv[1:6]
-start = time.perf_counter()
-fig = partitioned_figures(pl.scan_parquet(source), unit=unit, time=period,
-                          columns=numeric.split(","), parts=int(parts))
-print(time.perf_counter() - start, fig.height)
-"""
-
-
-def big_run(folder: Path, millions: float, periods: int, parts: int, skip_profile: bool) -> None:
+def big_run(folder: Path, millions: float, periods: int, skip_profile: bool) -> None:
     pieces = folder / "waves"
     t0 = time.perf_counter()
     if pieces.is_dir() and any(pieces.glob("*.parquet")):
@@ -152,19 +140,6 @@ def big_run(folder: Path, millions: float, periods: int, parts: int, skip_profil
             print(line("  profile --streaming (folder input)", fmt_s(a.seconds)))
             print(line("  profile / floor", f"{ratio:.2f}x", "<= 3x", ratio <= 3))
             print(line("  peak RSS profile", fmt_mib(a.rss_mib), "< 4,096 MiB", a.rss_mib < limit))
-    # The mergeable statistics of auditor.merge, one streaming pass per unit partition:
-    # numeric column figures only (no distinct counts, kinds or structure).
-    m = run_child(
-        [sys.executable, "-c", PARTITIONED_SCRIPT, str(pieces / "*.parquet"), UNIT, TIME,
-         ",".join(NUMERIC), str(parts)]
-    )
-    if m.code != 0:
-        print(f"  partitioned merge pass failed: {last_line(m.stderr)}")
-        return
-    inner = float(m.stdout.split()[0])
-    print(line(f"  merge.partitioned_figures, {parts} unit partitions", fmt_s(inner)))
-    print(line("    / floor", f"{inner / floor_s:.2f}x"))
-    print(line("    peak RSS", fmt_mib(m.rss_mib), "< 4,096 MiB", m.rss_mib < limit))
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -175,9 +150,8 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--big", action="store_true", help="also the ~50M-row run from pieces")
     ap.add_argument("--big-rows", type=float, default=50, help="millions of rows of the big run")
     ap.add_argument("--only-big", action="store_true", help="skip the 1/4/16M sizes")
-    ap.add_argument("--parts", type=int, default=8, help="unit partitions of the merge pass")
     ap.add_argument("--keep", metavar="DIR", help="write (or reuse) the data here and keep it")
-    ap.add_argument("--skip-profile", action="store_true", help="big run: floor and merge pass only")
+    ap.add_argument("--skip-profile", action="store_true", help="big run: the floor only")
     args = ap.parse_args(argv)
     print(machine_line())
     print(compile_package())
@@ -187,7 +161,7 @@ def main(argv: list[str] | None = None) -> int:
     if not args.only_big:
         scale_runs(folder, [float(s) for s in args.sizes.split(",")], args.periods, args.repeat)
     if args.big or args.only_big:
-        big_run(folder, args.big_rows, args.periods, args.parts, args.skip_profile)
+        big_run(folder, args.big_rows, args.periods, args.skip_profile)
     if tmp is not None:
         tmp.cleanup()
     return 0
