@@ -272,10 +272,10 @@ def test_an_off_by_one_in_the_kernel_fails_every_driver(scheduler, waves, tmp_pa
     # engine equals it to 1e-12. One file sorted by unit in row groups of 40 rows: most units
     # inside one partition with several rows, some split between two.
     import distributed
+    from test_moments import exact_figures
 
     import auditor.cluster as cluster
     import auditor.moments as moments
-    from test_moments import exact_figures
 
     frame = pl.read_parquet(waves).drop_nulls(["hive", "season"]).sort("hive", "season")
     data = tmp_path / "hives.parquet"

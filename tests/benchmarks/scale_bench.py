@@ -42,7 +42,6 @@ from profile_bench import (  # noqa: E402
     last_line,
     line,
     machine_line,
-    run_child,
     write_panel,
     write_pieces,
 )
