@@ -86,8 +86,18 @@ def timed(data, partition_rows):
 run, doc, seconds, spent = timed(folder, cluster.PARTITION_ROWS)
 want = json.load(open(memory_doc))
 doc["panel"].pop("engine"); want["panel"].pop("engine")
+def largest(a, b, path=""):
+    # (largest relative difference of two documents' floats, where); other values must be equal
+    if isinstance(a, dict):
+        return max((largest(a[k], b.get(k), f"{path}.{k}") for k in a), default=(0.0, path))
+    if isinstance(a, list):
+        return max((largest(x, y, f"{path}[{i}]") for i, (x, y) in enumerate(zip(a, b))), default=(0.0, path))
+    if isinstance(a, float) and isinstance(b, float):
+        return (abs(a - b) / max(abs(a), abs(b)) if a != b else 0.0, path)
+    return (0.0 if a == b else float("inf"), path)
+
 out["first"] = {"seconds": seconds, "partitions": run.partitions, "worker_peak_rss": run.worker_peak_rss,
-                "equal": approx_equal(doc, want, 1e-12, 1e-15), "spent": spent}
+                "equal": approx_equal(doc, want, 1e-12, 1e-15), "largest": largest(doc, want), "spent": spent}
 out["shards"] = []
 for k in [int(s) for s in shards.split(",")]:
     for label, data in (("all periods", folder), ("first half of the periods", folder + "/half")):
@@ -159,6 +169,8 @@ def main(argv: list[str] | None = None) -> int:
         print(line(f"  peak RSS worker {addr.rsplit(':', 1)[-1]}", fmt_mib(peak / 2**20)))
     print(line("  peak RSS client (whole child process)", fmt_mib(got["client_peak_rss"] / 2**20)))
     print(line("  document equals the memory engine's (1e-12)", str(first["equal"])))
+    rel, where = first["largest"]
+    print(line("  largest relative difference", f"{rel:.1e} ({where or 'none'})"))
     spent = first["spent"]
     print("  compute seconds summed over workers: "
           + ", ".join(f"{k} {v:.2f}" for k, v in sorted(spent.items(), key=lambda kv: -kv[1])))
