@@ -383,3 +383,33 @@ EXPLANATIONS: dict[str, Explanation] = {
 def explanation(code: str) -> Explanation | None:
     """The explanation of ``code``, or None when it has none."""
     return EXPLANATIONS.get(code)
+
+
+def check_or_fail(code: str) -> Explanation:
+    """The explanation of ``code``; an AuditError (exit 2) naming close codes when there is none."""
+    import difflib
+
+    from auditor.errors import fail
+
+    hit = EXPLANATIONS.get(code)
+    if hit is None:
+        close = difflib.get_close_matches(code, list(EXPLANATIONS), n=3, cutoff=0.5)
+        raise fail("unknown-finding-code", name=code,
+                   close=f"did you mean {', '.join(close)}?" if close else f"{len(EXPLANATIONS)} codes")
+    return hit
+
+
+def as_document(code: str | None = None) -> dict:
+    """The explanations as a JSON document: every code, or the one named (with its severity and command)."""
+    from auditor.findings import CHECKS
+    from auditor.profile import tool_info
+
+    codes = [code] if code else list(EXPLANATIONS)
+    out = []
+    for c in codes:
+        e = check_or_fail(c)
+        spec = CHECKS.get(c)
+        out.append({"code": c, "severity": spec.severity if spec else None, "command": spec.command if spec else None,
+                    "summary": spec.about if spec else None, "meaning": e.meaning, "count": e.count, "why": e.why,
+                    "action": e.action})
+    return {"tool": tool_info(), "codes": out}

@@ -649,18 +649,25 @@ def instruments(
     corr = None if correlated is None else _names(correlated)
     invariant = _names(list(treat_as_invariant))
     outcome = str(outcome).strip()
-    panel = load_panel(data, unit, time, settings=settings)
+    from auditor import progress
+
+    with progress.step("reading the panel"):
+        panel = load_panel(data, unit, time, settings=settings)
     _validate(panel, outcome, regs, corr, invariant)
     return _run(panel, outcome, regs, corr, bool(period_effects), invariant, settings)
 
 
 def _run(panel: Panel, outcome: str, regs: list[str], corr: list[str] | None, period_effects: bool,
          invariant: list[str], settings: Settings) -> InstrumentsResult:
+    from auditor import progress
+
     get = lambda key: settings.get(SECTION, key)  # noqa: E731
-    sample = _sample(panel, outcome, regs, period_effects, invariant, settings)
-    design = _design(sample)
-    ident = identification.decide(design.pa, design.periods, design.x, design.z, tol=float(get("collinear_tol")),
-                                  near_r2=float(get("near_collinear_r2")))
+    with progress.step(f"kinds and complete rows of {len(regs)} regressors"):
+        sample = _sample(panel, outcome, regs, period_effects, invariant, settings)
+        design = _design(sample)
+    with progress.step("what each fit identifies"):
+        ident = identification.decide(design.pa, design.periods, design.x, design.z, tol=float(get("collinear_tol")),
+                                      near_r2=float(get("near_collinear_r2")))
     if ident.moved_to_z:
         design = _moved_to_z(design, ident.moved_to_z)
     outcome_invariant = sample.kinds[outcome] in ("time-invariant", "constant")
@@ -671,7 +678,7 @@ def _run(panel: Panel, outcome: str, regs: list[str], corr: list[str] | None, pe
     # Fits that do not feed one another run side by side in a second thread (numpy
     # releases the interpreter lock): random effects beside the roles and Hausman-Taylor,
     # the X2 first stages beside the Z2 strength. Findings are sorted at the end.
-    with ThreadPoolExecutor(max_workers=1) as pool:
+    with ThreadPoolExecutor(max_workers=1) as pool, progress.step(f"fits on {design.pa.nobs:,} rows"):
         wf, bf, mu, job, too_few, k_unit = _early_fits(design, ident, outcome_invariant, pool)
         mundlak_p = {r["column"]: r["p"] for r in mu.per_column} if mu is not None else {}
         roles = _roles(design, ident, corr, mundlak_p, alpha, expand)
