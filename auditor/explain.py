@@ -283,7 +283,7 @@ EXPLANATIONS: dict[str, Explanation] = {
     ),
     "type-changed": E(
         "A column whose type differs between base and new wave (an error for a key column).",
-        "not used",
+        "the column (always 1)",
         "Values may no longer compare (a number delivered as text), and a key of another type can split units.",
         "Fix the export of the new wave.",
     ),
@@ -315,20 +315,20 @@ EXPLANATIONS: dict[str, Explanation] = {
     "distribution-shift": E(
         "A column whose distribution in the new wave differs from the base's last period (stability index above "
         "its cut-off).",
-        "not used",
+        "new-wave rows with a value of the column",
         "A shift can be real change or a change of measurement (units, definitions) that period effects would "
         "wrongly absorb.",
         "Check the column's definition and units in the new wave.",
     ),
     "missing-jump": E(
         "A missing share that rises against the base's last period.",
-        "not used",
+        "new-wave rows where the column is missing",
         "A question may have been dropped or a field lost in the export.",
         "Check the delivery of that column.",
     ),
     "column-removed": E(
         "A base column absent from the new wave.",
-        "not used",
+        "the column (always 1)",
         "Models using it lose the new wave.",
         "Check whether the column was renamed or dropped.",
     ),
@@ -340,7 +340,7 @@ EXPLANATIONS: dict[str, Explanation] = {
     ),
     "column-added": E(
         "A column new in the wave.",
-        "not used",
+        "the column (always 1)",
         "Earlier waves lack it; a model using it loses them.",
         "Document it.",
     ),
@@ -365,7 +365,7 @@ EXPLANATIONS: dict[str, Explanation] = {
     "period-value-differs": E(
         "A column all units shared within each base period (a period-level value) on which units disagree in "
         "the new wave.",
-        "not used",
+        "new-wave periods in which units hold different values",
         "A period-level value that varies across units in one wave is usually a delivery error, and it changes "
         "how the column enters the models.",
         "Check the column in the new wave.",
