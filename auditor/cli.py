@@ -44,6 +44,18 @@ def _common(p: argparse.ArgumentParser, keys: bool = True) -> None:
     p.add_argument("--debug", action="store_true", help="show a traceback on errors")
 
 
+def _view_flags(p: argparse.ArgumentParser, details: bool = True, show: bool = True) -> None:
+    if show:
+        p.add_argument("--show", choices=("error", "warning", "note"), default="note",
+                       help="the least severe findings the text lists (default: note, all); --json keeps all")
+    if details:
+        p.add_argument("--details", metavar="DIR",
+                       help="write one CSV per finding code with every offending row or unit into DIR")
+        p.add_argument("--force", action="store_true", help="replace existing files in --details DIR")
+    p.add_argument("--progress", action="store_true",
+                   help="show progress on stderr even when it is not a terminal or --json is piped")
+
+
 def _engine_flags(p: argparse.ArgumentParser) -> None:
     p.add_argument("--engine", choices=("auto", "memory", "streaming", "dask"), default="auto",
                    help="which engine computes the statistics: auto (memory or streaming by the input's size), "
@@ -85,6 +97,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("data", nargs="+", metavar="DATA", help="a data file, several files, a folder or a glob")
     _common(p)
     _engine_flags(p)
+    _view_flags(p)
 
     p = sub.add_parser("instruments", help="model readiness: roles, instrument strength, diagnostic estimators")
     p.add_argument("data", nargs="+", metavar="DATA")
@@ -97,6 +110,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--treat-as-invariant", metavar="COL", action="append", default=[],
                    help="use a nearly-time-invariant column's most common value within each unit")
     _engine_flags(p)
+    _view_flags(p, details=False)
 
     p = sub.add_parser("compare", help="a new wave against the panel so far")
     p.add_argument("base", metavar="BASE")
@@ -104,6 +118,7 @@ def build_parser() -> argparse.ArgumentParser:
     _common(p)
     p.add_argument("--merged", action="store_true", help="also profile base and new together")
     _engine_flags(p)
+    _view_flags(p)
 
     p = sub.add_parser("check", help="check a panel against a contract (rules file)")
     p.add_argument("data", nargs="+", metavar="DATA")
@@ -114,6 +129,7 @@ def build_parser() -> argparse.ArgumentParser:
                    help="the panel so far (a file, folder or glob): also judge the rules that span waves across the boundary")
     p.add_argument("--json", action="store_true")
     p.add_argument("--debug", action="store_true")
+    _view_flags(p, show=False)
 
     p = sub.add_parser("rules", help="draft a contract from a clean panel, or export its row rules")
     rsub = p.add_subparsers(dest="rules_command", metavar="ACTION", parser_class=_Parser)
@@ -147,8 +163,13 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--force", action="store_true", help="replace an existing --out file")
     _engine_flags(p)
 
+    p = sub.add_parser("explain", help="what a finding code means, what its count counts and what to do")
+    p.add_argument("code", nargs="?", metavar="CODE", help="a finding code (none: list every code)")
+    p.add_argument("--json", action="store_true", help="the explanations as JSON")
+    p.add_argument("--debug", action="store_true")
+
     p = sub.add_parser("demo", help="write the invented orchard panel and its report, print the profile")
-    p.add_argument("--out", metavar="DIR", help="folder for the demo files (default: a new temporary folder)")
+    p.add_argument("--out", metavar="DIR", help="folder for the demo files (default: ./panel-audit-demo)")
     p.add_argument("--force", action="store_true", help="replace demo files already in --out")
     p.add_argument("--debug", action="store_true")
     return parser
@@ -214,7 +235,8 @@ def _print_result(args: argparse.Namespace, result: Any, render: Callable[..., s
     else:
         from auditor.report.text import terminal_width, use_colour
 
-        _say(render(result, width=terminal_width(), colour=use_colour(sys.stdout)))
+        extra = {"show": args.show} if getattr(args, "show", None) else {}
+        _say(render(result, width=terminal_width(), colour=use_colour(sys.stdout), **extra))
 
 
 def _cmd_profile(args: argparse.Namespace) -> int:
@@ -222,7 +244,26 @@ def _cmd_profile(args: argparse.Namespace) -> int:
     from auditor.report.text import render
 
     result = profile(_data(args), args.unit, args.time, settings=_settings(args), **_engine(args))
+    if args.details:
+        from auditor.details import profile_tables
+
+        _write_details(args, profile_tables(result), list(args.data))
     return _emit(args, result, render)
+
+
+def _write_details(args: argparse.Namespace, tables: dict[str, Any], *data: Any) -> None:
+    """Write ``--details`` files (never over an input; all of them or none) and say where on stderr."""
+    from auditor import progress
+    from auditor.details import write_details
+
+    with progress.step("writing --details files"), _outputs(args, *data) as outs:
+        paths = write_details(tables, args.details, outs)
+        outs.publish()
+    if paths:
+        sys.stderr.write(f"{PROG}: details: {len(paths)} file{'s' if len(paths) != 1 else ''} in {args.details} "
+                         f"({', '.join(p.name for p in paths)})\n")
+    else:
+        sys.stderr.write(f"{PROG}: details: no finding has rows behind it; nothing written\n")
 
 
 def _cmd_instruments(args: argparse.Namespace) -> int:
@@ -251,6 +292,10 @@ def _cmd_compare(args: argparse.Namespace) -> int:
 
     result = compare(args.base, args.new, unit=args.unit, time=args.time, merged=args.merged, settings=_settings(args),
                      **_engine(args))
+    if args.details:
+        from auditor.details import compare_tables
+
+        _write_details(args, compare_tables(result), args.base, args.new)
     return _emit(args, result, render)
 
 
@@ -258,7 +303,13 @@ def _cmd_check(args: argparse.Namespace) -> int:
     from auditor.report.text_check import render
     from auditor.rules import check
 
-    result = check(_data(args), rules=args.rules, unit=args.unit, time=args.time, against=args.against)
+    result = check(_data(args), rules=args.rules, unit=args.unit, time=args.time, against=args.against,
+                   keep_all=bool(args.details))
+    if args.details:
+        from auditor.details import check_tables
+
+        _write_details(args, check_tables(result), list(args.data), *([args.against] if args.against else []))
+        result = result.shown()
     _print_result(args, result, render)
     return 0 if result.passed else 1
 
@@ -336,14 +387,31 @@ def _cmd_report(args: argparse.Namespace) -> int:
 
 
 def _cmd_demo(args: argparse.Namespace) -> int:
-    from auditor.demo import run_demo
+    from auditor.demo import next_commands, run_demo
     from auditor.report.text import render, terminal_width, use_colour
 
     run = run_demo(Path(args.out) if args.out else None, force=args.force)
     lines = [render(run.profile, width=terminal_width(), colour=use_colour(sys.stdout)), "\nfiles written:\n"]
     pad = max((len(name) for name in run.paths), default=0)
     lines += [f"  {name:<{pad}}  {path}\n" for name, path in run.paths.items()]
+    lines.append("\nto try next:\n")
+    lines += [f"  {cmd}\n" for cmd in next_commands(run)]
     _say("".join(lines))
+    return 0
+
+
+def _cmd_explain(args: argparse.Namespace) -> int:
+    from auditor.report.text_explain import render_all, render_one
+
+    if args.json:
+        from auditor.explain import as_document
+        from auditor.report.jsonout import dumps
+
+        _say(dumps(as_document(args.code)))
+        return 0
+    from auditor.report.text import terminal_width
+
+    _say(render_one(args.code, terminal_width()) if args.code else render_all(terminal_width()))
     return 0
 
 
@@ -355,6 +423,7 @@ COMMANDS: dict[str, Callable[[argparse.Namespace], int]] = {
     "rules": _cmd_rules,
     "report": _cmd_report,
     "demo": _cmd_demo,
+    "explain": _cmd_explain,
 }
 
 
@@ -400,7 +469,10 @@ def _run(argv: Sequence[str] | None) -> int:
         debug = bool(getattr(args, "debug", False))
         from auditor import progress
 
-        progress.enable(bool(sys.stderr.isatty()) and not getattr(args, "json", False))
+        # on a terminal; with --json only when stdout is a terminal too (a pipe reads the document);
+        # --progress turns it on anyway
+        piped_json = getattr(args, "json", False) and not sys.stdout.isatty()
+        progress.enable(bool(getattr(args, "progress", False)) or (bool(sys.stderr.isatty()) and not piped_json))
         with warnings.catch_warnings():
             if not debug:  # a library's warning is not the user's business on the terminal
                 warnings.simplefilter("ignore")

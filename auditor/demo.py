@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import importlib.util
 import json
-import tempfile
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -57,8 +56,28 @@ def _has_html_report() -> bool:
     return hasattr(html, "write_report")
 
 
+#: where ``panel-audit demo`` writes without --out (in the current folder)
+DEFAULT_DIR = "panel-audit-demo"
+
+
+def next_commands(run: DemoRun) -> list[str]:
+    """Three commands to try next on the demo's files: the new season against the registry, model
+    readiness with the set-up the demo's README describes, and a contract drafted and checked."""
+    reg, nxt = run.paths.get("orchards"), run.paths.get("orchards_next_season")
+    keys = f"--unit {DEMO_UNIT} --time {DEMO_TIME}"
+    contract = run.out_dir / "contract.yaml"
+    return [
+        f"panel-audit compare {reg} {nxt} {keys}",
+        f"panel-audit instruments {reg} {keys} --outcome {DEMO_OUTCOME} --regressors {','.join(DEMO_REGRESSORS)} "
+        f"--correlated {','.join(DEMO_CORRELATED)} --period-effects"
+        + "".join(f" --treat-as-invariant {c}" for c in DEMO_TREAT_AS_INVARIANT),
+        f"panel-audit rules draft {reg} {keys} --out {contract} && "
+        f"panel-audit check {nxt} --rules {contract} --against {reg}",
+    ]
+
+
 def run_demo(out: Path | str | None = None, *, force: bool = False) -> DemoRun:
-    """Write the demo files into ``out`` (default: a new temporary folder) and profile them.
+    """Write the demo files into ``out`` (default: ``./panel-audit-demo``) and profile them.
 
     Writes ``orchards.csv``, ``orchards_next_season.csv``, ``orchards_profile.json``
     and, when the HTML report is available, ``orchards_report.html``; every file
@@ -70,10 +89,7 @@ def run_demo(out: Path | str | None = None, *, force: bool = False) -> DemoRun:
     from auditor.outputs import write_atomic
     from auditor.profile import profile
 
-    if out is None:
-        out_dir = Path(tempfile.mkdtemp(prefix="panel-audit-demo-"))
-    else:
-        out_dir = Path(out)
+    out_dir = Path(DEFAULT_DIR if out is None else out)
     paths: dict[str, Path] = {}
     for name, frame in orchard_files().items():
         paths[name.removesuffix(".csv")] = write_atomic(out_dir / name, csv_text(frame), force=force)

@@ -81,6 +81,8 @@ CATALOGUE: dict[str, str] = {
     # --- output ----------------------------------------------------------------
     "output-exists": "'{path}' already exists; pass --force to replace it",
     "output-is-input": "'{path}' is an input of this run; choose another output path",
+    "details-not-folder": "--details '{path}' is a file, not a folder; give a folder for the details files",
+    "unknown-finding-code": "there is no finding code '{name}'; 'panel-audit explain' lists them all ({close})",
     "output-unwritable": "cannot write '{path}': {reason}",
     "output-twice": "'{path}' would be written twice by this run, as {first} and as {second}; give each output its own path",
     "output-is-link": (

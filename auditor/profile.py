@@ -127,7 +127,9 @@ def profile_panel(panel: Panel, settings: Settings, passes: Passes | None = None
         s = compute_structure(panel, settings, passes.per_unit, passes.duplicate_cells)
         v = compute_variation(panel, settings, passes)
     findings = [*panel.load_findings, *structure_findings(panel, s, settings), *variation_findings(panel, v, settings)]
-    return ProfileResult(
+    from auditor.details import example_runs
+
+    return example_runs(ProfileResult(
         panel=s.summary,
         columns=v.columns,
         findings=sort_findings(findings),
@@ -140,4 +142,4 @@ def profile_panel(panel: Panel, settings: Settings, passes: Passes | None = None
             per_unit=s.per_unit,
             absorbed_basis=v.absorbed_basis,
         ),
-    )
+    ))

@@ -33,6 +33,11 @@ def step(label: str) -> Iterator[None]:
         return
     elapsed = time.perf_counter() - float(_state["start"])
     text = f"panel-audit: {label} … ({elapsed:.1f} s)"
+    if not sys.stderr.isatty():  # asked for with --progress: one line a step, for a log
+        sys.stderr.write(text + "\n")
+        sys.stderr.flush()
+        yield
+        return
     sys.stderr.write("\r" + text.ljust(int(_state["width"])))
     sys.stderr.flush()
     _state["width"] = len(text)

@@ -765,6 +765,7 @@ def instruments(
     corr = None if correlated is None else _names(correlated)
     invariant = _names(list(treat_as_invariant))
     outcome = str(outcome).strip()
+    from auditor import progress
     from auditor.engines import resolve_engine
 
     name = resolve_engine(engine, None, scheduler)
@@ -773,22 +774,29 @@ def instruments(
 
         shell, _ = cluster.load(data, unit, time, settings)
         _validate(shell, outcome, regs, corr, invariant)
-        with cluster.session(data, unit, time, settings, scheduler) as run:
-            sample = run.sample(outcome, regs, bool(period_effects), invariant)
+        with progress.step("the design's moments on the cluster"):
+            with cluster.session(data, unit, time, settings, scheduler) as run:
+                sample = run.sample(outcome, regs, bool(period_effects), invariant)
         return _run(run.panel, outcome, regs, corr, bool(period_effects), invariant, settings, sample=sample)
-    panel = load_panel(data, unit, time, streaming={"memory": False, "streaming": True}.get(name), settings=settings)
+    with progress.step("reading the panel"):
+        panel = load_panel(data, unit, time, streaming={"memory": False, "streaming": True}.get(name),
+                           settings=settings)
     _validate(panel, outcome, regs, corr, invariant)
     return _run(panel, outcome, regs, corr, bool(period_effects), invariant, settings)
 
 
 def _run(panel: Panel, outcome: str, regs: list[str], corr: list[str] | None, period_effects: bool,
          invariant: list[str], settings: Settings, sample: Sample | None = None) -> InstrumentsResult:
+    from auditor import progress
+
     get = lambda key: settings.get(SECTION, key)  # noqa: E731
-    if sample is None:
-        sample = _sample(panel, outcome, regs, period_effects, invariant, settings)
-    design = _design(sample)
-    ident = identification.decide(design.pa, design.periods, design.x, design.z, tol=float(get("collinear_tol")),
-                                  near_r2=float(get("near_collinear_r2")))
+    with progress.step(f"kinds and complete rows of {len(regs)} regressors"):
+        if sample is None:
+            sample = _sample(panel, outcome, regs, period_effects, invariant, settings)
+        design = _design(sample)
+    with progress.step("what each fit identifies"):
+        ident = identification.decide(design.pa, design.periods, design.x, design.z, tol=float(get("collinear_tol")),
+                                      near_r2=float(get("near_collinear_r2")))
     if ident.moved_to_z:
         design = _moved_to_z(design, ident.moved_to_z)
     outcome_invariant = sample.kinds[outcome] in ("time-invariant", "constant")
@@ -799,7 +807,7 @@ def _run(panel: Panel, outcome: str, regs: list[str], corr: list[str] | None, pe
     # Fits that do not feed one another run side by side in a second thread (numpy
     # releases the interpreter lock): random effects beside the roles and Hausman-Taylor,
     # the X2 first stages beside the Z2 strength. Findings are sorted at the end.
-    with ThreadPoolExecutor(max_workers=1) as pool:
+    with ThreadPoolExecutor(max_workers=1) as pool, progress.step(f"fits on {design.pa.nobs:,} rows"):
         wf, bf, mu, job, too_few, k_unit = _early_fits(design, ident, outcome_invariant, pool)
         mundlak_p = {r["column"]: r["p"] for r in mu.per_column} if mu is not None else {}
         roles = _roles(design, ident, corr, mundlak_p, alpha, expand)

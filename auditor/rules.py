@@ -16,6 +16,7 @@ great-expectations is imported only inside the functions that need it.
 
 from __future__ import annotations
 
+import contextvars
 import math
 import time as _time
 from dataclasses import dataclass, field, replace
@@ -103,6 +104,19 @@ class CheckResult:
     findings: tuple[Finding, ...]
     timings: dict[str, float] = field(default_factory=dict)
     base_source: str | None = None
+    examples_shown: int = 5
+
+    def shown(self) -> CheckResult:
+        """The result with each rule's and finding's examples cut to the configured number
+        (after ``check(..., keep_all=True)`` kept every failure)."""
+        import dataclasses
+
+        k = self.examples_shown
+        return dataclasses.replace(
+            self,
+            rules=tuple(dataclasses.replace(r, examples=tuple(r.examples[:k])) for r in self.rules),
+            findings=tuple(dataclasses.replace(f, examples=tuple(f.examples[:k])) for f in self.findings),
+        )
 
     @property
     def passed(self) -> bool:
@@ -149,6 +163,7 @@ def check(
     unit: str | list[str] | None = None,
     time: str | None = None,
     against: Any = None,
+    keep_all: bool = False,
 ) -> CheckResult:
     """Run the contract in the file ``rules`` on ``data`` (path(s) or a pandas/polars frame).
 
@@ -157,11 +172,20 @@ def check(
     panel so far: path(s), a folder of waves or a frame) the rules that span
     waves (invariant, monotone, max_change, max_change_per_period, the step and
     keys the base already holds) are also judged across the boundary between the
-    two. Returns a CheckResult; raises AuditError (exit 2) when the file or the
-    data cannot be used.
+    two. ``keep_all``: every rule keeps every failing row, unit or period in its
+    ``examples`` (for ``--details``; :meth:`CheckResult.shown` cuts them back to the
+    configured number). Returns a CheckResult; raises AuditError (exit 2) when the file
+    or the data cannot be used.
     """
     clock = _time.perf_counter()
     contract, settings = read_contract(rules)
+    shown = int(settings.get("check", "examples"))
+    if keep_all:
+        import dataclasses
+
+        thresholds = {k: dict(v) for k, v in settings.thresholds.items()}
+        thresholds["check"]["examples"] = 1 << 62  # every failure, not a few examples
+        settings = dataclasses.replace(settings, thresholds=thresholds)
     if contract.is_empty:
         raise fail("contract-empty", path=rules)
     units, time_key = _keys(contract, rules, unit, time)
@@ -173,15 +197,24 @@ def check(
                 raise fail("file-not-found", path=path)
     if _has_row_rules(contract):
         preload_gx()  # beside loading the panel and the polars rules, which release the GIL
-    panel = load_panel(data, units, time_key, settings=settings)
+    from auditor import progress
+
+    with progress.step("reading the panel"):
+        panel = load_panel(data, units, time_key, settings=settings)
     timings = {"load": _time.perf_counter() - clock}
-    results = run_contract(contract, panel, settings, timings=timings)
+    token = _MESSAGE_LIMIT.set(shown if keep_all else None)
+    try:
+        with progress.step(f"{len(contract.columns)} columns' rules on {panel.rows:,} rows"):
+            results = run_contract(contract, panel, settings, timings=timings)
+    finally:
+        _MESSAGE_LIMIT.reset(token)
     base_source = None
     if against is not None:
         from auditor.boundary import across_waves
 
         clock = _time.perf_counter()
-        crossing, base_source = across_waves(contract, panel, against, settings)
+        with progress.step("the rules across waves"):
+            crossing, base_source = across_waves(contract, panel, against, settings)
         results = (*results, *crossing)
         timings["across_waves"] = _time.perf_counter() - clock
     findings = tuple(
@@ -203,7 +236,18 @@ def check(
         findings=findings,
         timings=timings,
         base_source=base_source,
+        examples_shown=shown,
     )
+
+
+#: with keep_all, the number of values a rule's message names (its examples hold every one)
+_MESSAGE_LIMIT: contextvars.ContextVar[int | None] = contextvars.ContextVar("message_limit", default=None)
+
+
+def _named(limit: int) -> int:
+    """How many values a message names: the configured number of examples."""
+    shown = _MESSAGE_LIMIT.get()
+    return limit if shown is None else shown
 
 
 def run_contract(
@@ -740,9 +784,9 @@ def _panel_rules(rules: PanelRules, contract: Contract, panel: Panel, limit: int
         n = len(missing) + len(extra)
         parts = []
         if missing:
-            parts.append("missing " + short_list(missing, limit))
+            parts.append("missing " + short_list(missing, _named(limit)))
         if extra:
-            parts.append("not in the contract " + short_list(extra, limit))
+            parts.append("not in the contract " + short_list(extra, _named(limit)))
         msg = "; ".join(parts) if parts else f"the {len(expected)} periods are the contract's"
         ex = [{"period": p, "problem": "missing"} for p in missing] + [
             {"period": e, "problem": "unexpected"} for e in extra
@@ -757,7 +801,7 @@ def _panel_rules(rules: PanelRules, contract: Contract, panel: Panel, limit: int
         ]
         span = f"{rules.first_period if rules.first_period is not None else '...'} to {rules.last_period if rules.last_period is not None else '...'}"
         msg = (
-            f"{len(outside)} periods outside {span}: " + ", ".join(str(o) for o in outside[:limit])
+            f"{len(outside)} periods outside {span}: " + ", ".join(str(o) for o in outside[:_named(limit)])
             if outside
             else f"every period lies in {span}"
         )
@@ -786,7 +830,7 @@ def _panel_rules(rules: PanelRules, contract: Contract, panel: Panel, limit: int
             RuleResult(
                 "only_listed_columns", "panel", None, not extra_cols, len(extra_cols),
                 (
-                    f"{count(len(extra_cols), 'column')} the contract does not list: " + ", ".join(extra_cols[:limit])
+                    f"{count(len(extra_cols), 'column')} the contract does not list: " + ", ".join(extra_cols[:_named(limit)])
                     if extra_cols
                     else "every column is listed in the contract"
                 ),

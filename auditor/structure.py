@@ -189,7 +189,8 @@ def compute_structure(
             "period": panel.grid[t],
             "present": int(present[t]),
             "entering": int(entering[t]),
-            "leaving": int(leaving[t]) if t < n_periods - 1 else 0,
+            # the last period's leavers are not yet known (a unit seen last there may come back)
+            "leaving": int(leaving[t]) if t < n_periods - 1 else None,
             "returning": int(returning[t]),
         }
         for t in range(n_periods)

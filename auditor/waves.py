@@ -92,6 +92,7 @@ class CompareResult:
     settings: Settings | None = field(default=None, repr=False, compare=False)
     appended: Panel | None = field(default=None, repr=False, compare=False)
     sides: tuple[Panel, Panel] | None = field(default=None, repr=False, compare=False)
+    detail_tables: dict[str, pl.DataFrame] = field(default_factory=dict, repr=False, compare=False)
 
     @property
     def findings(self) -> tuple[Finding, ...]:
@@ -539,7 +540,10 @@ def compare(
         settings = load_settings(rules)
     units = parse_unit(unit)
     time = str(time).strip()
-    newp = _load_side(new, units, time, "new wave", settings)
+    from auditor import progress
+
+    with progress.step("reading the new wave"):
+        newp = _load_side(new, units, time, "new wave", settings)
     try:
         prof = _profile(base, units, time, settings, name, scheduler)
     except AuditError as exc:
@@ -548,7 +552,8 @@ def compare(
         raise
     basep: Panel = prof.data if name != "dask" else _load_side(base, units, time, "base", settings)
     run = _Comparison(basep, newp, prof, settings, merged, base, new)
-    result = run.run()
+    with progress.step(f"comparing {newp.rows:,} new rows with {basep.rows:,} base rows"):
+        result = run.run()
     if appended:
         result = dataclasses.replace(result, appended=run.appended(), sides=(basep, newp))
     return result
@@ -574,6 +579,7 @@ class _Comparison:
         self.findings: list[Finding] = []
         self._counts: dict[tuple[str, str], pl.DataFrame] = {}
         self._appended: Panel | None = None
+        self.tables: dict[str, list[pl.DataFrame]] = {}  # every row behind a finding, for --details
 
     def get(self, key: str) -> Any:
         return self.s.get(SECTION, key)
@@ -611,6 +617,7 @@ class _Comparison:
             unit=self.units,
             time=self.time,
             sources={"base": self.bp.source, "new": self.np.source},
+            detail_tables={k: pl.concat(v, how="diagonal_relaxed") for k, v in self.tables.items()},
             wave_findings=sort_findings(self.findings),
             merged_findings=merged_findings,
             merged_panel=merged_panel,
@@ -721,6 +728,16 @@ class _Comparison:
     def _lab(self, pos: int) -> Any:
         return label_at(pos, self.scale.frequency)
 
+    def keep(self, code: str, table: pl.DataFrame) -> None:
+        """Keep every row behind a finding of ``code`` (the text key columns renamed to the
+        user's key names) for ``--details``."""
+        self.tables.setdefault(code, []).append(table.rename(dict(zip(self.nkeys, self.units, strict=True)),
+                                                             strict=False))
+
+    def _labels_expr(self, col: str) -> pl.Expr:
+        """Period labels of a column of positions on the comparison's scale, as text."""
+        return pl.col(col).map_elements(lambda p: str(self._lab(int(p))), return_dtype=pl.String)
+
     def _keys_of(self, row: dict[str, Any]) -> dict[str, Any]:
         """The unit key of a row holding the text keys, by the user's column names."""
         return {u: row[k] for u, k in zip(self.units, self.nkeys, strict=True)}
@@ -750,6 +767,8 @@ class _Comparison:
             .sort(self.nkeys)
         )
         if after_gap.height:
+            self.keep("returning-after-absence", after_gap.select(
+                *self.nkeys, self._labels_expr("__pa_last").alias("last_base_period")))
             examples = [
                 {**self._keys_of(r), "last_base_period": self._lab(int(r["__pa_last"]))}
                 for r in after_gap.head(self.examples).iter_rows(named=True)
@@ -769,6 +788,7 @@ class _Comparison:
             not_returning.join(in_last, on=UNIT_ID, how="semi").sort(self.nkeys)
         )
         if left_last.height:
+            self.keep("units-not-returning", left_last.select(*self.nkeys))
             self.add(
                 "units-not-returning",
                 f"{_plural(left_last.height, 'unit')} of base period {self._lab(self.last_pos)} "
@@ -800,6 +820,9 @@ class _Comparison:
             hits = in_overlap.select(keys).unique().join(held, on=keys, how="semi")
             colliding = hits.height
             if colliding:
+                self.keep("overlapping-periods", hits.sort(keys).join(
+                    self.bunits.rename({UNIT_ID: BASE_UNIT}), on=BASE_UNIT, how="left").select(
+                    *self.nkeys, self._labels_expr(POS).alias(self.time)))
                 hit_periods = sorted(hits.get_column(POS).unique().to_list())
                 labels = [self._lab(p) for p in hit_periods]
                 ex = (
@@ -837,6 +860,8 @@ class _Comparison:
         dup = self.N.group_by(UNIT_ID, POS).agg(pl.len().alias("__pa_n")).filter(pl.col("__pa_n") > 1)
         if dup.height:
             extra = int((dup.get_column("__pa_n") - 1).sum())
+            self.keep("duplicate-keys", dup.sort(UNIT_ID, POS).join(self.nunits, on=UNIT_ID, how="left").select(
+                *self.nkeys, self._labels_expr(POS).alias(self.time), pl.col("__pa_n").alias("rows")))
             ex = dup.sort(UNIT_ID, POS).head(self.examples).join(self.nunits, on=UNIT_ID, how="left")
             examples = [
                 {**self._keys_of(r), self.time: self._lab(r[POS]),
@@ -912,6 +937,8 @@ class _Comparison:
             problems.append({"period": self._lab(p), "reason": why})
         if problems:
             labels = [e["period"] for e in problems]
+            self.keep("unexpected-period", pl.DataFrame({"period": [str(e["period"]) for e in problems],
+                                                         "reason": [e["reason"] for e in problems]}))
             self.add(
                 "unexpected-period",
                 f"new period {_labels_text(labels)} does not continue the base grid "
@@ -1079,6 +1106,9 @@ class _Comparison:
             info[c] = {"changed_units": n}
             if not n:
                 continue
+            self.keep("invariant-changed", changed.select(
+                *self.nkeys, pl.lit(c).alias("column"), pl.col(f"{c}\x00base").cast(pl.String).alias("base_value"),
+                pl.col(c).cast(pl.String).alias("new_value")))
             examples = [
                 {**self._keys_of(r),
                  "base": _json_value(r[f"{c}\x00base"]), "new": _json_value(r[c])}
@@ -1188,6 +1218,13 @@ class _Comparison:
             info[c]["implausible_jumps"] = hit.height
             if not hit.height:
                 continue
+            self.keep("implausible-jump", hit.sort(self.nkeys).select(
+                *self.nkeys, pl.lit(c).alias("column"),
+                self._labels_expr(f"{c}\x00bpos").alias("base_period"),
+                pl.col(f"{c}\x00base").cast(pl.String).alias("base_value"),
+                self._labels_expr(f"{c}\x00npos").alias("new_period"),
+                pl.col(c).cast(pl.String).alias("new_value"),
+                pl.col(f"{c}\x00z").round(3).alias("distance")))
             stepped = info[c]["change_scale_method"] == "step" and "expected_step" in info[c]
             ex = hit.sort(f"{c}\x00z", descending=True).head(self.examples)
             examples = []
@@ -1274,6 +1311,8 @@ class _Comparison:
             info[c] = {"levels_checked": True, "new_levels": fresh.height, "vanished_levels": gone.height}
             if fresh.height:
                 rows = int(fresh.get_column("n").sum())
+                self.keep("new-categories", fresh.select(pl.lit(c).alias("column"), pl.col(c).cast(pl.String)
+                                                          .alias("level"), pl.col("n").alias("rows")))
                 self.add(
                     "new-categories",
                     f"'{c}' has {_plural(fresh.height, 'level')} never seen in the base "

@@ -84,10 +84,15 @@ def cli():
 _STATE = sys.modules.setdefault("_panel_audit_test_record", types.ModuleType("_panel_audit_test_record"))
 if not hasattr(_STATE, "codes"):
     _STATE.codes, _STATE.lines, _STATE.session = set(), [], {"full_suite": False}
+if not hasattr(_STATE, "findings"):
+    _STATE.findings = {}
 TRIGGERED_CODES: set[str] = _STATE.codes
 CLI_ERROR_LINES: list[str] = _STATE.lines
 SESSION: dict[str, bool] = _STATE.session
-COVERAGE_TESTS = ("test_every_catalogue_entry_is_triggered", "test_every_cli_error_line_is_in_the_catalogue")
+#: every finding made in this process: check code -> the counts it carried
+FINDINGS_MADE: dict[str, set] = _STATE.findings
+COVERAGE_TESTS = ("test_every_catalogue_entry_is_triggered", "test_every_cli_error_line_is_in_the_catalogue",
+                  "test_every_finding_code_the_suite_raised_is_explained")
 
 
 @pytest.fixture(autouse=True, scope="session")
@@ -101,8 +106,18 @@ def _record_error_codes():
         original(self, code, message)
 
     errors.AuditError.__init__ = recording
+    from auditor import findings
+
+    made = findings.Finding.__init__
+
+    def recording_finding(self, *args, **kwargs):
+        made(self, *args, **kwargs)
+        FINDINGS_MADE.setdefault(self.check, set()).add(self.count)
+
+    findings.Finding.__init__ = recording_finding
     yield
     errors.AuditError.__init__ = original
+    findings.Finding.__init__ = made
 
 
 def pytest_collection_modifyitems(session, config, items):

@@ -118,7 +118,7 @@ ATTRITION = [
     {"period": 2020, "present": 5, "entering": 1, "leaving": 1, "returning": 0},
     {"period": 2021, "present": 4, "entering": 1, "leaving": 1, "returning": 0},
     {"period": 2022, "present": 4, "entering": 0, "leaving": 0, "returning": 1},
-    {"period": 2023, "present": 4, "entering": 0, "leaving": 4, "returning": 0},
+    {"period": 2023, "present": 4, "entering": 0, "leaving": None, "returning": 0},
 ]
 
 
@@ -131,10 +131,22 @@ def test_entry_exit_draws_present_line_and_signed_bars():
     assert low.get_xlabel() == "period"
     assert tick_labels(low) == [str(a["period"]) for a in ATTRITION]
     heights = [b.get_height() for b in bar_patches(low)]
-    # edge bars are clipped at 1.25 x the largest inner bar (1): 4 entering becomes 1.25
-    assert heights[:5] == [1.25, 1, 1, 0, 0]
-    assert heights[-5:] == [0, -1, -1, 0, -1.25]
-    assert "4" in [t.get_text() for t in low.texts]  # the clipped edge keeps its value
+    # the first period's 4 units are the starting cohort, not entries; the last period's leavers
+    # are not yet known (null): neither edge is drawn as a movement
+    assert heights[:5] == [0, 1, 1, 0, 0]
+    assert [abs(h) for h in heights[-5:]] == [0, 1, 1, 0, 0]
+    texts = [t.get_text().strip() for t in low.texts]
+    assert "start" in texts and "not yet known" in texts
+    # whole units on the axis (a balanced panel used to show ticks 1, 0, 0, 0, 1)
+    assert all(float(t).is_integer() for t in low.get_yticks())
+
+
+def test_entry_exit_of_a_balanced_panel_says_nobody_moves():
+    balanced = [{"period": p, "present": 4, "entering": 4 if p == 2019 else 0, "leaving": None if p == 2022 else 0,
+                 "returning": 0} for p in range(2019, 2023)]
+    low = fg.entry_exit(balanced).axes[1]
+    assert list(low.get_yticks()) == [0]
+    assert any("no unit enters" in t.get_text() for t in low.texts)
 
 
 def test_within_shares_sorted_and_coloured_by_kind():

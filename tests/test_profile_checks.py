@@ -72,6 +72,7 @@ def test_attrition_counts_entries_exits_and_returns() -> None:
     assert att[2002]["present"] == 3 and att[2002]["entering"] == 1
     assert att[2003]["returning"] == 1 and att[2003]["leaving"] == 1
     assert att[2004]["present"] == 3
+    assert att[2004]["leaving"] is None  # who leaves after the last period is not yet known
 
 
 def test_singletons_and_unbalancedness() -> None:

@@ -312,9 +312,10 @@ def entry_exit(attrition: Sequence[Mapping[str, Any]]) -> Figure:
 
     ``attrition`` is the contract's list of ``{period, present, entering,
     leaving, returning}``. Upper panel: units present. Lower panel: entering and
-    returning units above zero, leaving units below. The first period's entries
-    and the last period's exits are the panel's edges; when they dwarf the rest
-    they are clipped and their value written on the bar. Returns the Figure.
+    returning units above zero, leaving units below, in whole units. The first
+    period's units are the starting cohort (not entries) and the last period's
+    leavers are not yet known (null in the JSON): neither edge is drawn as a
+    movement. Returns the Figure.
     """
     _mpl()
     import numpy as np
@@ -343,12 +344,14 @@ def entry_exit(attrition: Sequence[Mapping[str, Any]]) -> Figure:
     _thousands(top.yaxis)
     top.set_title(title)
 
-    up_inner = np.concatenate([entering[1:] + returning[1:], [0]])
-    down_inner = np.concatenate([[0], leaving[:-1]])
-    limit = max(up_inner.max(initial=0), down_inner.max(initial=0), returning.max(initial=0), 1.0) * 1.25
-    edge_big = entering[0] > limit or leaving[-1] > limit
+    # The first period's units are the panel's starting cohort, not entries, and who leaves
+    # after the last period is not yet known: neither edge is drawn as a movement.
+    ent = entering.copy()
+    ent[0] = 0.0
+    lea = leaving.copy()
+    lea[-1] = 0.0
+    ret = returning
     w = 0.8 if n <= 60 else 1.0
-    ent, ret, lea = np.minimum(entering, limit), np.minimum(returning, limit), np.minimum(leaving, limit)
     if n <= MAX_BARS:
         low.bar(x, ent, width=w, color=GREEN, linewidth=0, label="entering")
         low.bar(x, ret, width=w, bottom=ent, color=ORANGE, linewidth=0, label="returning after a gap")
@@ -361,14 +364,19 @@ def entry_exit(attrition: Sequence[Mapping[str, Any]]) -> Figure:
         low.fill_between(x, -lea, step="mid", color=VERMILLION, linewidth=0,
                          label="leaving (last period seen)", rasterized=True)
     low.axhline(0, color=INK, linewidth=0.6)
-    if edge_big:
-        low.set_ylim(-limit * 1.08, limit * 1.08)
-        if entering[0] > limit:
-            low.text(0, limit * 0.96, f"{int(entering[0]):,}", ha="center", va="top",
-                     fontsize=7, color=PAPER, rotation=90 if n > 12 else 0)
-        if leaving[-1] > limit:
-            low.text(n - 1, -limit * 0.96, f"{int(leaving[-1]):,}", ha="center", va="bottom",
-                     fontsize=7, color=PAPER, rotation=90 if n > 12 else 0)
+    top_in = float(max((ent + ret).max(initial=0), lea.max(initial=0)))
+    if top_in == 0:
+        low.set_ylim(-1, 1)
+        low.set_yticks([0])
+        low.text((n - 1) / 2, 0.5, "no unit enters, returns or leaves inside the panel's span", ha="center",
+                 va="center", fontsize=7.5, color=MUTED)
+    else:
+        low.set_ylim(-top_in * 1.15, top_in * 1.15)
+        from matplotlib.ticker import MaxNLocator
+
+        low.yaxis.set_major_locator(MaxNLocator(nbins=5, integer=True, symmetric=True))
+    low.text(0, 0, " start", ha="left", va="bottom", fontsize=6.5, color=MUTED, rotation=90)
+    low.text(n - 1, 0, "not yet known ", ha="right", va="top", fontsize=6.5, color=MUTED, rotation=90)
     low.set_ylabel("units in (+) / out (\u2212)")
     low.yaxis.grid(True)
     low.set_axisbelow(True)

@@ -339,8 +339,8 @@ def _summary(result: Any, findings: list[dict[str, Any]], lim: Limits) -> str:
         parts.append("It is balanced: every unit is observed once in every period.")
     else:
         parts.append(
-            f"It is unbalanced: units are observed in {_int(opu.get('min'))} to {_int(opu.get('max'))} "
-            f"periods (median {_num(opu.get('median'))}, harmonic mean {_num(opu.get('harmonic_mean'))}; "
+            f"It is unbalanced: units have {_int(opu.get('min'))} to {_int(opu.get('max'))} rows, duplicates "
+            f"included (median {_num(opu.get('median'))}, harmonic mean {_num(opu.get('harmonic_mean'))}; "
             f"Ahrens-Pincus unbalancedness r = {_num(p.get('unbalancedness'))})."
         )
     extra = []
@@ -386,14 +386,28 @@ def _examples(ex: Any) -> str:
     if not ex:
         return ""
     shown = []
+    from auditor.report.text import example_text
+
     for e in list(ex)[:3]:
         if isinstance(e, Mapping):
-            shown.append(" ".join(f"{esc(k, 40)}={esc(v, 60)}" for k, v in list(e.items())[:6]))
+            shown.append(esc(example_text(dict(list(e.items())[:6])), 200))
         else:
             shown.append(esc(e, 80))
     more = f'<span class="pa-quiet"> and {len(ex) - 3:,} more kept</span>' if len(ex) > 3 else ""
     items = "".join(f"<code>{s}</code>" for s in shown)
     return f'<div class="pa-eg"><span class="pa-quiet">for example</span> {items}{more}</div>'
+
+
+def _check_cell(code: str) -> str:
+    """The check's code, with what it means and what its count counts as a tooltip
+    (auditor.explain, the words ``panel-audit explain`` prints)."""
+    from auditor.explain import explanation
+
+    e = explanation(code)
+    if e is None:
+        return f"<b>{esc(code)}</b>"
+    tip = f"{e.meaning} Count: {e.count}. {e.action}"
+    return f'<b><abbr title="{esc(tip, 600)}">{esc(code)}</abbr></b>'
 
 
 def _findings(findings: list[dict[str, Any]], lim: Limits) -> str:
@@ -405,7 +419,7 @@ def _findings(findings: list[dict[str, Any]], lim: Limits) -> str:
         head.insert(0, "from")
     rows = []
     for f in findings[: lim.findings]:
-        r = [_tag(str(f.get("severity"))), f"<b>{esc(f.get('check'))}</b>",
+        r = [_tag(str(f.get("severity"))), _check_cell(str(f.get("check"))),
              f"<code>{esc(f.get('column'), 80)}</code>" if f.get("column") else "",
              _int(f.get("count")) if f.get("count") is not None else "",
              esc(f.get("message"), 600) + _examples(f.get("examples"))]
@@ -457,11 +471,14 @@ def _structure(result: Any, svgs: Mapping[str, str], lim: Limits) -> str:
                          "carry no within variation."))
     parts.append(_figure(svgs, "entry-exit",
                          "Units present in each period (top); units seen for the first time, back after "
-                         "a gap, or seen for the last time (bottom). Bars beyond the scale carry their value."))
+                         "a gap, or seen for the last time (bottom). The first period's units are the starting cohort, and who "
+                         "leaves after the last period is not yet known."))
     attrition = p.get("attrition") or []
     if attrition:
         rows = [[esc(a.get("period")), _int(a.get("present")), _int(a.get("entering")),
-                 _int(a.get("returning")), _int(a.get("leaving"))] for a in attrition[: lim.periods_table]]
+                 _int(a.get("returning")),
+                 _int(a.get("leaving")) if a.get("leaving") is not None else '<span class="pa-quiet">not yet known</span>']
+                for a in attrition[: lim.periods_table]]
         more = "" if len(attrition) <= lim.periods_table else _note(
             f"First {lim.periods_table:,} of {len(attrition):,} periods.")
         parts.append(f"<details><summary>Units in and out, period by period</summary>"

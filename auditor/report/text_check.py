@@ -12,7 +12,7 @@ from __future__ import annotations
 
 from typing import TYPE_CHECKING, Any
 
-from auditor.report.text import clip, paint, safe, wrap
+from auditor.report.text import paint, safe, wrap
 
 if TYPE_CHECKING:  # pragma: no cover
     from auditor.rules import CheckResult, RuleResult
@@ -51,27 +51,27 @@ def render(
         verdict = paint(f"contract broken: {what}", "error", color)
     tail = f", {len(skipped)} not evaluated" if skipped else ""
     lines.append(f"{verdict}  ({holding} of {total} rules hold{tail})")
-    lines.append(clip(f"  rules: {safe(result.contract)}", width))
-    lines.append(clip(f"  data:  {safe(result.source)}", width))
+    lines += wrap(f"  rules: {safe(result.contract)}", width, 9)
+    lines += wrap(f"  data:  {safe(result.source)}", width, 9)
     if result.base_source:
-        lines.append(clip(f"  base:  {safe(result.base_source)} (rules across waves)", width))
+        lines += wrap(f"  base:  {safe(result.base_source)} (rules across waves)", width, 9)
     shown = [("Broken", broken), ("Not evaluated", skipped)]
     for title, group in shown:
         if not group:
             continue
         lines.append("")
         lines.append(paint(title, "bold", color))
-        subj_w = min(24, max(len(safe(_subject(r))) for r in group))
+        subj_w = max(len(safe(_subject(r))) for r in group)
         rule_w = max(len(safe(_name(r))) for r in group)
         for r in group:
             count = "-" if r.failing is None else str(r.failing)
-            head = f"  {clip(safe(_subject(r)), subj_w):<{subj_w}}  {safe(_name(r)):<{rule_w}}  {count:>8}  "
+            head = f"  {safe(_subject(r)):<{subj_w}}  {safe(_name(r)):<{rule_w}}  {count:>8}  "
             body = wrap(safe(r.message), width - len(head), 0)
             lines.append(head + body[0])
             lines.extend(" " * len(head) + b for b in body[1:])
             for ex in r.examples[:2]:
-                at = clip("at " + _example_text(ex), width - 6)
-                lines.append("      " + paint(at, "dim", color))
+                for part in wrap("at " + _example_text(ex), width - 6, 3):
+                    lines.append("      " + paint(part, "dim", color))
     folded: dict[str, list[str]] = {}
     for r in result.rules:
         if r.passed:

@@ -80,7 +80,8 @@ def _names(items: Sequence[str], limit: int = 6) -> str:
 
 
 def render(
-    result: CompareResult, width: int | None = None, colour: bool = False, color: bool | None = None
+    result: CompareResult, width: int | None = None, colour: bool = False, color: bool | None = None, *,
+    show: str | None = None,
 ) -> str:
     """The comparison as terminal text (``color`` is accepted as a synonym of ``colour``)."""
     if color is not None:
@@ -144,11 +145,11 @@ def render(
         11,
     )
     lines.append("")
-    lines += findings_block(list(wave), width, colour)
+    lines += findings_block(list(wave), width, colour, show=show)
     if result.merged_findings or result.merged_panel is not None:
         lines.append("")
         lines.append(paint("base + new profiled together", "bold", colour))
-        lines += findings_block(list(result.merged_findings), width, colour)
+        lines += findings_block(list(result.merged_findings), width, colour, show=show)
     lines.append("")
     if result.columns:
         lines.append(paint(f"how each column moved (new wave against {safe(result.reference)})", "bold", colour))

@@ -13,7 +13,6 @@ from typing import TYPE_CHECKING, Any
 
 from auditor.pvalues import format_p
 from auditor.report.text import (
-    clip,
     findings_block,
     fmt_num,
     paint,
@@ -256,7 +255,7 @@ def _richer(d: dict[str, Any], width: int, colour: bool) -> list[str]:
 
 
 def render(result: InstrumentsResult, width: int | None = None, color: bool = False, *,
-           colour: bool | None = None) -> str:
+           colour: bool | None = None, show: str | None = None) -> str:
     """The instruments result as terminal text, ``width`` columns wide, ANSI colour when ``color``
     (``colour`` is accepted as the same switch)."""
     width = width or terminal_width()
@@ -271,8 +270,8 @@ def render(result: InstrumentsResult, width: int | None = None, color: bool = Fa
         head += f" ({fmt_num(s['rows_dropped'])} rows with a missing value left out)"
     if s["period_effects"]:
         head += "; period effects added"
-    lines = [paint(clip(head, width), "bold", colour), ""]
-    lines += findings_block(result.findings, width, colour)
+    lines = [paint(line, "bold", colour) for line in wrap(head, width, 2)] + [""]
+    lines += findings_block(result.findings, width, colour, show=show)
     lines.append("")
     lines += _regressors(d, width, colour)
     lines.append("")
