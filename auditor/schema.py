@@ -106,11 +106,13 @@ def _ref(name: str, description: str) -> Schema:
     return {"$ref": f"#/$defs/{name}", "description": description}
 
 
-def _document(name: str, title: str, description: str, properties: Mapping[str, Schema],
-              defs: Mapping[str, Schema], optional: tuple[str, ...] = ()) -> Schema:
-    body = _object(description, properties, optional)
-    return {"$schema": DIALECT, "$id": f"urn:panel-audit:schema:{name}", "title": title, **body,
-            "$defs": dict(defs)}
+def _document(name: str, description: str, properties: Mapping[str, Schema],
+              defs: Mapping[str, Schema]) -> Schema:
+    """The schema of command ``name``'s document: the ``tool`` object first, then ``properties``."""
+    tool = {"tool": _ref("tool", "The program that wrote the document.")}
+    body = _object(description, {**tool, **properties})
+    return {"$schema": DIALECT, "$id": f"urn:panel-audit:schema:{name}", "title": f"panel-audit {name} --json",
+            **body, "$defs": {"tool": _tool(), **defs}}
 
 
 # --------------------------------------------------------------------------- shared parts
@@ -372,10 +374,8 @@ def _source(what: str = "") -> Schema:
 def _profile() -> Schema:
     return _document(
         "profile",
-        "panel-audit profile --json",
         "Keys, structure, within/between variation and findings of one panel.",
         {
-            "tool": _ref("tool", "The program that wrote the document."),
             "source": _source(),
             "panel": _ref("panel", "Keys and structure of the panel."),
             "columns": _list("Every non-key column, in the data's order.", _profile_column()),
@@ -393,7 +393,7 @@ def _profile() -> Schema:
             ),
             "findings": _findings(),
         },
-        {"tool": _tool(), "panel": _panel(), "finding": _finding()},
+        {"panel": _panel(), "finding": _finding()},
     )
 
 
@@ -523,10 +523,8 @@ def _instruments() -> Schema:
     }
     return _document(
         "instruments",
-        "panel-audit instruments --json",
         "Model readiness: roles, identification, instrument strength, tests and diagnostic fits.",
         {
-            "tool": _ref("tool", "The program that wrote the document."),
             "source": _source(),
             "outcome": _str("The outcome column."),
             "sample": _object("The rows every fit uses.", {
@@ -711,7 +709,7 @@ def _instruments() -> Schema:
             ), "without a random-effects fit"),
             "findings": _findings(),
         },
-        {"tool": _tool(), "finding": _finding()},
+        {"finding": _finding()},
     )
 
 
@@ -774,10 +772,8 @@ def _compare_column() -> Schema:
 def _compare() -> Schema:
     return _document(
         "compare",
-        "panel-audit compare --json",
         "A new wave (or batch of waves) against the panel held so far.",
         {
-            "tool": _ref("tool", "The program that wrote the document."),
             "unit": _list("The unit key's column names.", _str("A key column name."), minItems=1),
             "time": _str("The period key's column name."),
             "sources": _object("What was read.", {"base": _source(" as the base"),
@@ -826,7 +822,7 @@ def _compare() -> Schema:
             "findings": _list("Every finding (the wave's and, with --merged, the appended profile's), sorted by "
                               "severity, then check, then column.", _ref("finding", "A finding.")),
         },
-        {"tool": _tool(), "panel": _panel(), "finding": _finding(scope=True)},
+        {"panel": _panel(), "finding": _finding(scope=True)},
     )
 
 
@@ -875,10 +871,8 @@ def _check() -> Schema:
         raise ValueError(f"rules without a description in auditor/schema.py: {missing}")
     return _document(
         "check",
-        "panel-audit check --json",
         "A panel checked against a contract (rules file): every rule's result, in contract order.",
         {
-            "tool": _ref("tool", "The program that wrote the document."),
             "passed": _bool("True when every rule holds (the exit code is then 0)."),
             "contract": _str("The rules file's path."),
             "source": _source(),
@@ -909,7 +903,7 @@ def _check() -> Schema:
                 }),
             })),
         },
-        {"tool": _tool()},
+        {},
     )
 
 

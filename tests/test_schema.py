@@ -140,15 +140,13 @@ def test_cli_prints_the_schema_and_refuses_an_unknown_name():
 
 
 def test_schema_command_loads_no_heavy_library():
-    code = (
-        "import sys\nfrom auditor.cli import main\n"
-        "main(['schema', 'instruments'])\n"
-        "print([m for m in ('polars', 'numpy', 'pandas', 'scipy', 'matplotlib', 'great_expectations') "
-        "if m in sys.modules], file=sys.stderr)\n"
-    )
-    run = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=ROOT, timeout=60)
-    assert run.returncode == 0, run.stderr
-    assert run.stderr.strip() == "[]"
+    # python -X importtime lists every module the run imports, one line each, on stderr
+    run = subprocess.run([sys.executable, "-X", "importtime", "-m", "auditor.cli", "schema", "instruments"],
+                         capture_output=True, text=True, cwd=ROOT, timeout=60)
+    assert run.returncode == 0 and json.loads(run.stdout) == schema("instruments")
+    loaded = {line.rsplit("|", 1)[-1].strip() for line in run.stderr.splitlines() if line.startswith("import time:")}
+    assert "auditor.schema" in loaded
+    assert not loaded & {"polars", "numpy", "pandas", "scipy", "matplotlib", "great_expectations"}
 
 
 # --------------------------------------------------------------------------- documents
