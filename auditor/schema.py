@@ -484,7 +484,8 @@ def _strength_row() -> Schema:
                 "partial_f": "one endogenous column: partial_f", "conditional_f": "several: conditional_f"}),
             "verdict": _choice("The verdict.", verdicts),
             "at_least_rule_of_thumb": _bool("partial_f >= instruments.rule_of_thumb_f (10).", "without partial_f"),
-            "at_least_lee": _bool("partial_f >= instruments.lee_f (Lee et al.'s cut-off for a 5% t test).",
+            "at_least_lee": _bool("partial_f >= instruments.lee_f (104.7: the F at which a 5% t test has its true size, Lee, "
+                                  "McCrary, Moreira and Porter 2022).",
                                   "without partial_f"),
             "anderson_rubin": _or_null(_object(
                 "The Anderson-Rubin confidence set for the column's coefficient (one Z2 column).",
@@ -599,8 +600,9 @@ def _instruments() -> Schema:
                                  "with fewer than two unit-level endogenous columns, or when the order "
                                  "condition fails"),
             "reference_f": _object("Cut-offs beside Stock-Yogo (from the rules).", {
-                "rule_of_thumb": _num("instruments.rule_of_thumb_f (10: common practice)."),
-                "lee": _num("instruments.lee_f."),
+                "rule_of_thumb": _num("instruments.rule_of_thumb_f (10, Staiger and Stock 1997), used where the "
+                                      "Stock-Yogo table has no cell."),
+                "lee": _num("instruments.lee_f (104.7, Lee, McCrary, Moreira and Porter 2022)."),
             }),
             "candidates": _list("For each Z2 column, each X1 unit mean alone as its instrument.", _object(
                 "One (Z2, X1) pair.", {
