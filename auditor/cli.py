@@ -167,6 +167,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("code", nargs="?", metavar="CODE", help="a finding code (none: list every code)")
     p.add_argument("--json", action="store_true", help="the explanations as JSON")
     p.add_argument("--debug", action="store_true")
+    p = sub.add_parser("schema", help="print the JSON Schema of a command's --json document")
+    p.add_argument("name", metavar="COMMAND", help="profile, instruments, compare or check")
+    p.add_argument("--debug", action="store_true", help="show a traceback on errors")
 
     p = sub.add_parser("demo", help="write the invented orchard panel and its report, print the profile")
     p.add_argument("--out", metavar="DIR", help="folder for the demo files (default: ./panel-audit-demo)")
@@ -415,6 +418,15 @@ def _cmd_explain(args: argparse.Namespace) -> int:
     return 0
 
 
+def _cmd_schema(args: argparse.Namespace) -> int:
+    import json
+
+    from auditor.schema import schema
+
+    _say(json.dumps(schema(args.name), indent=2, ensure_ascii=False) + "\n")
+    return 0
+
+
 COMMANDS: dict[str, Callable[[argparse.Namespace], int]] = {
     "profile": _cmd_profile,
     "instruments": _cmd_instruments,
@@ -424,6 +436,7 @@ COMMANDS: dict[str, Callable[[argparse.Namespace], int]] = {
     "report": _cmd_report,
     "demo": _cmd_demo,
     "explain": _cmd_explain,
+    "schema": _cmd_schema,
 }
 
 

@@ -13,6 +13,7 @@ CATALOGUE: dict[str, str] = {
     # --- arguments -----------------------------------------------------------
     "bad-argument": "{detail}",
     "no-command": "no command given; choose one of: {commands} (see 'panel-audit --help')",
+    "unknown-schema": "no schema named '{name}'; choose one of: {names}",
     # --- loading ---------------------------------------------------------------
     "file-not-found": "cannot read '{path}': no such file; check the path",
     "not-a-file": "cannot read '{path}': it is a folder with no data files in it",

@@ -7,6 +7,7 @@ import subprocess
 import sys
 import types
 from pathlib import Path
+from typing import Any
 
 import pytest
 from hypothesis import settings
@@ -67,6 +68,8 @@ def run_cli(*args: str, timeout: float = 120, env: dict[str, str] | None = None)
     )
     if proc.returncode == 2:
         CLI_ERROR_LINES.extend(line for line in proc.stderr.splitlines() if line.startswith("panel-audit: error:"))
+    elif "--json" in args and args and args[0] in SCHEMA_COMMANDS:
+        record_document(args[0], proc.stdout, via="command line")
     return proc
 
 
@@ -91,8 +94,12 @@ CLI_ERROR_LINES: list[str] = _STATE.lines
 SESSION: dict[str, bool] = _STATE.session
 #: every finding made in this process: check code -> the counts it carried
 FINDINGS_MADE: dict[str, set] = _STATE.findings
-COVERAGE_TESTS = ("test_every_catalogue_entry_is_triggered", "test_every_cli_error_line_is_in_the_catalogue",
-                  "test_every_finding_code_the_suite_raised_is_explained")
+COVERAGE_TESTS = (
+    "test_every_catalogue_entry_is_triggered",
+    "test_every_cli_error_line_is_in_the_catalogue",
+    "test_every_finding_code_the_suite_raised_is_explained",
+    "test_every_recorded_document_matches_its_schema",
+)
 
 
 @pytest.fixture(autouse=True, scope="session")
@@ -118,6 +125,58 @@ def _record_error_codes():
     yield
     errors.AuditError.__init__ = original
     findings.Finding.__init__ = made
+
+
+# --- JSON documents (tests/test_schema.py) ----------------------------------------------
+# Every document the suite produces, by command: the to_dict of the four result types (in
+# process, which covers the CLI's --json run through main()) and the --json output of CLI
+# subprocesses run through run_cli. Kept as JSON text, each distinct document once, with the
+# first test that produced it; the schema test, placed last, validates them all.
+SCHEMA_COMMANDS = ("profile", "instruments", "compare", "check")
+if not hasattr(_STATE, "documents"):
+    _STATE.documents = {name: {} for name in SCHEMA_COMMANDS}
+DOCUMENTS: dict[str, dict[str, tuple[str, str]]] = _STATE.documents
+
+
+def record_document(command: str, document: Any, via: str) -> None:
+    """Keep ``document`` (a dict, or the JSON text a CLI printed) for the schema test."""
+    import json
+
+    if isinstance(document, str):
+        try:
+            document = json.loads(document)
+        except ValueError:
+            return  # not a document (the CLI failed); other tests judge that
+    text = json.dumps(document, sort_keys=True, allow_nan=False)
+    where = os.environ.get("PYTEST_CURRENT_TEST", "?").rsplit(" (", 1)[0]
+    DOCUMENTS[command].setdefault(text, (where, via))
+
+
+@pytest.fixture(autouse=True, scope="session")
+def _record_documents():
+    from auditor.profile import ProfileResult
+    from auditor.readiness import InstrumentsResult
+    from auditor.rules import CheckResult
+    from auditor.waves import CompareResult
+
+    kinds = {"profile": ProfileResult, "instruments": InstrumentsResult, "compare": CompareResult,
+             "check": CheckResult}
+    originals = {name: cls.to_dict for name, cls in kinds.items()}
+
+    def recording(name: str, original: Any) -> Any:
+        def to_dict(self: Any) -> dict[str, Any]:
+            document = original(self)
+            record_document(name, document, via="to_dict")
+            return document
+
+        to_dict.__doc__ = original.__doc__
+        return to_dict
+
+    for name, cls in kinds.items():
+        cls.to_dict = recording(name, originals[name])
+    yield
+    for name, cls in kinds.items():
+        cls.to_dict = originals[name]
 
 
 def pytest_collection_modifyitems(session, config, items):

@@ -19,13 +19,11 @@ ROOT = Path(__file__).resolve().parent.parent
 
 
 def run_cli(*args: str) -> subprocess.CompletedProcess[str]:
-    """``panel-audit ARGS`` in a subprocess from the source tree, no colour."""
-    import os
+    """``panel-audit ARGS`` in a subprocess from the source tree, no colour (the shared helper,
+    which records error lines and --json documents for the suite-wide tests)."""
+    from conftest import run_cli as shared
 
-    env = dict(os.environ, NO_COLOR="1", PYTHONPATH=str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", ""))
-    return subprocess.run(
-        [sys.executable, "-m", "auditor.cli", *args], capture_output=True, text=True, env=env, cwd=ROOT, timeout=300
-    )
+    return shared(*args, timeout=300, env={"NO_COLOR": "1"})
 
 
 @pytest.fixture(scope="module")

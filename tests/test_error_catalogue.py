@@ -79,6 +79,12 @@ def test_internal_problem_and_out_of_memory_lines(monkeypatch, capsys):
         assert rc == 2 and err.startswith("panel-audit: error:") and code_text in err
 
 
+def test_unknown_schema_name():
+    from auditor.schema import schema
+
+    assert _code(lambda: schema("report")) == "unknown-schema"
+
+
 def test_bad_argument_empty_unit():
     assert _code(lambda: _profile(_small(), unit=" , ")) == "bad-argument"
 

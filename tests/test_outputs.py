@@ -429,5 +429,5 @@ def test_no_command_is_exit_2_with_one_error_line(capsys):
     assert captured.out == ""
     assert captured.err.splitlines() == [
         "panel-audit: error: no command given; choose one of: profile, instruments, compare, check, rules, report, "
-        "demo, explain (see 'panel-audit --help')"
+        "demo, explain, schema (see 'panel-audit --help')"
     ]
