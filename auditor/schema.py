@@ -320,6 +320,8 @@ def _panel() -> Schema:
             "engine": _choice("How the statistics were computed.", {
                 "in-memory": "the panel was read into memory",
                 "streaming": "the panel was streamed (larger than memory)",
+                "dask": "the moments kernel ran on the partitions of a dask cluster and the shards were merged "
+                        "exactly (--engine dask)",
             }),
         },
     )
@@ -688,7 +690,9 @@ def _instruments() -> Schema:
                         "rows_without_next": _int("Of those, rows whose unit is absent in the next period."),
                     },
                 ), "when nobody leaves (or leaving is collinear with the regressors within units)"),
-            }),
+                "attrition_note": _str("Why the attrition test was not computed (present only then: the dask "
+                                       "engine has no row's period)."),
+            }, optional=("attrition_note",)),
             "estimates": _object("The diagnostic fits.", {
                 "within": _or_null(_fit("Within (fixed effects)."), "when the outcome never changes within units"),
                 "between": _or_null(_fit("Between (unit means)."), "with too few units"),
