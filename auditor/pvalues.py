@@ -64,6 +64,12 @@ def format_p(p: float | None, digits: int = 3) -> str:
     return f"{p:.{digits}g}"
 
 
+def p_phrase(p: float | None, digits: int = 3) -> str:
+    """``p = 0.0015`` or ``p < 1e-16`` for a sentence (never ``p = < 1e-16``)."""
+    text = format_p(p, digits)
+    return f"p {text}" if text.startswith("<") else f"p = {text}"
+
+
 def f_isf(q: float, dfn: float, dfd: float) -> float:
     """The F value with upper-tail probability ``q`` for (``dfn``, ``dfd``) degrees of freedom."""
     from scipy import special

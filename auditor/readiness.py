@@ -35,7 +35,7 @@ from auditor.config import Settings, load_settings
 from auditor.errors import fail, short_list
 from auditor.findings import Finding, make, sort_findings
 from auditor.load import INTERNAL, PERIOD_ID, UNIT_ID, Panel, load_panel
-from auditor.pvalues import format_p
+from auditor.pvalues import p_phrase
 
 SECTION = "instruments"
 ROLES = ("X1", "X2", "Z1", "Z2")
@@ -947,7 +947,7 @@ def _sample_findings(sample: Sample, settings: Settings) -> list[Finding]:
         worst = [c for c in sorted(mc, key=lambda c: -mc[c]) if mc[c]][:3]
         out.append(make(
             "rows-dropped", settings,
-            f"{sample.dropped} of {sample.rows_keyed} rows lack the outcome or a regressor and are left out of every "
+            f"{sample.dropped:,} of {sample.rows_keyed:,} rows lack the outcome or a regressor and are left out of every "
             f"fit, which changes the sample the models describe (most missing: "
             f"{', '.join(f'{c} {mc[c]}' for c in worst)}).",
             count=sample.dropped,
@@ -1061,7 +1061,7 @@ def _fit_findings(sample: Sample, roles: Roles, fits: Fits, settings: Settings) 
         out.append(make(
             "correlated-with-effect", settings,
             f"The Mundlak test finds the unit means of the time-varying regressors jointly significant "
-            f"(p = {format_p(mu.joint.p)}): the evidence is against the random-effects assumption that no "
+            f"({p_phrase(mu.joint.p)}): the evidence is against the random-effects assumption that no "
             "time-varying regressor is correlated with the unit effect, and if it fails the random-effects "
             "estimates are inconsistent.",
             count=len(flagged),
@@ -1071,7 +1071,7 @@ def _fit_findings(sample: Sample, roles: Roles, fits: Fits, settings: Settings) 
     if h is not None and h.p is not None and h.p < test_alpha:
         out.append(make(
             "random-effects-rejected", settings,
-            f"The Hausman test rejects equal within and random-effects coefficients (p = {format_p(h.p)}): the "
+            f"The Hausman test rejects equal within and random-effects coefficients ({p_phrase(h.p)}): the "
             "evidence is against the random-effects assumption, under which both are consistent; if it fails, "
             "the random-effects estimates of the time-varying coefficients are inconsistent.",
         ))
@@ -1085,7 +1085,7 @@ def _fit_findings(sample: Sample, roles: Roles, fits: Fits, settings: Settings) 
             if t is not None and t.p is not None and t.p < test_alpha:
                 out.append(make(
                     "overidentification-rejected", settings,
-                    f"The {nm} test rejects the over-identifying restrictions (p = {format_p(t.p)}): the evidence "
+                    f"The {nm} test rejects the over-identifying restrictions ({p_phrase(t.p)}): the evidence "
                     "is against the exogeneity of at least one X1 column's unit mean, and if one is correlated with "
                     "the unit effect the Hausman-Taylor estimates are inconsistent.",
                 ))
@@ -1100,7 +1100,7 @@ def _beyond_findings(fits: Fits, test_alpha: float, settings: Settings) -> list[
         out.append(make(
             "selective-attrition", settings,
             f"The Nijman-Verbeek test finds that being observed in the next period is related to the outcome "
-            f"within units (t = {a['t']:.3g}, p = {format_p(a['p'])}): leaving the panel appears related to the "
+            f"within units (t = {a['t']:.3g}, {p_phrase(a['p'])}): leaving the panel appears related to the "
             "idiosyncratic error, so the within estimates on the observed rows may be inconsistent.",
         ))
     for name, rf in fits.richer.items():
@@ -1111,7 +1111,7 @@ def _beyond_findings(fits: Fits, test_alpha: float, settings: Settings) -> list[
             if t is not None and t.p is not None and t.p < test_alpha:
                 out.append(make(
                     "richer-set-rejected", settings,
-                    f"The {label} {what} rejects (p = {format_p(t.p)}): the evidence is against the stronger "
+                    f"The {label} {what} rejects ({p_phrase(t.p)}): the evidence is against the stronger "
                     f"exogeneity its extra instruments assume, and if it fails the {label} estimates are "
                     "inconsistent.",
                 ))
@@ -1132,10 +1132,10 @@ def _instrument_findings(roles: Roles, fits: Fits, validity: Validity, stren: St
             state = validity.states.get(c)
             cp, mp = validity.c_p.get(c), mundlak_p.get(c)
             if state is not None and state[0] == "invalid":
-                text = (f"the difference-in-Sargan test of its unit mean gives p = {format_p(cp)} while the other "
+                text = (f"the difference-in-Sargan test of its unit mean gives {p_phrase(cp)} while the other "
                         "instruments pass")
             elif state is None and mp is not None and mp < alpha:
-                text = f"its Mundlak p = {format_p(mp)} says it is correlated with the unit effect"
+                text = f"its Mundlak {p_phrase(mp)} says it is correlated with the unit effect"
             else:
                 continue
             out.append(make(

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import os
+import re
 import subprocess
 import sys
 import types
@@ -88,12 +89,14 @@ _STATE = sys.modules.setdefault("_panel_audit_test_record", types.ModuleType("_p
 if not hasattr(_STATE, "codes"):
     _STATE.codes, _STATE.lines, _STATE.session = set(), [], {"full_suite": False}
 if not hasattr(_STATE, "findings"):
-    _STATE.findings = {}
+    _STATE.findings, _STATE.odd_phrases = {}, set()
 TRIGGERED_CODES: set[str] = _STATE.codes
 CLI_ERROR_LINES: list[str] = _STATE.lines
 SESSION: dict[str, bool] = _STATE.session
 #: every finding made in this process: check code -> the counts it carried
 FINDINGS_MADE: dict[str, set] = _STATE.findings
+#: finding messages with a relation written twice ("p = < 1e-16"), judged in tests/test_workflow.py
+ODD_PHRASES: set[str] = _STATE.odd_phrases
 COVERAGE_TESTS = (
     "test_every_catalogue_entry_is_triggered",
     "test_every_cli_error_line_is_in_the_catalogue",
@@ -120,6 +123,8 @@ def _record_error_codes():
     def recording_finding(self, *args, **kwargs):
         made(self, *args, **kwargs)
         FINDINGS_MADE.setdefault(self.check, set()).add(self.count)
+        if re.search(r"[=<>]\s+[<>=]", self.message):
+            ODD_PHRASES.add(self.message)
 
     findings.Finding.__init__ = recording_finding
     yield

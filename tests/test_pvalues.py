@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from auditor.pvalues import chi2_sf, f_sf, normal_sf
+from auditor.pvalues import chi2_sf, f_sf, normal_sf, p_phrase
 
 POINTS = [0.0, 1e-300, 1e-8, 0.3, 1.0, 2.5, 7.9, 40.0, 1e3, math.inf]
 
@@ -37,3 +37,11 @@ def test_normal_upper_tail_equals_scipy_stats() -> None:
     assert math.isnan(normal_sf(math.nan)) and np.isnan(stats.norm.sf(math.nan))
     # a fact of the trade (common practice): the two-sided 5% point of the normal
     assert 2 * normal_sf(1.959963984540054) == pytest.approx(0.05, rel=1e-12)
+
+
+def test_a_p_value_in_a_sentence_reads_as_one_relation() -> None:
+    # "p = < 1e-16" was written in finding messages; the floor reads "p < 1e-16"
+    assert p_phrase(1e-300) == "p < 1e-16"
+    assert p_phrase(0.0) == "p < 1e-16"
+    assert p_phrase(0.0015) == "p = 0.0015"
+    assert p_phrase(5.63e-05) == "p = 5.63e-05"

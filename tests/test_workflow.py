@@ -14,7 +14,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
-from conftest import FINDINGS_MADE, SESSION, run_cli
+from conftest import FINDINGS_MADE, ODD_PHRASES, SESSION, run_cli
 
 from auditor.cli import main
 from auditor.explain import EXPLANATIONS
@@ -211,6 +211,8 @@ def test_every_finding_code_the_suite_raised_is_explained():
     # a code whose explanation says its count is not used never carries one
     unused = {c for c, e in EXPLANATIONS.items() if e.count == "not used"}
     assert {c for c in unused if FINDINGS_MADE.get(c, set()) - {None}} == set()
+    # and no message writes a relation twice (a p-value at its floor once read "p = < 1e-16")
+    assert ODD_PHRASES == set()
 
 
 # --------------------------------------------------------------------------- text anywhere
