@@ -881,8 +881,11 @@ def chan(
     """
     n = n_a + n_b
     nf = n.astype(np.float64)
-    w = np.divide(n_b, nf, out=np.zeros(nf.shape), where=n > 0)
     delta = mean_b - mean_a
+    if delta.ndim == 1 and bool(n_a.all()) and bool(n_b.all()):  # both parts hold values everywhere
+        w = n_b / nf
+        return n, mean_a + delta * w, m2_a + m2_b + delta * delta * (n_a * w)
+    w = np.divide(n_b, nf, out=np.zeros(nf.shape), where=n > 0)
     if delta.ndim == 2:  # vectors: per-group weights broadcast over the columns
         w, only_a, only_b = w[:, None], (n_b == 0)[:, None], (n_a == 0)[:, None]
         outer = delta[:, :, None] * delta[:, None, :]
@@ -910,7 +913,9 @@ def _union(a: np.ndarray, b: np.ndarray, n_units: int) -> tuple[np.ndarray, np.n
 
 
 def _spread(arr: np.ndarray, idx: np.ndarray, size: int, fill: Any = 0) -> np.ndarray:
-    out = np.full(size, fill, dtype=arr.dtype)
+    if idx.size == size:  # idx is increasing positions in 0..size-1: every one of them
+        return arr.astype(arr.dtype, copy=True)
+    out = np.zeros(size, dtype=arr.dtype) if not fill else np.full(size, fill, dtype=arr.dtype)
     out[idx] = arr
     return out
 
@@ -979,7 +984,7 @@ def merge_stream(parts: Iterable[Any], combine: Callable[[Any, Any], Any]) -> An
 def _merge_cells(a: Cells, b: Cells, ia: np.ndarray, ib: np.ndarray, size: int, n_periods: int) -> Cells:
     if a.dense is not None and b.dense is not None and _dense(size, n_periods):
         out = np.zeros((n_periods, size), dtype=np.int32)
-        out[:, ia] += a.dense
+        out[:, ia] = a.dense  # out is zero: an assignment, then an addition where both hold units
         out[:, ib] += b.dense
         return Cells(dense=out)
     from scipy import sparse
@@ -1058,14 +1063,19 @@ def _merge_numbers(a: Numbers, b: Numbers, ia: np.ndarray, ib: np.ndarray, ka: n
     local = _spread(b.local, ib, size, 0.0)
     m2 = _spread(b.m2, ib, size, 0.0)
     keep = a.n > 0  # a's values win where a has any
-    ref[ia[keep]], local[ia[keep]], m2[ia[keep]] = a.ref[keep], a.local[keep], a.m2[keep]
+    if bool(keep.all()):
+        ref[ia], local[ia], m2[ia] = a.ref, a.local, a.m2
+    else:
+        at = ia[keep]
+        ref[at], local[at], m2[at] = a.ref[keep], a.local[keep], a.m2[keep]
     if ka.size:
         na, nb = a.n[ka], b.n[kb]
-        base = np.where(na > 0, a.ref[ka], b.ref[kb])
+        ra, rb = a.ref[ka], b.ref[kb]
+        base = np.where(na > 0, ra, rb)
         # both on the scale of one of the unit's own values: the differences of two of its
         # values are exact or err on the scale of its spread, never of its magnitude
-        la = (a.ref[ka] - base) + a.local[ka]
-        lb = (b.ref[kb] - base) + b.local[kb]
+        la = (ra - base) + a.local[ka]
+        lb = (rb - base) + b.local[kb]
         _, mean, q = chan(na, la, a.m2[ka], nb, lb, b.m2[kb])
         p = ib[kb]
         ref[p], local[p], m2[p] = base, mean, q
