@@ -280,7 +280,9 @@ def change_scale(changes: np.ndarray, *, zero_share: float) -> tuple[float | Non
     Returns (None, None, "none") when there is no change to learn from.
     """
     d = np.asarray(changes, dtype=float)
-    d = d[np.isfinite(d)]
+    finite = np.isfinite(d)
+    if not finite.all():
+        d = d[finite]
     if d.size == 0:
         return None, None, "none"
     prefix = ""
@@ -288,7 +290,7 @@ def change_scale(changes: np.ndarray, *, zero_share: float) -> tuple[float | Non
     if zeros.mean() >= zero_share and not zeros.all():
         d, prefix = d[~zeros], "non-zero "
     centre = float(np.median(d))
-    mad = float(np.median(np.abs(d - centre)))
+    mad = float(np.median(np.abs(d - centre), overwrite_input=True))  # a temporary: sorted in place
     if mad > 0:
         return centre, MAD_TO_SD * mad, prefix + "mad"
     lo, hi = np.quantile(d, [0.05, 0.95])
@@ -1150,18 +1152,25 @@ class _Comparison:
         pos = self.B.get_column(POS).to_numpy()
         order = _unit_period_order(units, pos)
         units, pos = units[order], pos[order]
-        pairs = np.nonzero(units[1:] == units[:-1])[0]  # row i and i + 1 are one unit's consecutive rows
-        k = (pos[pairs + 1] - pos[pairs]) / float(self.step or 1)
+        same = units[1:] == units[:-1]
+        pairs = np.flatnonzero(same)  # row i and i + 1 are one unit's consecutive rows
+        after = pairs + 1
+        last_rows = np.flatnonzero(np.r_[~same, True]) if units.size else np.zeros(0, dtype=np.intp)
+        k = (pos[after] - pos[pairs]) / float(self.step or 1)
         one_step = bool(np.all(k == 1))
 
         def learn(c: str) -> dict[str, Any]:
             x = self.B.get_column(c).to_numpy().astype(float, copy=False)[order]  # null as NaN
-            valid = np.nonzero(~np.isnan(x))[0]
-            ends = valid[np.r_[units[valid[1:]] != units[valid[:-1]], True]] if valid.size else valid
+            gaps = np.isnan(x)
+            if not gaps.any():  # every row has a value: each unit's last row is its last value
+                ends = last_rows
+            else:
+                valid = np.flatnonzero(~gaps)
+                ends = valid[np.r_[units[valid[1:]] != units[valid[:-1]], True]] if valid.size else valid
             last, bpos = np.full(n_units, np.nan), np.full(n_units, np.nan)
             last[units[ends]], bpos[units[ends]] = x[ends], pos[ends]
             out: dict[str, Any] = {"__last": last, "__bpos": bpos}
-            changes = x[pairs + 1] - x[pairs]
+            changes = x[after] - x[pairs]
             seen = ~np.isnan(changes)
             changes = changes[seen]
             per = changes if one_step else changes[k[seen] > 0] / k[seen][k[seen] > 0]
