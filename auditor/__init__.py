@@ -15,34 +15,34 @@ __version__ = "0.1.0"
 __all__ = ["profile", "instruments", "compare", "check", "__version__"]
 
 if TYPE_CHECKING:  # pragma: no cover
-    from auditor.profile import profile as profile
+    from auditor.commands.profile import profile as profile
 
 
 def __getattr__(name: str) -> Any:
     if name == "profile":
-        from auditor.profile import profile
+        from auditor.commands.profile import profile
 
         return profile
     if name == "instruments":
-        from auditor.readiness import instruments
+        from auditor.commands.instruments import instruments
 
         return instruments
     if name == "compare":
-        from auditor.waves import compare
+        from auditor.commands.compare import compare
 
         return compare
     if name == "check":
-        from auditor.rules import check
+        from auditor.checks.rules import check
 
         return check
     raise AttributeError(f"module 'auditor' has no attribute {name!r}")
 
 
 class _Package(types.ModuleType):
-    """Keeps ``auditor.profile`` the function after the submodule of that name is imported.
+    """Keeps ``auditor.commands.profile`` the function after the submodule of that name is imported.
 
-    Importing ``auditor.profile`` (the module) would otherwise bind the module over
-    the public function; ``from auditor.profile import ...`` still works through
+    Importing ``auditor.commands.profile`` (the module) would otherwise bind the module over
+    the public function; ``from auditor.commands.profile import ...`` still works through
     ``sys.modules``.
     """
 

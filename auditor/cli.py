@@ -72,7 +72,7 @@ def _engine_flags(p: argparse.ArgumentParser) -> None:
 
 def _engine(args: argparse.Namespace) -> dict[str, Any]:
     """The engine options of a command, checked (``engine``, ``scheduler``)."""
-    from auditor.engines import resolve_engine
+    from auditor.stats.engines import resolve_engine
 
     name = resolve_engine(args.engine, args.streaming, args.scheduler)
     return {"engine": name, "scheduler": args.scheduler}
@@ -179,7 +179,7 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def _install_signal_handlers() -> None:
-    from auditor.outputs import on_signal
+    from auditor.io.outputs import on_signal
 
     for name in ("SIGINT", "SIGTERM", "SIGHUP"):
         number = getattr(signal, name, None)
@@ -218,13 +218,13 @@ def _data(args: argparse.Namespace) -> Any:
 
 
 def _settings(args: argparse.Namespace) -> Any:
-    from auditor.config import load_settings
+    from auditor.checks.config import load_settings
 
     return load_settings(getattr(args, "rules", None))
 
 
 def _emit(args: argparse.Namespace, result: Any, render: Callable[..., str]) -> int:
-    from auditor.findings import exit_code
+    from auditor.checks.findings import exit_code
 
     _print_result(args, result, render)
     return exit_code(result.findings, args.fail_on)
@@ -232,23 +232,23 @@ def _emit(args: argparse.Namespace, result: Any, render: Callable[..., str]) -> 
 
 def _print_result(args: argparse.Namespace, result: Any, render: Callable[..., str]) -> None:
     if getattr(args, "json", False):
-        from auditor.report.jsonout import dumps
+        from auditor.render.json import dumps
 
         _say(dumps(result.to_dict()))
     else:
-        from auditor.report.text import terminal_width, use_colour
+        from auditor.render.text import terminal_width, use_colour
 
         extra = {"show": args.show} if getattr(args, "show", None) else {}
         _say(render(result, width=terminal_width(), colour=use_colour(sys.stdout), **extra))
 
 
 def _cmd_profile(args: argparse.Namespace) -> int:
-    from auditor.profile import profile
-    from auditor.report.text import render
+    from auditor.commands.profile import profile
+    from auditor.render.text import render
 
     result = profile(_data(args), args.unit, args.time, settings=_settings(args), **_engine(args))
     if args.details:
-        from auditor.details import profile_tables
+        from auditor.render.details import profile_tables
 
         _write_details(args, profile_tables(result), list(args.data))
     return _emit(args, result, render)
@@ -257,7 +257,7 @@ def _cmd_profile(args: argparse.Namespace) -> int:
 def _write_details(args: argparse.Namespace, tables: dict[str, Any], *data: Any) -> None:
     """Write ``--details`` files (never over an input; all of them or none) and say where on stderr."""
     from auditor import progress
-    from auditor.details import write_details
+    from auditor.render.details import write_details
 
     with progress.step("writing --details files"), _outputs(args, *data) as outs:
         paths = write_details(tables, args.details, outs)
@@ -270,8 +270,8 @@ def _write_details(args: argparse.Namespace, tables: dict[str, Any], *data: Any)
 
 
 def _cmd_instruments(args: argparse.Namespace) -> int:
-    from auditor.readiness import instruments
-    from auditor.report.text_instruments import render
+    from auditor.commands.instruments import instruments
+    from auditor.render.text_instruments import render
 
     correlated = None if args.correlated is None else _csv_list(args.correlated)
     result = instruments(
@@ -290,26 +290,26 @@ def _cmd_instruments(args: argparse.Namespace) -> int:
 
 
 def _cmd_compare(args: argparse.Namespace) -> int:
-    from auditor.report.text_compare import render
-    from auditor.waves import compare
+    from auditor.commands.compare import compare
+    from auditor.render.text_compare import render
 
     result = compare(args.base, args.new, unit=args.unit, time=args.time, merged=args.merged, settings=_settings(args),
                      **_engine(args))
     if args.details:
-        from auditor.details import compare_tables
+        from auditor.render.details import compare_tables
 
         _write_details(args, compare_tables(result), args.base, args.new)
     return _emit(args, result, render)
 
 
 def _cmd_check(args: argparse.Namespace) -> int:
-    from auditor.report.text_check import render
-    from auditor.rules import check
+    from auditor.checks.rules import check
+    from auditor.render.text_check import render
 
     result = check(_data(args), rules=args.rules, unit=args.unit, time=args.time, against=args.against,
                    keep_all=bool(args.details))
     if args.details:
-        from auditor.details import check_tables
+        from auditor.render.details import check_tables
 
         _write_details(args, check_tables(result), list(args.data), *([args.against] if args.against else []))
         result = result.shown()
@@ -320,7 +320,7 @@ def _cmd_check(args: argparse.Namespace) -> int:
 def _outputs(args: argparse.Namespace, *data: Any, files: Sequence[Any] = ()) -> Any:
     """The run's OutputSet: ``--force`` from ``args``; every input file of the run
     (data expanded as the loader expands it, the ``--rules`` file, ``files``) protected."""
-    from auditor.outputs import OutputSet, input_files
+    from auditor.io.outputs import OutputSet, input_files
 
     rules = getattr(args, "rules", None)
     inputs = input_files(*data, files=[*files, rules])
@@ -329,7 +329,7 @@ def _outputs(args: argparse.Namespace, *data: Any, files: Sequence[Any] = ()) ->
 
 def _cmd_rules(args: argparse.Namespace) -> int:
     if args.rules_command == "draft":
-        from auditor.drafting import draft
+        from auditor.checks.drafting import draft
 
         if not args.out:
             _say(draft(_data(args), unit=args.unit, time=args.time, settings=_settings(args)))
@@ -343,7 +343,7 @@ def _cmd_rules(args: argparse.Namespace) -> int:
     if args.rules_command == "export":
         import json
 
-        from auditor.rules import export_suite
+        from auditor.checks.rules import export_suite
 
         with _outputs(args, files=[args.file]) as outs:
             outs.claim(args.out, "--out")
@@ -358,8 +358,8 @@ def _cmd_rules(args: argparse.Namespace) -> int:
 
 
 def _cmd_report(args: argparse.Namespace) -> int:
-    from auditor.findings import exit_code
-    from auditor.report.html import build_report
+    from auditor.checks.findings import exit_code
+    from auditor.render.html import build_report
 
     with _outputs(args, list(args.data), args.against) as outs:
         run = build_report(
@@ -380,8 +380,8 @@ def _cmd_report(args: argparse.Namespace) -> int:
             **_engine(args),
         )
         if args.json:
-            from auditor.profile import tool_info
-            from auditor.report.jsonout import dumps
+            from auditor.commands.profile import tool_info
+            from auditor.render.json import dumps
 
             _say(dumps({"tool": tool_info(), "report": str(run.path)}))
         else:
@@ -390,8 +390,8 @@ def _cmd_report(args: argparse.Namespace) -> int:
 
 
 def _cmd_demo(args: argparse.Namespace) -> int:
-    from auditor.demo import next_commands, run_demo
-    from auditor.report.text import render, terminal_width, use_colour
+    from auditor.commands.demo import next_commands, run_demo
+    from auditor.render.text import render, terminal_width, use_colour
 
     run = run_demo(Path(args.out) if args.out else None, force=args.force)
     lines = [render(run.profile, width=terminal_width(), colour=use_colour(sys.stdout)), "\nfiles written:\n"]
@@ -404,15 +404,15 @@ def _cmd_demo(args: argparse.Namespace) -> int:
 
 
 def _cmd_explain(args: argparse.Namespace) -> int:
-    from auditor.report.text_explain import render_all, render_one
+    from auditor.render.text_explain import render_all, render_one
 
     if args.json:
-        from auditor.explain import as_document
-        from auditor.report.jsonout import dumps
+        from auditor.checks.explain import as_document
+        from auditor.render.json import dumps
 
         _say(dumps(as_document(args.code)))
         return 0
-    from auditor.report.text import terminal_width
+    from auditor.render.text import terminal_width
 
     _say(render_one(args.code, terminal_width()) if args.code else render_all(terminal_width()))
     return 0
@@ -421,7 +421,7 @@ def _cmd_explain(args: argparse.Namespace) -> int:
 def _cmd_schema(args: argparse.Namespace) -> int:
     import json
 
-    from auditor.schema import schema
+    from auditor.commands.schema import schema
 
     _say(json.dumps(schema(args.name), indent=2, ensure_ascii=False) + "\n")
     return 0
@@ -512,8 +512,8 @@ def _run(argv: Sequence[str] | None) -> int:
                 exc = fail("internal-problem", kind=type(exc).__name__, detail=_one_line(str(exc))[:300])
         sys.stderr.write(f"{PROG}: error: {_one_line(exc.message)}\n")
         return 2
-    except BaseException as stop:  # SIGTERM, SIGHUP (auditor.outputs.on_signal)
-        from auditor.outputs import Interrupted
+    except BaseException as stop:  # SIGTERM, SIGHUP (auditor.io.outputs.on_signal)
+        from auditor.io.outputs import Interrupted
 
         if not isinstance(stop, Interrupted):
             raise
@@ -522,7 +522,7 @@ def _run(argv: Sequence[str] | None) -> int:
 
 
 def _one_line(text: str) -> str:
-    from auditor.report.text import safe
+    from auditor.render.text import safe
 
     return safe(text)
 

@@ -11,7 +11,7 @@ from __future__ import annotations
 import sys
 from pathlib import Path
 
-from auditor.demo_data import csv_text, orchard_files
+from auditor.io.demo_data import csv_text, orchard_files
 
 
 def main(folder: Path) -> list[Path]:

@@ -116,7 +116,7 @@ def _record_error_codes():
         original(self, code, message)
 
     errors.AuditError.__init__ = recording
-    from auditor import findings
+    from auditor.checks import findings
 
     made = findings.Finding.__init__
 
@@ -159,10 +159,10 @@ def record_document(command: str, document: Any, via: str) -> None:
 
 @pytest.fixture(autouse=True, scope="session")
 def _record_documents():
-    from auditor.profile import ProfileResult
-    from auditor.readiness import InstrumentsResult
-    from auditor.rules import CheckResult
-    from auditor.waves import CompareResult
+    from auditor.checks.rules import CheckResult
+    from auditor.commands.compare import CompareResult
+    from auditor.commands.instruments import InstrumentsResult
+    from auditor.commands.profile import ProfileResult
 
     kinds = {"profile": ProfileResult, "instruments": InstrumentsResult, "compare": CompareResult,
              "check": CheckResult}

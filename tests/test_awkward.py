@@ -100,7 +100,7 @@ def test_latin1_text_is_decoded():
     doc = _profile("latin1.csv", 0)
     note = _column(doc, "note")
     assert note["dtype"] == "string" and note["distinct"] == 3
-    from auditor.profile import profile
+    from auditor.commands.profile import profile
 
     frame = profile(CORPUS / "latin1.csv", unit="orchard_id", time="season").data.frame
     assert set(frame["note"].to_list()) == {"grün", "süß", "café"}
@@ -121,7 +121,7 @@ def test_quoted_fields_with_newlines_stay_one_row_each():
     remark = _column(doc, "remark")
     assert remark["distinct"] == 1  # the same remark on every row
     assert ("constant-column", "remark") in _checks(doc)
-    from auditor.profile import profile
+    from auditor.commands.profile import profile
 
     frame = profile(CORPUS / "quoted_newlines.csv", unit="orchard_id", time="season").data.frame
     assert frame["remark"][0] == 'line one\nline two, with a comma\nand "quotes"'
@@ -198,7 +198,7 @@ def test_ids_with_leading_zeros_are_different_units():
     # "007", "7", "07" and "0070" are four orchards, not one (contract: keys keep their text form)
     doc = _profile("leading_zeros.csv", 0)
     assert doc["panel"]["units"] == 4
-    from auditor.profile import profile
+    from auditor.commands.profile import profile
 
     units = profile(CORPUS / "leading_zeros.csv", unit="orchard_id", time="season").data.units
     assert sorted(units["orchard_id"].to_list()) == ["007", "0070", "07", "7"]  # Python string order

@@ -28,7 +28,7 @@ def run_cli(*args: str) -> subprocess.CompletedProcess[str]:
 
 @pytest.fixture(scope="module")
 def orchard_files(tmp_path_factory) -> dict[str, Path]:
-    from auditor.demo_data import make_next_season, make_orchards
+    from auditor.io.demo_data import make_next_season, make_orchards
 
     folder = tmp_path_factory.mktemp("orchards")
     base = make_orchards()
@@ -54,7 +54,7 @@ def test_check_exits_0_on_the_data_the_contract_was_drafted_from(orchard_files, 
 
 
 def test_check_exits_1_on_the_next_season_and_json_names_the_rules(orchard_files, drafted):
-    from auditor.demo_data import PLANTED_NEXT
+    from auditor.io.demo_data import PLANTED_NEXT
 
     run = run_cli("check", str(orchard_files["next"]), "--rules", str(drafted), "--json")
     assert run.returncode == 1, run.stderr

@@ -80,7 +80,7 @@ def waves(tmp_path_factory):
 
 
 def test_profile_on_the_cluster_equals_the_memory_engine(scheduler, waves, monkeypatch):
-    import auditor.cluster as cluster
+    import auditor.stats.cluster as cluster
 
     monkeypatch.setattr(cluster, "PARTITION_ROWS", 30)  # one partition per row group of 40 rows
     parts = cluster.partitions(sorted(waves.glob("*.parquet")), dict(pl.scan_parquet(waves).collect_schema()))
@@ -138,8 +138,8 @@ def test_an_unreachable_scheduler_is_a_clear_error(waves, cli):
 def test_without_the_dask_extra_the_engine_says_how_to_install_it(monkeypatch):
     import sys
 
-    from auditor import cluster
     from auditor.errors import AuditError
+    from auditor.stats import cluster
 
     monkeypatch.setitem(sys.modules, "distributed", None)  # as if not installed
     with pytest.raises(AuditError) as err, cluster.connect(None):
@@ -207,8 +207,8 @@ def write_model_waves(folder, seed: int = 3, n: int = 220, periods: int = 6) -> 
 )
 def test_instruments_on_the_cluster_equal_the_memory_engine(scheduler, tmp_path, monkeypatch, options):
     # the bar: the memory engine's coefficients to 1e-9 (here the whole document)
-    import auditor.cluster as cluster
-    from auditor.readiness import instruments
+    import auditor.stats.cluster as cluster
+    from auditor.commands.instruments import instruments
 
     folder = tmp_path / "gardens"
     write_model_waves(folder)
@@ -252,7 +252,7 @@ def test_compare_on_the_cluster_equals_the_memory_engine(scheduler, tmp_path, cl
 
 
 def test_report_on_the_cluster_shows_the_memory_engines_figures(scheduler, waves, tmp_path):
-    from auditor.report.html import build_report
+    from auditor.render.html import build_report
 
     kw = {"unit": "hive", "time": "season", "outcome": "honey_kg", "regressors": ["frames", "colonies", "apiary"],
           "correlated": []}
@@ -267,15 +267,15 @@ def test_report_on_the_cluster_shows_the_memory_engines_figures(scheduler, waves
 
 def test_an_off_by_one_in_the_kernel_fails_every_driver(scheduler, waves, tmp_path, monkeypatch):
     # a mutation check: each unit's mean divided by n_i + 1 instead of n_i inside the kernel
-    # (auditor.moments._centred) must take every engine away from an outside oracle, exact
+    # (auditor.stats.moments._centred) must take every engine away from an outside oracle, exact
     # rational arithmetic of methods.md section 2 (tests/test_moments.py); unplanted, every
     # engine equals it to 1e-12. One file sorted by unit in row groups of 40 rows: most units
     # inside one partition with several rows, some split between two.
     import distributed
     from test_moments import exact_figures
 
-    import auditor.cluster as cluster
-    import auditor.moments as moments
+    import auditor.stats.cluster as cluster
+    import auditor.stats.moments as moments
 
     frame = pl.read_parquet(waves).drop_nulls(["hive", "season"]).sort("hive", "season")
     data = tmp_path / "hives.parquet"
@@ -290,14 +290,14 @@ def test_an_off_by_one_in_the_kernel_fails_every_driver(scheduler, waves, tmp_pa
         return next(c["within_sd"] for c in doc["columns"] if c["name"] == "honey_kg")
 
     def plant() -> None:
-        import auditor.moments as m
+        import auditor.stats.moments as m
 
         if not hasattr(m, "_unplanted"):
             m._unplanted = m._centred
             m._centred = lambda xf, uu, ref, n_i, a, b: m._unplanted(xf, uu, ref, n_i + 1, a, b)
 
     def unplant() -> None:
-        import auditor.moments as m
+        import auditor.stats.moments as m
 
         if hasattr(m, "_unplanted"):
             m._centred = m._unplanted

@@ -22,10 +22,10 @@ import polars as pl
 import pytest
 from scipy import stats
 
+from auditor.checks.config import load_settings
 from auditor.cli import main
-from auditor.config import load_settings
+from auditor.commands.compare import compare, level_psi, numeric_psi
 from auditor.errors import AuditError
-from auditor.waves import compare, level_psi, numeric_psi
 
 KEYS = {"unit": "id", "time": "year"}
 
@@ -394,7 +394,7 @@ def test_a_clean_new_wave_from_the_same_process_raises_no_alarm():
 
 @pytest.fixture(scope="module")
 def orchards():
-    from auditor.demo_data import make_next_season, make_orchards
+    from auditor.io.demo_data import make_next_season, make_orchards
 
     base = make_orchards()
     new = make_next_season(base)
@@ -402,7 +402,7 @@ def orchards():
 
 
 def test_demo_next_season_every_planted_change_is_found(orchards):
-    from auditor.demo_data import PLANTED_NEXT
+    from auditor.io.demo_data import PLANTED_NEXT
 
     base, new, res = orchards
     # late corrections labelled 2024: keys recomputed here with Python sets
@@ -442,7 +442,7 @@ def test_demo_from_the_shipped_csv_files_finds_the_planted_changes():
     # the shipped files (examples/README.md, "Planted changes"): same truth read from CSV
     from pathlib import Path
 
-    from auditor.demo_data import PLANTED_NEXT
+    from auditor.io.demo_data import PLANTED_NEXT
 
     ex = Path(__file__).resolve().parent.parent / "examples"
     res = compare(ex / "orchards.csv", ex / "orchards_next_season.csv", unit="orchard_id", time="season")
@@ -482,7 +482,7 @@ def test_pandas_and_polars_inputs_give_the_same_document():
 
 
 def test_text_says_whether_to_append_and_what_to_do():
-    from auditor.report.text_compare import render
+    from auditor.render.text_compare import render
 
     new = pl.concat([_small_new(), _small_base().filter(pl.col("id") == 1, pl.col("year") == 2021).drop("gone")])
     text = render(compare(_small_base(), new, **KEYS), width=100, colour=False)
@@ -582,7 +582,7 @@ def test_composite_unit_keys_match_across_types():
 
 def test_shuffling_the_rows_of_either_input_changes_nothing():
     # invariant (style.md): row order carries no meaning in a panel
-    from auditor.demo_data import make_next_season, make_orchards
+    from auditor.io.demo_data import make_next_season, make_orchards
 
     base = make_orchards()
     new = make_next_season(base)

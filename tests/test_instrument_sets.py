@@ -15,8 +15,8 @@ import statsmodels.formula.api as smf
 from statsmodels.sandbox.regression.gmm import IV2SLS
 from test_models import simulate
 
-from auditor import instrument_sets, models, strength
-from auditor.readiness import instruments
+from auditor.commands.instruments import instruments
+from auditor.stats import instrument_sets, models, strength
 
 X1, X2, Z1, Z2 = ["x1a", "x1b"], ["x2"], ["z1"], ["z2"]
 
@@ -149,7 +149,7 @@ def test_the_api_shows_the_three_estimators_side_by_side():
         assert set(r.estimates[key]["coef"]) == set(r.estimates["hausman_taylor"]["coef"])
         assert r.tests["overidentification_by_estimator"][key]["df"] >= 1
     assert set(r.tests["hausman_against_ht"]) == {"amemiya_macurdy", "breusch_mizon_schmidt"}
-    from auditor.report.text_instruments import render
+    from auditor.render.text_instruments import render
 
     text = render(r, width=160)
     assert "Amemiya-MaCurdy" in text and "Breusch-Mizon-Schmidt" in text

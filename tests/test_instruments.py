@@ -12,8 +12,8 @@ import statsmodels.formula.api as smf
 from statsmodels.datasets import grunfeld
 from test_models import simulate
 
+from auditor.commands.instruments import instruments
 from auditor.errors import AuditError
-from auditor.readiness import instruments
 
 SIM_REGS = ["x1a", "x1b", "x2", "z1", "z2"]
 

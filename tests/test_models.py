@@ -9,7 +9,7 @@ import statsmodels.api as sm
 import statsmodels.formula.api as smf
 from statsmodels.datasets import grunfeld
 
-from auditor import models
+from auditor.stats import models
 
 
 @pytest.fixture(scope="module")

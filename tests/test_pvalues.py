@@ -1,6 +1,6 @@
 """The p-value helpers equal scipy.stats (a general-purpose reference library).
 
-auditor.pvalues calls scipy.special directly to spare the scipy.stats import; the
+auditor.stats.pvalues calls scipy.special directly to spare the scipy.stats import; the
 values must be the ones scipy.stats gives.
 """
 
@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from auditor.pvalues import chi2_sf, f_sf, normal_sf, p_phrase
+from auditor.stats.pvalues import chi2_sf, f_sf, normal_sf, p_phrase
 
 POINTS = [0.0, 1e-300, 1e-8, 0.3, 1.0, 2.5, 7.9, 40.0, 1e3, math.inf]
 

@@ -16,7 +16,7 @@ import polars as pl
 import pytest
 
 from auditor.errors import AuditError
-from auditor.report import html as report
+from auditor.render import html as report
 
 SCRIPT_NAME = "<script>alert(1)</script>"
 EXAMPLES = Path(__file__).resolve().parent.parent / "examples"
@@ -57,7 +57,7 @@ def orchard_frame() -> pl.DataFrame:
 
 @pytest.fixture(scope="module")
 def small_profile():
-    from auditor.profile import profile
+    from auditor.commands.profile import profile
 
     return profile(orchard_frame(), unit="orchard", time="season")
 
@@ -177,7 +177,7 @@ def test_script_column_name_appears_only_escaped(small_profile):
 
 
 def test_control_characters_in_names_are_shown_escaped():
-    from auditor.profile import profile
+    from auditor.commands.profile import profile
 
     frame = orchard_frame().rename({"yield_t": "yield\x1b[31m_t\x07"})
     page = report.render_html(profile(frame, unit="orchard", time="season"))
@@ -250,7 +250,7 @@ def test_renderer_failing_midway_leaves_no_partial_file(tmp_path, monkeypatch):
 
 
 def test_write_interrupted_before_the_rename_keeps_the_old_file(tmp_path, monkeypatch):
-    import auditor.outputs
+    import auditor.io.outputs
 
     data = tmp_path / "orchards.csv"
     orchard_frame().write_csv(data)
@@ -260,7 +260,7 @@ def test_write_interrupted_before_the_rename_keeps_the_old_file(tmp_path, monkey
     def interrupted(*_a, **_k):
         raise KeyboardInterrupt
 
-    monkeypatch.setattr(auditor.outputs.os, "replace", interrupted)
+    monkeypatch.setattr(auditor.io.outputs.os, "replace", interrupted)
     with pytest.raises(KeyboardInterrupt):
         report.write_report(data, unit="orchard", time="season", out=out, force=True)
     assert out.read_text() == "earlier report"
@@ -321,7 +321,7 @@ def test_cli_report_writes_the_page_and_prints_its_path(tmp_path, cli):
 def test_cli_report_honours_fail_on(tmp_path, cli):
     # issue 14 item 5: the page is written either way; the exit code follows --fail-on
     # like the other commands (the contract's exit codes)
-    from auditor.profile import profile
+    from auditor.commands.profile import profile
 
     data = tmp_path / "orchards.csv"
     orchard_frame().write_csv(data)
@@ -394,13 +394,13 @@ def _wide_panel(units: int, periods: int, columns: int) -> pl.DataFrame:
 
 @pytest.fixture(scope="module")
 def wide_profile():
-    from auditor.profile import profile
+    from auditor.commands.profile import profile
 
     return profile(_wide_panel(3000, 14, 60), unit="orchard", time="season")
 
 
 def _settings(tmp_path: Path, text: str):
-    from auditor.config import load_settings
+    from auditor.checks.config import load_settings
 
     path = tmp_path / "thresholds.yaml"
     path.write_text(text)

@@ -118,7 +118,7 @@ def test_fuzzed_header_names_find_their_key(tmp_path_factory, names, padding):
 
 def test_the_acting_class_is_exactly_the_unicode_categories():
     # oracle: this Python's unicodedata; the class may hold code points a newer Unicode assigns
-    from auditor.report.sanitise import ACTING
+    from auditor.render.sanitise import ACTING
 
     acting = {chr(c) for c in range(0x110000) if unicodedata.category(chr(c)) in ("Cc", "Cf", "Zl", "Zp", "Cs")}
     matched = {chr(c) for c in range(0x110000) if ACTING.fullmatch(chr(c))}
@@ -127,7 +127,7 @@ def test_the_acting_class_is_exactly_the_unicode_categories():
 
 
 def test_visible_writes_code_points():
-    from auditor.report.sanitise import visible
+    from auditor.render.sanitise import visible
 
     assert visible("a\x1b]0;t\x07b\u202ec\u200bd\x9be") == "a<U+001B>]0;t<U+0007>b<U+202E>c<U+200B>d<U+009B>e"
     assert visible("plain café, 日本") == "plain café, 日本"
@@ -136,7 +136,7 @@ def test_visible_writes_code_points():
 @settings(max_examples=200, deadline=None)
 @given(st.dictionaries(st.text(), st.text() | st.integers() | st.none(), max_size=4))
 def test_json_keeps_every_value_and_prints_nothing_that_acts(doc):
-    from auditor.report.jsonout import dumps
+    from auditor.render.json import dumps
 
     text = dumps(doc)
     assert json.loads(text) == doc  # the json module as the oracle of the values
@@ -198,7 +198,7 @@ def test_json_keeps_hostile_names_exactly(capsys):
 
 
 def _settings(path):
-    from auditor.config import load_settings
+    from auditor.checks.config import load_settings
 
     return load_settings(path)
 
@@ -303,11 +303,11 @@ def test_thresholds_out_of_range_are_refused(tmp_path, section, key, value):
 
 def test_every_shipped_default_is_inside_its_range():
     # the shipped file is the oracle of what a sensible value is
-    from auditor.config import RANGES, _defaults, range_problem
+    from auditor.checks.config import RANGES, _defaults, range_problem
 
     d = _defaults()
     keys = {(s, k) for s, v in d.items() if isinstance(v, dict) for k in v}
-    assert keys - set(RANGES) == set(), "a new threshold needs its range in auditor.config.RANGES"
+    assert keys - set(RANGES) == set(), "a new threshold needs its range in auditor.checks.config.RANGES"
     assert set(RANGES) - keys == set()
     assert [(s, k) for s, k in keys if range_problem(s, k, d[s][k])] == []
 
@@ -329,8 +329,8 @@ def _two_way_r2(u: np.ndarray, t: np.ndarray, x: np.ndarray) -> float:
 
 
 def test_many_periods_match_least_squares_without_a_dense_system():
-    from auditor.moments import DENSE_PERIODS, SparsePeriods
-    from auditor.variation import run_passes
+    from auditor.stats.moments import DENSE_PERIODS, SparsePeriods
+    from auditor.stats.variation import run_passes
 
     rng = np.random.default_rng(19)
     periods, units = DENSE_PERIODS + 50, 25
@@ -357,8 +357,8 @@ def test_many_periods_match_least_squares_without_a_dense_system():
 
 def test_a_chain_of_overlapping_units_converges():
     # each unit spans three consecutive periods: the slowest case for iterative solvers
-    from auditor.moments import SparsePeriods
-    from auditor.variation import _explained
+    from auditor.stats.moments import SparsePeriods
+    from auditor.stats.variation import _explained
 
     rng = np.random.default_rng(4)
     periods = 600
@@ -389,8 +389,8 @@ def test_streaming_many_periods_equal_in_memory(tmp_path):
 
 
 def test_a_gzip_bomb_is_refused_before_it_fills_memory(tmp_path, monkeypatch):
-    import auditor.load as load
-    from auditor.sources import text_limit
+    import auditor.io.load as load
+    from auditor.io.sources import text_limit
 
     monkeypatch.setattr(load, "memory_bytes", lambda: 64 * 2**20)  # text limit: 4 MiB
     limit = text_limit()
@@ -445,7 +445,7 @@ def _write(tmp_path, name, text) -> Path:
 
 
 def test_check_on_integers_beyond_int64(tmp_path):
-    from auditor.rules import check
+    from auditor.checks.rules import check
 
     data = _write(tmp_path, "big.csv", "u,t,big\na,1,99999999999999999999\na,2,1\nb,1,3\nb,2,-99999999999999999999\n")
     rules = _write(tmp_path, "c.yaml", "panel: {unit: u, time: t}\ncolumns:\n  big: {min: 0, max: 99999999999999999999}\n")
@@ -456,7 +456,7 @@ def test_check_on_integers_beyond_int64(tmp_path):
 
 
 def test_check_on_a_column_with_an_empty_name(tmp_path):
-    from auditor.rules import check
+    from auditor.checks.rules import check
 
     data = _write(tmp_path, "e.csv", "u,t,\na,1,1\na,2,2\nb,1,3\nb,2,4\n")
     rules = _write(tmp_path, "c.yaml", "panel: {unit: u, time: t}\ncolumns:\n  '': {max: 3}\n")

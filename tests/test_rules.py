@@ -19,9 +19,9 @@ import polars as pl
 import pytest
 import yaml
 
-from auditor.drafting import draft
+from auditor.checks.drafting import draft
+from auditor.checks.rules import check, export_suite
 from auditor.errors import AuditError
-from auditor.rules import check, export_suite
 
 # --- helpers ---------------------------------------------------------------------
 
@@ -292,7 +292,7 @@ def test_draft_passes_on_grunfeld():
 
 
 def test_draft_passes_on_its_own_data_and_round_trips(tmp_path):
-    from auditor.demo_data import make_orchards
+    from auditor.io.demo_data import make_orchards
 
     base = make_orchards()
     path = tmp_path / "draft.yaml"
@@ -313,7 +313,7 @@ def test_draft_of_grunfeld_passes_check(tmp_path):
 
 def test_draft_fails_on_next_season_with_planted_changes_named(tmp_path):
     # the demo's next-season file and its planted sizes (auditor/demo_data.py, PLANTED_NEXT)
-    from auditor.demo_data import NEXT_SEASON, PLANTED_NEXT, make_next_season, make_orchards
+    from auditor.io.demo_data import NEXT_SEASON, PLANTED_NEXT, make_next_season, make_orchards
 
     base = make_orchards()
     nxt = make_next_season(base)
@@ -342,7 +342,7 @@ def test_draft_fails_on_next_season_with_planted_changes_named(tmp_path):
 def test_export_is_a_suite_great_expectations_reruns_with_polars_counts(random_panel, tmp_path):
     import great_expectations as gx
 
-    from auditor.rules import to_pandas_once
+    from auditor.checks.rules import to_pandas_once
 
     path = write(tmp_path, ROW_CONTRACT)
     doc = export_suite(path)
@@ -440,7 +440,7 @@ EXAMPLES = Path(__file__).resolve().parent.parent / "examples"
 
 def test_example_contract_breaks_exactly_the_planted_faults():
     # planted sizes: auditor/demo_data.py PLANTED (listed in examples/README.md)
-    from auditor.demo_data import PLANTED
+    from auditor.io.demo_data import PLANTED
 
     res = check(EXAMPLES / "orchards.csv", rules=EXAMPLES / "orchards_contract.yaml")
     failed = {(r.rule, r.column): r.failing for r in res.failed}
@@ -452,7 +452,7 @@ def test_example_contract_breaks_exactly_the_planted_faults():
 
 
 def test_example_contract_on_the_next_season_names_its_planted_changes():
-    from auditor.demo_data import PLANTED_NEXT
+    from auditor.io.demo_data import PLANTED_NEXT
 
     res = check(EXAMPLES / "orchards_next_season.csv", rules=EXAMPLES / "orchards_contract.yaml")
     failed = {(r.rule, r.column): r.failing for r in res.failed}
@@ -464,7 +464,7 @@ def test_example_contract_on_the_next_season_names_its_planted_changes():
 
 
 def test_example_contract_thresholds_reach_the_settings():
-    from auditor.contract import read_contract
+    from auditor.checks.contract import read_contract
 
     _, settings = read_contract(EXAMPLES / "orchards_contract.yaml")
     assert settings.get("profile", "high_missing_share") == 0.10
@@ -478,7 +478,7 @@ def test_readme_example_contract_is_valid(tmp_path):
     section = text.split("## Panel contracts", 1)[1].split("\n## ", 1)[0]
     block = re.findall(r"```yaml\n(.*?)```", section, flags=re.S)
     assert len(block) == 1
-    from auditor.contract import read_contract
+    from auditor.checks.contract import read_contract
 
     contract, settings = read_contract(write(tmp_path, block[0]))
     names = [c.name for c in contract.columns]
@@ -562,7 +562,7 @@ def test_draft_passes_on_composite_keys_monthly_dates_and_gaps(tmp_path):
 
 def test_an_exception_inside_great_expectations_is_exit_2_naming_the_rule(tmp_path, monkeypatch):
     # hand the library a column it cannot compare with a number: it reports an exception
-    import auditor.rules as rules_mod
+    import auditor.checks.rules as rules_mod
 
     real = rules_mod.to_pandas_once
 

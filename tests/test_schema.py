@@ -1,4 +1,4 @@
-"""The JSON Schemas of the four --json documents (``panel-audit schema``, ``auditor.schema``).
+"""The JSON Schemas of the four --json documents (``panel-audit schema``, ``auditor.commands.schema``).
 
 The oracle is the jsonschema package's draft 2020-12 validator (an independent
 implementation of the standard): it checks the schemas themselves (``check_schema``), every
@@ -20,9 +20,9 @@ import pytest
 from conftest import DOCUMENTS, ROOT, SCHEMA_COMMANDS, SESSION, run_cli
 from jsonschema import Draft202012Validator
 
-from auditor.explain import EXPLANATIONS
-from auditor.findings import CHECKS
-from auditor.schema import DIALECT, NAMES, schema
+from auditor.checks.explain import EXPLANATIONS
+from auditor.checks.findings import CHECKS
+from auditor.commands.schema import DIALECT, NAMES, schema
 
 EXAMPLES = ROOT / "examples"
 KEYS = ("--unit", "orchard_id", "--time", "season")
@@ -53,7 +53,7 @@ def documents(tmp_path_factory) -> dict[str, dict[str, Any]]:
     for name, proc in runs.items():
         assert proc.returncode in (0, 1), (name, proc.stderr)
         out[name] = json.loads(proc.stdout)
-    from auditor.waves import compare
+    from auditor.commands.compare import compare
 
     retyped = folder / "retyped.csv"
     frame = pl.read_csv(new).with_columns(pl.col("rainfall_mm").cast(pl.String))
@@ -145,7 +145,7 @@ def test_schema_command_loads_no_heavy_library():
                          capture_output=True, text=True, cwd=ROOT, timeout=60)
     assert run.returncode == 0 and json.loads(run.stdout) == schema("instruments")
     loaded = {line.rsplit("|", 1)[-1].strip() for line in run.stderr.splitlines() if line.startswith("import time:")}
-    assert "auditor.schema" in loaded
+    assert "auditor.commands.schema" in loaded
     assert not loaded & {"polars", "numpy", "pandas", "scipy", "matplotlib", "great_expectations"}
 
 
@@ -251,7 +251,7 @@ def test_every_recorded_document_matches_its_schema():
 
 def test_a_to_dict_call_is_recorded():
     # the recorder itself (the CLI path is judged by the test above on a full run)
-    from auditor.profile import profile
+    from auditor.commands.profile import profile
 
     before = len(DOCUMENTS["profile"])
     frame = pl.DataFrame({"u": [1, 1, 2, 2], "t": [1, 2, 1, 2], "x": [0.5, 1.5, 2.0, 7.25]})

@@ -15,7 +15,7 @@ import numpy as np
 import polars as pl
 import pytest
 
-from auditor.load import load_panel
+from auditor.io.load import load_panel
 
 
 def orchard_waves(seed: int = 0) -> pl.DataFrame:
@@ -134,7 +134,7 @@ def test_mixed_csv_and_parquet_waves_are_one_panel(tmp_path, waves):
 
 
 def _profile_document(data) -> dict:
-    from auditor.profile import profile
+    from auditor.commands.profile import profile
 
     doc = profile(data, unit="orchard", time="season").to_dict()
     doc.pop("source", None)  # names the input itself, so differs by construction

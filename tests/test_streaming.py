@@ -49,7 +49,7 @@ def test_streaming_equals_in_memory(parquet) -> None:
 def test_streaming_in_many_partitions_of_units_equals_in_memory(parquet, monkeypatch) -> None:
     # ranges of units read one at a time: per-unit figures joined in unit order, per-period
     # sums and the period dummies' matrices added up; equal to one pass to 1e-12
-    import auditor.engines as engines
+    import auditor.stats.engines as engines
 
     monkeypatch.setattr(engines, "PARTITION_ROWS", 97)
     calls = []
@@ -64,7 +64,7 @@ def test_streaming_in_small_batches_merges_exactly(parquet, monkeypatch) -> None
     # the row-batch pass (composite keys): units split across batches, per-unit moments
     # merged exactly (Chan, Golub and LeVeque) and a second pass with the merged unit
     # means, equal to one pass to 1e-12
-    import auditor.engines as engines
+    import auditor.stats.engines as engines
 
     monkeypatch.setattr(engines, "by_unit_ranges", lambda panel: False)
     monkeypatch.setattr(engines, "BATCH_ROWS", 97)
@@ -73,7 +73,7 @@ def test_streaming_in_small_batches_merges_exactly(parquet, monkeypatch) -> None
 
 def test_streaming_with_text_keys_and_duplicates_in_partitions(tmp_path, monkeypatch) -> None:
     # text unit keys are ranged by their sorted order; duplicate cells and gaps found per range
-    import auditor.engines as engines
+    import auditor.stats.engines as engines
 
     rng = np.random.default_rng(11)
     n, periods = 150, 5
@@ -105,7 +105,7 @@ def test_streaming_with_missing_and_non_finite_values_equals_in_memory(tmp_path,
     # booleans, dates and text
     import datetime as dt
 
-    import auditor.engines as engines
+    import auditor.stats.engines as engines
 
     rng = np.random.default_rng(23)
     n, periods = 120, 6

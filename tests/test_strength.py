@@ -9,7 +9,7 @@ import statsmodels.api as sm
 from statsmodels.sandbox.regression.gmm import IV2SLS
 from test_models import _sim_arrays, simulate
 
-from auditor import models, strength
+from auditor.stats import models, strength
 
 
 @pytest.fixture(scope="module")

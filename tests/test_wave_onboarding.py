@@ -30,9 +30,9 @@ from conftest import run_cli
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 import libraries as L  # noqa: E402
 
-from auditor.drafting import draft  # noqa: E402
-from auditor.rules import check  # noqa: E402
-from auditor.waves import change_scale, compare, numeric_psi  # noqa: E402
+from auditor.checks.drafting import draft  # noqa: E402
+from auditor.checks.rules import check  # noqa: E402
+from auditor.commands.compare import change_scale, compare, numeric_psi  # noqa: E402
 
 KEYS = {"unit": "library_id", "time": "year"}
 
@@ -243,7 +243,7 @@ def test_a_question_left_unanswered(files, panel):
 
 
 def test_report_against_base_profiles_the_appended_panel(files, panel, tmp_path):
-    from auditor.report.html import build_report
+    from auditor.render.html import build_report
 
     base, clean = panel
     out = tmp_path / "wave.html"
@@ -408,7 +408,7 @@ def test_scipys_warning_is_caught_and_the_method_said(monkeypatch):
 
     import scipy.stats
 
-    from auditor import waves
+    from auditor.commands import compare as waves
 
     real = scipy.stats.ks_2samp
 
@@ -445,7 +445,7 @@ def test_wording_of_plurals_and_nearly_invariant_columns(files, panel):
     (f,) = _findings(res, "invariant-changed", "founded")
     assert "nearly time-invariant" in f.message and "only 2 units" in f.message
     assert "1 returning unit reports" in f.message
-    from auditor.report.text_compare import render
+    from auditor.render.text_compare import render
 
     text = render(compare(base, clean.with_columns(
         pl.when(pl.int_range(pl.len()) == 0).then(pl.lit("harbour")).otherwise(pl.col("district")).alias("district")),
@@ -655,7 +655,7 @@ def test_profile_of_a_narrow_integer_column_spanning_its_type(tmp_path):
 def test_psi_bin_counts_equal_a_value_by_value_classification():
     # oracle: each value placed by hand (a plain loop over the bins' definition) against the
     # sorted-search counts, on discrete data with ties at the cut points
-    from auditor.waves import psi_bins, psi_counts
+    from auditor.commands.compare import psi_bins, psi_counts
 
     rng = np.random.default_rng(9)
     ref = rng.integers(0, 6, 400).astype(float)
@@ -681,8 +681,8 @@ def test_invariant_counts_equal_pandas_over_column_types():
     # the tolerance rule of methods.md written out with pandas min, max and mean
     import datetime as dt
 
-    from auditor.load import load_panel
-    from auditor.rules import invariant_counts
+    from auditor.checks.rules import invariant_counts
+    from auditor.io.load import load_panel
 
     rng = np.random.default_rng(12)
     n_units, periods = 300, 4

@@ -16,9 +16,9 @@ import pandas as pd
 import pytest
 from conftest import FINDINGS_MADE, ODD_PHRASES, SESSION, run_cli
 
+from auditor.checks.explain import EXPLANATIONS
+from auditor.checks.findings import CHECKS
 from auditor.cli import main
-from auditor.explain import EXPLANATIONS
-from auditor.findings import CHECKS
 
 KEYS = ["--unit", "hive", "--time", "year"]
 
@@ -80,7 +80,7 @@ def _read(path: Path) -> list[dict[str, str]]:
 def test_profile_details_list_exactly_what_the_findings_count(hive_csv, tmp_path):
     out = tmp_path / "details"
     assert main(["profile", str(hive_csv), *KEYS, "--details", str(out), "--json", "--fail-on", "never"]) == 0
-    from auditor.profile import profile
+    from auditor.commands.profile import profile
 
     counts = {f.check: f.count for f in profile(str(hive_csv), "hive", "year").findings if not f.column}
     by_col = {(f.check, f.column): f.count for f in profile(str(hive_csv), "hive", "year").findings if f.column}
@@ -102,7 +102,7 @@ def test_profile_details_list_exactly_what_the_findings_count(hive_csv, tmp_path
 
 
 def test_examples_say_the_usual_value_the_odd_one_and_its_period(hive_csv):
-    from auditor.profile import profile
+    from auditor.commands.profile import profile
 
     f = next(f for f in profile(str(hive_csv), "hive", "year").findings if f.check == "nearly-time-invariant")
     ex = {e["hive"]: e["values"] for e in f.examples}
@@ -125,7 +125,7 @@ def test_compare_details_list_every_unit_behind_each_finding(hive_csv, tmp_path)
     base.to_csv(b, index=False)
     new.to_csv(n, index=False)
     out = tmp_path / "d"
-    from auditor.waves import compare
+    from auditor.commands.compare import compare
 
     findings = {(f.check, f.column): f.count for f in compare(str(b), str(n), unit="hive", time="year").findings}
     assert main(["compare", str(b), str(n), *KEYS, "--details", str(out), "--fail-on", "never"]) == 0

@@ -54,9 +54,9 @@ import distributed
 import polars as pl
 sys.path.insert(0, sys.argv[5])
 from conftest import approx_equal
-import auditor.cluster as cluster
-from auditor.config import load_settings
-from auditor.profile import profile_panel
+import auditor.stats.cluster as cluster
+from auditor.checks.config import load_settings
+from auditor.commands.profile import profile_panel
 
 folder, memory_doc, shards, unit, period = sys.argv[1], sys.argv[2], sys.argv[3], sys.argv[6], sys.argv[7]
 rows_total = int(sys.argv[4])

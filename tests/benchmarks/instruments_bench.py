@@ -39,7 +39,7 @@ CORRELATED = "x5,x6,planted"
 
 SPLIT_SCRIPT = """
 import sys, time, json, cProfile, pstats, io
-from auditor.readiness import instruments
+from auditor.commands.instruments import instruments
 pr = cProfile.Profile()
 t0 = time.perf_counter()
 pr.enable()

@@ -3,7 +3,7 @@
 1. Many periods: ``panel-audit profile`` of a panel with P periods (default 1,500) and
    K number columns (default 320) with about 5% missing values, so that every column
    has its own period system. The same command is run a second time with the period
-   system forced dense (``auditor.moments.DENSE_PERIODS`` raised above P, the
+   system forced dense (``auditor.stats.moments.DENSE_PERIODS`` raised above P, the
    previous behaviour), and the two time and peak-RSS figures are printed with their
    ratio and whether the two documents agree on every ``time_r2`` (to 1e-9).
 2. Many columns: the profile of C and 4 C columns of 4 rows (default 10,000 and
@@ -32,7 +32,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 from profile_bench import best, compile_package, fmt_mib, fmt_s, line, machine_line  # noqa: E402
 
 DENSE = (
-    "import sys, auditor.moments as u; u.DENSE_PERIODS = 10**9; "
+    "import sys, auditor.stats.moments as u; u.DENSE_PERIODS = 10**9; "
     "sys.argv = ['panel-audit', *sys.argv[1:]]; from auditor.cli import main; main()"
 )
 

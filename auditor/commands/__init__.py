@@ -1,0 +1,1 @@
+"""Commands: one module per command; each assembles results and hands them to a renderer."""

@@ -1,0 +1,1170 @@
+"""Model readiness (``panel-audit instruments``): roles, identification, the diagnostic
+estimators, instrument strength and the findings an analyst needs before fitting a
+fixed-effects, random-effects or Hausman-Taylor model.
+
+The flow is a chain of typed stages, each a frozen value built from the ones before:
+
+- :class:`Sample`: the complete rows, the numeric design columns (text columns become
+  indicators ``col=value`` with the most common level as base; ``--period-effects``
+  adds ``period=<value>``), each regressor's kind from the profile's variation pass;
+- :class:`Design`: which design column is a period effect (added dummies, then the
+  user's own period-only regressors), time-varying (X) or time-invariant (Z);
+- identification (auditor.stats.identification): what each fit can estimate;
+- :class:`Roles`: X1, X2, Z1, Z2 and the Hausman-Taylor set-up;
+- :class:`Fits`: within, between, random effects, Mundlak, Hausman-Taylor;
+- :class:`Validity` and :class:`Strength`: which X1 means may serve as instruments
+  and how strong they are;
+- :func:`readiness_findings` turns all of it into findings, and
+  :class:`InstrumentsResult` is the document.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from collections.abc import Sequence
+from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import polars as pl
+
+from auditor.checks.config import Settings, load_settings
+from auditor.checks.findings import Finding, make, sort_findings
+from auditor.errors import fail, short_list
+from auditor.io.load import INTERNAL, PERIOD_ID, UNIT_ID, Panel, load_panel
+from auditor.stats import attrition, identification, instrument_sets, models, strength
+from auditor.stats.pvalues import p_phrase
+
+SECTION = "instruments"
+ROLES = ("X1", "X2", "Z1", "Z2")
+
+
+@dataclass(frozen=True)
+class InstrumentsResult:
+    """Everything ``panel-audit instruments`` reports; ``to_dict()`` is the contract's JSON.
+
+    ``roles`` maps X1/X2/Z1/Z2 to column names (the constant is always in Z1 and not
+    listed; period effects are exogenous and listed in X1 and in ``period_effects``);
+    ``roles_declared`` is false when X2 was suggested from the data. ``columns``
+    describes each regressor as used (kind, role, within share, the fits that identify
+    it). Estimates are dicts of ``coef``/``se``/``se_cluster`` keyed by column name.
+    """
+
+    outcome: str
+    roles: dict[str, list[str]]
+    roles_declared: bool
+    period_effects: tuple[str, ...]
+    columns: tuple[dict[str, Any], ...]
+    not_identified: tuple[dict[str, Any], ...]
+    near_collinear: tuple[dict[str, Any], ...]
+    order_condition: dict[str, Any]
+    strength: tuple[dict[str, Any], ...]
+    x2_strength: tuple[dict[str, Any], ...]
+    cragg_donald: float | None
+    candidates: tuple[dict[str, Any], ...]
+    suggestion: tuple[dict[str, Any], ...]
+    tests: dict[str, Any]
+    estimates: dict[str, Any]
+    variance_components: dict[str, Any] | None
+    sample: dict[str, Any]
+    reference_f: dict[str, float]
+    findings: tuple[Finding, ...]
+    source: str
+
+    def _repr_html_(self) -> str:
+        """The result as an HTML fragment for notebooks (the report's renderer)."""
+        from auditor.render.html import instruments_fragment
+
+        return instruments_fragment(self)
+
+    def to_dict(self) -> dict[str, Any]:
+        """The contract's ``instruments`` document (non-finite numbers as null)."""
+        from auditor.commands.profile import tool_info
+        from auditor.render.json import clean
+
+        return clean(
+            {
+                "tool": tool_info(),
+                "source": self.source,
+                "outcome": self.outcome,
+                "sample": self.sample,
+                "roles": self.roles,
+                "roles_declared": self.roles_declared,
+                "period_effects": list(self.period_effects),
+                "columns": list(self.columns),
+                "not_identified": list(self.not_identified),
+                "near_collinear": list(self.near_collinear),
+                "order_condition": self.order_condition,
+                "strength": list(self.strength),
+                "x2_strength": list(self.x2_strength),
+                "cragg_donald": self.cragg_donald,
+                "reference_f": self.reference_f,
+                "candidates": list(self.candidates),
+                "suggestion": list(self.suggestion),
+                "tests": self.tests,
+                "estimates": self.estimates,
+                "variance_components": self.variance_components,
+                "findings": [f.to_dict() for f in self.findings],
+            }
+        )
+
+
+# --------------------------------------------------------------------------- inputs
+
+
+def _names(value: str | Sequence[str] | None) -> list[str]:
+    if value is None:
+        return []
+    items = value.split(",") if isinstance(value, str) else list(value)
+    return [str(v).strip() for v in items if str(v).strip()]
+
+
+_TEXT_TYPES = (pl.String, pl.Categorical, pl.Enum)
+
+
+def _is_text(dtype: pl.DataType) -> bool:
+    return isinstance(dtype, _TEXT_TYPES) or dtype == pl.String
+
+
+def _usable(dtype: pl.DataType) -> bool:
+    return dtype.is_numeric() or dtype == pl.Boolean or _is_text(dtype)
+
+
+def _validate(panel: Panel, outcome: str, regs: list[str], correlated: list[str] | None,
+              invariant: list[str]) -> None:
+    available = short_list(c for c in panel.schema if c not in INTERNAL)
+    keys = {**{u: "unit key" for u in panel.unit}, panel.time: "time key"}
+    if outcome in keys:
+        raise fail("instruments-key-as-regressor", column=outcome, role=keys[outcome])
+    if outcome not in panel.schema:
+        raise fail("instruments-unknown-outcome", column=outcome, available=available)
+    dt = panel.schema[outcome]
+    if not (dt.is_numeric() or dt == pl.Boolean):
+        raise fail("instruments-outcome-not-numeric", column=outcome, dtype=str(dt).lower())
+    if not regs:
+        raise fail("instruments-no-regressors")
+    seen: set[str] = set()
+    for r in regs:
+        if r in seen:
+            raise fail("instruments-regressor-repeated", column=r)
+        seen.add(r)
+        if r == outcome:
+            raise fail("instruments-regressor-is-outcome", column=r)
+        if r in keys:
+            raise fail("instruments-key-as-regressor", column=r, role=keys[r])
+        if r not in panel.schema:
+            raise fail("instruments-unknown-regressor", column=r, available=available)
+        if not _usable(panel.schema[r]):
+            raise fail("instruments-regressor-unusable", column=r, dtype=str(panel.schema[r]).lower())
+    for option, names in (("--correlated", correlated or []), ("--treat-as-invariant", invariant)):
+        for c in names:
+            parent = c.split("=", 1)[0] if c not in regs else c
+            if parent not in regs:
+                raise fail("instruments-not-a-regressor", option=option, column=c, regressors=", ".join(regs))
+
+
+def _missing(col: str, dtype: pl.DataType) -> pl.Expr:
+    e = pl.col(col).is_null()
+    if dtype.is_float():
+        e = e | ~pl.col(col).is_finite()
+    return e
+
+
+# Kept for callers of the first release: the rank pass now lives in auditor.stats.identification.
+sequential_rank = identification.sequential_rank
+
+
+# --------------------------------------------------------------------------- stage 1: the sample
+
+
+@dataclass(frozen=True)
+class Sample:
+    """The complete rows and their numeric design columns.
+
+    ``design_cols`` pairs each design column with the regressor it comes from;
+    ``added_periods`` are the dummies ``--period-effects`` added (every period present
+    but the first); ``num`` holds unit codes, the outcome as ``__pa_y`` and every design
+    column as Float64: the complete rows themselves (with their period codes), or, from
+    the dask engine or :func:`equivalent_sample`, the equivalent rows of the unit
+    moments with their ``weights`` and each unit's ``unit_rows`` (T_i, by sorted unit code).
+    """
+
+    outcome: str
+    kinds: dict[str, str]
+    info: dict[str, dict[str, Any]]
+    num: pl.DataFrame
+    design_cols: tuple[tuple[str, str], ...]
+    added_periods: tuple[str, ...]
+    base_levels: dict[str, Any]
+    constant_text: tuple[str, ...]
+    periods_present: tuple[int, ...]
+    rows_keyed: int
+    dropped: int
+    miss_counts: dict[str, int]
+    treated: tuple[tuple[str, str, int], ...]  # (column, its kind before, units changed)
+    invariant: tuple[str, ...]
+    weights: np.ndarray | None = None
+    unit_rows: np.ndarray | None = None
+    unit_means: pl.DataFrame | None = None  # with equivalent rows: each unit's means (sorted unit order)
+
+
+def unit_modes(counts: pl.DataFrame, c: str) -> tuple[pl.DataFrame, int]:
+    """Each unit's most common value of ``c`` (ties: the smallest) from (unit, value, len)
+    counts; returns (unit, ``__pa_mode``) and the number of units with more than one value."""
+    modes = (
+        counts.sort([UNIT_ID, "len", c], descending=[False, True, False])
+        .group_by(UNIT_ID, maintain_order=True)
+        .agg(pl.col(c).first().alias("__pa_mode"), pl.len().alias("__pa_values"))
+    )
+    return modes.select(UNIT_ID, "__pa_mode"), int((modes["__pa_values"] > 1).sum())
+
+
+def value_counts_by_unit(frame: pl.DataFrame, c: str, dtype: pl.DataType) -> pl.DataFrame:
+    """(unit, value, len): how often each unit holds each non-missing value of ``c``."""
+    return frame.filter(~_missing(c, dtype)).group_by([UNIT_ID, c]).len()
+
+
+def with_modes(frame: pl.DataFrame, c: str, modes: pl.DataFrame) -> pl.DataFrame:
+    """``frame`` with ``c`` replaced by each unit's mode (--treat-as-invariant)."""
+    return frame.join(modes, on=UNIT_ID, how="left", maintain_order="left").with_columns(
+        pl.col("__pa_mode").alias(c)
+    ).drop("__pa_mode")
+
+
+def _treat_as_invariant(frame: pl.DataFrame, c: str, dtype: pl.DataType) -> tuple[pl.DataFrame, int]:
+    """Replace ``c`` by each unit's most common value (ties: the smallest); returns the frame and
+    the number of units that had more than one value."""
+    modes, changed = unit_modes(value_counts_by_unit(frame, c, dtype), c)
+    return with_modes(frame, c, modes), changed
+
+
+def complete(frame: pl.DataFrame, used: Sequence[str], schema: dict[str, pl.DataType]) -> pl.DataFrame:
+    """The rows with every used column present (finite, for floats)."""
+    return frame.filter(~pl.any_horizontal([_missing(c, schema[c]) for c in used]))
+
+
+def missing_counts(frame: pl.DataFrame, used: Sequence[str], schema: dict[str, pl.DataType]) -> dict[str, int]:
+    """Missing (null, NaN or infinite) values of each used column."""
+    return frame.select([_missing(c, schema[c]).sum().alias(c) for c in used]).row(0, named=True)
+
+
+def level_counts(frame: pl.DataFrame, c: str) -> pl.DataFrame:
+    """(``c`` as text, len) over the rows of ``frame``."""
+    return frame.group_by(pl.col(c).cast(pl.String)).len()
+
+
+@dataclass(frozen=True)
+class DesignColumns:
+    """The numeric design: one expression per column of ``num`` and what they are."""
+
+    exprs: tuple[pl.Expr, ...]
+    design_cols: tuple[tuple[str, str], ...]
+    added: tuple[str, ...]
+    base_levels: dict[str, Any]
+    constant_text: tuple[str, ...]
+
+
+def design_columns(panel: Panel, outcome: str, regs: list[str], levels: dict[str, pl.DataFrame],
+                   periods_present: Sequence[int], period_effects: bool, limit: int) -> DesignColumns:
+    """The outcome as ``__pa_y`` and the design columns as Float64: numbers as they are,
+    text as indicators ``col=value`` (the most common level the base; ``levels`` holds
+    each text regressor's level counts on the complete rows), ``period=<value>`` for
+    every period present but the first with ``period_effects``."""
+    schema = panel.schema
+    exprs: list[pl.Expr] = [pl.col(UNIT_ID), pl.col(PERIOD_ID), pl.col(outcome).cast(pl.Float64).alias("__pa_y")]
+    design_cols: list[tuple[str, str]] = []
+    base_levels: dict[str, Any] = {}
+    constant_text: list[str] = []
+    for c in regs:
+        if not _is_text(schema[c]):
+            exprs.append(pl.col(c).cast(pl.Float64).alias(c))
+            design_cols.append((c, c))
+            continue
+        counts = levels[c].sort(["len", c], descending=[True, False])
+        if counts.height > limit:
+            raise fail("instruments-too-many-levels", column=c, levels=counts.height, limit=limit)
+        names = counts[c].to_list()
+        base_levels[c] = names[0]
+        if len(names) == 1:
+            constant_text.append(c)
+        for lev in names[1:]:
+            name = f"{c}={lev}"
+            exprs.append((pl.col(c).cast(pl.String) == lev).cast(pl.Float64).alias(name))
+            design_cols.append((name, c))
+    added: list[str] = []
+    if period_effects:
+        for p in list(periods_present)[1:]:  # loop over periods, not rows
+            name = f"period={panel.grid[p]}"
+            exprs.append((pl.col(PERIOD_ID) == p).cast(pl.Float64).alias(name))
+            added.append(name)
+    return DesignColumns(tuple(exprs), tuple(design_cols), tuple(added), base_levels, tuple(constant_text))
+
+
+def _check_units(panel: Panel, units: pl.Series) -> None:
+    """At least two units with complete rows."""
+    if units.n_unique() < 2:
+        label = panel.unit_labels([int(units[0])])
+        raise fail("instruments-one-unit", unit=", ".join(str(v) for v in label[0].values()) if label else "?")
+
+
+def _no_complete_rows(rows_keyed: int, dropped: int, miss_counts: dict[str, int]) -> Exception:
+    worst = sorted(miss_counts, key=lambda c: -miss_counts[c])[:3]
+    return fail("instruments-no-complete-rows", rows=rows_keyed, dropped=dropped,
+                worst=", ".join(f"'{c}' ({miss_counts[c]} missing)" for c in worst))
+
+
+def _sample(panel: Panel, outcome: str, regs: list[str], period_effects: bool, invariant: list[str],
+            settings: Settings) -> Sample:
+    """Stage 1: kinds, --treat-as-invariant, complete cases and the numeric design columns."""
+    from auditor.stats.variation import compute_variation
+
+    var = compute_variation(dataclasses.replace(panel, columns=(outcome, *regs)), settings)
+    info = {r["name"]: r for r in var.columns.to_dicts()}
+    kinds = {c: info[c]["kind"] for c in (outcome, *regs)}
+    schema = panel.schema
+    frame = panel.frame.select([UNIT_ID, PERIOD_ID, outcome, *regs])
+    treated = []
+    for c in invariant:
+        frame, changed = _treat_as_invariant(frame, c, schema[c])
+        treated.append((c, kinds[c], changed))
+        kinds[c] = "time-invariant"
+
+    rows_keyed = frame.height
+    used = (outcome, *regs)
+    miss_counts = missing_counts(frame, used, schema)
+    frame = complete(frame, used, schema)
+    dropped = rows_keyed - frame.height
+    if frame.height == 0:
+        raise _no_complete_rows(rows_keyed, dropped, miss_counts)
+    _check_units(panel, frame[UNIT_ID])
+    periods_present = tuple(sorted(frame[PERIOD_ID].unique().to_list()))
+    levels = {c: level_counts(frame, c) for c in regs if _is_text(schema[c])}
+    d = design_columns(panel, outcome, regs, levels, periods_present, period_effects,
+                       int(settings.get(SECTION, "max_levels")))
+    return Sample(outcome, kinds, info, frame.select(d.exprs), d.design_cols, d.added, d.base_levels,
+                  d.constant_text, periods_present, rows_keyed, dropped, miss_counts, tuple(treated),
+                  tuple(invariant))
+
+
+def design_names(sample: Sample) -> list[str]:
+    """The numeric columns of a sample's ``num``: the outcome, then the design columns."""
+    return ["__pa_y", *[name for name, _ in sample.design_cols], *sample.added_periods]
+
+
+def equivalent_num(cp: Any) -> tuple[pl.DataFrame, np.ndarray, np.ndarray, pl.DataFrame]:
+    """(``num`` frame, row weights, T_i by sorted unit, unit means by sorted unit) of the
+    equivalent rows of merged unit moments (:func:`auditor.stats.moments.equivalent_rows`)."""
+    from auditor.stats.moments import equivalent_rows
+
+    codes, values, weights = equivalent_rows(cp)
+    num = pl.DataFrame({UNIT_ID: pl.Series(UNIT_ID, codes, dtype=pl.Int64),
+                        **{c: values[:, j] for j, c in enumerate(cp.columns)}})
+    seen = cp.n > 0
+    means = pl.DataFrame({c: cp.means[seen, j] for j, c in enumerate(cp.columns)})
+    return num, weights, cp.n[seen].astype(np.float64), means
+
+
+def equivalent_sample(sample: Sample, shards: int = 1, seed: int = 0) -> Sample:
+    """The sample with its rows replaced by the equivalent rows of their unit moments,
+    computed over ``shards`` random shards of the rows and merged (as the dask engine
+    does across partitions): the fits on it equal the fits on the rows."""
+    from auditor.stats import moments
+
+    cols = design_names(sample)
+    num = sample.num
+    n_units = int(num[UNIT_ID].max()) + 1
+    deal = np.random.default_rng(seed).integers(0, shards, num.height)
+    parts = [moments.cross_products(num.filter(pl.Series(deal == k)), cols, n_units=n_units) for k in range(shards)]
+    merged = moments.merge_stream(parts, moments.merge_cross)
+    eq, weights, unit_rows, means = equivalent_num(merged)
+    return dataclasses.replace(sample, num=eq, weights=weights, unit_rows=unit_rows, unit_means=means)
+
+
+# --------------------------------------------------------------------------- stage 2: the design
+
+
+@dataclass(frozen=True)
+class Design:
+    """Each design column's class and the numeric panel the fits see.
+
+    ``periods`` are the period effects (the added dummies first, then the user's
+    period-only regressors), ``x`` the other time-varying columns (nearly-time-invariant
+    ones included), ``z`` the time-invariant ones, ``constant`` columns with one value.
+    ``pa`` holds every column of ``periods + x`` in X and of ``z`` in Z.
+    """
+
+    periods: tuple[str, ...]
+    x: tuple[str, ...]
+    z: tuple[str, ...]
+    constant: tuple[str, ...]
+    col_kind: dict[str, str]
+    pa: models.PanelArrays
+    unbalanced: bool
+    period: np.ndarray | None  # each row's index in the period grid (None for equivalent rows)
+
+
+def _design(sample: Sample) -> Design:
+    """Stage 2: period effects, X and Z from the kinds, and the numeric arrays."""
+    periods, x, z, constant = list(sample.added_periods), [], [], list(sample.constant_text)
+    col_kind: dict[str, str] = {p: "period-only" for p in sample.added_periods}
+    for name, parent in sample.design_cols:
+        k = sample.kinds[parent]
+        col_kind[name] = k
+        if k == "constant":
+            constant.append(name)
+        elif k == "time-invariant":
+            z.append(name)
+        elif k == "period-only":
+            periods.append(name)
+        else:
+            x.append(name)
+    num = sample.num
+    codes_raw = num[UNIT_ID].to_numpy().astype(np.int64)
+    _, codes = np.unique(codes_raw, return_inverse=True)
+
+    def matrix(cols: list[str]) -> np.ndarray:
+        if not cols:
+            return np.zeros((num.height, 0))
+        return np.asfortranarray(num.select(cols).to_numpy().astype(float))
+
+    y = num["__pa_y"].to_numpy().astype(float)
+    xcols = periods + x
+    means = None
+    if sample.unit_means is not None:
+        means = sample.unit_means.select(["__pa_y", *xcols, *z]).to_numpy().astype(float)
+    pa = models.PanelArrays(codes=codes.astype(np.int64), n=int(codes.max()) + 1, y=y, x=matrix(xcols),
+                            x_names=tuple(xcols), z=matrix(z), z_names=tuple(z), weights=sample.weights,
+                            unit_rows=sample.unit_rows, means=means)
+    # the rows' periods (None for the equivalent rows of unit moments, which have none)
+    period = num[PERIOD_ID].to_numpy().astype(np.int64) if PERIOD_ID in num.columns else None
+    return Design(tuple(periods), tuple(x), tuple(z), tuple(constant), col_kind, pa, not pa.balanced_counts, period)
+
+
+def _moved_to_z(design: Design, moved: tuple[str, ...]) -> Design:
+    """The design with time-varying columns that have no within variation to speak of moved to Z."""
+    pa = design.pa
+    keep = [c for c in pa.x_names if c not in moved]
+    xi = [pa.x_names.index(c) for c in keep]
+    mi = [pa.x_names.index(c) for c in moved]
+    new = models.PanelArrays(codes=pa.codes, n=pa.n, y=pa.y, x=np.asfortranarray(pa.x[:, xi]), x_names=tuple(keep),
+                             z=np.asfortranarray(np.column_stack([pa.z, pa.x[:, mi]])),
+                             z_names=(*pa.z_names, *moved), weights=pa.weights, unit_rows=pa.unit_rows,
+                             means=None if pa.weights is None else np.column_stack([pa.ybar, pa.xbar[:, xi], pa.zbar,
+                                                                                    pa.xbar[:, mi]]))
+    return dataclasses.replace(design, x=tuple(c for c in design.x if c not in moved), z=(*design.z, *moved),
+                               col_kind={**design.col_kind, **{c: "time-invariant" for c in moved}}, pa=new)
+
+
+# --------------------------------------------------------------------------- stage 4: roles
+
+
+@dataclass(frozen=True)
+class Roles:
+    """X1, X2, Z1, Z2 (X1 includes the period effects, which are exogenous) and the
+    Hausman-Taylor set-up built from them and from what the within fit identifies."""
+
+    x1: tuple[str, ...]
+    x2: tuple[str, ...]
+    z1: tuple[str, ...]
+    z2: tuple[str, ...]
+    declared: bool
+    spec: models.HTSpec
+
+    @property
+    def order_met(self) -> bool:
+        """The order condition k1 >= g2."""
+        return self.spec.k1 >= self.spec.g2
+
+    def as_dict(self) -> dict[str, list[str]]:
+        """The contract's ``roles``."""
+        return {"X1": list(self.x1), "X2": list(self.x2), "Z1": list(self.z1), "Z2": list(self.z2)}
+
+
+def _roles(design: Design, ident: identification.Identification, corr: list[str] | None,
+           mundlak_p: dict[str, float | None], alpha: float, expand: dict[str, list[str]]) -> Roles:
+    """Stage 4: roles from the declaration (or, without one, X2 from the Mundlak evidence)."""
+    x_user = ident.levels_x(ident.x)
+    z_names = ident.levels_z(ident.z)
+    periods = list(ident.periods)
+    declared = corr is not None
+    if declared:
+        corr_cols: set[str] = set()
+        for c in corr or []:
+            corr_cols.update(expand.get(c, [c]))
+        x2 = [c for c in x_user if c in corr_cols]
+        z2 = [c for c in z_names if c in corr_cols]
+    else:
+        x2 = [c for c in x_user if mundlak_p.get(c) is not None and mundlak_p[c] < alpha]
+        z2 = []
+    x1_user = [c for c in x_user if c not in x2]
+    z1 = [c for c in z_names if c not in z2]
+    x1 = x1_user + periods
+    spec = models.HTSpec(
+        x1=tuple(x1), x2=tuple(x2), z1=tuple(z1), z2=tuple(z2), means=tuple(x1_user),
+        within=tuple(c for c in ident.within if c in x1 or c in x2),
+        compared=tuple(c for c in ident.within if c in x1_user or c in x2),
+    )
+    return Roles(tuple(x1), tuple(x2), tuple(z1), tuple(z2), declared, spec)
+
+
+# --------------------------------------------------------------------------- stage 5: fits
+
+
+@dataclass(frozen=True)
+class Fits:
+    """The diagnostic fits (None where they cannot be computed) and the tests that compare them."""
+
+    within: models.Fit | None
+    between: models.Fit | None
+    random: models.Fit | None
+    components: models.Components | None
+    mundlak: models.Mundlak | None
+    hausman_taylor: models.HausmanTaylor | None
+    hausman_random: models.WaldTest | None
+    too_few_units: bool
+    unit_parameters: int
+    units: int
+    richer: dict[str, instrument_sets.RicherFit | None] = dataclasses.field(default_factory=dict)
+    richer_note: str | None = None
+    attrition: dict[str, Any] | None = None
+    attrition_note: str | None = None
+
+
+def _early_fits(design: Design, ident: identification.Identification, outcome_invariant: bool,
+                pool: ThreadPoolExecutor) -> tuple[models.Fit | None, models.Fit | None, models.Mundlak | None,
+                                                    Any, bool, int]:
+    """Within, between and Mundlak now; random effects started in ``pool``. Returns (within,
+    between, mundlak, random-effects job, too few units, unit-level parameters)."""
+    pa = design.pa
+    wf = models.within(pa, list(ident.within))[0] if not outcome_invariant else None
+    k_unit = 1 + len(ident.between_z) + len(ident.between_means)
+    too_few = pa.n <= k_unit
+    if too_few:
+        return wf, None, None, None, True, k_unit
+    bf, _ = models.between(pa, list(ident.between_means), list(ident.between_z))
+    lev = pa.select(ident.levels_x(pa.x_names), ident.levels_z(ident.z))
+    mu = models.mundlak(lev, mean_columns=[*ident.mundlak_tested, *ident.mundlak_controls],
+                        tested=list(ident.mundlak_tested))
+    job = pool.submit(models.random_effects, lev, wf, bf) if wf is not None else None
+    return wf, bf, mu, job, False, k_unit
+
+
+def _late_fits(design: Design, ident: identification.Identification, roles: Roles, wf: models.Fit | None,
+               bf: models.Fit | None, mu: models.Mundlak | None, job: Any, too_few: bool,
+               k_unit: int) -> Fits:
+    """Hausman-Taylor beside the running random-effects job, then the Hausman contrast."""
+    ht = None
+    if roles.order_met and job is not None:
+        lev = design.pa.select(list(roles.x1) + list(roles.x2), list(roles.z1) + list(roles.z2))
+        ht = models.hausman_taylor(lev, [], [], [], [], within_fit=wf, spec=roles.spec)
+    re = comp = h = None
+    if job is not None:
+        re, comp = job.result()
+        compared = [c for c in ident.within if c in ident.x]  # period effects excluded
+        if compared:
+            h = models.hausman_within_random(wf, re, compared)
+    return Fits(wf, bf, re, comp, mu, ht, h, too_few, k_unit, design.pa.n)
+
+
+def _beyond(design: Design, ident: identification.Identification, roles: Roles, fits: Fits,
+            settings: Settings) -> Fits:
+    """Amemiya-MaCurdy and Breusch-Mizon-Schmidt beside Hausman-Taylor (at its theta), and the
+    Nijman-Verbeek attrition test on the within fit."""
+    richer: dict[str, instrument_sets.RicherFit | None] = {instrument_sets.AM: None, instrument_sets.BMS: None}
+    note = None
+    ht = fits.hausman_taylor
+    if design.period is None:  # equivalent rows of unit moments (the dask engine) carry no periods
+        note = ("not computed on the dask engine: their instruments are each unit's values period by period, "
+                "which the unit moments do not keep; run with --engine memory for them") if ht is not None else None
+        return dataclasses.replace(fits, richer=richer, richer_note=note, attrition=None, attrition_note=(
+            "not computed on the dask engine: the test needs each row's period, which the unit moments do not keep"))
+    if ht is not None:
+        _, dense = np.unique(design.period, return_inverse=True)
+        periods = int(dense.max()) + 1
+        sp = roles.spec
+        size = 2 + len(sp.z1) + len(sp.means) * (periods + 1) + periods + len(sp.x2) * periods
+        limit = int(settings.get(SECTION, "richer_max_instruments"))
+        if size > limit:
+            note = (f"not computed: the richer instrument sets would hold about {size} unit-level columns "
+                    f"(instruments.richer_max_instruments is {limit})")
+        elif 2 * size >= design.pa.n:
+            note = (f"not computed: about {size} unit-level instrument columns for {design.pa.n} units (they need "
+                    "more than twice as many units as columns, or the first stage fits the units almost exactly)")
+        else:
+            lev = design.pa.select(list(roles.x1) + list(roles.x2), list(roles.z1) + list(roles.z2))
+            for which in richer:
+                richer[which] = instrument_sets.fit(lev, sp, ht.components.theta, dense.astype(np.int64), periods,
+                                                    which, ht.fit, tol=float(settings.get(SECTION, "collinear_tol")))
+    attrition_test = None
+    if fits.within is not None and ident.within:
+        attrition_test = attrition.nijman_verbeek(design.pa, list(ident.within), design.period)
+    return dataclasses.replace(fits, richer=richer, richer_note=note, attrition=attrition_test)
+
+
+# --------------------------------------------------------------------------- stage 6: validity
+
+
+@dataclass(frozen=True)
+class Validity:
+    """Per excluded X1 mean: its difference-in-Sargan p and its state (see strength.USABLE_STATE)."""
+
+    c_p: dict[str, float | None]
+    states: dict[str, tuple[str, str]]
+
+
+def _validity(roles: Roles, ht: models.HausmanTaylor | None, test_alpha: float) -> Validity:
+    """Which excluded X1 means the over-identification tests accept, reject, or cannot judge.
+
+    With a Z2 column the Mundlak evidence is disturbed (Z2 is correlated with u_i and with
+    the X1 means), so the over-identification tests decide. A mean is invalid when its
+    difference-in-Sargan (C) test rejects while the Sargan test of the other means
+    accepts. The other means are accepted when the Sargan test of the whole set accepts,
+    or when a mean was found invalid (the set without it is accepted); when the whole set
+    is rejected and no single mean can be blamed (with one over-identifying restriction
+    there are no C tests at all) they are undecided. Just identified, nothing can be
+    tested and validity is assumed.
+    """
+    c_p: dict[str, float | None] = {}
+    states: dict[str, tuple[str, str]] = {}
+    if ht is None or not roles.spec.g2:
+        return Validity(c_p, states)
+    excluded = [c for c in roles.spec.means if c not in roles.spec.x1_between_only]
+    culprits = []
+    for c in excluded:
+        t, rest = ht.c_tests.get(c), ht.rest_sargan.get(c)
+        c_p[c] = None if t is None else t.p
+        if t is not None and t.p is not None and rest is not None and rest.p is not None:
+            if t.p < test_alpha <= rest.p:
+                culprits.append(c)
+    if ht.sargan is None or ht.sargan.p is None:
+        return Validity(c_p, {c: ("assumed", "just identified, assumed") for c in excluded})
+    basis = "c-test" if any(v is not None for v in c_p.values()) else "sargan"
+    for c in excluded:
+        if c in culprits:
+            states[c] = ("invalid", "c-test")
+        elif ht.sargan.p >= test_alpha:
+            states[c] = ("accepted", basis)
+        elif culprits:
+            states[c] = ("accepted", f"c-test; the set without {', '.join(culprits)} is accepted")
+        else:
+            states[c] = ("undecided", "sargan rejects the set; no single mean can be blamed")
+    return Validity(c_p, states)
+
+
+# --------------------------------------------------------------------------- stage 7: strength
+
+
+@dataclass(frozen=True)
+class Strength:
+    """Instrument strength rows for the unit-level endogenous columns, X2 first stages,
+    the candidate search and the suggested sets."""
+
+    rows: tuple[dict[str, Any], ...]
+    cragg_donald: float | None
+    candidates: tuple[dict[str, Any], ...]
+    suggestion: tuple[dict[str, Any], ...]
+    x2_rows: tuple[dict[str, Any], ...]
+
+
+def _strength(design: Design, ident: identification.Identification, roles: Roles, fits: Fits,
+              validity: Validity, settings: Settings, pool: ThreadPoolExecutor) -> Strength:
+    """Stage 7: Z2 strength (and X2 identified between units only), the X2 first stages beside it."""
+    get = lambda key: settings.get(SECTION, key)  # noqa: E731
+    size, thumb, lee = int(get("stock_yogo_size")), float(get("rule_of_thumb_f")), float(get("lee_f"))
+    sp, pa = roles.spec, design.pa
+    excluded = [c for c in sp.means if c not in sp.x1_between_only]
+    x2_within = [c for c in roles.x2 if c in sp.within]
+    x2_job = None
+    if x2_within and fits.hausman_taylor is not None:
+        x2_job = pool.submit(strength.x2_first_stage, pa, list(sp.within), x2_within, list(roles.z1),
+                             fits.hausman_taylor.components.theta, list(sp.means))
+    rows: list[dict[str, Any]] = []
+    cd = None
+    cands: list[dict[str, Any]] = []
+    sugg: list[dict[str, Any]] = []
+    if sp.g2 and not fits.too_few_units:
+        rows, cd = strength.z2_strength(pa, excluded, list(roles.z1), list(roles.z2), size=size, rule_of_thumb=thumb,
+                                        order_met=roles.order_met, included_means=sp.x1_between_only,
+                                        endogenous_means=sp.x2_between_only)
+        for r in rows:
+            f = r["partial_f"]
+            r["p"] = strength.f_pvalue(f, r["df"])
+            r["at_least_rule_of_thumb"] = None if f is None else bool(f >= thumb)
+            r["at_least_lee"] = None if f is None else bool(f >= lee)
+        _anderson_rubin(rows, design, roles, fits, excluded, float(get("anderson_rubin_level")))
+        mundlak_p = {r["column"]: r["p"] for r in fits.mundlak.per_column} if fits.mundlak is not None else {}
+        if roles.z2:
+            cands, sugg = strength.candidates(
+                pa, excluded, list(roles.z1), list(roles.z2), mundlak_p, alpha=float(get("mundlak_alpha")),
+                size=size, rule_of_thumb=thumb, max_exhaustive=int(get("exhaustive_candidates")),
+                c_p=validity.c_p, states=validity.states or None, included_means=sp.x1_between_only)
+    x2_rows = x2_job.result() if x2_job is not None else []
+    for r in x2_rows:
+        r["within_share"] = ident.within_share.get(r["endogenous"])
+    return Strength(tuple(rows), cd, tuple(cands), tuple(sugg), tuple(x2_rows))
+
+
+def _anderson_rubin(rows: list[dict[str, Any]], design: Design, roles: Roles, fits: Fits, excluded: list[str],
+                    level: float) -> None:
+    """Attach the Anderson-Rubin set to the strength row when there is one unit-level endogenous
+    column and it is a Z2 column; otherwise say why it is not computed."""
+    sp, pa = roles.spec, design.pa
+    for r in rows:
+        r["anderson_rubin"] = None
+    if len(rows) != 1 or sp.x2_between_only or fits.within is None or not roles.order_met:
+        why = ("several unit-level endogenous columns" if len(rows) > 1 else
+               "the endogenous column is an X2 column identified between units only" if sp.x2_between_only else
+               "no within fit or the order condition fails")
+        for r in rows:
+            r["anderson_rubin_note"] = f"not computed: {why} (the set is for one Z2 column)"
+        return
+    wf = fits.within
+    d = pa.ybar - pa.xbar[:, [pa.x_names.index(c) for c in wf.names]] @ wf.coef if wf.names else pa.ybar.copy()
+    z = pa.zbar[:, pa.z_names.index(rows[0]["endogenous"])]
+    included = strength.unit_included(pa, list(roles.z1), sp.x1_between_only)
+    rows[0]["anderson_rubin"] = strength.anderson_rubin(d, z, included, pa.xbar[:, [pa.x_names.index(c)
+                                                                                       for c in excluded]], level)
+
+
+# --------------------------------------------------------------------------- the command
+
+
+def instruments(
+    data: Any,
+    *,
+    unit: str | Sequence[str],
+    time: str,
+    outcome: str,
+    regressors: Sequence[str] | str,
+    correlated: Sequence[str] | str | None = None,
+    period_effects: bool = False,
+    treat_as_invariant: Sequence[str] = (),
+    settings: Settings | None = None,
+    rules: str | Path | None = None,
+    engine: str = "auto",
+    scheduler: str | None = None,
+) -> InstrumentsResult:
+    """Model readiness of ``outcome`` on ``regressors`` in the panel ``data``.
+
+    ``correlated`` names the regressors suspected of correlation with the unit effect
+    (None: suggest X2 from the Mundlak evidence; an empty list: none). Text columns
+    may be named whole or by indicator (``soil=SD``). ``engine`` and ``scheduler`` as
+    in :func:`auditor.commands.profile.profile`: with ``dask`` the sample and the unit
+    cross-products of the design are computed on the cluster, and the fits run on
+    their equivalent rows (:func:`auditor.stats.moments.equivalent_rows`). Raises AuditError
+    for input that cannot be used.
+    """
+    from auditor.stats.pvalues import preload
+
+    preload()  # scipy.special and scipy.sparse, while the panel is read and profiled
+    if settings is None:
+        settings = load_settings(rules)
+    regs = _names(regressors)
+    corr = None if correlated is None else _names(correlated)
+    invariant = _names(list(treat_as_invariant))
+    outcome = str(outcome).strip()
+    from auditor import progress
+    from auditor.stats.engines import resolve_engine
+
+    name = resolve_engine(engine, None, scheduler)
+    if name == "dask":
+        from auditor.stats import cluster
+
+        shell, _ = cluster.load(data, unit, time, settings)
+        _validate(shell, outcome, regs, corr, invariant)
+        with progress.step("the design's moments on the cluster"):
+            with cluster.session(data, unit, time, settings, scheduler) as run:
+                sample = run.sample(outcome, regs, bool(period_effects), invariant)
+        return _run(run.panel, outcome, regs, corr, bool(period_effects), invariant, settings, sample=sample)
+    with progress.step("reading the panel"):
+        panel = load_panel(data, unit, time, streaming={"memory": False, "streaming": True}.get(name),
+                           settings=settings)
+    _validate(panel, outcome, regs, corr, invariant)
+    return _run(panel, outcome, regs, corr, bool(period_effects), invariant, settings)
+
+
+def _run(panel: Panel, outcome: str, regs: list[str], corr: list[str] | None, period_effects: bool,
+         invariant: list[str], settings: Settings, sample: Sample | None = None) -> InstrumentsResult:
+    from auditor import progress
+
+    get = lambda key: settings.get(SECTION, key)  # noqa: E731
+    with progress.step(f"kinds and complete rows of {len(regs)} regressors"):
+        if sample is None:
+            sample = _sample(panel, outcome, regs, period_effects, invariant, settings)
+        design = _design(sample)
+    with progress.step("what each fit identifies"):
+        ident = identification.decide(design.pa, design.periods, design.x, design.z, tol=float(get("collinear_tol")),
+                                      near_r2=float(get("near_collinear_r2")))
+    if ident.moved_to_z:
+        design = _moved_to_z(design, ident.moved_to_z)
+    outcome_invariant = sample.kinds[outcome] in ("time-invariant", "constant")
+    expand: dict[str, list[str]] = {}
+    for name, parent in sample.design_cols:
+        expand.setdefault(parent, []).append(name)
+    alpha, test_alpha = float(get("mundlak_alpha")), float(get("test_alpha"))
+    # Fits that do not feed one another run side by side in a second thread (numpy
+    # releases the interpreter lock): random effects beside the roles and Hausman-Taylor,
+    # the X2 first stages beside the Z2 strength. Findings are sorted at the end.
+    with ThreadPoolExecutor(max_workers=1) as pool, progress.step(f"fits on {design.pa.nobs:,} rows"):
+        wf, bf, mu, job, too_few, k_unit = _early_fits(design, ident, outcome_invariant, pool)
+        mundlak_p = {r["column"]: r["p"] for r in mu.per_column} if mu is not None else {}
+        roles = _roles(design, ident, corr, mundlak_p, alpha, expand)
+        fits = _beyond(design, ident, roles, _late_fits(design, ident, roles, wf, bf, mu, job, too_few, k_unit),
+                       settings)
+        validity = _validity(roles, fits.hausman_taylor, test_alpha)
+        stren = _strength(design, ident, roles, fits, validity, settings, pool)
+    findings = readiness_findings(sample, design, ident, roles, fits, validity, stren, settings)
+    return _document(panel, sample, design, ident, roles, fits, stren, findings, settings)
+
+
+# --------------------------------------------------------------------------- the document
+
+
+def _tests(fits: Fits, roles: Roles, alpha: float) -> dict[str, Any]:
+    tests: dict[str, Any] = {"mundlak": None, "hausman_within_random": None, "overidentification": None,
+                             "hausman_within_ht": None}
+    if fits.mundlak is not None:
+        mu = fits.mundlak
+        tests["mundlak"] = {**mu.to_dict(), "alpha": alpha,
+                            "flagged": [r["column"] for r in mu.per_column if r["p"] is not None and r["p"] < alpha]}
+    if fits.hausman_random is not None:
+        tests["hausman_within_random"] = fits.hausman_random.to_dict()
+    ht = fits.hausman_taylor
+    if ht is not None and ht.sargan is not None:
+        tests["overidentification"] = {**ht.sargan.to_dict(), "name": "Sargan"}
+    if ht is not None and ht.hausman_within is not None:
+        tests["hausman_within_ht"] = ht.hausman_within.to_dict()
+    by_est: dict[str, Any] = {"hausman_taylor": tests["overidentification"]}
+    against: dict[str, Any] = {}
+    for name, rf in fits.richer.items():
+        by_est[name] = None if rf is None or rf.sargan is None else {**rf.sargan.to_dict(), "name": "Sargan"}
+        against[name] = None if rf is None or rf.against_ht is None else rf.against_ht.to_dict()
+    tests["overidentification_by_estimator"] = by_est if ht is not None else None
+    tests["hausman_against_ht"] = against if ht is not None else None
+    tests["attrition"] = fits.attrition
+    if fits.attrition_note:
+        tests["attrition_note"] = fits.attrition_note
+    return tests
+
+
+def _document(panel: Panel, sample: Sample, design: Design, ident: identification.Identification, roles: Roles,
+              fits: Fits, stren: Strength, findings: list[Finding], settings: Settings) -> InstrumentsResult:
+    get = lambda key: settings.get(SECTION, key)  # noqa: E731
+    estimates: dict[str, Any] = {
+        "within": fits.within.to_dict() if fits.within is not None else None,
+        "between": fits.between.to_dict() if fits.between is not None else None,
+        "random": fits.random.to_dict() if fits.random is not None else None,
+        "mundlak": fits.mundlak.fit.to_dict() if fits.mundlak is not None else None,
+        "hausman_taylor": fits.hausman_taylor.fit.to_dict() if fits.hausman_taylor is not None else None,
+    }
+    for name in (instrument_sets.AM, instrument_sets.BMS):
+        rf = fits.richer.get(name)
+        estimates[name] = rf.estimates() if rf is not None else None
+
+    components = fits.components.to_dict() if fits.components is not None else None
+    if fits.hausman_taylor is not None:
+        components = {**(components or {}), "hausman_taylor": fits.hausman_taylor.components.to_dict()}
+    role_of = {c: r for r, cols in roles.as_dict().items() for c in cols}
+    not_id = [d.to_dict() for d in _set_aside(sample, design, ident)]
+    lost_everywhere = {d["column"] for d in not_id if "hausman_taylor" in d["fits"] and "within" in d["fits"]}
+    columns = []
+    kind = {**design.col_kind, **{c: "time-invariant" for c in ident.moved_to_z}}
+    for name, parent in [(p, None) for p in sample.added_periods] + list(sample.design_cols):
+        fits_of = [f for f in identification.ALL_FITS if ident.identifies(f, name)]
+        columns.append({
+            "column": name,
+            "source": parent,
+            "kind": kind.get(name, "period-only"),
+            "role": role_of.get(name) or ("not-identified" if name in lost_everywhere or not fits_of else None),
+            "period_effect": name in design.periods,
+            "identified_by": fits_of,
+            "within_share": ident.within_share.get(name),
+            "base_level": sample.base_levels.get(parent) if parent in sample.base_levels else None,
+        })
+    sample_doc = {
+        "rows": int(design.pa.nobs), "units": int(design.pa.n), "rows_dropped": int(sample.dropped),
+        "periods": len(sample.periods_present), "period_effects": bool(sample.added_periods),
+        "balanced": not design.unbalanced,
+    }
+    return InstrumentsResult(
+        outcome=sample.outcome,
+        roles=roles.as_dict(),
+        roles_declared=roles.declared,
+        period_effects=tuple(ident.periods),
+        columns=tuple(columns),
+        not_identified=tuple(not_id),
+        near_collinear=tuple({"column": n.column, "fit": n.fit, "r2": n.r2, "with": list(n.with_)}
+                             for n in ident.near),
+        order_condition={"k1": roles.spec.k1, "g2": roles.spec.g2, "met": roles.order_met},
+        strength=stren.rows,
+        x2_strength=stren.x2_rows,
+        cragg_donald=stren.cragg_donald,
+        candidates=stren.candidates,
+        suggestion=stren.suggestion,
+        tests=_tests(fits, roles, float(get("mundlak_alpha"))),
+        estimates=estimates,
+        variance_components=components,
+        sample=sample_doc,
+        reference_f={"rule_of_thumb": float(get("rule_of_thumb_f")), "lee": float(get("lee_f"))},
+        findings=tuple(sort_findings(findings)),
+        source=panel.source,
+    )
+
+
+def _set_aside(sample: Sample, design: Design, ident: identification.Identification) -> list[identification.Dependence]:
+    """Every column some fit sets aside: constants first, then what identification found."""
+    out = [identification.Dependence(c, "constant", (), identification.ALL_FITS) for c in design.constant]
+    return out + list(ident.set_aside)
+
+
+# --------------------------------------------------------------------------- findings
+
+
+def readiness_findings(sample: Sample, design: Design, ident: identification.Identification, roles: Roles,
+                       fits: Fits, validity: Validity, stren: Strength, settings: Settings) -> list[Finding]:
+    """Every finding of ``instruments``, from the stages' values (no statistic is computed here)."""
+    out: list[Finding] = []
+    out += _sample_findings(sample, settings)
+    out += _identification_findings(sample, design, ident, settings)
+    out += _fit_findings(sample, roles, fits, settings)
+    out += _instrument_findings(roles, fits, validity, stren, settings)
+    return out
+
+
+def _sample_findings(sample: Sample, settings: Settings) -> list[Finding]:
+    out = []
+    for c, old, changed in sample.treated:
+        out.append(make(
+            "treated-as-invariant", settings,
+            f"'{c}' ({old}) was replaced by each unit's most common value, changing {changed} units, "
+            "so it now enters as time-invariant and any real changes in it are ignored.",
+            column=c, count=changed,
+        ))
+    if sample.dropped:
+        mc = sample.miss_counts
+        worst = [c for c in sorted(mc, key=lambda c: -mc[c]) if mc[c]][:3]
+        out.append(make(
+            "rows-dropped", settings,
+            f"{sample.dropped:,} of {sample.rows_keyed:,} rows lack the outcome or a regressor and are left out of every "
+            f"fit, which changes the sample the models describe (most missing: "
+            f"{', '.join(f'{c} {mc[c]}' for c in worst)}).",
+            count=sample.dropped,
+        ))
+    if sample.kinds[sample.outcome] in ("time-invariant", "constant"):
+        out.append(make(
+            "outcome-time-invariant", settings,
+            f"'{sample.outcome}' never changes within a unit, so a within (fixed-effects) model has nothing to "
+            "explain and only between-unit comparisons are possible.",
+            column=sample.outcome,
+        ))
+    return out
+
+
+_FIT_WORDS = {"within": "within", "between": "between", "random": "random-effects", "mundlak": "Mundlak",
+              "hausman_taylor": "Hausman-Taylor"}
+
+
+def _listing(names: Sequence[str], limit: int = 6) -> str:
+    names = list(names)
+    if len(names) <= limit:
+        return ", ".join(names)
+    return f"{', '.join(names[:3])}, ..., {names[-1]} ({len(names)} columns)"
+
+
+def dependence_message(dep: identification.Dependence) -> str:
+    """One plain sentence (or two) on why a column is set aside and by which fits."""
+    c, reason, with_ = dep.column, dep.reason, [w for w in dep.with_ if w != "const"]
+    everywhere = set(dep.fits) >= set(identification.ALL_FITS)
+    if reason == "constant":
+        return f"'{c}' has one value everywhere, so no model can estimate its coefficient and it is left out."
+    members = _listing(with_) if with_ else "the constant"
+    choice = (f" The coefficients of {members} in {'every fit' if everywhere else 'the within fit'} depend on "
+              "which member of this set is left out; the other coefficients do not.") if with_ else ""
+    if reason == "period-only":
+        return (f"'{c}' varies only across periods and the other period effects ({members}) already span it, so no "
+                f"fit can estimate its coefficient and it is left out.{choice}")
+    if not everywhere and reason in ("absorbed-by-time", "collinear-within"):
+        how = ("moves in step with the period effects" if reason == "absorbed-by-time"
+               else "is an exact linear combination of")
+        kept = ", ".join(_FIT_WORDS[f] for f in identification.LEVELS_FITS)
+        return (f"Within units '{c}' {how} {members}, so the within fit cannot estimate it and sets it aside; the "
+                f"{kept} fits keep it, since in levels it is identified.{choice}")
+    if dep.fits == (identification.BETWEEN,):
+        return (f"Across units the mean of '{c}' is an exact linear combination of {members}, so the between fit "
+                "leaves it out; the other fits keep it.")
+    return (f"'{c}' is an exact linear combination of {members} in levels and within units, so no fit can "
+            f"estimate its coefficient and it is left out.{choice}")
+
+
+def _identification_findings(sample: Sample, design: Design, ident: identification.Identification,
+                             settings: Settings) -> list[Finding]:
+    out = []
+    for name, parent in sample.design_cols:
+        if sample.kinds[parent] == "nearly-time-invariant" and name in ident.x:
+            units = sample.info[parent]["units_changing"]
+            out.append(make(
+                "nearly-invariant-regressor", settings,
+                f"'{name}' changes for only {units} units, so as a time-varying regressor its within coefficient "
+                f"rests on those few changes (pass --treat-as-invariant {parent} if they are coding errors).",
+                column=name, count=units,
+            ))
+    for dep in _set_aside(sample, design, ident):
+        out.append(make("not-identified", settings, dependence_message(dep), column=dep.column))
+    for near in ident.near:
+        where = "within units" if near.fit == "within" else "in levels"
+        out.append(make(
+            "near-collinear", settings,
+            f"{where.capitalize()} {near.r2:.4%} of the variation of '{near.column}' is explained by "
+            f"{_listing(near.with_)}; it is kept (only exact dependence sets a column aside), but its coefficient "
+            "is imprecise and sensitive to small changes in the data.",
+            column=near.column,
+        ))
+    return out
+
+
+def _fit_findings(sample: Sample, roles: Roles, fits: Fits, settings: Settings) -> list[Finding]:
+    out = []
+    test_alpha = float(settings.get(SECTION, "test_alpha"))
+    alpha = float(settings.get(SECTION, "mundlak_alpha"))
+    n_examples = int(settings.get(SECTION, "examples"))
+    if fits.too_few_units:
+        out.append(make(
+            "too-few-units", settings,
+            f"{fits.units} units cannot identify {fits.unit_parameters} unit-level parameters (constant, "
+            "time-invariant regressors and unit means), so the between, random-effects, Mundlak and "
+            "Hausman-Taylor fits are not computed.",
+            count=fits.units,
+        ))
+    if not roles.declared:
+        out.append(make(
+            "correlated-not-declared", settings,
+            "No regressor was declared correlated with the unit effect: X2 is suggested from the Mundlak evidence "
+            f"({', '.join(roles.x2) or 'none'}), which assumes every time-invariant regressor is exogenous, and "
+            "whether a time-invariant regressor is correlated cannot be tested from the data, so any Z2 must be "
+            "declared with --correlated.",
+            count=len(roles.x2),
+        ))
+    if not roles.order_met:
+        sp = roles.spec
+        out.append(make(
+            "order-condition", settings,
+            f"With {sp.k1} excluded unit means of exogenous time-varying regressors (X1) for {sp.g2} correlated "
+            "columns identified between units only (Z2) the Hausman-Taylor model is not identified: declare fewer "
+            "regressors correlated or add exogenous time-varying ones.",
+            count=sp.g2 - sp.k1,
+        ))
+    mu = fits.mundlak
+    if mu is not None and mu.joint.p is not None and mu.joint.p < alpha:
+        flagged = [r for r in mu.per_column if r["p"] is not None and r["p"] < alpha]
+        out.append(make(
+            "correlated-with-effect", settings,
+            f"The Mundlak test finds the unit means of the time-varying regressors jointly significant "
+            f"({p_phrase(mu.joint.p)}): the evidence is against the random-effects assumption that no "
+            "time-varying regressor is correlated with the unit effect, and if it fails the random-effects "
+            "estimates are inconsistent.",
+            count=len(flagged),
+            examples=[{"column": r["column"], "p": r["p"]} for r in flagged][:n_examples],
+        ))
+    h = fits.hausman_random
+    if h is not None and h.p is not None and h.p < test_alpha:
+        out.append(make(
+            "random-effects-rejected", settings,
+            f"The Hausman test rejects equal within and random-effects coefficients ({p_phrase(h.p)}): the "
+            "evidence is against the random-effects assumption, under which both are consistent; if it fails, "
+            "the random-effects estimates of the time-varying coefficients are inconsistent.",
+        ))
+    if h is not None and h.note:
+        out.append(make("hausman-not-positive-definite", settings,
+                        f"In the Hausman test {h.note}, so the test has fewer degrees of freedom than coefficients."))
+    out += _beyond_findings(fits, test_alpha, settings)
+    ht = fits.hausman_taylor
+    if ht is not None:
+        for nm, t in (("Sargan", ht.sargan), ("within vs Hausman-Taylor", ht.hausman_within)):
+            if t is not None and t.p is not None and t.p < test_alpha:
+                out.append(make(
+                    "overidentification-rejected", settings,
+                    f"The {nm} test rejects the over-identifying restrictions ({p_phrase(t.p)}): the evidence "
+                    "is against the exogeneity of at least one X1 column's unit mean, and if one is correlated with "
+                    "the unit effect the Hausman-Taylor estimates are inconsistent.",
+                ))
+    return out
+
+
+def _beyond_findings(fits: Fits, test_alpha: float, settings: Settings) -> list[Finding]:
+    """Attrition, and the extra restrictions of the richer instrument sets."""
+    out = []
+    a = fits.attrition
+    if a is not None and a["p"] is not None and a["p"] < test_alpha:
+        out.append(make(
+            "selective-attrition", settings,
+            f"The Nijman-Verbeek test finds that being observed in the next period is related to the outcome "
+            f"within units (t = {a['t']:.3g}, {p_phrase(a['p'])}): leaving the panel appears related to the "
+            "idiosyncratic error, so the within estimates on the observed rows may be inconsistent.",
+        ))
+    for name, rf in fits.richer.items():
+        if rf is None:
+            continue
+        label = instrument_sets.NAMES[name]
+        for what, t in (("Sargan test", rf.sargan), ("contrast with Hausman-Taylor", rf.against_ht)):
+            if t is not None and t.p is not None and t.p < test_alpha:
+                out.append(make(
+                    "richer-set-rejected", settings,
+                    f"The {label} {what} rejects ({p_phrase(t.p)}): the evidence is against the stronger "
+                    f"exogeneity its extra instruments assume, and if it fails the {label} estimates are "
+                    "inconsistent.",
+                ))
+    if fits.richer_note:
+        out.append(make("richer-sets-skipped", settings, f"Amemiya-MaCurdy and Breusch-Mizon-Schmidt are "
+                                                          f"{fits.richer_note}."))
+    return out
+
+
+def _instrument_findings(roles: Roles, fits: Fits, validity: Validity, stren: Strength,
+                         settings: Settings) -> list[Finding]:
+    out = []
+    alpha = float(settings.get(SECTION, "mundlak_alpha"))
+    thumb = float(settings.get(SECTION, "rule_of_thumb_f"))
+    mundlak_p = {r["column"]: r["p"] for r in fits.mundlak.per_column} if fits.mundlak is not None else {}
+    if roles.declared:
+        for c in roles.spec.means:
+            state = validity.states.get(c)
+            cp, mp = validity.c_p.get(c), mundlak_p.get(c)
+            if state is not None and state[0] == "invalid":
+                text = (f"the difference-in-Sargan test of its unit mean gives {p_phrase(cp)} while the other "
+                        "instruments pass")
+            elif state is None and mp is not None and mp < alpha:
+                text = f"its Mundlak {p_phrase(mp)} says it is correlated with the unit effect"
+            else:
+                continue
+            out.append(make(
+                "invalid-instrument", settings,
+                f"'{c}' is declared exogenous (X1) but {text}, so its unit mean is probably an invalid instrument "
+                "and the Hausman-Taylor estimates would be inconsistent.",
+                column=c,
+            ))
+    for r in stren.rows:
+        if r["verdict"] != "weak":
+            continue
+        basis = "conditional F" if r["verdict_basis"] == "conditional_f" else "first-stage F"
+        value = r["conditional_f"] if r["verdict_basis"] == "conditional_f" else r["partial_f"]
+        crit = r["critical_value"] if r["critical_value"] is not None else thumb
+        out.append(make(
+            "weak-instrument", settings,
+            f"The unit means of X1 explain '{r['endogenous']}' weakly ({basis} {value:.3g} below {crit:.4g}, "
+            f"{r['critical_source']}), so its Hausman-Taylor coefficient is imprecise and, in finite samples, "
+            "biased towards random effects.",
+            column=r["endogenous"],
+        ))
+    weak_share = float(settings.get(SECTION, "weak_within_share"))
+    for r in stren.x2_rows:
+        share = r.get("within_share")
+        if share is not None and share < weak_share:
+            out.append(make(
+                "weak-within-variation", settings,
+                f"Only {share:.1%} of the variation of '{r['endogenous']}' is within units, so its own within "
+                "deviation is a weak instrument and its Hausman-Taylor coefficient is imprecise.",
+                column=r["endogenous"],
+            ))
+    return out

@@ -1,0 +1,1 @@
+"""Renderers: text, JSON, HTML, figures and CSV details of results computed elsewhere."""

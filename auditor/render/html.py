@@ -1,0 +1,1148 @@
+"""The HTML report: one self-contained page (figures inline as SVG, no script, no
+outside resource), and the same sections as notebook fragments (``_repr_html_``).
+
+The renderer shows what the statistics modules computed; it computes nothing of
+its own beyond formatting, except the quantiles of the shifted columns that the
+new-wave figure draws (a display summary of at most a few columns). Every text
+taken from the data (column names, values, categories, labels) goes through
+``esc``: acting characters shown as ``<U+XXXX>`` (auditor.render.sanitise),
+then ``html.escape``.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import html
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import dataclass, replace
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+import auditor
+from auditor.errors import fail
+from auditor.render.sanitise import visible
+
+if TYPE_CHECKING:  # pragma: no cover
+    from auditor.checks.config import Settings
+    from auditor.io.outputs import OutputSet
+
+_RANK = {"error": 0, "warning": 1, "note": 2}
+
+SECTIONS: tuple[tuple[str, str], ...] = (
+    ("summary", "Summary"),
+    ("findings", "Findings"),
+    ("structure", "Structure"),
+    ("variation", "Variation"),
+    ("missing", "Missing data"),
+    ("readiness", "Model readiness"),
+    ("new-wave", "New wave"),
+)
+
+FIGURE_FILES: dict[str, str] = {
+    "participation": "participation.png",
+    "periods-per-unit": "periods_per_unit.png",
+    "entry-exit": "entry_exit.png",
+    "within-share": "within_share.png",
+    "missing-map": "missing_map.png",
+    "first-stage": "first_stage_f.png",
+    "anderson-rubin": "anderson_rubin_set.png",
+    "wave-shift": "wave_shift.png",
+    "shifted-distributions": "shifted_distributions.png",
+}
+
+
+# --- small helpers -------------------------------------------------------------------
+
+
+def esc(value: Any, limit: int = 200) -> str:
+    """``value`` as safe HTML text: acting characters (controls, bidirectional and
+    zero-width ones) shown as ``<U+XXXX>`` by the one sanitiser, shortened to
+    ``limit`` characters (with an ellipsis), then escaped with ``html.escape``."""
+    s = visible(value)
+    if len(s) > limit:
+        s = s[: limit - 1] + "\u2026"
+    return html.escape(s, quote=True)
+
+
+def _int(v: Any) -> str:
+    if v is None:
+        return "\u2013"
+    try:
+        return f"{int(v):,}"
+    except (TypeError, ValueError):
+        return esc(v)
+
+
+def _num(v: Any, digits: int = 3) -> str:
+    if v is None:
+        return "\u2013"
+    try:
+        x = float(v)
+    except (TypeError, ValueError):
+        return esc(v)
+    if x != x:
+        return "\u2013"
+    if x != 0 and (abs(x) >= 1e6 or abs(x) < 10 ** (-digits)):
+        return f"{x:.{digits}g}"
+    if abs(x) >= 1000:
+        return f"{x:,.1f}"
+    return f"{x:.{digits}g}" if abs(x) < 1 else f"{x:,.{digits}f}".rstrip("0").rstrip(".")
+
+
+def _pct(v: Any, digits: int = 1) -> str:
+    if v is None:
+        return "\u2013"
+    try:
+        x = float(v)
+    except (TypeError, ValueError):
+        return esc(v)
+    if x != x:
+        return "\u2013"
+    if 0 < x < 0.001:
+        return "&lt;0.1%"
+    return f"{x:.{digits}%}"
+
+
+def _p(v: Any) -> str:
+    if v is None:
+        return "\u2013"
+    x = float(v)
+    return "&lt;0.001" if x < 0.001 else f"{x:.3f}"
+
+
+def _plural(n: Any, word: str, many: str | None = None) -> str:
+    n = int(n or 0)
+    return f"{n:,} {word if n == 1 else (many or word + 's')}"
+
+
+def _tag(severity: str) -> str:
+    s = severity if severity in _RANK else "note"
+    return f'<span class="pa-tag pa-{s}">{esc(severity)}</span>'
+
+
+def _table(head: Sequence[str], rows: Iterable[Sequence[str]], *, cls: str = "", numeric: Sequence[int] = ()) -> str:
+    """A table from already-escaped cell HTML; ``numeric`` column indices align right."""
+    num = set(numeric)
+    right = ' class="pa-n"'
+    th = "".join(f"<th{right if i in num else ''}>{h}</th>" for i, h in enumerate(head))
+    body = []
+    for r in rows:
+        tds = "".join(f"<td{right if i in num else ''}>{c}</td>" for i, c in enumerate(r))
+        body.append(f"<tr>{tds}</tr>")
+    return (f'<div class="pa-scroll"><table class="pa-table {cls}"><thead><tr>{th}</tr></thead>'
+            f'<tbody>{"".join(body)}</tbody></table></div>')
+
+
+def _facts(items: Sequence[tuple[str, str]]) -> str:
+    cells = "".join(f'<div class="pa-fact"><dt>{k}</dt><dd>{v}</dd></div>' for k, v in items)
+    return f'<dl class="pa-facts">{cells}</dl>'
+
+
+def _figure(svgs: Mapping[str, str], name: str, caption: str) -> str:
+    svg = svgs.get(name)
+    if not svg:
+        return ""
+    return f'<figure class="pa-fig" id="fig-{name}">{svg}<figcaption>{caption}</figcaption></figure>'
+
+
+def _note(text: str) -> str:
+    return f'<p class="pa-quiet">{text}</p>'
+
+
+def _as_dict(obj: Any) -> dict[str, Any] | None:
+    if obj is None:
+        return None
+    if isinstance(obj, Mapping):
+        return dict(obj)
+    return obj.to_dict()
+
+
+# --- limits ----------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class Limits:
+    """How much of each table and figure the page shows (from the ``report`` settings),
+    and the first-stage F lines drawn (from the ``instruments`` settings)."""
+
+    findings: int = 200
+    columns: int = 400
+    patterns: int = 12
+    pattern_rows: int = 30
+    figure_columns: int = 40
+    periods_table: int = 120
+    shift_columns: int = 4
+    quantiles: int = 101
+    max_bytes: int = 2_000_000
+    f_rule_of_thumb: float = 10.0
+    f_t_test: float = 104.7
+
+    @classmethod
+    def from_settings(cls, settings: Settings | None) -> Limits:
+        """The limits in ``settings`` (section ``report``), the built-in ones where absent."""
+        if settings is None:
+            from auditor.checks.config import default_settings
+
+            settings = default_settings()
+        section = settings.thresholds.get("report", {})
+        values: dict[str, Any] = {}
+        for name in cls.__dataclass_fields__:
+            if name in section:
+                values[name] = section[name]
+        profile = settings.thresholds.get("profile", {})
+        if "patterns" in profile:
+            values["patterns"] = profile["patterns"]
+        # the F lines drawn are the ones the instruments check uses
+        inst = settings.thresholds.get("instruments", {})
+        if "rule_of_thumb_f" in inst:
+            values["f_rule_of_thumb"] = float(inst["rule_of_thumb_f"])
+        if "lee_f" in inst:
+            values["f_t_test"] = float(inst["lee_f"])
+        return cls(**values)
+
+
+# --- figures ---------------------------------------------------------------------------
+
+
+def build_figures(
+    result: Any,
+    instruments: Mapping[str, Any] | None = None,
+    comparison: Mapping[str, Any] | None = None,
+    *,
+    quantiles: Mapping[str, tuple[Sequence[float], Sequence[float]]] | None = None,
+    limits: Limits | None = None,
+) -> dict[str, Any]:
+    """Every figure the report shows, by name (see ``FIGURE_FILES``), as matplotlib Figures.
+
+    ``result`` is a ProfileResult; ``instruments`` and ``comparison`` the
+    contract's JSON of those results; ``quantiles`` (column -> base and new
+    quantiles) feeds the shifted-distributions figure.
+    """
+    from auditor.render import figures as fg
+
+    lim = limits or Limits()
+    panel = result.panel
+    grid = list(panel.get("period_values") or [])
+    details = getattr(result, "details", None)
+    out: dict[str, Any] = {}
+    if details is not None and getattr(details, "patterns", None) is not None:
+        out["participation"] = fg.participation(details.patterns, grid, max_rows=lim.pattern_rows)
+    if details is not None and getattr(details, "obs_per_unit", None) is not None:
+        out["periods-per-unit"] = fg.periods_per_unit(details.obs_per_unit, len(grid))
+    if panel.get("attrition"):
+        out["entry-exit"] = fg.entry_exit(panel["attrition"])
+    columns = getattr(result, "columns", None)
+    if columns is not None and columns.height and "within_share" in columns.columns:
+        out["within-share"] = fg.within_shares(columns, max_columns=lim.figure_columns)
+    if details is not None and getattr(details, "missing_by_period", None) is not None:
+        out["missing-map"] = fg.missing_map(details.missing_by_period, grid, max_columns=lim.figure_columns)
+    if instruments is not None and instruments.get("strength"):
+        out["first-stage"] = fg.first_stage_strength(
+            instruments["strength"], rule_of_thumb=lim.f_rule_of_thumb, t_test_bound=lim.f_t_test
+        )
+        if any(r.get("anderson_rubin") for r in instruments["strength"]):
+            out["anderson-rubin"] = fg.anderson_rubin_set(
+                instruments["strength"], (instruments.get("estimates") or {}).get("hausman_taylor"))
+    if comparison is not None and comparison.get("columns"):
+        out["wave-shift"] = fg.wave_shift(comparison["columns"], max_columns=lim.figure_columns)
+        if quantiles:
+            ks = {str(c.get("column")): c.get("ks_statistic") for c in comparison["columns"]}
+            out["shifted-distributions"] = fg.shifted_distributions(quantiles, ks=ks)
+    return out
+
+
+def _svgs(figures: Mapping[str, Any]) -> dict[str, str]:
+    from auditor.render.figures import to_svg
+
+    return {name: to_svg(fig, name=name) for name, fig in figures.items()}
+
+
+def shift_quantiles(
+    base: Any, new: Any, comparison: Mapping[str, Any], *, columns: int = 4, points: int = 101
+) -> dict[str, tuple[list[float], list[float]]]:
+    """Quantiles of the ``columns`` most shifted numeric columns in both waves.
+
+    ``base`` and ``new`` are polars frames; the columns are those with the
+    largest ``ks_statistic`` in ``comparison`` (the compare JSON). Returns, per
+    column, (base, new) values at ``points`` evenly spaced probabilities 0..1,
+    computed by polars in one select per frame (never a loop over rows).
+    """
+    import polars as pl
+
+    rows = sorted(
+        (c for c in comparison.get("columns", []) if c.get("ks_statistic") is not None),
+        key=lambda c: -float(c["ks_statistic"]),
+    )
+    names = [str(c["column"]) for c in rows if str(c["column"]) in base.columns and str(c["column"]) in new.columns]
+    names = [n for n in names if base.schema[n].is_numeric() and new.schema[n].is_numeric()][:columns]
+    if not names:
+        return {}
+    probs = [i / (points - 1) for i in range(points)]
+
+    def q(frame: pl.DataFrame) -> dict[str, list[float]]:
+        exprs = [
+            pl.col(n).cast(pl.Float64).filter(pl.col(n).cast(pl.Float64).is_finite())
+            .quantile(p, interpolation="linear").alias(f"{i}:{j}")
+            for i, n in enumerate(names) for j, p in enumerate(probs)
+        ]
+        row = frame.select(exprs).row(0)
+        return {n: [row[i * points + j] for j in range(points)] for i, n in enumerate(names)}
+
+    qb, qn = q(base), q(new)
+    out: dict[str, tuple[list[float], list[float]]] = {}
+    for n in names:
+        b = [v for v in qb[n] if v is not None]
+        w = [v for v in qn[n] if v is not None]
+        if b and w:
+            out[n] = (b, w)
+    return out
+
+
+# --- sections --------------------------------------------------------------------------
+
+
+def _all_findings(result: Any, instruments: Mapping[str, Any] | None, comparison: Mapping[str, Any] | None) -> list[dict[str, Any]]:
+    items: list[dict[str, Any]] = []
+    for f in getattr(result, "findings", ()) or ():
+        d = f.to_dict() if hasattr(f, "to_dict") else dict(f)
+        items.append({**d, "source": "profile"})
+    for doc, source in ((instruments, "model readiness"), (comparison, "new wave")):
+        if doc:
+            items.extend({**dict(f), "source": source} for f in doc.get("findings", []) or [])
+    order = {"profile": 0, "model readiness": 1, "new wave": 2}
+    items.sort(key=lambda d: (_RANK.get(str(d.get("severity")), 9), order[d["source"]],
+                              str(d.get("check")), str(d.get("column") or "")))
+    return items
+
+
+def _periods_text(panel: Mapping[str, Any]) -> str:
+    grid = panel.get("period_values") or []
+    n = panel.get("periods", len(grid))
+    if not grid:
+        return _plural(n, "period")
+    span = f"{esc(grid[0])} to {esc(grid[-1])}" if len(grid) > 1 else esc(grid[0])
+    step = panel.get("step")
+    how = f"a regular grid, step {esc(step)}" if step is not None else "an irregular grid"
+    return f"{_plural(n, 'period')}, {span} ({how})"
+
+
+def _summary(result: Any, findings: list[dict[str, Any]], lim: Limits) -> str:
+    p = result.panel
+    opu = p.get("obs_per_unit") or {}
+    unit = ", ".join(esc(u) for u in p.get("unit", []) or [])
+    parts = [
+        f"The panel holds {_plural(p.get('rows'), 'row')} on {_plural(p.get('units'), 'unit')} "
+        f"(key <code>{unit}</code>) over {_periods_text(p)}."
+    ]
+    if p.get("balanced"):
+        parts.append("It is balanced: every unit is observed once in every period.")
+    else:
+        parts.append(
+            f"It is unbalanced: units have {_int(opu.get('min'))} to {_int(opu.get('max'))} rows, duplicates "
+            f"included (median {_num(opu.get('median'))}, harmonic mean {_num(opu.get('harmonic_mean'))}; "
+            f"Ahrens-Pincus unbalancedness r = {_num(p.get('unbalancedness'))})."
+        )
+    extra = []
+    if p.get("units_with_gaps"):
+        extra.append(f"{_plural(p['units_with_gaps'], 'unit')} have gaps "
+                     f"({_plural(p.get('gap_periods'), 'period')} absent inside their spans)")
+    if p.get("singleton_units"):
+        extra.append(f"{_plural(p['singleton_units'], 'unit')} are seen only once")
+    if p.get("duplicate_keys"):
+        extra.append(f"{_plural(p['duplicate_keys'], 'row')} repeat a (unit, period) key")
+    if p.get("missing_keys"):
+        extra.append(f"{_plural(p['missing_keys'], 'row')} lack a unit or period key")
+    if extra:
+        text = "; ".join(extra)
+        parts.append(text[0].upper() + text[1:] + ".")
+    tally = {s: sum(1 for f in findings if f.get("severity") == s) for s in _RANK}
+    if findings:
+        parts.append(
+            f"The audit raised {_plural(tally['error'], 'error')}, {_plural(tally['warning'], 'warning')} "
+            f"and {_plural(tally['note'], 'note')}."
+        )
+    else:
+        parts.append("The audit raised no finding.")
+    chips = "".join(
+        f'<span class="pa-chip pa-{s}"><b>{tally[s]:,}</b> {s}{"s" if tally[s] != 1 else ""}</span>'
+        for s in _RANK
+    )
+    top = findings[:5]
+    lead = ""
+    if top:
+        items = "".join(
+            f"<li>{_tag(str(f.get('severity')))} <b>{esc(f.get('check'))}</b>"
+            f"{' in <code>' + esc(f.get('column'), 80) + '</code>' if f.get('column') else ''}: "
+            f"{esc(f.get('message'), 400)}</li>"
+            for f in top
+        )
+        lead = f'<h3>Most serious first</h3><ol class="pa-top">{items}</ol>'
+    return (f'<section id="summary"><h2>Summary</h2><div class="pa-chips">{chips}</div>'
+            f'<p class="pa-lede">{" ".join(parts)}</p>{lead}</section>')
+
+
+def _examples(ex: Any) -> str:
+    if not ex:
+        return ""
+    shown = []
+    from auditor.render.text import example_text
+
+    for e in list(ex)[:3]:
+        if isinstance(e, Mapping):
+            shown.append(esc(example_text(dict(list(e.items())[:6])), 200))
+        else:
+            shown.append(esc(e, 80))
+    more = f'<span class="pa-quiet"> and {len(ex) - 3:,} more kept</span>' if len(ex) > 3 else ""
+    items = "".join(f"<code>{s}</code>" for s in shown)
+    return f'<div class="pa-eg"><span class="pa-quiet">for example</span> {items}{more}</div>'
+
+
+def _check_cell(code: str) -> str:
+    """The check's code, with what it means and what its count counts as a tooltip
+    (auditor.checks.explain, the words ``panel-audit explain`` prints)."""
+    from auditor.checks.explain import explanation
+
+    e = explanation(code)
+    if e is None:
+        return f"<b>{esc(code)}</b>"
+    tip = f"{e.meaning} Count: {e.count}. {e.action}"
+    return f'<b><abbr title="{esc(tip, 600)}">{esc(code)}</abbr></b>'
+
+
+def _findings(findings: list[dict[str, Any]], lim: Limits) -> str:
+    if not findings:
+        return '<section id="findings"><h2>Findings</h2><p>Nothing to report: every check passed.</p></section>'
+    sources = {f["source"] for f in findings}
+    head = ["severity", "check", "column", "count", "what it means"]
+    if len(sources) > 1:
+        head.insert(0, "from")
+    rows = []
+    for f in findings[: lim.findings]:
+        r = [_tag(str(f.get("severity"))), _check_cell(str(f.get("check"))),
+             f"<code>{esc(f.get('column'), 80)}</code>" if f.get("column") else "",
+             _int(f.get("count")) if f.get("count") is not None else "",
+             esc(f.get("message"), 600) + _examples(f.get("examples"))]
+        if len(sources) > 1:
+            r.insert(0, esc(f["source"]))
+        rows.append(r)
+    count_col = head.index("count")
+    more = ""
+    if len(findings) > lim.findings:
+        more = _note(f"The first {lim.findings:,} of {len(findings):,} findings are shown; "
+                     "the JSON output lists them all.")
+    return (f'<section id="findings"><h2>Findings</h2>'
+            f'{_table(head, rows, cls="pa-findings", numeric=[count_col])}{more}</section>')
+
+
+def _structure(result: Any, svgs: Mapping[str, str], lim: Limits) -> str:
+    p = result.panel
+    opu = p.get("obs_per_unit") or {}
+    facts = _facts([
+        ("rows", _int(p.get("rows"))),
+        ("units", _int(p.get("units"))),
+        ("periods", _int(p.get("periods"))),
+        ("grid step", esc(p.get("step")) if p.get("step") is not None else "irregular"),
+        ("balanced", "yes" if p.get("balanced") else "no"),
+        ("repeated keys", _int(p.get("duplicate_keys"))),
+        ("rows without a key", _int(p.get("missing_keys"))),
+        ("units with gaps", _int(p.get("units_with_gaps"))),
+        ("periods in gaps", _int(p.get("gap_periods"))),
+        ("units seen once", _int(p.get("singleton_units"))),
+        ("periods per unit", f"{_int(opu.get('min'))}\u2013{_int(opu.get('max'))}, "
+                             f"median {_num(opu.get('median'))}"),
+        ("Ahrens-Pincus r", _num(p.get("unbalancedness"))),
+    ])
+    parts = [f'<section id="structure"><h2>Structure</h2>{facts}']
+    parts.append(_figure(svgs, "participation",
+                         "Each band is one participation pattern, as tall as its share of units; "
+                         "filled cells are the periods its units are observed in. The rarest patterns "
+                         "share the last band, shaded by the share of its units present."))
+    patterns = p.get("patterns") or []
+    if patterns:
+        total = max(int(p.get("units") or 0), 1)
+        rows = [[esc(x.get("periods"), 300), _int(x.get("units")), _pct((x.get("units") or 0) / total)]
+                for x in patterns[: lim.patterns]]
+        parts.append("<h3>Most common participation patterns</h3>")
+        parts.append(_table(["periods observed", "units", "share of units"], rows, cls="pa-narrow",
+                            numeric=[1, 2]))
+    parts.append(_figure(svgs, "periods-per-unit",
+                         "Units by the number of periods they are observed in. Units seen once "
+                         "carry no within variation."))
+    parts.append(_figure(svgs, "entry-exit",
+                         "Units present in each period (top); units seen for the first time, back after "
+                         "a gap, or seen for the last time (bottom). The first period's units are the starting cohort, and who "
+                         "leaves after the last period is not yet known."))
+    attrition = p.get("attrition") or []
+    if attrition:
+        rows = [[esc(a.get("period")), _int(a.get("present")), _int(a.get("entering")),
+                 _int(a.get("returning")),
+                 _int(a.get("leaving")) if a.get("leaving") is not None else '<span class="pa-quiet">not yet known</span>']
+                for a in attrition[: lim.periods_table]]
+        more = "" if len(attrition) <= lim.periods_table else _note(
+            f"First {lim.periods_table:,} of {len(attrition):,} periods.")
+        parts.append(f"<details><summary>Units in and out, period by period</summary>"
+                     f"{_table(['period', 'present', 'first seen', 'back after a gap', 'last seen'], rows, numeric=[1, 2, 3, 4])}"
+                     f"{more}</details>")
+    parts.append("</section>")
+    return "".join(parts)
+
+
+def _bar(share: Any) -> str:
+    if share is None:
+        return "\u2013"
+    x = max(0.0, min(1.0, float(share)))
+    return (f'<span class="pa-nw"><span class="pa-meter"><span style="width:{x * 100:.1f}%"></span></span>'
+            f'<span class="pa-meter-v">{_pct(x)}</span></span>')
+
+
+def _variation(result: Any, svgs: Mapping[str, str], lim: Limits) -> str:
+    cols = result.columns
+    parts = ['<section id="variation"><h2>Variation</h2>',
+             "<p>How much each column moves within units over time, against how much it differs "
+             "between units. A fixed-effects fit learns only from the within part.</p>"]
+    parts.append(_figure(svgs, "within-share",
+                         "Within share = within sum of squares / total sum of squares; colour is the "
+                         "column's kind."))
+    if cols is None or cols.height == 0:
+        parts.append("<p>No column besides the keys.</p></section>")
+        return "".join(parts)
+    rows = []
+    for c in cols.head(lim.columns).iter_rows(named=True):
+        kind = str(c.get("kind") or "")
+        changing = c.get("units_changing")
+        twice = c.get("units_observed_twice")
+        rows.append([
+            f"<code>{esc(c.get('name'), 80)}</code>",
+            esc(c.get("dtype")),
+            f'<span class="pa-kind pa-k-{esc(kind)}">{esc(kind)}</span>'
+            + ('<br><span class="pa-quiet">follows the period</span>' if c.get("absorbed_by_time") else ""),
+            _pct(c.get("missing_share")),
+            _int(c.get("distinct")),
+            f"{_int(changing)} of {_int(twice)}" if twice is not None else _int(changing),
+            _bar(c.get("within_share")),
+            _num(c.get("between_sd")),
+            _num(c.get("within_sd")),
+        ])
+    head = ["column", "type", "kind", "missing", "distinct", "units changing",
+            "within share", "sd between", "sd within"]
+    parts.append(_table(head, rows, cls="pa-vars", numeric=[3, 4, 5, 7, 8]))
+    if cols.height > lim.columns:
+        parts.append(_note(f"The first {lim.columns:,} of {cols.height:,} columns are shown."))
+    parts.append("</section>")
+    return "".join(parts)
+
+
+def _missing(result: Any, svgs: Mapping[str, str], lim: Limits) -> str:
+    import polars as pl
+
+    cols = result.columns
+    parts = ['<section id="missing"><h2>Missing data</h2>']
+    if cols is None or cols.height == 0 or "missing_share" not in cols.columns:
+        parts.append("<p>No column besides the keys.</p></section>")
+        return "".join(parts)
+    gaps = cols.filter(pl.col("missing_share") > 0).sort("missing_share", descending=True)
+    if gaps.height == 0:
+        parts.append("<p>No value is missing in any column.</p></section>")
+        return "".join(parts)
+    parts.append(_figure(svgs, "missing-map",
+                         "Share of rows missing each column, period by period; \u00d7 marks a column "
+                         "missing entirely in a period (often a question not asked in that wave)."))
+    whole: dict[str, list[str]] = {}
+    details = getattr(result, "details", None)
+    mbp = getattr(details, "missing_by_period", None)
+    if mbp is not None and mbp.height:
+        full = (mbp.filter(pl.col("missing_share") >= 1.0)
+                .group_by("column", maintain_order=True)
+                .agg(pl.col("period").cast(pl.String)))
+        whole = {r[0]: r[1] for r in full.iter_rows()}
+    rows = []
+    for c in gaps.head(lim.columns).iter_rows(named=True):
+        periods = whole.get(c["name"], [])
+        shown = ", ".join(esc(x, 20) for x in periods[:12]) + (" \u2026" if len(periods) > 12 else "")
+        rows.append([f"<code>{esc(c['name'], 80)}</code>", _bar(c["missing_share"]), shown])
+    parts.append(_table(["column", "missing share", "periods missing entirely"], rows, cls="pa-narrow"))
+    if gaps.height > lim.columns:
+        parts.append(_note(f"The first {lim.columns:,} of {gaps.height:,} columns with missing values are shown."))
+    parts.append("</section>")
+    return "".join(parts)
+
+
+def _names(values: Iterable[Any]) -> str:
+    items = [f"<code>{esc(v, 60)}</code>" for v in values or []]
+    return ", ".join(items) if items else '<span class="pa-quiet">none</span>'
+
+
+def _readiness(doc: Mapping[str, Any], svgs: Mapping[str, str], lim: Limits) -> str:
+    roles = doc.get("roles") or {}
+    parts = ['<section id="readiness"><h2>Model readiness</h2>',
+             "<p>Where each regressor sits for a Hausman-Taylor fit: whether it changes over time "
+             "and whether it is taken as correlated with the unit effect.</p>",
+             '<table class="pa-roles"><thead><tr><th></th><th>not correlated with the unit effect</th>'
+             "<th>correlated with the unit effect</th></tr></thead><tbody>"
+             f"<tr><th>changes over time</th><td><b>X1</b> {_names(roles.get('X1'))}</td>"
+             f"<td><b>X2</b> {_names(roles.get('X2'))}</td></tr>"
+             f"<tr><th>fixed over time</th><td><b>Z1</b> {_names(roles.get('Z1'))}</td>"
+             f"<td><b>Z2</b> {_names(roles.get('Z2'))}</td></tr></tbody></table>"]
+    parts.append(_identified(doc))
+    oc = doc.get("order_condition") or {}
+    if oc:
+        met = "met" if oc.get("met") else "<b>not met</b>"
+        parts.append(f"<p>Order condition: k1 = {_int(oc.get('k1'))} time-varying exogenous regressors "
+                     f"against g2 = {_int(oc.get('g2'))} correlated fixed ones, {met}.</p>")
+    parts.append(_figure(svgs, "first-stage",
+                         f"Bars: the first-stage F of each correlated fixed regressor on its excluded "
+                         f"instruments. Black tick: its Stock-Yogo (2005) critical value; dashed: "
+                         f"F = {lim.f_rule_of_thumb:g} (Staiger-Stock 1997); dotted: "
+                         f"F = {lim.f_t_test:g} (Lee, McCrary, Moreira and Porter 2022)."))
+    strength = doc.get("strength") or []
+    if strength:
+        rows = [[f"<code>{esc(s.get('endogenous'), 60)}</code>", esc(s.get("role")), _names(s.get("instruments")),
+                 _num(s.get("partial_f")), _num(s.get("robust_f")), _num(s.get("partial_r2")),
+                 esc("; ".join(str(d) for d in s.get("df") or [])), _num(s.get("critical_value")),
+                 esc(s.get("verdict")), _ar_cell(s)] for s in strength]
+        parts.append("<h3>First stages</h3>")
+        parts.append(_table(["regressor", "role", "instruments", "partial F", "robust F", "partial R\u00b2",
+                             "df", "critical value", "verdict", "Anderson-Rubin set"], rows, numeric=[3, 4, 5, 7]))
+        parts.append(_figure(svgs, "anderson-rubin",
+                             "Blue: the values of the coefficient the Anderson-Rubin test does not reject (robust "
+                             "to weak instruments; an arrow marks an unbounded end). Orange: the Hausman-Taylor "
+                             "estimate \u00b1 1.96 standard errors, which is reliable only with strong instruments."))
+    parts.append(_candidates(doc, lim))
+    trows = _test_rows(doc.get("tests") or {})
+    if trows:
+        parts.append("<h3>Tests</h3>")
+        parts.append(_table(["test", "statistic", "df", "p"], trows, cls="pa-narrow", numeric=[1, 2, 3]))
+    est = {k: v for k, v in (doc.get("estimates") or {}).items() if isinstance(v, Mapping)}
+    if est:
+        periods = set(doc.get("period_effects") or [])
+        names: list[str] = []
+        for v in est.values():
+            for n in (v.get("coef") or {}):
+                if n not in names and n not in periods and not (n.startswith("mean(") and n[5:-1] in periods):
+                    names.append(n)
+        erows = []
+        for n in names[: lim.columns]:
+            r = [f"<code>{esc(n, 60)}</code>"]
+            for v in est.values():
+                c = (v.get("coef") or {}).get(n)
+                s = (v.get("se") or {}).get(n)
+                pm = f'<br><span class="pa-quiet">\u00b1 {_num(s, 3)}</span>' if s is not None else ""
+                r.append("\u2013" if c is None else f"{_num(c, 4)}{pm}")
+            erows.append(r)
+        pretty = {**_FIT_NAMES, "amemiya_macurdy": "Amemiya-MaCurdy",
+                  "breusch_mizon_schmidt": "Breusch-Mizon-Schmidt"}
+        parts.append("<h3>Estimates (coefficient \u00b1 standard error)</h3>")
+        parts.append(_table(["regressor", *[esc(pretty.get(k, k)) for k in est]], erows,
+                            numeric=list(range(1, len(est) + 1))))
+        if periods:
+            parts.append(_note(f"The {len(periods)} period effects are estimated in every fit and not shown "
+                               "(see the JSON document)."))
+    vc = doc.get("variance_components") or {}
+    if vc:
+        parts.append(_facts([("sd of unit effect", _num(vc.get("sigma_u"))),
+                             ("sd of idiosyncratic error", _num(vc.get("sigma_e"))),
+                             ("mean quasi-demeaning weight", _num(vc.get("theta_mean")))]))
+    parts.append("</section>")
+    return "".join(parts)
+
+
+_FIT_NAMES = {"within": "within", "between": "between", "random": "random effects", "mundlak": "Mundlak",
+              "hausman_taylor": "Hausman-Taylor"}
+
+
+def _identified(doc: Mapping[str, Any]) -> str:
+    """Period effects, and which fits set which column aside."""
+    out = []
+    periods = doc.get("period_effects") or []
+    if periods:
+        out.append(f"<p>Period effects ({len(periods)}: {_names(periods[:3])}{', ...' if len(periods) > 3 else ''}) "
+                   "are exogenous, each instrumented by itself; they do not count in k1 and are left out of the "
+                   "contrasts.</p>")
+    for x in doc.get("not_identified") or []:
+        fits = list(x.get("fits") or [])
+        where = "every fit" if len(fits) >= len(_FIT_NAMES) else ", ".join(_FIT_NAMES.get(f, str(f)) for f in fits)
+        with_ = list(x.get("with") or [])
+        shown = _names(with_[:4]) + (", ..." if len(with_) > 4 else "")
+        out.append(f"<p>Not identified by {esc(where)}: <code>{esc(x.get('column'), 60)}</code> "
+                   f"({esc(x.get('reason'))}{'; with ' + shown if with_ else ''}).</p>")
+    return "".join(out)
+
+
+_TEST_LABELS = {"mundlak": "Mundlak: unit means of X jointly zero",
+                "hausman_within_random": "Hausman: within against random effects",
+                "overidentification": "Over-identifying restrictions (Sargan)",
+                "hausman_within_ht": "Hausman: within against Hausman-Taylor",
+                "attrition": "Attrition (Nijman-Verbeek): next period observed"}
+_NESTED_TESTS = {"overidentification_by_estimator": "Sargan, {}", "hausman_against_ht": "Hausman: Hausman-Taylor "
+                 "against {}"}
+_ESTIMATOR_NAMES = {"hausman_taylor": "Hausman-Taylor", "amemiya_macurdy": "Amemiya-MaCurdy",
+                    "breusch_mizon_schmidt": "Breusch-Mizon-Schmidt"}
+
+
+def _test_rows(tests: Mapping[str, Any]) -> list[list[str]]:
+    """One row per test; the per-estimator groups (Sargan of each, contrasts against
+    Hausman-Taylor) one row per estimator."""
+    rows = []
+
+    def row(label: str, t: Any) -> list[str]:
+        if not isinstance(t, Mapping):
+            return [esc(label), "\u2013", "\u2013", "not computed"]
+        return [esc(label), _num(t.get("statistic")), _int(t.get("df")), _p(t.get("p"))]
+
+    for key, t in tests.items():
+        if key in _NESTED_TESTS:
+            if not isinstance(t, Mapping):
+                continue
+            for name, sub in t.items():
+                if key == "overidentification_by_estimator" and name == "hausman_taylor":
+                    continue  # the Sargan row above
+                rows.append(row(_NESTED_TESTS[key].format(_ESTIMATOR_NAMES.get(name, name)), sub))
+            continue
+        rows.append(row(_TEST_LABELS.get(key, key), t))
+    return rows
+
+
+def _ar_cell(row: Mapping[str, Any]) -> str:
+    ar = row.get("anderson_rubin")
+    if not isinstance(ar, Mapping):
+        return '<span class="pa-quiet">not computed</span>' if row.get("anderson_rubin_note") else "\u2013"
+    if ar.get("kind") == "empty":
+        return "empty (rejected at every value)"
+    if ar.get("kind") == "whole line":
+        return "the whole line"
+
+    def end(v: Any, sign: str) -> str:
+        return f"{sign}\u221e" if v is None else _num(v, 4)
+
+    minus = "\u2212"
+    return " or ".join(f"[{end(lo, minus)}, {end(hi, '+')}]" for lo, hi in ar.get("intervals") or [])
+
+
+_STATE_WORDS = {"accepted": "yes", "assumed": "yes (assumed)", "invalid": "no", "undecided": "undecided"}
+
+
+def _candidates(doc: Mapping[str, Any], lim: Limits) -> str:
+    """Each X1 unit mean alone as an instrument, and the suggested set (saying when the set is rejected)."""
+    cands = doc.get("candidates") or []
+    if not cands:
+        return ""
+    rows = [[f"<code>{esc(c.get('endogenous'), 60)}</code>", f"<code>{esc(c.get('instrument'), 60)}</code>",
+             _num(c.get("partial_f")), _p(c.get("mundlak_p")), _p(c.get("c_p")),
+             esc(_STATE_WORDS.get(c.get("state"), "yes" if c.get("usable") else "no"))]
+            for c in cands[: lim.columns]]
+    parts = ["<h3>Candidate instruments</h3>",
+             _table(["regressor", "candidate", "partial F alone", "Mundlak p", "C-test p", "usable"], rows,
+                    numeric=[2, 3, 4])]
+    for sg in doc.get("suggestion") or []:
+        text = (f"Suggested for <code>{esc(sg.get('endogenous'), 60)}</code>: {_names(sg.get('instruments'))} "
+                f"(F {_num(sg.get('partial_f'))}, {esc(sg.get('verdict'))}).")
+        if sg.get("set_rejected"):
+            text += (" The over-identification tests reject the instrument set and no single mean can be blamed, "
+                     "so the validity of these instruments is not established.")
+        parts.append(f"<p>{text}</p>")
+    return "".join(parts)
+
+
+def _new_wave(doc: Mapping[str, Any], svgs: Mapping[str, str], lim: Limits) -> str:
+    schema = doc.get("schema") or {}
+    units = doc.get("units") or {}
+    periods = doc.get("periods") or {}
+    parts = ['<section id="new-wave"><h2>New wave</h2>']
+    parts.append(_facts([
+        ("units before", _int(units.get("base"))), ("units in the new wave", _int(units.get("new"))),
+        ("returning", _int(units.get("returning"))), ("new units", _int(units.get("entering"))),
+        ("not back", _int(units.get("not_returning"))),
+        ("periods before", esc(_span(periods.get("base")))), ("new periods", esc(_span(periods.get("new")))),
+        ("periods in both", esc(_span(periods.get("overlap"))) or "none"),
+    ]))
+    changes = []
+    if schema.get("added"):
+        changes.append(f"<li>New columns: {_names(schema['added'])}</li>")
+    if schema.get("removed"):
+        changes.append(f"<li>Columns gone: {_names(schema['removed'])}</li>")
+    for t in schema.get("type_changed") or []:
+        changes.append(f"<li><code>{esc(t.get('column'), 60)}</code> changed type from "
+                       f"<code>{esc(t.get('base'))}</code> to <code>{esc(t.get('new'))}</code></li>")
+    parts.append(f"<h3>Columns</h3><ul>{''.join(changes)}</ul>" if changes
+                 else "<p>Both waves have the same columns with the same types.</p>")
+    ref = esc(doc.get("reference") or "the panel so far")
+    parts.append(_figure(svgs, "wave-shift",
+                         f"Two-sample Kolmogorov-Smirnov statistic of each column: the new wave "
+                         f"against {ref}."))
+    parts.append(_figure(svgs, "shifted-distributions",
+                         f"Cumulative distributions of the most shifted numeric columns, the new wave "
+                         f"against {ref}; the widest vertical gap between the two lines is the KS statistic."))
+    cols = doc.get("columns") or []
+    if cols:
+        rows = [[f"<code>{esc(c.get('column'), 80)}</code>", _num(c.get("ks_statistic")), _p(c.get("ks_p")),
+                 _num(c.get("psi")), _pct(c.get("missing_base")), _pct(c.get("missing_new"))]
+                for c in cols[: lim.columns]]
+        parts.append(_table(["column", "KS statistic", "KS p", "population stability", "missing before",
+                             "missing now"], rows, numeric=[1, 2, 3, 4, 5]))
+    parts.append("</section>")
+    return "".join(parts)
+
+
+def _span(values: Any) -> str:
+    vals = list(values or [])
+    if not vals:
+        return ""
+    if len(vals) == 1:
+        return str(vals[0])
+    return f"{vals[0]} to {vals[-1]} ({len(vals)})"
+
+
+# --- page ------------------------------------------------------------------------------
+
+CSS = """
+.pa-report{--ink:#1F2430;--muted:#5F6673;--rule:#DDE1E7;--wash:#F5F7FA;--blue:#0072B2;--sky:#56B4E9;
+--green:#009E73;--orange:#E69F00;--verm:#D55E00;--purple:#CC79A7;
+font:15px/1.5 system-ui,-apple-system,"Segoe UI",Roboto,"Noto Sans","DejaVu Sans",sans-serif;color:var(--ink);
+max-width:1040px;margin:0 auto;padding:0 20px 48px;background:#fff}
+.pa-report *{box-sizing:border-box}
+.pa-report header{border-bottom:3px solid var(--ink);padding:26px 0 12px;margin-bottom:8px}
+.pa-report h1{font-size:26px;margin:0;letter-spacing:-.01em}
+.pa-report .pa-sub{color:var(--muted);margin:4px 0 0;font-size:14px}
+.pa-report nav{display:flex;flex-wrap:wrap;gap:4px 18px;padding:8px 0 4px;font-size:14px}
+.pa-report nav a{color:var(--blue);text-decoration:none;border-bottom:1px solid transparent}
+.pa-report nav a:hover{border-bottom-color:var(--blue)}
+.pa-report section{padding-top:14px;margin-top:18px;border-top:1px solid var(--rule)}
+.pa-report h2{font-size:20px;margin:0 0 10px}
+.pa-report h3{font-size:15px;margin:20px 0 8px;color:var(--ink)}
+.pa-report code{font:13px/1.3 ui-monospace,"DejaVu Sans Mono",Menlo,Consolas,monospace;background:var(--wash);
+padding:1px 4px;border-radius:3px;overflow-wrap:break-word}
+.pa-report .pa-lede{font-size:16px;max-width:82ch}
+.pa-report .pa-quiet{color:var(--muted);font-size:13px}
+.pa-report .pa-chips{display:flex;gap:8px;margin:4px 0 10px}
+.pa-report .pa-chip{border-radius:14px;padding:2px 12px;font-size:13px;border:1.5px solid}
+.pa-report .pa-chip.pa-error{border-color:var(--verm);color:#9B3D00}
+.pa-report .pa-chip.pa-warning{border-color:var(--orange);color:#7A5300}
+.pa-report .pa-chip.pa-note{border-color:var(--blue);color:#00507D}
+.pa-report .pa-tag{display:inline-block;min-width:62px;text-align:center;font-size:11px;font-weight:700;
+text-transform:uppercase;letter-spacing:.04em;border-radius:3px;padding:1px 6px;color:#fff}
+.pa-report .pa-tag.pa-error{background:var(--verm)}
+.pa-report .pa-tag.pa-warning{background:var(--orange);color:#2B1D00}
+.pa-report .pa-tag.pa-note{background:var(--blue)}
+.pa-report ol.pa-top{padding-left:22px;margin:6px 0}
+.pa-report ol.pa-top li{margin:5px 0}
+.pa-report .pa-scroll{overflow-x:auto;margin:8px 0}
+.pa-report table{border-collapse:collapse;font-size:13.5px;width:100%}
+.pa-report th{text-align:left;font-weight:600;color:var(--muted);border-bottom:1.5px solid var(--ink);
+padding:5px 8px;vertical-align:bottom;font-size:12.5px}
+.pa-report td{padding:5px 8px;border-bottom:1px solid var(--rule);vertical-align:top}
+.pa-report tbody tr:nth-child(even) td{background:#FAFBFC}
+.pa-report .pa-n{text-align:right;font-variant-numeric:tabular-nums;white-space:nowrap}
+.pa-report table.pa-findings td:nth-last-child(n+4){white-space:nowrap}
+.pa-report table.pa-findings td:last-child{min-width:34ch}
+.pa-report .pa-eg{margin-top:3px;font-size:12.5px;line-height:1.7}
+.pa-report .pa-eg code{margin-right:6px;font-size:12px;display:inline-block}
+.pa-report table.pa-vars td:first-child{white-space:nowrap}
+.pa-report table.pa-narrow{width:auto;min-width:50%}
+.pa-report td .pa-nw{white-space:nowrap}
+.pa-report dl.pa-facts{display:grid;grid-template-columns:repeat(auto-fill,minmax(150px,1fr));gap:8px;margin:8px 0 14px}
+.pa-report .pa-fact{background:var(--wash);border-left:3px solid var(--sky);padding:6px 10px}
+.pa-report .pa-fact dt{font-size:12px;color:var(--muted)}
+.pa-report .pa-fact dd{margin:0;font-size:17px;font-weight:600;font-variant-numeric:tabular-nums}
+.pa-report figure.pa-fig{margin:18px 0 10px}
+.pa-report svg.pa-figure{width:100%;height:auto;display:block}
+.pa-report figcaption{color:var(--muted);font-size:13px;margin-top:4px;max-width:80ch}
+.pa-report .pa-meter{display:inline-block;width:70px;height:8px;background:var(--rule);vertical-align:middle;
+border-radius:4px;overflow:hidden;margin-right:6px}
+.pa-report .pa-meter>span{display:block;height:100%;background:var(--blue)}
+.pa-report .pa-meter-v{font-variant-numeric:tabular-nums;font-size:12.5px}
+.pa-report .pa-kind{font-size:12px;white-space:nowrap;padding-left:8px;border-left:4px solid var(--muted)}
+.pa-report .pa-k-time-varying{border-color:var(--blue)}
+.pa-report .pa-k-nearly-time-invariant{border-color:var(--orange)}
+.pa-report .pa-k-time-invariant{border-color:var(--verm)}
+.pa-report .pa-k-period-only{border-color:var(--purple)}
+.pa-report .pa-k-constant{border-color:#9AA0A6}
+.pa-report table.pa-roles{width:auto;margin:8px 0}
+.pa-report table.pa-roles td,.pa-report table.pa-roles th{border:1px solid var(--rule);padding:8px 12px;min-width:200px}
+.pa-report table.pa-roles tbody th{color:var(--ink);background:var(--wash)}
+.pa-report details{margin:10px 0}
+.pa-report summary{cursor:pointer;color:var(--blue)}
+.pa-report footer{margin-top:30px;padding-top:10px;border-top:1px solid var(--rule);color:var(--muted);font-size:12.5px}
+@media print{.pa-report nav{display:none}.pa-report section{break-inside:auto}.pa-report figure{break-inside:avoid}}
+"""
+
+
+def _body(result: Any, inst: Mapping[str, Any] | None, comp: Mapping[str, Any] | None,
+          svgs: Mapping[str, str], lim: Limits) -> list[str]:
+    findings = _all_findings(result, inst, comp)
+    parts = [_summary(result, findings, lim), _findings(findings, lim), _structure(result, svgs, lim),
+             _variation(result, svgs, lim), _missing(result, svgs, lim)]
+    if inst is not None:
+        parts.append(_readiness(inst, svgs, lim))
+    if comp is not None:
+        parts.append(_new_wave(comp, svgs, lim))
+    return parts
+
+
+def _source(result: Any) -> str:
+    data = getattr(result, "data", None)
+    return str(getattr(data, "source", "") or "")
+
+
+def _page(result: Any, inst: Mapping[str, Any] | None, comp: Mapping[str, Any] | None,
+          svgs: Mapping[str, str], lim: Limits, title: str | None) -> str:
+    source = _source(result)
+    heading = title or "Panel audit"
+    present = {"readiness": inst is not None, "new-wave": comp is not None}
+    nav = "".join(f'<a href="#{k}">{v}</a>' for k, v in SECTIONS if present.get(k, True))
+    when = datetime.now(UTC).strftime("%Y-%m-%d %H:%M UTC")
+    version = esc(auditor.__version__)
+    sub = f"{esc(source, 160)} \u00b7 " if source else ""
+    suffix = " \u2014 " + esc(source, 80) if source else ""
+    body = "".join(_body(result, inst, comp, svgs, lim))
+    return (
+        "<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"
+        "<meta name=\"viewport\" content=\"width=device-width, initial-scale=1\">"
+        "<meta name=\"generator\" content=\"panel-audit\">"
+        f"<title>{esc(heading)}{suffix}</title>"
+        f"<style>{CSS}</style></head><body style=\"margin:0;background:#fff\">"
+        f'<div class="pa-report"><header><h1>{esc(heading)}</h1>'
+        f'<p class="pa-sub">{sub}written {when} by panel-audit {version}</p></header>'
+        f"<nav>{nav}</nav>{body}"
+        f"<footer>Written by panel-audit {version}. Figures are drawn from counts and shares "
+        "aggregated over units and periods, never one mark per row. The JSON output of the same "
+        "run carries every number shown here.</footer></div></body></html>\n"
+    )
+
+
+def render_html(
+    profile_result: Any,
+    instruments: Any = None,
+    comparison: Any = None,
+    *,
+    figures: bool | Mapping[str, Any] = True,
+    settings: Settings | None = None,
+    quantiles: Mapping[str, tuple[Sequence[float], Sequence[float]]] | None = None,
+    title: str | None = None,
+) -> str:
+    """The whole report as one self-contained HTML document (text, UTF-8 when written).
+
+    ``profile_result`` is a ProfileResult; ``instruments`` and ``comparison`` an
+    InstrumentsResult / CompareResult or their contract JSON (dicts); their
+    sections appear only when given. ``figures`` is True (draw them), False
+    (none), or figures already drawn by ``build_figures``. The page is kept
+    under the ``report.max_bytes`` limit by showing fewer table rows if needed.
+    """
+    lim = Limits.from_settings(settings or getattr(profile_result, "settings", None))
+    inst, comp = _as_dict(instruments), _as_dict(comparison)
+    if figures is True:
+        drawn = build_figures(profile_result, inst, comp, quantiles=quantiles, limits=lim)
+    elif figures is False:
+        drawn = {}
+    else:
+        drawn = dict(figures)
+    svgs = _svgs(drawn)
+    page = _page(profile_result, inst, comp, svgs, lim, title)
+    while len(page.encode("utf-8")) > lim.max_bytes and lim.columns > 10:
+        lim = replace(lim, columns=lim.columns // 2, findings=max(lim.findings // 2, 10),
+                      periods_table=max(lim.periods_table // 2, 10), patterns=max(lim.patterns // 2, 5))
+        page = _page(profile_result, inst, comp, svgs, lim, title)
+    return page
+
+
+def _fragment(sections: list[str]) -> str:
+    return f'<div class="pa-report"><style>{CSS}</style>{"".join(sections)}</div>'
+
+
+def profile_fragment(result: Any, *, figures: bool = True) -> str:
+    """The profile's sections as an HTML fragment for a notebook (``_repr_html_``)."""
+    lim = Limits.from_settings(getattr(result, "settings", None))
+    svgs = _svgs(build_figures(result, limits=lim)) if figures else {}
+    return _fragment(_body(result, None, None, svgs, lim))
+
+
+def instruments_fragment(result: Any, *, figures: bool = True) -> str:
+    """An instruments result (object or its JSON) as an HTML fragment for a notebook."""
+    from auditor.render import figures as fg
+
+    doc = _as_dict(result) or {}
+    lim = Limits.from_settings(getattr(result, "settings", None))
+    svgs = {}
+    if figures and doc.get("strength"):
+        svgs["first-stage"] = fg.to_svg(fg.first_stage_strength(
+            doc["strength"], rule_of_thumb=lim.f_rule_of_thumb, t_test_bound=lim.f_t_test), name="first-stage")
+        if any(r.get("anderson_rubin") for r in doc["strength"]):
+            svgs["anderson-rubin"] = fg.to_svg(fg.anderson_rubin_set(
+                doc["strength"], (doc.get("estimates") or {}).get("hausman_taylor")), name="anderson-rubin")
+    items = [{**dict(f), "source": "model readiness"} for f in doc.get("findings", []) or []]
+    items.sort(key=lambda d: _RANK.get(str(d.get("severity")), 9))
+    return _fragment([_findings(items, lim), _readiness(doc, svgs, lim)])
+
+
+def compare_fragment(result: Any, *, figures: bool = True) -> str:
+    """A compare result (object or its JSON) as an HTML fragment for a notebook."""
+    from auditor.render import figures as fg
+
+    doc = _as_dict(result) or {}
+    lim = Limits.from_settings(getattr(result, "settings", None))
+    svgs = {}
+    if figures and doc.get("columns"):
+        svgs["wave-shift"] = fg.to_svg(fg.wave_shift(doc["columns"], max_columns=lim.figure_columns),
+                                       name="wave-shift")
+    items = [{**dict(f), "source": "new wave"} for f in doc.get("findings", []) or []]
+    items.sort(key=lambda d: _RANK.get(str(d.get("severity")), 9))
+    return _fragment([_findings(items, lim), _new_wave(doc, svgs, lim)])
+
+
+# --- writing ---------------------------------------------------------------------------
+
+
+def write_report(
+    data: Any,
+    *,
+    unit: str | Sequence[str],
+    time: str,
+    out: str | Path,
+    outcome: str | None = None,
+    regressors: Sequence[str] | None = None,
+    correlated: Sequence[str] | None = None,
+    against: Any = None,
+    png_dir: str | Path | None = None,
+    settings: Settings | str | Path | None = None,
+    force: bool = False,
+    period_effects: bool = False,
+    treat_as_invariant: Sequence[str] = (),
+    outputs: OutputSet | None = None,
+    engine: str = "auto",
+    scheduler: str | None = None,
+) -> Path:
+    """Audit ``data`` and write the HTML report to ``out``; return the path written.
+
+    See :func:`build_report`, which also returns the findings behind the page.
+    """
+    return build_report(
+        data, unit=unit, time=time, out=out, outcome=outcome, regressors=regressors, correlated=correlated,
+        against=against, png_dir=png_dir, settings=settings, force=force, period_effects=period_effects,
+        treat_as_invariant=treat_as_invariant, outputs=outputs, engine=engine, scheduler=scheduler,
+    ).path
+
+
+@dataclass(frozen=True)
+class ReportRun:
+    """A written report: the page's ``path`` and every Finding it shows (profile, model
+    readiness and new wave), for the exit code of ``--fail-on``."""
+
+    path: Path
+    findings: tuple[Any, ...]
+
+
+def build_report(
+    data: Any,
+    *,
+    unit: str | Sequence[str],
+    time: str,
+    out: str | Path,
+    outcome: str | None = None,
+    regressors: Sequence[str] | None = None,
+    correlated: Sequence[str] | None = None,
+    against: Any = None,
+    png_dir: str | Path | None = None,
+    settings: Settings | str | Path | None = None,
+    force: bool = False,
+    period_effects: bool = False,
+    treat_as_invariant: Sequence[str] = (),
+    outputs: OutputSet | None = None,
+    engine: str = "auto",
+    scheduler: str | None = None,
+) -> ReportRun:
+    """Audit ``data`` and write the HTML report to ``out``.
+
+    Runs the profile, and the instruments check when ``outcome`` and
+    ``regressors`` are given (with ``period_effects`` and ``treat_as_invariant`` as
+    for ``instruments``). With ``against`` (the panel so far) ``data`` is the new
+    wave: the profile and the model readiness describe the appended panel (base +
+    new), and the new-wave section compares the wave with the base. With ``png_dir``
+    each figure is also written there as a PNG (names in ``FIGURE_FILES``). Refuses
+    (exit 2) to write over an input (the data files, the base, a rules file), over a
+    symbolic link, one path twice, or over an existing file unless ``force``. The page
+    and the figures are published together or not at all (auditor.io.outputs), so a full
+    disk or an interrupt leaves no partial file and no page without its figures.
+    ``outputs``: the caller's OutputSet, which then also publishes and keeps them.
+    ``engine`` and ``scheduler`` as in :func:`auditor.commands.profile.profile` (with ``dask`` and
+    ``against``, the base's profile runs on the cluster and the appended panel's sections
+    on this machine). Returns the ReportRun (path and findings).
+    """
+    from auditor.checks.config import Settings as _Settings
+    from auditor.checks.config import load_settings
+    from auditor.io.outputs import OutputSet, input_files
+
+    own = outputs is None
+    if outputs is None:
+        rules = settings if isinstance(settings, str | Path) else None
+        outputs = OutputSet(force=force, inputs=input_files(data, against, files=[rules]))
+    with contextlib.ExitStack() as stack:
+        if own:
+            stack.enter_context(outputs)
+        if not isinstance(settings, _Settings):
+            settings = load_settings(settings)
+        out_path = outputs.claim(out, "the report (--out)")
+        png_path = Path(png_dir) if png_dir is not None else None
+        if png_path is not None:
+            if png_path.exists() and not png_path.is_dir():
+                raise fail("report-png-dir-not-folder", path=png_dir)
+            for file in FIGURE_FILES.values():
+                outputs.claim(png_path / file, "a figure of --png-dir")
+        if (outcome is None) != (not regressors):
+            raise fail("report-model-needs-both")
+        result, inst, comp, quantiles, lim = _report_parts(
+            data, unit, time, outcome, regressors, correlated, against, settings, period_effects, treat_as_invariant,
+            engine, scheduler)
+        inst_doc, comp_doc = _as_dict(inst), _as_dict(comp)
+        drawn = build_figures(result, inst_doc, comp_doc, quantiles=quantiles, limits=lim)
+        page = render_html(result, inst_doc, comp_doc, figures=drawn, settings=settings)
+        outputs.stage(out_path, page)
+        if png_path is not None:
+            from auditor.render.figures import to_png
+
+            for name, fig in drawn.items():
+                outputs.stage(png_path / FIGURE_FILES[name], to_png(fig))
+        outputs.publish()
+    findings = (*result.findings, *(inst.findings if inst is not None else ()),
+                *(comp.wave_findings if comp is not None else ()))
+    return ReportRun(path=out_path, findings=tuple(findings))
+
+
+def _report_parts(data: Any, unit: Any, time: str, outcome: str | None, regressors: Sequence[str] | None,
+                  correlated: Sequence[str] | None, against: Any, settings: Settings, period_effects: bool,
+                  treat_as_invariant: Sequence[str], engine: str = "auto",
+                  scheduler: str | None = None) -> tuple[Any, Any, Any, Any, Limits]:
+    """The profile (of base + new with ``against``), model readiness and the comparison behind a report."""
+    from auditor.commands.profile import profile, profile_panel
+
+    comp = None
+    quantiles = None
+    lim = Limits.from_settings(settings)
+    model_data = data
+    model_engine = {"engine": engine, "scheduler": scheduler}
+    if against is not None:
+        from auditor.commands.compare import compare
+        from auditor.io.load import INTERNAL, PERIOD_ID
+
+        comp = compare(against, data, unit=unit, time=time, settings=settings, appended=True, engine=engine,
+                       scheduler=scheduler)
+        model_engine = {"engine": "memory", "scheduler": None}  # the appended panel is held here
+        if comp.appended is None or comp.sides is None:
+            raise RuntimeError("compare(appended=True) returned no appended panel")
+        result = profile_panel(comp.appended, settings)
+        model_data = comp.appended.frame.drop([c for c in INTERNAL if c in comp.appended.frame.columns])
+        base, new = comp.sides
+        # like with like, as compare does: the new wave against the base's last period
+        last = base.frame.filter(base.frame[PERIOD_ID] == base.n_periods - 1)
+        quantiles = shift_quantiles(last, new.frame, _as_dict(comp) or {},
+                                    columns=lim.shift_columns, points=lim.quantiles)
+    else:
+        result = profile(data, unit=unit, time=time, settings=settings, engine=engine, scheduler=scheduler)
+    inst = None
+    if outcome is not None and regressors:
+        from auditor.commands.instruments import instruments
+
+        inst = instruments(model_data, unit=unit, time=time, outcome=outcome, regressors=list(regressors),
+                           correlated=None if correlated is None else list(correlated), settings=settings,
+                           period_effects=period_effects, treat_as_invariant=list(treat_as_invariant),
+                           **model_engine)
+    return result, inst, comp, quantiles, lim
