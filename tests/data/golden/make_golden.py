@@ -15,6 +15,7 @@ that wrote them).
 
 from __future__ import annotations
 
+import os
 import subprocess
 import sys
 from pathlib import Path
@@ -34,6 +35,11 @@ DEMO_INSTRUMENTS = [
 #: the benchmark panel of tests/benchmarks/profile_bench.py, small and seeded
 BENCH_UNITS, BENCH_PERIODS, BENCH_SEED = 3_000, 8, 2026
 BENCH_KEYS = ["--unit", "orchard", "--time", "season"]
+#: one BLAS thread in every run: the last digits of the instruments document's statistics
+#: depend on how many threads the linear algebra splits its sums over (2 cores and 1 differ
+#: in the 16th digit), and a test session may have set these already (a local dask
+#: cluster sets them to 1 for its workers); fixed here, the bytes do not depend on the machine
+ENV = {"OPENBLAS_NUM_THREADS": "1", "OMP_NUM_THREADS": "1", "MKL_NUM_THREADS": "1"}
 BENCH_INSTRUMENTS = [
     "--outcome", "y", "--regressors", "x1,x2,x3,x4,x5,x6,elevation,planted", "--correlated", "x1,planted",
 ]
@@ -42,7 +48,7 @@ BENCH_INSTRUMENTS = [
 def _run(folder: Path, *argv: str) -> bytes:
     """stdout of ``python -m auditor.cli ARGV`` run in ``folder``; exit 0 or 1 (findings) expected."""
     proc = subprocess.run([sys.executable, "-m", "auditor.cli", *argv], cwd=folder, capture_output=True,
-                          stdin=subprocess.DEVNULL, check=False)
+                          stdin=subprocess.DEVNULL, check=False, env={**os.environ, **ENV})
     if proc.returncode not in (0, 1):
         raise RuntimeError(f"panel-audit {' '.join(argv)} exited {proc.returncode}: {proc.stderr.decode()[-500:]}")
     if not proc.stdout or b"No module named" in proc.stderr:
