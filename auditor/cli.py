@@ -88,7 +88,7 @@ def build_parser() -> argparse.ArgumentParser:
         prog=PROG,
         description="Audit a panel (units observed over periods) before estimating a panel model.",
     )
-    from auditor import __version__
+    from auditor.version import __version__
 
     parser.add_argument("--version", action="version", version=f"{PROG} {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
@@ -303,7 +303,7 @@ def _cmd_compare(args: argparse.Namespace) -> int:
 
 
 def _cmd_check(args: argparse.Namespace) -> int:
-    from auditor.checks.rules import check
+    from auditor.commands.check import check
     from auditor.render.text_check import render
 
     result = check(_data(args), rules=args.rules, unit=args.unit, time=args.time, against=args.against,
@@ -329,7 +329,7 @@ def _outputs(args: argparse.Namespace, *data: Any, files: Sequence[Any] = ()) ->
 
 def _cmd_rules(args: argparse.Namespace) -> int:
     if args.rules_command == "draft":
-        from auditor.checks.drafting import draft
+        from auditor.commands.draft import draft
 
         if not args.out:
             _say(draft(_data(args), unit=args.unit, time=args.time, settings=_settings(args)))
@@ -343,7 +343,7 @@ def _cmd_rules(args: argparse.Namespace) -> int:
     if args.rules_command == "export":
         import json
 
-        from auditor.checks.rules import export_suite
+        from auditor.contracts.rules import export_suite
 
         with _outputs(args, files=[args.file]) as outs:
             outs.claim(args.out, "--out")
@@ -359,7 +359,7 @@ def _cmd_rules(args: argparse.Namespace) -> int:
 
 def _cmd_report(args: argparse.Namespace) -> int:
     from auditor.checks.findings import exit_code
-    from auditor.render.html import build_report
+    from auditor.commands.report import build_report
 
     with _outputs(args, list(args.data), args.against) as outs:
         run = build_report(
@@ -380,8 +380,8 @@ def _cmd_report(args: argparse.Namespace) -> int:
             **_engine(args),
         )
         if args.json:
-            from auditor.commands.profile import tool_info
             from auditor.render.json import dumps
+            from auditor.version import tool_info
 
             _say(dumps({"tool": tool_info(), "report": str(run.path)}))
         else:

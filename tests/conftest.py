@@ -159,7 +159,7 @@ def record_document(command: str, document: Any, via: str) -> None:
 
 @pytest.fixture(autouse=True, scope="session")
 def _record_documents():
-    from auditor.checks.rules import CheckResult
+    from auditor.commands.check import CheckResult
     from auditor.commands.compare import CompareResult
     from auditor.commands.instruments import InstrumentsResult
     from auditor.commands.profile import ProfileResult

@@ -55,7 +55,7 @@ def test_headless_browser_renders_a_report_that_is_not_blank(tmp_path: Path):
     browser = _browser()
     if browser is None:
         pytest.skip("no chromium on PATH: .ci/run installs Debian's chromium with apt-get when it can")
-    from auditor.render.html import write_report
+    from auditor.commands.report import write_report
 
     data = tmp_path / "orchards.parquet"
     _panel().write_parquet(data)

@@ -252,7 +252,7 @@ def test_compare_on_the_cluster_equals_the_memory_engine(scheduler, tmp_path, cl
 
 
 def test_report_on_the_cluster_shows_the_memory_engines_figures(scheduler, waves, tmp_path):
-    from auditor.render.html import build_report
+    from auditor.commands.report import build_report
 
     kw = {"unit": "hive", "time": "season", "outcome": "honey_kg", "regressors": ["frames", "colonies", "apiary"],
           "correlated": []}

@@ -54,9 +54,9 @@ def _small() -> pl.DataFrame:
 
 def test_too_large_text_file_is_refused(monkeypatch, tmp_path):
     # a machine with 1 KiB of memory: the small CSV counts as larger than half of it
-    import auditor.io.load
+    import auditor.io.sources
 
-    monkeypatch.setattr(auditor.io.load, "memory_bytes", lambda: 1024)
+    monkeypatch.setattr(auditor.io.sources, "memory_bytes", lambda: 1024)
     p = tmp_path / "big.csv"
     p.write_text("orchard_id,season,y\n" + "a,1,1.0\n" * 200)
     assert _code(lambda: _profile(p)) == "too-large"

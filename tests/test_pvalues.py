@@ -12,7 +12,8 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from auditor.stats.pvalues import chi2_sf, f_sf, normal_sf, p_phrase
+from auditor.stats.pvalues import chi2_sf, f_sf, normal_sf
+from auditor.vocab import p_phrase
 
 POINTS = [0.0, 1e-300, 1e-8, 0.3, 1.0, 2.5, 7.9, 40.0, 1e3, math.inf]
 

@@ -15,6 +15,7 @@ import numpy as np
 import polars as pl
 import pytest
 
+from auditor.commands import report as report_command
 from auditor.errors import AuditError
 from auditor.render import html as report
 
@@ -204,7 +205,7 @@ def test_report_never_overwrites_its_input(tmp_path):
     orchard_frame().write_csv(data)
     before = data.read_bytes()
     with pytest.raises(AuditError) as err:
-        report.write_report(data, unit="orchard", time="season", out=data, force=True)
+        report_command.write_report(data, unit="orchard", time="season", out=data, force=True)
     assert err.value.code == "output-is-input"
     assert data.read_bytes() == before
 
@@ -212,7 +213,7 @@ def test_report_never_overwrites_its_input(tmp_path):
 def test_report_never_overwrites_the_base_wave(tmp_path):
     base, new = EXAMPLES / "orchards.csv", EXAMPLES / "orchards_next_season.csv"
     with pytest.raises(AuditError) as err:
-        report.write_report(new, unit="orchard_id", time="season", out=base, against=base, force=True)
+        report_command.write_report(new, unit="orchard_id", time="season", out=base, against=base, force=True)
     assert err.value.code == "output-is-input"
 
 
@@ -222,10 +223,10 @@ def test_report_keeps_an_existing_file_without_force(tmp_path):
     out = tmp_path / "audit.html"
     out.write_text("earlier report")
     with pytest.raises(AuditError) as err:
-        report.write_report(data, unit="orchard", time="season", out=out)
+        report_command.write_report(data, unit="orchard", time="season", out=out)
     assert err.value.code == "output-exists"
     assert out.read_text() == "earlier report"
-    report.write_report(data, unit="orchard", time="season", out=out, force=True)
+    report_command.write_report(data, unit="orchard", time="season", out=out, force=True)
     assert out.read_text().startswith("<!DOCTYPE html>")
 
 
@@ -244,7 +245,7 @@ def test_renderer_failing_midway_leaves_no_partial_file(tmp_path, monkeypatch):
 
     monkeypatch.setattr(report, "_variation", broken)  # after summary, findings, structure
     with pytest.raises(RuntimeError):
-        report.write_report(data, unit="orchard", time="season", out=out)
+        report_command.write_report(data, unit="orchard", time="season", out=out)
     assert not out.exists()
     assert _files(tmp_path) == ["orchards.csv"]  # no partial page, no temporary file
 
@@ -262,7 +263,7 @@ def test_write_interrupted_before_the_rename_keeps_the_old_file(tmp_path, monkey
 
     monkeypatch.setattr(auditor.io.outputs.os, "replace", interrupted)
     with pytest.raises(KeyboardInterrupt):
-        report.write_report(data, unit="orchard", time="season", out=out, force=True)
+        report_command.write_report(data, unit="orchard", time="season", out=out, force=True)
     assert out.read_text() == "earlier report"
     assert _files(tmp_path) == ["audit.html", "orchards.csv"]  # the temporary file is gone
 
@@ -271,7 +272,7 @@ def test_png_dir_receives_each_drawn_figure(tmp_path):
     data = tmp_path / "orchards.csv"
     orchard_frame().write_csv(data)
     pngs = tmp_path / "figures"
-    report.write_report(data, unit="orchard", time="season", out=tmp_path / "a.html", png_dir=pngs)
+    report_command.write_report(data, unit="orchard", time="season", out=tmp_path / "a.html", png_dir=pngs)
     names = sorted(p.name for p in pngs.iterdir())
     assert names == sorted(["participation.png", "periods_per_unit.png", "entry_exit.png",
                             "within_share.png", "missing_map.png"])
@@ -284,7 +285,7 @@ def test_png_dir_that_is_a_file_is_refused(tmp_path):
     orchard_frame().write_csv(data)
     (tmp_path / "figs").write_text("x")
     with pytest.raises(AuditError) as err:
-        report.write_report(data, unit="orchard", time="season", out=tmp_path / "a.html",
+        report_command.write_report(data, unit="orchard", time="season", out=tmp_path / "a.html",
                             png_dir=tmp_path / "figs")
     assert err.value.code == "report-png-dir-not-folder"
     assert not (tmp_path / "a.html").exists()
@@ -294,7 +295,7 @@ def test_outcome_without_regressors_is_refused(tmp_path):
     data = tmp_path / "orchards.csv"
     orchard_frame().write_csv(data)
     with pytest.raises(AuditError) as err:
-        report.write_report(data, unit="orchard", time="season", out=tmp_path / "a.html", outcome="yield_t")
+        report_command.write_report(data, unit="orchard", time="season", out=tmp_path / "a.html", outcome="yield_t")
     assert err.value.code == "report-model-needs-both"
 
 
@@ -341,7 +342,7 @@ def test_cli_report_honours_fail_on(tmp_path, cli):
 
 def test_new_wave_report_from_the_shipped_example(tmp_path):
     out = tmp_path / "wave.html"
-    report.write_report(EXAMPLES / "orchards_next_season.csv", unit="orchard_id", time="season",
+    report_command.write_report(EXAMPLES / "orchards_next_season.csv", unit="orchard_id", time="season",
                         out=out, against=EXAMPLES / "orchards.csv")
     page = out.read_text(encoding="utf-8")
     assert "new-wave" in section_ids(page)
@@ -354,7 +355,7 @@ def test_shift_quantiles_match_numpy():
     base = pl.DataFrame({"x": rng.normal(0, 1, 500), "y": rng.normal(0, 1, 500)})
     new = pl.DataFrame({"x": rng.normal(1, 1, 300), "y": rng.normal(0, 1, 300)})
     doc = {"columns": [{"column": "x", "ks_statistic": 0.4}, {"column": "y", "ks_statistic": 0.05}]}
-    q = report.shift_quantiles(base, new, doc, columns=1, points=11)
+    q = report_command.shift_quantiles(base, new, doc, columns=1, points=11)
     assert list(q) == ["x"]  # the most shifted column only
     probs = np.linspace(0, 1, 11)
     np.testing.assert_allclose(q["x"][0], np.quantile(base["x"].to_numpy(), probs), rtol=1e-12)

@@ -389,10 +389,10 @@ def test_streaming_many_periods_equal_in_memory(tmp_path):
 
 
 def test_a_gzip_bomb_is_refused_before_it_fills_memory(tmp_path, monkeypatch):
-    import auditor.io.load as load
+    import auditor.io.sources as sources
     from auditor.io.sources import text_limit
 
-    monkeypatch.setattr(load, "memory_bytes", lambda: 64 * 2**20)  # text limit: 4 MiB
+    monkeypatch.setattr(sources, "memory_bytes", lambda: 64 * 2**20)  # text limit: 4 MiB
     limit = text_limit()
     assert limit == 4 * 2**20
     path = tmp_path / "bomb.csv.gz"
@@ -445,7 +445,7 @@ def _write(tmp_path, name, text) -> Path:
 
 
 def test_check_on_integers_beyond_int64(tmp_path):
-    from auditor.checks.rules import check
+    from auditor.commands.check import check
 
     data = _write(tmp_path, "big.csv", "u,t,big\na,1,99999999999999999999\na,2,1\nb,1,3\nb,2,-99999999999999999999\n")
     rules = _write(tmp_path, "c.yaml", "panel: {unit: u, time: t}\ncolumns:\n  big: {min: 0, max: 99999999999999999999}\n")
@@ -456,7 +456,7 @@ def test_check_on_integers_beyond_int64(tmp_path):
 
 
 def test_check_on_a_column_with_an_empty_name(tmp_path):
-    from auditor.checks.rules import check
+    from auditor.commands.check import check
 
     data = _write(tmp_path, "e.csv", "u,t,\na,1,1\na,2,2\nb,1,3\nb,2,4\n")
     rules = _write(tmp_path, "c.yaml", "panel: {unit: u, time: t}\ncolumns:\n  '': {max: 3}\n")

@@ -19,8 +19,9 @@ import polars as pl
 import pytest
 import yaml
 
-from auditor.checks.drafting import draft
-from auditor.checks.rules import check, export_suite
+from auditor.commands.check import check
+from auditor.commands.draft import draft
+from auditor.contracts.rules import export_suite
 from auditor.errors import AuditError
 
 # --- helpers ---------------------------------------------------------------------
@@ -342,7 +343,7 @@ def test_draft_fails_on_next_season_with_planted_changes_named(tmp_path):
 def test_export_is_a_suite_great_expectations_reruns_with_polars_counts(random_panel, tmp_path):
     import great_expectations as gx
 
-    from auditor.checks.rules import to_pandas_once
+    from auditor.contracts.rules import to_pandas_once
 
     path = write(tmp_path, ROW_CONTRACT)
     doc = export_suite(path)
@@ -562,7 +563,7 @@ def test_draft_passes_on_composite_keys_monthly_dates_and_gaps(tmp_path):
 
 def test_an_exception_inside_great_expectations_is_exit_2_naming_the_rule(tmp_path, monkeypatch):
     # hand the library a column it cannot compare with a number: it reports an exception
-    import auditor.checks.rules as rules_mod
+    import auditor.contracts.rules as rules_mod
 
     real = rules_mod.to_pandas_once
 

@@ -30,9 +30,9 @@ from conftest import run_cli
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 import libraries as L  # noqa: E402
 
-from auditor.checks.drafting import draft  # noqa: E402
-from auditor.checks.rules import check  # noqa: E402
+from auditor.commands.check import check  # noqa: E402
 from auditor.commands.compare import change_scale, compare, numeric_psi  # noqa: E402
+from auditor.commands.draft import draft  # noqa: E402
 
 KEYS = {"unit": "library_id", "time": "year"}
 
@@ -243,7 +243,7 @@ def test_a_question_left_unanswered(files, panel):
 
 
 def test_report_against_base_profiles_the_appended_panel(files, panel, tmp_path):
-    from auditor.render.html import build_report
+    from auditor.commands.report import build_report
 
     base, clean = panel
     out = tmp_path / "wave.html"
@@ -681,7 +681,7 @@ def test_invariant_counts_equal_pandas_over_column_types():
     # the tolerance rule of methods.md written out with pandas min, max and mean
     import datetime as dt
 
-    from auditor.checks.rules import invariant_counts
+    from auditor.contracts.rules import invariant_counts
     from auditor.io.load import load_panel
 
     rng = np.random.default_rng(12)

@@ -3,7 +3,7 @@
 A rules file is YAML. Its ``thresholds`` part (or, in a plain thresholds file, the
 top level) holds the same sections and keys as ``rules/defaults.yaml``; its
 ``severities`` part maps check names to ``error``/``warning``/``note``. The
-``panel`` and ``columns`` parts of a panel contract are read by auditor.checks.rules.
+``panel`` and ``columns`` parts of a panel contract are read by auditor.contracts.rules.
 """
 
 from __future__ import annotations

@@ -402,7 +402,7 @@ def check_or_fail(code: str) -> Explanation:
 def as_document(code: str | None = None) -> dict:
     """The explanations as a JSON document: every code, or the one named (with its severity and command)."""
     from auditor.checks.findings import CHECKS
-    from auditor.commands.profile import tool_info
+    from auditor.version import tool_info
 
     codes = [code] if code else list(EXPLANATIONS)
     out = []

@@ -9,13 +9,19 @@ from __future__ import annotations
 
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass, field
-from typing import TYPE_CHECKING, Any
-
-if TYPE_CHECKING:  # pragma: no cover
-    from auditor.checks.config import Settings
+from typing import Any, Protocol
 
 SEVERITIES: tuple[str, ...] = ("error", "warning", "note")
 _RANK = {name: i for i, name in enumerate(SEVERITIES)}
+
+
+class SeverityOverrides(Protocol):
+    """What :func:`make` needs of the settings (auditor.checks.config.Settings has it):
+    the severity a rules file gives a check, or the default."""
+
+    def severity(self, check: str, default: str) -> str:
+        """The severity of ``check`` (``default`` when the rules file leaves it)."""
+        ...
 
 
 @dataclass(frozen=True)
@@ -171,7 +177,7 @@ class Finding:
 
 def make(
     check: str,
-    settings: Settings | None,
+    settings: SeverityOverrides | None,
     message: str,
     *,
     column: str | None = None,

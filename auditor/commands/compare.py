@@ -35,7 +35,7 @@ import dataclasses
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass, field
-from datetime import date, timedelta
+from datetime import date
 from typing import Any
 
 import numpy as np
@@ -45,11 +45,11 @@ from auditor.checks.config import Settings, load_settings
 from auditor.checks.findings import Finding, make, sort_findings
 from auditor.errors import AuditError, fail, short_list
 from auditor.io.load import INTERNAL, UNIT_ID, Panel, load_panel, parse_unit
-from auditor.io.periods import grid_step, scale_for
+from auditor.io.periods import grid_step
+from auditor.io.waves import POS, key_text, label_at, period_scale
 from auditor.stats.pvalues import preload
 
 SECTION = "compare"
-POS = "__pa_pos"  # the period's position on the scale shared by base and new
 BASE_UNIT = "__pa_base_unit"  # the base's unit code of a new row's unit (null: entering)
 MAD_TO_SD = 1.4826  # 1 / Phi^-1(3/4): the MAD of normal data times this is its sd (common practice)
 KS_EXACT_MAX_N = 10_000  # scipy.stats.ks_2samp's method 'auto' computes exactly up to this sample size
@@ -111,8 +111,8 @@ class CompareResult:
 
     def to_dict(self) -> dict[str, Any]:
         """The contract's JSON document (plus ``reference``, ``rows`` and a ``scope`` per finding)."""
-        from auditor import __version__
-        from auditor.render.json import clean
+        from auditor.version import __version__
+        from auditor.vocab import clean
 
         findings = []
         for f in self.findings:
@@ -356,16 +356,6 @@ def _is_levels(dt: pl.DataType) -> bool:
     return _family(dt) in ("text", "boolean")
 
 
-def key_text(col: str, dt: pl.DataType) -> pl.Expr:
-    """A unit key column as text for matching across files (a float key holding whole
-    numbers loses its ``.0``, so 7.0 and 7 are one unit)."""
-    c = pl.col(col)
-    if dt.is_float():
-        whole = c.is_finite() & (c == c.round(0))
-        return pl.when(whole).then(c.cast(pl.Int64, strict=False).cast(pl.String)).otherwise(c.cast(pl.String))
-    return c.cast(pl.String)
-
-
 def _clean(col: str, dt: pl.DataType) -> pl.Expr:
     """The column with NaN and infinities as null (floats); others unchanged."""
     c = pl.col(col)
@@ -379,21 +369,6 @@ def _missing(col: str, dt: pl.DataType) -> pl.Expr:
     if dt.is_float():
         e = e | pl.col(col).is_nan()
     return e
-
-
-def label_at(pos: int, freq: str) -> Any:
-    """The period label of a position on the scale (also for periods nobody holds)."""
-    if freq in ("integer", "year"):
-        return int(pos)
-    if freq == "quarter":
-        return f"{pos // 4}Q{pos % 4 + 1}"
-    if freq == "month":
-        return f"{pos // 12:04d}-{pos % 12 + 1:02d}"
-    if freq == "week":
-        return (date(1970, 1, 1) + timedelta(days=7 * pos)).isoformat()
-    if freq == "day":
-        return (date(1970, 1, 1) + timedelta(days=pos)).isoformat()
-    return int(pos)
 
 
 def _json_value(v: Any) -> Any:
@@ -471,40 +446,6 @@ def _profile(data: Any, units: tuple[str, ...], time: str, settings: Settings, e
     from auditor.commands.profile import profile
 
     return profile(data, unit=list(units), time=time, settings=settings, engine=engine, scheduler=scheduler)
-
-
-def period_scale(
-    base: Panel, new: Panel, time: str
-) -> tuple[Any, pl.Expr, pl.Expr]:
-    """One period scale for both sides; expressions giving each side's row position."""
-    bt = base.frame.select(pl.col(time).unique()).to_series()
-    nt = new.frame.select(pl.col(time).unique()).to_series()
-    same = bt.dtype == nt.dtype
-    bj = bt if same else bt.cast(pl.String)
-    nj = nt if same else nt.cast(pl.String)
-    union = pl.concat([bj, nj]).unique()
-    try:
-        scale = scale_for(time, union)
-    except AuditError as exc:
-        if exc.code != "time-unorderable":
-            raise
-        raise fail(
-            "compare-time-mismatch",
-            column=time,
-            base=short_list([str(v) for v in bt.head(3).to_list()], 3),
-            new=short_list([str(v) for v in nt.head(3).to_list()], 3),
-        ) from None
-    pos_of = dict(zip(scale.values, scale.positions, strict=True))
-
-    def mapping(raw: pl.Series, joined: pl.Series) -> pl.Expr:
-        return pl.col(time).replace_strict(
-            old=raw, new=[pos_of[v] for v in joined.to_list()], return_dtype=pl.Int64
-        ).alias(POS)
-
-    return scale, mapping(bt, bj), mapping(nt, nj)
-
-
-# --- the comparison ---------------------------------------------------------------------
 
 
 def compare(

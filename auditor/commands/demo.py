@@ -49,11 +49,11 @@ def _json_text(doc: dict[str, Any]) -> str:
 
 
 def _has_html_report() -> bool:
-    if importlib.util.find_spec("auditor.render.html") is None:
+    if importlib.util.find_spec("auditor.commands.report") is None:
         return False
-    from auditor.render import html
+    from auditor.commands import report
 
-    return hasattr(html, "write_report")
+    return hasattr(report, "write_report")
 
 
 #: where ``panel-audit demo`` writes without --out (in the current folder)
@@ -104,7 +104,7 @@ def run_demo(out: Path | str | None = None, *, force: bool = False) -> DemoRun:
     )
 
     if _has_html_report():
-        from auditor.render.html import write_report
+        from auditor.commands.report import write_report
 
         paths["report"] = write_report(
             registry,

@@ -15,13 +15,7 @@ from auditor.io.load import Panel, load_panel
 from auditor.stats.moments import Passes
 from auditor.stats.structure import compute_structure, structure_findings
 from auditor.stats.variation import compute_variation, run_passes, variation_findings
-
-
-def tool_info() -> dict[str, str]:
-    """The ``tool`` object every JSON document starts with."""
-    from auditor import __version__
-
-    return {"name": "panel-audit", "version": __version__}
+from auditor.version import tool_info
 
 
 @dataclass(frozen=True)
@@ -55,7 +49,7 @@ class ProfileResult:
 
     def to_dict(self) -> dict[str, Any]:
         """The contract's JSON document (non-finite numbers as null)."""
-        from auditor.render.json import clean
+        from auditor.vocab import clean
 
         return clean(
             {

@@ -11,7 +11,7 @@ Only what these rules need is read from the base: the key columns and the column
 rules name (a projection the Parquet and CSV readers apply), so a base kept as a
 folder of waves is read once, narrowly. Units are matched by their keys as text and
 periods placed on one scale for both inputs, as ``compare`` does
-(:func:`auditor.commands.compare.key_text`, :func:`auditor.commands.compare.period_scale`).
+(:func:`auditor.io.waves.key_text`, :func:`auditor.io.waves.period_scale`).
 """
 
 from __future__ import annotations
@@ -23,7 +23,7 @@ import polars as pl
 
 from auditor.checks.config import Settings
 from auditor.checks.contract import ColumnRules, Contract
-from auditor.checks.rules import RuleResult, count, fit_to_type, type_family
+from auditor.contracts.rules import RuleResult, count, fit_to_type, type_family
 from auditor.io.load import UNIT_ID, Panel, _to_lazy, load_panel
 
 BASE_UNIT = "__pa_base_unit"
@@ -42,7 +42,7 @@ def across_waves(
     Returns (the rule results, each with ``across_waves`` true; a description of the
     base read). Raises AuditError (exit 2) when the base cannot be read or lacks a key.
     """
-    from auditor.commands.compare import key_text, period_scale
+    from auditor.io.waves import key_text, period_scale
 
     units, time = new.unit, new.time
     limit = int(settings.get("check", "examples"))
@@ -99,7 +99,7 @@ class _Judge:
     tol: float
 
     def label(self, pos: int) -> Any:
-        from auditor.commands.compare import label_at
+        from auditor.io.waves import label_at
 
         return label_at(pos, self.scale.frequency)
 
@@ -108,7 +108,7 @@ class _Judge:
 
     def result(self, rule: str, column: str | None, failing: int, message: str,
                examples: list[dict[str, Any]] = ()) -> RuleResult:  # type: ignore[assignment]
-        from auditor.render.json import clean
+        from auditor.vocab import clean
 
         return RuleResult(rule, "panel", column, failing == 0, failing, message,
                           examples=tuple(clean(e) for e in list(examples)[: self.limit]), across_waves=True)

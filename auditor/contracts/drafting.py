@@ -1,4 +1,4 @@
-"""``panel-audit rules draft``: a starting contract for the next delivery, learned from the waves so far.
+"""The drafting of a contract (``panel-audit rules draft``, auditor.commands.draft): a starting contract for the next delivery, learned from the waves so far.
 
 The draft states what a clean next wave of the same panel keeps, and comments each
 rule with the evidence it came from:
@@ -36,8 +36,8 @@ from typing import Any
 import numpy as np
 import polars as pl
 
-from auditor.checks.config import Settings, default_settings
-from auditor.checks.rules import (
+from auditor.checks.config import Settings
+from auditor.contracts.rules import (
     attrition_shares,
     follows_period_rule,
     integer_range,
@@ -47,31 +47,18 @@ from auditor.checks.rules import (
     type_family,
     unit_periods,
 )
-from auditor.io.load import PERIOD_ID, UNIT_ID, Panel, load_panel
+from auditor.io.load import PERIOD_ID, UNIT_ID, Panel
 
 COMMENT_AT = 40  # the column where a rule's comment starts, when the rule is shorter
 
 
-def draft(
-    data: Any,
-    *,
-    unit: str | list[str],
-    time: str,
-    settings: Settings | None = None,
-) -> str:
-    """A contract for the next delivery learned from ``data`` (the waves so far), as YAML text.
+def contract_text(panel: Panel, columns: list[dict[str, Any]], settings: Settings) -> str:
+    """The drafted contract of ``panel`` as YAML text, from its profile's ``columns`` (one
+    dict per column, the profile's column facts): a ``panel`` part and a ``columns`` part,
+    each rule commented with the evidence behind it."""
+    from auditor.version import __version__
 
-    Returns the text of the rules file: a ``panel`` part and a ``columns`` part, each
-    rule commented with the evidence behind it. Raises AuditError (exit 2) when
-    ``data`` cannot be used as a panel.
-    """
-    from auditor import __version__
-    from auditor.commands.profile import profile_panel
-
-    settings = settings or default_settings()
-    panel = load_panel(data, unit, time, settings=settings)
-    prof = profile_panel(panel, settings)
-    facts = {r["name"]: r for r in prof.columns.iter_rows(named=True)}
+    facts = {r["name"]: r for r in columns}
     drafter = _Drafter(panel, facts, settings)
     panel_doc, column_doc = drafter.panel_part(), drafter.columns_part()
     head = [

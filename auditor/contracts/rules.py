@@ -1,4 +1,5 @@
-"""Running a panel contract (``panel-audit check``), drafting one and exporting its row rules.
+"""A panel contract's rules judged on a loaded panel (``panel-audit check``, auditor.commands.check),
+and the row rules exported as a great-expectations suite (``panel-audit rules export``).
 
 Row-level rules (a column's values one row at a time: range, allowed values,
 missing share, text pattern, uniqueness) run through great-expectations: an
@@ -35,9 +36,8 @@ from auditor.checks.contract import (
     period_text,
     read_contract,
 )
-from auditor.checks.findings import Finding, make
 from auditor.errors import fail, short_list
-from auditor.io.load import PERIOD_ID, UNIT_ID, Panel, load_panel, parse_unit
+from auditor.io.load import PERIOD_ID, UNIT_ID, Panel, parse_unit
 
 ROW_RULES_GX: tuple[str, ...] = ("min", "max", "allowed", "max_missing", "pattern", "unique")
 GX_ENGINE = "great-expectations"
@@ -72,7 +72,7 @@ class RuleResult:
         ``passed: false`` and ``failing: null``; a rule judged across the boundary
         between the panel so far and the new wave has ``across_waves: true``.
         """
-        from auditor.render.json import clean
+        from auditor.vocab import clean
 
         return clean(
             {
@@ -90,163 +90,13 @@ class RuleResult:
         )
 
 
-@dataclass(frozen=True)
-class CheckResult:
-    """A contract run on a panel: every rule's result, in contract order.
-
-    ``timings`` holds seconds spent loading, converting to pandas, in
-    great-expectations and in the polars panel rules (not part of the JSON).
-    """
-
-    rules: tuple[RuleResult, ...]
-    contract: str
-    source: str
-    findings: tuple[Finding, ...]
-    timings: dict[str, float] = field(default_factory=dict)
-    base_source: str | None = None
-    examples_shown: int = 5
-
-    def shown(self) -> CheckResult:
-        """The result with each rule's and finding's examples cut to the configured number
-        (after ``check(..., keep_all=True)`` kept every failure)."""
-        import dataclasses
-
-        k = self.examples_shown
-        return dataclasses.replace(
-            self,
-            rules=tuple(dataclasses.replace(r, examples=tuple(r.examples[:k])) for r in self.rules),
-            findings=tuple(dataclasses.replace(f, examples=tuple(f.examples[:k])) for f in self.findings),
-        )
-
-    @property
-    def passed(self) -> bool:
-        """True when every rule holds."""
-        return all(r.passed for r in self.rules)
-
-    @property
-    def failed(self) -> tuple[RuleResult, ...]:
-        """The rules that were evaluated and do not hold."""
-        return tuple(r for r in self.rules if r.evaluated and not r.passed)
-
-    @property
-    def not_evaluated(self) -> tuple[RuleResult, ...]:
-        """The rules that could not run on the column's type (each says why)."""
-        return tuple(r for r in self.rules if not r.evaluated)
-
-    def to_dict(self) -> dict[str, Any]:
-        """The contract's ``check`` JSON document (``against``: the base of the
-        cross-wave rules, or null)."""
-        from auditor.commands.profile import tool_info
-
-        return {
-            "tool": tool_info(),
-            "passed": self.passed,
-            "contract": self.contract,
-            "source": self.source,
-            "against": self.base_source,
-            "summary": {
-                "rules": len(self.rules),
-                "failed": len(self.failed),
-                "not_evaluated": len(self.not_evaluated),
-            },
-            "rules": [r.to_dict() for r in self.rules],
-        }
-
-
-# --- the entry points -------------------------------------------------------------
-
-
-def check(
-    data: Any,
-    *,
-    rules: str | Path,
-    unit: str | list[str] | None = None,
-    time: str | None = None,
-    against: Any = None,
-    keep_all: bool = False,
-) -> CheckResult:
-    """Run the contract in the file ``rules`` on ``data`` (path(s) or a pandas/polars frame).
-
-    The unit and time keys come from the contract's ``panel`` part, or from
-    ``unit``/``time`` when the contract leaves them out. With ``against`` (the
-    panel so far: path(s), a folder of waves or a frame) the rules that span
-    waves (invariant, monotone, max_change, max_change_per_period, the step and
-    keys the base already holds) are also judged across the boundary between the
-    two. ``keep_all``: every rule keeps every failing row, unit or period in its
-    ``examples`` (for ``--details``; :meth:`CheckResult.shown` cuts them back to the
-    configured number). Returns a CheckResult; raises AuditError (exit 2) when the file
-    or the data cannot be used.
-    """
-    clock = _time.perf_counter()
-    contract, settings = read_contract(rules)
-    shown = int(settings.get("check", "examples"))
-    if keep_all:
-        import dataclasses
-
-        thresholds = {k: dict(v) for k, v in settings.thresholds.items()}
-        thresholds["check"]["examples"] = 1 << 62  # every failure, not a few examples
-        settings = dataclasses.replace(settings, thresholds=thresholds)
-    if contract.is_empty:
-        raise fail("contract-empty", path=rules)
-    units, time_key = _keys(contract, rules, unit, time)
-    if against is not None and not hasattr(against, "columns"):  # a base that cannot be read: before any work
-        from auditor.io.sources import resolve_inputs
-
-        for path in resolve_inputs(against):
-            if not path.exists():
-                raise fail("file-not-found", path=path)
-    if _has_row_rules(contract):
-        preload_gx()  # beside loading the panel and the polars rules, which release the GIL
-    from auditor import progress
-
-    with progress.step("reading the panel"):
-        panel = load_panel(data, units, time_key, settings=settings)
-    timings = {"load": _time.perf_counter() - clock}
-    token = _MESSAGE_LIMIT.set(shown if keep_all else None)
-    try:
-        with progress.step(f"{len(contract.columns)} columns' rules on {panel.rows:,} rows"):
-            results = run_contract(contract, panel, settings, timings=timings)
-    finally:
-        _MESSAGE_LIMIT.reset(token)
-    base_source = None
-    if against is not None:
-        from auditor.checks.boundary import across_waves
-
-        clock = _time.perf_counter()
-        with progress.step("the rules across waves"):
-            crossing, base_source = across_waves(contract, panel, against, settings)
-        results = (*results, *crossing)
-        timings["across_waves"] = _time.perf_counter() - clock
-    findings = tuple(
-        make(
-            "rule-failed",
-            settings,
-            f"contract rule '{r.rule}' does not hold: {r.message}",
-            column=r.column,
-            count=r.failing,
-            examples=r.examples,
-        )
-        for r in results
-        if not r.passed
-    )
-    return CheckResult(
-        rules=results,
-        contract=str(rules),
-        source=panel.source,
-        findings=findings,
-        timings=timings,
-        base_source=base_source,
-        examples_shown=shown,
-    )
-
-
 #: with keep_all, the number of values a rule's message names (its examples hold every one)
-_MESSAGE_LIMIT: contextvars.ContextVar[int | None] = contextvars.ContextVar("message_limit", default=None)
+MESSAGE_LIMIT: contextvars.ContextVar[int | None] = contextvars.ContextVar("message_limit", default=None)
 
 
 def _named(limit: int) -> int:
     """How many values a message names: the configured number of examples."""
-    shown = _MESSAGE_LIMIT.get()
+    shown = MESSAGE_LIMIT.get()
     return limit if shown is None else shown
 
 
@@ -322,7 +172,7 @@ def fit_to_type(col: ColumnRules, dtype: pl.DataType) -> tuple[ColumnRules, tupl
     return replace(col, **{key: None for key, _ in skipped}), skipped
 
 
-def _keys(
+def contract_keys(
     contract: Contract, path: Any, unit: Any, time: str | None
 ) -> tuple[tuple[str, ...], str]:
     declared_unit, declared_time = contract.panel.unit, contract.panel.time
@@ -410,7 +260,7 @@ def _type_rule(
     return RuleResult("type", "row", col.name, False, values, message, examples=examples)
 
 
-def _has_row_rules(contract: Contract) -> bool:
+def has_row_rules(contract: Contract) -> bool:
     return any(
         getattr(c, k) is not None and getattr(c, k) is not False for c in contract.columns for k in ROW_RULES_GX
     )
@@ -561,7 +411,7 @@ def build_expectations(
     return out
 
 
-def _column_has_row_rules(col: ColumnRules) -> bool:
+def _columnhas_row_rules(col: ColumnRules) -> bool:
     return any(v not in (None, False) for v in (col.min, col.max, col.allowed, col.max_missing, col.pattern, col.unique))
 
 
@@ -700,7 +550,7 @@ def _gx_exception(info: Any) -> str | None:
 def _row_examples(panel: Panel, column: str, rows: list[int]) -> tuple[dict[str, Any], ...]:
     if not rows:
         return ()
-    from auditor.render.json import clean
+    from auditor.vocab import clean
 
     keys = [*panel.unit, panel.time]
     picked = panel.frame.select([*keys, *([column] if column not in keys else [])])[rows]
@@ -753,7 +603,7 @@ def _panel_rules(rules: PanelRules, contract: Contract, panel: Panel, limit: int
         n = frame.height - pairs
         examples: tuple[dict[str, Any], ...] = ()
         if n > rules.max_duplicate_keys:
-            from auditor.render.json import clean
+            from auditor.vocab import clean
 
             keys = [*panel.unit, panel.time]
             dup = frame.filter(pl.struct(UNIT_ID, PERIOD_ID).is_duplicated()).select(keys).unique(maintain_order=True)
@@ -942,7 +792,7 @@ def _within_rules(
 ) -> dict[str, list[RuleResult]]:
     """The invariant, monotone and max_change rules of ``columns``: one grouped pass for every
     invariant column, one sort for every monotone or change-limited column."""
-    from auditor.render.json import clean
+    from auditor.vocab import clean
 
     out: dict[str, list[RuleResult]] = {c.name: [] for c in columns}
     tol = float(settings.get("profile", "float_tolerance"))
@@ -1029,7 +879,7 @@ def _times(n: int) -> str:
 def follows_period_rule(column: str, panel: Panel, tolerance: float, limit: int) -> RuleResult:
     """Every unit holds the same value in a period (a price, a national index): the periods
     where the non-missing values differ (floats: by more than the profile's tolerance)."""
-    from auditor.render.json import clean
+    from auditor.vocab import clean
 
     dtype = panel.schema[column]
     v = missing_as_null(column, dtype)
@@ -1139,7 +989,7 @@ def export_suite(rules_path: str | Path) -> dict[str, Any]:
     Panel rules and column types, which need the panel or the data's own schema,
     are listed in the suite's ``meta`` as not exported.
     """
-    from auditor import __version__
+    from auditor.version import __version__
 
     contract, _ = read_contract(rules_path)
     if contract.is_empty:
@@ -1148,7 +998,7 @@ def export_suite(rules_path: str | Path) -> dict[str, Any]:
     gx.get_context(mode="ephemeral")  # suites need an active context
     suite = gx.ExpectationSuite(name=Path(rules_path).stem)
     for col in contract.columns:
-        if not col.name.strip() and _column_has_row_rules(col):
+        if not col.name.strip() and _columnhas_row_rules(col):
             raise fail(
                 "contract-engine", rule="(any)", column=col.name,
                 reason="an expectation suite needs a column name; name the column in the data and the contract",

@@ -7,6 +7,7 @@ Text formats (CSV, TSV, JSON lines) keep the unit key columns as text, so that
 from __future__ import annotations
 
 import gzip
+import os
 import zlib
 from collections.abc import Sequence
 from pathlib import Path
@@ -208,11 +209,17 @@ TEXT_PEAK_FACTOR = 8
 GZIP_CHUNK = 1 << 20  # bytes decompressed at a time while the size is measured
 
 
+def memory_bytes() -> int:
+    """Total physical memory of this machine in bytes (0 when unknown)."""
+    try:
+        return os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
+    except (ValueError, OSError, AttributeError):  # pragma: no cover
+        return 0
+
+
 def text_limit() -> int:
     """The largest text (decompressed) read whole, in bytes: a run on it stays within
     ``TEXT_MEMORY_SHARE`` of this machine's memory; 0 when memory is unknown."""
-    from auditor.io.load import memory_bytes
-
     return int(TEXT_MEMORY_SHARE * memory_bytes() / TEXT_PEAK_FACTOR)
 
 

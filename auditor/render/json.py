@@ -3,26 +3,11 @@
 from __future__ import annotations
 
 import json
-import math
-from datetime import date, datetime
 from typing import Any
 
+from auditor.vocab import clean
 
-def clean(value: Any) -> Any:
-    """``value`` made JSON-ready: non-finite floats become None, dates ISO text, tuples lists."""
-    if isinstance(value, float):
-        return value if math.isfinite(value) else None
-    if isinstance(value, dict):
-        return {str(k): clean(v) for k, v in value.items()}
-    if isinstance(value, list | tuple):
-        return [clean(v) for v in value]
-    if isinstance(value, datetime | date):
-        return value.isoformat()
-    if hasattr(value, "item") and not isinstance(value, str | bytes):  # numpy scalars
-        return clean(value.item())
-    if value is None or isinstance(value, str | int | bool):
-        return value
-    return str(value)
+__all__ = ["clean", "dumps"]
 
 
 def dumps(document: dict[str, Any]) -> str:

@@ -15,7 +15,8 @@ from typing import TYPE_CHECKING, Any
 from auditor.render.text import paint, safe, wrap
 
 if TYPE_CHECKING:  # pragma: no cover
-    from auditor.checks.rules import CheckResult, RuleResult
+    from auditor.commands.check import CheckResult
+    from auditor.contracts.rules import RuleResult
 
 
 def _subject(r: RuleResult) -> str:

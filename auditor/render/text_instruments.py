@@ -21,7 +21,7 @@ from auditor.render.text import (
     terminal_width,
     wrap,
 )
-from auditor.stats.pvalues import format_p
+from auditor.vocab import format_p
 
 if TYPE_CHECKING:  # pragma: no cover
     from auditor.commands.instruments import InstrumentsResult

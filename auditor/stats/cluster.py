@@ -385,7 +385,7 @@ class Session:
         from dataclasses import replace
 
         from auditor import progress
-        from auditor.commands import instruments as readiness
+        from auditor.stats import design as readiness
         from auditor.stats.variation import compute_variation
 
         client, panel = self.client, self.panel
@@ -452,7 +452,7 @@ def profile_passes(
 
 def _unit_values(part: Partition, unit: tuple[str, ...], time: str, units: pl.DataFrame, time_map: pl.DataFrame,
                  schema: dict[str, pl.DataType], columns: tuple[str, ...], c: str) -> pl.DataFrame:
-    from auditor.commands.instruments import value_counts_by_unit
+    from auditor.stats.design import value_counts_by_unit
 
     frame = _coded(part, unit, time, units, time_map, schema, columns)
     return value_counts_by_unit(frame, c, schema[c])
@@ -465,7 +465,7 @@ def _merge_unit_values(a: pl.DataFrame, b: pl.DataFrame, c: str) -> pl.DataFrame
 def _model_rows(part: Partition, unit: tuple[str, ...], time: str, units: pl.DataFrame, time_map: pl.DataFrame,
                 schema: dict[str, pl.DataType], columns: tuple[str, ...], modes: dict[str, pl.DataFrame]) -> pl.DataFrame:
     """A partition's keyed rows of the model's columns, --treat-as-invariant applied."""
-    from auditor.commands.instruments import with_modes
+    from auditor.stats.design import with_modes
 
     frame = _coded(part, unit, time, units, time_map, schema, columns)
     frame = frame.select(UNIT_ID, PERIOD_ID, *columns)
@@ -477,7 +477,7 @@ def _model_rows(part: Partition, unit: tuple[str, ...], time: str, units: pl.Dat
 def _complete_facts(part: Partition, unit: tuple[str, ...], time: str, units: pl.DataFrame, time_map: pl.DataFrame,
                     schema: dict[str, pl.DataType], columns: tuple[str, ...], modes: dict[str, pl.DataFrame],
                     texts: list[str]) -> dict[str, Any]:
-    from auditor.commands import instruments as readiness
+    from auditor.stats import design as readiness
 
     frame = _model_rows(part, unit, time, units, time_map, schema, columns, modes)
     full = readiness.complete(frame, columns, schema)
@@ -505,7 +505,7 @@ def _cross(part: Partition, unit: tuple[str, ...], time: str, units: pl.DataFram
            n_periods: int) -> moments.CrossProducts:
     from dataclasses import replace
 
-    from auditor.commands import instruments as readiness
+    from auditor.stats import design as readiness
 
     frame = _model_rows(part, unit, time, units, time_map, schema, columns, modes)
     full = readiness.complete(frame, columns, schema)

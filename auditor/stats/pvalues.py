@@ -49,27 +49,6 @@ def normal_sf(x: float) -> float:
     return float(special.ndtr(-x))
 
 
-#: p-values below this are written as "< 1e-16" in text (the JSON keeps the full value)
-P_FLOOR = 1e-16
-
-
-def format_p(p: float | None, digits: int = 3) -> str:
-    """A p-value for text: significant digits, scientific when small, never "0"."""
-    if p is None or p != p:
-        return "-"
-    if p < P_FLOOR:
-        return "< 1e-16"
-    if p < 1e-3:
-        return f"{p:.{digits - 1}e}"
-    return f"{p:.{digits}g}"
-
-
-def p_phrase(p: float | None, digits: int = 3) -> str:
-    """``p = 0.0015`` or ``p < 1e-16`` for a sentence (never ``p = < 1e-16``)."""
-    text = format_p(p, digits)
-    return f"p {text}" if text.startswith("<") else f"p = {text}"
-
-
 def f_isf(q: float, dfn: float, dfd: float) -> float:
     """The F value with upper-tail probability ``q`` for (``dfn``, ``dfd``) degrees of freedom."""
     from scipy import special

@@ -9,7 +9,7 @@ prints, measured in this run:
       ``panel-audit check --json`` with the drafted contract (child processes, best
       of --repeat), and the ratio check / profile against its target (<= 4x,
       great-expectations included);
-  (c) inside one process, the split of ``auditor.checks.rules.check``: importing
+  (c) inside one process, the split of ``auditor.commands.check.check``: importing
       great-expectations, loading the panel, the polars panel rules, the one
       conversion to pandas, and the expectations themselves.
 
@@ -51,7 +51,7 @@ import os
 os.environ.setdefault("GX_ANALYTICS_ENABLED", "False")
 import great_expectations  # noqa: F401
 gx_import = time.perf_counter() - start
-from auditor.checks.rules import check
+from auditor.commands.check import check
 t0 = time.perf_counter()
 result = check(sys.argv[1], rules=sys.argv[2])
 total = time.perf_counter() - t0
