@@ -175,3 +175,10 @@ def short_list(values: Any, limit: int = 12) -> str:
     if len(items) <= limit:
         return ", ".join(items)
     return ", ".join(items[:limit]) + f", ... ({len(items)} in all)"
+
+
+def broken(what: str) -> RuntimeError:
+    """The error for a broken internal invariant (a bug, not bad input): raised where an
+    ``assert`` would be, it survives ``python -O``; the command line reports it as
+    ``internal-problem`` (exit 2)."""
+    return RuntimeError(f"internal invariant broken: {what}")

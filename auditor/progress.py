@@ -20,11 +20,6 @@ def enable(on: bool) -> None:
     _state["start"] = time.perf_counter()
 
 
-def enabled() -> bool:
-    """Whether the display is on."""
-    return bool(_state["on"])
-
-
 @contextmanager
 def step(label: str) -> Iterator[None]:
     """Show ``label`` with the elapsed time while the block runs; clear the line after."""

@@ -53,7 +53,6 @@ SECTION = "compare"
 BASE_UNIT = "__pa_base_unit"  # the base's unit code of a new row's unit (null: entering)
 MAD_TO_SD = 1.4826  # 1 / Phi^-1(3/4): the MAD of normal data times this is its sd (common practice)
 KS_EXACT_MAX_N = 10_000  # scipy.stats.ks_2samp's method 'auto' computes exactly up to this sample size
-INVARIANT_KINDS = ("constant", "time-invariant", "nearly-time-invariant")
 
 
 def _key(j: int) -> str:

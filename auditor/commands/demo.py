@@ -2,11 +2,9 @@
 
 from __future__ import annotations
 
-import importlib.util
-import json
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING
 
 if TYPE_CHECKING:  # pragma: no cover
     from auditor.commands.profile import ProfileResult
@@ -40,22 +38,6 @@ class DemoRun:
     profile: ProfileResult | None = None
 
 
-def _json_text(doc: dict[str, Any]) -> str:
-    try:
-        from auditor.render.json import dumps  # the project's JSON writer, when present
-    except ImportError:
-        return json.dumps(doc, indent=2, allow_nan=False) + "\n"
-    return dumps(doc)
-
-
-def _has_html_report() -> bool:
-    if importlib.util.find_spec("auditor.commands.report") is None:
-        return False
-    from auditor.commands import report
-
-    return hasattr(report, "write_report")
-
-
 #: where ``panel-audit demo`` writes without --out (in the current folder)
 DEFAULT_DIR = "panel-audit-demo"
 
@@ -80,14 +62,16 @@ def run_demo(out: Path | str | None = None, *, force: bool = False) -> DemoRun:
     """Write the demo files into ``out`` (default: ``./panel-audit-demo``) and profile them.
 
     Writes ``orchards.csv``, ``orchards_next_season.csv``, ``orchards_profile.json``
-    and, when the HTML report is available, ``orchards_report.html``; every file
+    and ``orchards_report.html``; every file
     through an atomic write that refuses to replace an existing file unless
     ``force``. Returns a DemoRun with the folder, the paths by name and the
     ProfileResult of the registry.
     """
     from auditor.commands.profile import profile
+    from auditor.commands.report import write_report
     from auditor.io.demo_data import csv_text, orchard_files
     from auditor.io.outputs import write_atomic
+    from auditor.render.json import dumps
 
     out_dir = Path(DEFAULT_DIR if out is None else out)
     paths: dict[str, Path] = {}
@@ -98,24 +82,21 @@ def run_demo(out: Path | str | None = None, *, force: bool = False) -> DemoRun:
     result = profile(registry, unit=DEMO_UNIT, time=DEMO_TIME)
     paths["profile"] = write_atomic(
         out_dir / "orchards_profile.json",
-        _json_text(result.to_dict()),
+        dumps(result.to_dict()),
         force=force,
         inputs=[registry],
     )
 
-    if _has_html_report():
-        from auditor.commands.report import write_report
-
-        paths["report"] = write_report(
-            registry,
-            unit=DEMO_UNIT,
-            time=DEMO_TIME,
-            out=out_dir / "orchards_report.html",
-            outcome=DEMO_OUTCOME,
-            regressors=list(DEMO_REGRESSORS),
-            correlated=list(DEMO_CORRELATED),
-            period_effects=DEMO_PERIOD_EFFECTS,
-            treat_as_invariant=list(DEMO_TREAT_AS_INVARIANT),
-            force=force,
-        )
+    paths["report"] = write_report(
+        registry,
+        unit=DEMO_UNIT,
+        time=DEMO_TIME,
+        out=out_dir / "orchards_report.html",
+        outcome=DEMO_OUTCOME,
+        regressors=list(DEMO_REGRESSORS),
+        correlated=list(DEMO_CORRELATED),
+        period_effects=DEMO_PERIOD_EFFECTS,
+        treat_as_invariant=list(DEMO_TREAT_AS_INVARIANT),
+        force=force,
+    )
     return DemoRun(out_dir=out_dir, paths=paths, profile=result)

@@ -36,8 +36,6 @@ from auditor.stats import attrition, identification, instrument_sets, models, st
 from auditor.stats.design import SECTION, Design, Sample, _design, _moved_to_z, _sample, _validate
 from auditor.vocab import p_phrase
 
-ROLES = ("X1", "X2", "Z1", "Z2")
-
 
 @dataclass(frozen=True)
 class InstrumentsResult:

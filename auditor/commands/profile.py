@@ -62,11 +62,6 @@ class ProfileResult:
             }
         )
 
-    def kind_of(self, column: str) -> str | None:
-        """The kind of ``column`` (None for a key or unknown column)."""
-        hit = self.columns.filter(pl.col("name") == column)
-        return hit["kind"][0] if hit.height else None
-
     def _repr_html_(self) -> str:  # pragma: no cover - exercised in notebooks and report tests
         from auditor.render.html import profile_fragment
 

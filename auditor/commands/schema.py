@@ -509,6 +509,142 @@ def _strength_row() -> Schema:
     )
 
 
+def _instrument_columns(roles: dict[str, str], reasons: dict[str, str]) -> dict[str, Schema]:
+    """The instruments document's design columns and the columns set aside."""
+    return {
+        "columns": _list("Every design column: each numeric regressor, each indicator of a text regressor, "
+                         "each added period dummy.", _object("One design column.", {
+            "column": _str("Its name ('x=<level>' for a text regressor's indicator, 'period=<value>' for an "
+                           "added dummy)."),
+            "source": _str("The regressor it comes from.", "for an added period dummy"),
+            "kind": _choice("Its kind (the profile's; a time-varying column with no within variation to "
+                            "speak of counts as time-invariant).", KINDS),
+            "role": _choice("Its role.", {**roles, "not-identified": "neither the within nor the "
+                                          "Hausman-Taylor fit can identify it"},
+                            "when it holds no role although some fit identifies it"),
+            "period_effect": _bool("True for a period effect."),
+            "identified_by": _list("The fits that identify its coefficient.", _choice("A fit.", FITS)),
+            "within_share": _num("Its within share in the sample (WSS / TSS).",
+                                   "for a time-invariant column, or when its TSS is 0"),
+            "base_level": _str("For a text regressor's indicator: the level left out (the most common).",
+                               "for other columns"),
+        })),
+        "not_identified": _list("Columns some fit cannot identify (never silently dropped).", _object(
+            "One column set aside.", {
+                "column": _str("The column."),
+                "reason": _choice("Why.", reasons),
+                "with": _names("The kept columns it depends on ('const', or 'the unit effects').",
+                               "A column name."),
+                "fits": _list("The fits that set it aside.", _choice("A fit.", FITS)),
+            })),
+        "near_collinear": _list("Kept columns almost explained by the earlier columns of a fit.", _object(
+            "One near dependence.", {
+                "column": _str("The column."),
+                "fit": _choice("Where.", {"within": "within deviations", "levels": "columns in levels"}),
+                "r2": _num("Share of its variation the earlier columns explain (at least "
+                           "instruments.near_collinear_r2)."),
+                "with": _names("The earlier columns."),
+            })),
+    }
+
+
+def _instrument_choices() -> dict[str, Schema]:
+    """The instruments document's candidate instruments and suggested sets."""
+    return {
+        "candidates": _list("For each Z2 column, each X1 unit mean alone as its instrument.", _object(
+            "One (Z2, X1) pair.", {
+                "endogenous": _str("The Z2 column."),
+                "instrument": _str("The X1 column whose unit mean is tried."),
+                "partial_f": _num("Partial F of that mean alone.", "when it cannot be computed", minimum=0),
+                "mundlak_p": _p("p-value of the X1 column's Mundlak coefficient.", "without a Mundlak fit"),
+                "c_p": _p("Difference-in-Sargan p-value of its mean.", "when there is no such test"),
+                "usable_basis": _str("What decided the state ('mundlak', 'c-test', 'sargan', or a sentence)."),
+                "state": _choice("Its validity.", {
+                    "accepted": "accepted by a test", "assumed": "just identified: nothing to test",
+                    "invalid": "rejected", "undecided": "the set is rejected and no mean can be blamed"}),
+                "usable": _bool("True when accepted or assumed, false when invalid.", "when undecided"),
+            })),
+        "suggestion": _list("For each Z2 column, the strongest usable set of X1 means.", _object(
+            "One suggestion.", {
+                "endogenous": _str("The Z2 column."),
+                "instruments": _names("The X1 columns of the set (empty: none usable)."),
+                "partial_f": _num("The set's joint partial F.", "without a set", minimum=0),
+                "critical_value": _num("Stock-Yogo critical value for that many instruments.",
+                                       "without one"),
+                "critical_source": _str("Where the cut-off comes from."),
+                "verdict": _choice("The verdict.", {"strong": "the F reaches the cut-off",
+                                                    "weak": "below it", "not-identified": "no set"}),
+                "basis": _choice("Where the set comes from.", {
+                    "usable": "usable candidates", "undecided": "undecided candidates (none usable)"},
+                    "without a set"),
+                "set_rejected": _bool("True when drawn from undecided candidates."),
+            })),
+    }
+
+
+def _instrument_tests() -> Schema:
+    """The instruments document's ``tests`` part."""
+    return _object("Specification tests.", {
+        "mundlak": _or_null(_object(
+            "Mundlak: joint Wald test (clustered by unit) that the unit means of X have no coefficient.",
+            {
+                **_wald("")["properties"],
+                "per_column": _list("Each tested unit mean.", _object("One mean.", {
+                    "column": _str("The X column."),
+                    "coef": _num("Coefficient of its unit mean.", "when not finite"),
+                    "t": _num("coef / clustered se.", "when not finite", ),
+                    "p": _p("Two-sided normal p-value.", "when t is null"),
+                })),
+                "alpha": _share("The level flagged uses (instruments.mundlak_alpha)."),
+                "flagged": _names("Columns whose p is below alpha: candidates for X2."),
+            },
+            optional=("positive_definite", "note"),
+        ), "without a Mundlak fit (too few units)"),
+        "hausman_within_random": _or_null(_wald("Hausman test, within vs random effects, on the "
+                                                "time-varying coefficients both identify."),
+                                          "when there is nothing to compare"),
+        "overidentification": _or_null(_wald("Sargan test of Hausman-Taylor's over-identifying "
+                                             "restrictions.", named=True),
+                                       "when just identified or without Hausman-Taylor"),
+        "hausman_within_ht": _or_null(_wald("Hausman contrast, within vs Hausman-Taylor "
+                                            "(k1 - g2 degrees of freedom)."),
+                                      "when just identified or without Hausman-Taylor"),
+        "overidentification_by_estimator": _or_null(_object(
+            "Sargan test of each estimator's over-identifying restrictions.",
+            {
+                "hausman_taylor": _or_null(_wald("Hausman-Taylor's.", named=True),
+                                           "when just identified"),
+                "amemiya_macurdy": _or_null(_wald("Amemiya-MaCurdy's.", named=True), "when not computed"),
+                "breusch_mizon_schmidt": _or_null(_wald("Breusch-Mizon-Schmidt's.", named=True),
+                                                  "when not computed"),
+            },
+        ), "without Hausman-Taylor"),
+        "hausman_against_ht": _or_null(_object(
+            "Hausman contrast of each richer estimator against Hausman-Taylor.",
+            {
+                "amemiya_macurdy": _or_null(_wald("Amemiya-MaCurdy vs Hausman-Taylor."), "when not computed"),
+                "breusch_mizon_schmidt": _or_null(_wald("Breusch-Mizon-Schmidt vs Hausman-Taylor."),
+                                                  "when not computed"),
+            },
+        ), "without Hausman-Taylor"),
+        "attrition": _or_null(_object(
+            "Nijman-Verbeek variable-addition test: s_i,t+1 added to the within fit, unit-clustered t.",
+            {
+                "statistic": _num("t squared (chi-square, 1 df).", minimum=0),
+                "df": _const(1, "Always 1."),
+                "p": _p("Two-sided p-value of t."),
+                "variable": _const("next period observed", "The added variable."),
+                "t": _num("Clustered t of its coefficient."),
+                "coef": _num("Its coefficient, in the outcome's units."),
+                "rows": _int("Rows used (those before the grid's last period)."),
+                "rows_without_next": _int("Of those, rows whose unit is absent in the next period."),
+            },
+        ), "when nobody leaves (or leaving is collinear with the regressors within units)"),
+        "attrition_note": _str("Why the attrition test was not computed (present only then: the dask "
+                               "engine has no row's period)."),
+    }, optional=("attrition_note",))
+
+
 def _instruments() -> Schema:
     roles = {
         "X1": "time-varying, not correlated with the unit effect (period effects are listed here)",
@@ -544,39 +680,7 @@ def _instruments() -> Schema:
                                     "evidence."),
             "period_effects": _names("The period effects the fits carry: the added dummies ('period=<value>') "
                                      "and period-only regressors, less those the others span."),
-            "columns": _list("Every design column: each numeric regressor, each indicator of a text regressor, "
-                             "each added period dummy.", _object("One design column.", {
-                "column": _str("Its name ('x=<level>' for a text regressor's indicator, 'period=<value>' for an "
-                               "added dummy)."),
-                "source": _str("The regressor it comes from.", "for an added period dummy"),
-                "kind": _choice("Its kind (the profile's; a time-varying column with no within variation to "
-                                "speak of counts as time-invariant).", KINDS),
-                "role": _choice("Its role.", {**roles, "not-identified": "neither the within nor the "
-                                              "Hausman-Taylor fit can identify it"},
-                                "when it holds no role although some fit identifies it"),
-                "period_effect": _bool("True for a period effect."),
-                "identified_by": _list("The fits that identify its coefficient.", _choice("A fit.", FITS)),
-                "within_share": _num("Its within share in the sample (WSS / TSS).",
-                                       "for a time-invariant column, or when its TSS is 0"),
-                "base_level": _str("For a text regressor's indicator: the level left out (the most common).",
-                                   "for other columns"),
-            })),
-            "not_identified": _list("Columns some fit cannot identify (never silently dropped).", _object(
-                "One column set aside.", {
-                    "column": _str("The column."),
-                    "reason": _choice("Why.", reasons),
-                    "with": _names("The kept columns it depends on ('const', or 'the unit effects').",
-                                   "A column name."),
-                    "fits": _list("The fits that set it aside.", _choice("A fit.", FITS)),
-                })),
-            "near_collinear": _list("Kept columns almost explained by the earlier columns of a fit.", _object(
-                "One near dependence.", {
-                    "column": _str("The column."),
-                    "fit": _choice("Where.", {"within": "within deviations", "levels": "columns in levels"}),
-                    "r2": _num("Share of its variation the earlier columns explain (at least "
-                               "instruments.near_collinear_r2)."),
-                    "with": _names("The earlier columns."),
-                })),
+            **_instrument_columns(roles, reasons),
             "order_condition": _object("Hausman-Taylor's order condition k1 >= g2.", {
                 "k1": _int("Excluded instruments: X1 columns whose unit means instrument."),
                 "g2": _int("Unit-level endogenous columns (Z2, and X2 columns identified between units only)."),
@@ -606,93 +710,8 @@ def _instruments() -> Schema:
                                       "Stock-Yogo table has no cell."),
                 "lee": _num("instruments.lee_f (104.7, Lee, McCrary, Moreira and Porter 2022)."),
             }),
-            "candidates": _list("For each Z2 column, each X1 unit mean alone as its instrument.", _object(
-                "One (Z2, X1) pair.", {
-                    "endogenous": _str("The Z2 column."),
-                    "instrument": _str("The X1 column whose unit mean is tried."),
-                    "partial_f": _num("Partial F of that mean alone.", "when it cannot be computed", minimum=0),
-                    "mundlak_p": _p("p-value of the X1 column's Mundlak coefficient.", "without a Mundlak fit"),
-                    "c_p": _p("Difference-in-Sargan p-value of its mean.", "when there is no such test"),
-                    "usable_basis": _str("What decided the state ('mundlak', 'c-test', 'sargan', or a sentence)."),
-                    "state": _choice("Its validity.", {
-                        "accepted": "accepted by a test", "assumed": "just identified: nothing to test",
-                        "invalid": "rejected", "undecided": "the set is rejected and no mean can be blamed"}),
-                    "usable": _bool("True when accepted or assumed, false when invalid.", "when undecided"),
-                })),
-            "suggestion": _list("For each Z2 column, the strongest usable set of X1 means.", _object(
-                "One suggestion.", {
-                    "endogenous": _str("The Z2 column."),
-                    "instruments": _names("The X1 columns of the set (empty: none usable)."),
-                    "partial_f": _num("The set's joint partial F.", "without a set", minimum=0),
-                    "critical_value": _num("Stock-Yogo critical value for that many instruments.",
-                                           "without one"),
-                    "critical_source": _str("Where the cut-off comes from."),
-                    "verdict": _choice("The verdict.", {"strong": "the F reaches the cut-off",
-                                                        "weak": "below it", "not-identified": "no set"}),
-                    "basis": _choice("Where the set comes from.", {
-                        "usable": "usable candidates", "undecided": "undecided candidates (none usable)"},
-                        "without a set"),
-                    "set_rejected": _bool("True when drawn from undecided candidates."),
-                })),
-            "tests": _object("Specification tests.", {
-                "mundlak": _or_null(_object(
-                    "Mundlak: joint Wald test (clustered by unit) that the unit means of X have no coefficient.",
-                    {
-                        **_wald("")["properties"],
-                        "per_column": _list("Each tested unit mean.", _object("One mean.", {
-                            "column": _str("The X column."),
-                            "coef": _num("Coefficient of its unit mean.", "when not finite"),
-                            "t": _num("coef / clustered se.", "when not finite", ),
-                            "p": _p("Two-sided normal p-value.", "when t is null"),
-                        })),
-                        "alpha": _share("The level flagged uses (instruments.mundlak_alpha)."),
-                        "flagged": _names("Columns whose p is below alpha: candidates for X2."),
-                    },
-                    optional=("positive_definite", "note"),
-                ), "without a Mundlak fit (too few units)"),
-                "hausman_within_random": _or_null(_wald("Hausman test, within vs random effects, on the "
-                                                        "time-varying coefficients both identify."),
-                                                  "when there is nothing to compare"),
-                "overidentification": _or_null(_wald("Sargan test of Hausman-Taylor's over-identifying "
-                                                     "restrictions.", named=True),
-                                               "when just identified or without Hausman-Taylor"),
-                "hausman_within_ht": _or_null(_wald("Hausman contrast, within vs Hausman-Taylor "
-                                                    "(k1 - g2 degrees of freedom)."),
-                                              "when just identified or without Hausman-Taylor"),
-                "overidentification_by_estimator": _or_null(_object(
-                    "Sargan test of each estimator's over-identifying restrictions.",
-                    {
-                        "hausman_taylor": _or_null(_wald("Hausman-Taylor's.", named=True),
-                                                   "when just identified"),
-                        "amemiya_macurdy": _or_null(_wald("Amemiya-MaCurdy's.", named=True), "when not computed"),
-                        "breusch_mizon_schmidt": _or_null(_wald("Breusch-Mizon-Schmidt's.", named=True),
-                                                          "when not computed"),
-                    },
-                ), "without Hausman-Taylor"),
-                "hausman_against_ht": _or_null(_object(
-                    "Hausman contrast of each richer estimator against Hausman-Taylor.",
-                    {
-                        "amemiya_macurdy": _or_null(_wald("Amemiya-MaCurdy vs Hausman-Taylor."), "when not computed"),
-                        "breusch_mizon_schmidt": _or_null(_wald("Breusch-Mizon-Schmidt vs Hausman-Taylor."),
-                                                          "when not computed"),
-                    },
-                ), "without Hausman-Taylor"),
-                "attrition": _or_null(_object(
-                    "Nijman-Verbeek variable-addition test: s_i,t+1 added to the within fit, unit-clustered t.",
-                    {
-                        "statistic": _num("t squared (chi-square, 1 df).", minimum=0),
-                        "df": _const(1, "Always 1."),
-                        "p": _p("Two-sided p-value of t."),
-                        "variable": _const("next period observed", "The added variable."),
-                        "t": _num("Clustered t of its coefficient."),
-                        "coef": _num("Its coefficient, in the outcome's units."),
-                        "rows": _int("Rows used (those before the grid's last period)."),
-                        "rows_without_next": _int("Of those, rows whose unit is absent in the next period."),
-                    },
-                ), "when nobody leaves (or leaving is collinear with the regressors within units)"),
-                "attrition_note": _str("Why the attrition test was not computed (present only then: the dask "
-                                       "engine has no row's period)."),
-            }, optional=("attrition_note",)),
+            **_instrument_choices(),
+            "tests": _instrument_tests(),
             "estimates": _object("The diagnostic fits.", {
                 "within": _or_null(_fit("Within (fixed effects)."), "when the outcome never changes within units"),
                 "between": _or_null(_fit("Between (unit means)."), "with too few units"),

@@ -582,6 +582,7 @@ def _row_message(col: ColumnRules, rule: str, failing: int, rows: int, missing: 
 
 
 def _panel_rules(rules: PanelRules, contract: Contract, panel: Panel, limit: int) -> list[RuleResult]:
+    """The contract's panel rules on ``panel``: keys, units, then the grid and the columns."""
     out: list[RuleResult] = []
     frame = panel.frame
     grid_text = [period_text(g) for g in panel.grid]
@@ -624,6 +625,15 @@ def _panel_rules(rules: PanelRules, contract: Contract, panel: Panel, limit: int
                 f"{n} units present, the contract asks for at least {rules.min_units}",
             )
         )
+    out.extend(_grid_and_column_rules(rules, contract, panel, limit, per_unit, grid_text))
+    return out
+
+
+def _grid_and_column_rules(rules: PanelRules, contract: Contract, panel: Panel, limit: int,
+                           per_unit: pl.DataFrame | None, grid_text: list[str]) -> list[RuleResult]:
+    """The panel rules on the period grid (step, periods, range, balance, attrition) and on
+    the columns present, in the contract's order."""
+    out: list[RuleResult] = []
     if rules.step is not None:
         out.append(_step_rule(rules.step, panel, limit))
     if rules.periods is not None:

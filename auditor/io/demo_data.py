@@ -164,20 +164,10 @@ def _outcome(
     )
 
 
-def make_orchards(seed: int = ORCHARD_SEED) -> pl.DataFrame:
-    """The base registry: about 1,200 orchards over the seasons 2017-2024.
-
-    Returns a polars DataFrame with the columns of ``COLUMNS`` (units: mm of
-    rainfall per season, irrigation hours per season, labour days per season,
-    metres of altitude, years of training, years of tree age), rows ordered by
-    orchard id and season, with the faults of ``PLANTED`` in it.
-    """
-    n = N_ORCHARDS
-    tr = _traits(seed, n)
-    frost_t, rain_shock_t = _season_effects(seed)
-    rng = np.random.default_rng([seed, 3])
-    n_seasons = len(SEASONS)
-
+def _rows_held(rng: np.random.Generator, n: int, n_seasons: int) -> tuple[np.ndarray, ...]:
+    """Which (orchard, season) rows the registry holds: entry, exit and one planted internal gap
+    for some orchards; returns (unit, offset in its span, season index, rows kept per orchard,
+    the gap's offset per orchard or -1). Draws from ``rng`` in the registry's fixed order."""
     # Entry and exit: most orchards are there from the first season to the last.
     late = rng.random(n) >= 0.78
     start = np.where(late, rng.integers(1, n_seasons - 1, size=n), 0)
@@ -196,8 +186,45 @@ def make_orchards(seed: int = ORCHARD_SEED) -> pl.DataFrame:
     gap_offset[gap_units] = 1 + np.floor(rng.random(gap_units.size) * (length[gap_units] - 2))
     keep = offset != gap_offset[unit]
     unit, offset, t = unit[keep], offset[keep], t[keep]
-    rows = unit.size
     kept = np.bincount(unit, minlength=n)
+    return unit, offset, t, kept, gap_offset
+
+
+def _planted_rows(frame: pl.DataFrame, rng: np.random.Generator, quarantine: np.ndarray, rows: int) -> pl.DataFrame:
+    """``frame`` with the planted double entries and the rows entered without a key."""
+    # Double entry: a few rows (none with the rare flag) repeated right after themselves.
+    candidates = np.flatnonzero(quarantine == 0)
+    dup_rows = np.sort(rng.choice(candidates, PLANTED["duplicate_rows"], replace=False))
+    order = np.sort(np.concatenate([np.arange(rows), dup_rows]), kind="stable")
+    frame = frame[order.tolist()]
+
+    # Rows entered without a key: copies of random rows with the id or the season blanked.
+    n_null_u, n_null_t = PLANTED["null_unit_rows"], PLANTED["null_season_rows"]
+    src = rng.choice(rows, n_null_u + n_null_t, replace=False)
+    blank = frame[src.tolist()].with_columns(
+        pl.when(pl.int_range(pl.len()) < n_null_u).then(None).otherwise(pl.col("orchard_id")).alias("orchard_id"),
+        pl.when(pl.int_range(pl.len()) >= n_null_u).then(None).otherwise(pl.col("season")).alias("season"),
+    )
+    frame = pl.concat([frame, blank], how="vertical")
+    return frame
+
+
+def make_orchards(seed: int = ORCHARD_SEED) -> pl.DataFrame:
+    """The base registry: about 1,200 orchards over the seasons 2017-2024.
+
+    Returns a polars DataFrame with the columns of ``COLUMNS`` (units: mm of
+    rainfall per season, irrigation hours per season, labour days per season,
+    metres of altitude, years of training, years of tree age), rows ordered by
+    orchard id and season, with the faults of ``PLANTED`` in it.
+    """
+    n = N_ORCHARDS
+    tr = _traits(seed, n)
+    frost_t, rain_shock_t = _season_effects(seed)
+    rng = np.random.default_rng([seed, 3])
+    n_seasons = len(SEASONS)
+
+    unit, offset, t, kept, gap_offset = _rows_held(rng, n, n_seasons)
+    rows = unit.size
 
     # Time-varying columns.
     rain = np.maximum(620 + tr["rain_site"][unit] + rain_shock_t[t] + 45 * rng.standard_normal(rows), 50)
@@ -261,20 +288,7 @@ def make_orchards(seed: int = ORCHARD_SEED) -> pl.DataFrame:
         pl.col("labour_days").fill_nan(None).cast(pl.Int64),
     )
 
-    # Double entry: a few rows (none with the rare flag) repeated right after themselves.
-    candidates = np.flatnonzero(quarantine == 0)
-    dup_rows = np.sort(rng.choice(candidates, PLANTED["duplicate_rows"], replace=False))
-    order = np.sort(np.concatenate([np.arange(rows), dup_rows]), kind="stable")
-    frame = frame[order.tolist()]
-
-    # Rows entered without a key: copies of random rows with the id or the season blanked.
-    n_null_u, n_null_t = PLANTED["null_unit_rows"], PLANTED["null_season_rows"]
-    src = rng.choice(rows, n_null_u + n_null_t, replace=False)
-    blank = frame[src.tolist()].with_columns(
-        pl.when(pl.int_range(pl.len()) < n_null_u).then(None).otherwise(pl.col("orchard_id")).alias("orchard_id"),
-        pl.when(pl.int_range(pl.len()) >= n_null_u).then(None).otherwise(pl.col("season")).alias("season"),
-    )
-    frame = pl.concat([frame, blank], how="vertical")
+    frame = _planted_rows(frame, rng, quarantine, rows)
     return frame.select(COLUMNS)
 
 

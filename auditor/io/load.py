@@ -324,62 +324,27 @@ def period_grid(time: str, distinct_times: pl.Series) -> PeriodGrid:
     return PeriodGrid(tuple(labels_sorted), tuple(positions_sorted), scale.frequency, step, irregular, time_map)
 
 
-def load_panel(
-    data: Any,
-    unit: str | Sequence[str],
-    time: str,
-    *,
-    streaming: bool | None = None,
-    settings: Any = None,
-) -> Panel:
-    """Validate ``data`` as a panel keyed by ``unit`` (one or more columns) and ``time``.
+def _streams_by_size(binary_inputs: Sequence[Path], settings: Any) -> bool:
+    """Whether binary inputs this large take the streaming engine: their size on disk above
+    ``profile.streaming_memory_share`` of the machine's memory."""
+    if not binary_inputs:
+        return False
+    share = 0.25
+    if settings is not None:
+        share = float(settings.get("profile", "streaming_memory_share"))
+    total = sum(p.stat().st_size for p in binary_inputs)
+    from auditor.io.sources import memory_bytes  # looked up here: tests replace it
 
-    ``data`` is a path, a list of paths, a folder, a glob, or a pandas/polars frame.
-    ``streaming`` forces (True) or forbids (False) the polars streaming engine;
-    None chooses it for binary inputs larger than the configured memory share.
-    Raises AuditError (exit 2) naming what was found.
-    """
-    units, time = parse_keys(unit, time)
-    keys = (*units, time)
-    lf, source, inputs, load_findings, binary = _to_lazy(data, units, settings)
-    schema = checked_schema(lf, source, keys)
+    mem = memory_bytes()
+    return bool(mem) and total > share * mem
 
-    if streaming is None:
-        streaming = False
-        if binary and inputs:
-            share = 0.25
-            if settings is not None:
-                share = float(settings.get("profile", "streaming_memory_share"))
-            total = sum(p.stat().st_size for p in inputs)
-            from auditor.io.sources import memory_bytes  # looked up here: tests replace it
 
-            mem = memory_bytes()
-            streaming = bool(mem) and total > share * mem
-    engine = "streaming" if streaming else "auto"
-    if not streaming:  # read once; every later query runs on the frame in memory
-        try:
-            lf = lf.collect().lazy()
-        except pl.exceptions.PolarsError as exc:
-            raise fail("corrupt-file", path=source, format="data", reason=str(exc).splitlines()[0][:200]) from None
-
-    unnumbered = lf  # without row numbers: filters on it reach the file reader
-    lf = lf.with_row_index(ROW_ID)
-    missing_any = pl.any_horizontal([key_missing(k, schema[k]) for k in keys])
-    summary = lf.select(key_counts(keys, schema)).collect(engine=engine)
-    rows, missing = check_key_counts(summary.row(0, named=True), keys, source, bool(inputs))
-    missing_examples: tuple[dict[str, Any], ...] = ()
-    if missing:
-        ex = lf.filter(missing_any).select(ROW_ID, *keys).head(5).collect(engine=engine)
-        missing_examples = tuple(
-            {"row": int(r[ROW_ID]) + 1, **{k: r[k] for k in keys}} for r in ex.iter_rows(named=True)
-        )
-
-    keyed = lf.filter(~missing_any)
-    distinct_times = keyed.select(pl.col(time).unique()).collect(engine=engine).to_series()
-    grid_ = period_grid(time, distinct_times)
-    time_map, step, irregular = grid_.time_map, grid_.step, grid_.irregular
-    labels_sorted, positions_sorted = list(grid_.labels), list(grid_.positions)
-
+def _unit_codes(
+    lf: pl.LazyFrame, unnumbered: pl.LazyFrame, keyed: pl.LazyFrame, missing_any: pl.Expr, missing: bool,
+    units: tuple[str, ...], time: str, time_map: pl.DataFrame, streaming: bool, engine: str,
+) -> tuple[pl.LazyFrame, pl.DataFrame, pl.DataFrame | None, pl.LazyFrame | None]:
+    """The rows with unit and period codes, the unit table, and (in memory) the coded frame or
+    (streaming) the rows by period: (coded, unit_table, eager, by_period)."""
     # Unit codes: dense ranks of the key (composite keys rank as a struct), 0-based, in key order.
     key = pl.col(units[0]) if len(units) == 1 else pl.struct(list(units))
     period_code = (
@@ -410,6 +375,58 @@ def load_panel(
             eager = frame.with_columns((key.rank("dense") - 1).cast(pl.UInt32).alias(UNIT_ID), period)
             unit_table = panel_units(eager.lazy(), units, engine)
         coded = eager.lazy()
+    return coded, unit_table, eager, by_period
+
+
+def load_panel(
+    data: Any,
+    unit: str | Sequence[str],
+    time: str,
+    *,
+    streaming: bool | None = None,
+    settings: Any = None,
+) -> Panel:
+    """Validate ``data`` as a panel keyed by ``unit`` (one or more columns) and ``time``.
+
+    ``data`` is a path, a list of paths, a folder, a glob, or a pandas/polars frame.
+    ``streaming`` forces (True) or forbids (False) the polars streaming engine;
+    None chooses it for binary inputs larger than the configured memory share.
+    Raises AuditError (exit 2) naming what was found.
+    """
+    units, time = parse_keys(unit, time)
+    keys = (*units, time)
+    lf, source, inputs, load_findings, binary = _to_lazy(data, units, settings)
+    schema = checked_schema(lf, source, keys)
+
+    if streaming is None:
+        streaming = _streams_by_size(inputs if binary else [], settings)
+    engine = "streaming" if streaming else "auto"
+    if not streaming:  # read once; every later query runs on the frame in memory
+        try:
+            lf = lf.collect().lazy()
+        except pl.exceptions.PolarsError as exc:
+            raise fail("corrupt-file", path=source, format="data", reason=str(exc).splitlines()[0][:200]) from None
+
+    unnumbered = lf  # without row numbers: filters on it reach the file reader
+    lf = lf.with_row_index(ROW_ID)
+    missing_any = pl.any_horizontal([key_missing(k, schema[k]) for k in keys])
+    summary = lf.select(key_counts(keys, schema)).collect(engine=engine)
+    rows, missing = check_key_counts(summary.row(0, named=True), keys, source, bool(inputs))
+    missing_examples: tuple[dict[str, Any], ...] = ()
+    if missing:
+        ex = lf.filter(missing_any).select(ROW_ID, *keys).head(5).collect(engine=engine)
+        missing_examples = tuple(
+            {"row": int(r[ROW_ID]) + 1, **{k: r[k] for k in keys}} for r in ex.iter_rows(named=True)
+        )
+
+    keyed = lf.filter(~missing_any)
+    distinct_times = keyed.select(pl.col(time).unique()).collect(engine=engine).to_series()
+    grid_ = period_grid(time, distinct_times)
+    time_map, step, irregular = grid_.time_map, grid_.step, grid_.irregular
+    labels_sorted, positions_sorted = list(grid_.labels), list(grid_.positions)
+
+    coded, unit_table, eager, by_period = _unit_codes(
+        lf, unnumbered, keyed, missing_any, bool(missing), units, time, time_map, bool(streaming), engine)
     columns = tuple(c for c in schema if c not in keys and c not in INTERNAL)
     return Panel(
         lazy=coded,

@@ -25,7 +25,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from auditor.errors import fail
+from auditor.errors import broken, fail
 
 # os.link is refused on some file systems (FAT, some network and FUSE mounts)
 _NO_LINKS = {errno.EPERM, errno.EXDEV, errno.EMLINK, getattr(errno, "ENOTSUP", -1), getattr(errno, "EOPNOTSUPP", -1)}
@@ -214,7 +214,8 @@ class OutputSet:
 
     def _publish_one(self, entry: _Entry) -> None:
         out, tmp = entry.path, entry.tmp
-        assert tmp is not None
+        if tmp is None:
+            raise broken("tmp is not None")
         for item in self.inputs:  # a glob may match more files now than when claimed
             if _same_file(out, Path(item)):
                 raise fail("output-is-input", path=out)

@@ -271,16 +271,6 @@ def scan_source(path: str | Path, text_columns: Sequence[str] = ()) -> pl.LazyFr
     return lf
 
 
-def read_source(path: str | Path, text_columns: Sequence[str] = ()) -> pl.DataFrame:
-    """One data file read into memory (see :func:`scan_source`)."""
-    lf = scan_source(path, text_columns)
-    try:
-        return lf.collect()
-    except pl.exceptions.PolarsError as exc:
-        reason = str(exc).strip().splitlines()[0]
-        raise fail("corrupt-file", path=path, format=file_format(Path(path))[0], reason=reason[:200]) from None
-
-
 def resolve_inputs(data: Any) -> list[Path]:
     """The data files named by ``data``: a path, a folder, a glob or a list of paths."""
     return expand_inputs(data)[0]

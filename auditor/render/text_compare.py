@@ -79,6 +79,67 @@ def _names(items: Sequence[str], limit: int = 6) -> str:
     return ", ".join(shown) + more
 
 
+def _verdict(wave: Sequence[Any], errors: list[Any], colour: bool) -> str:
+    """Whether the wave can be appended: its errors, a skipped period, its warnings."""
+    skipped = _skipped_periods(wave)
+    if errors:
+        checks = sorted({f.check for f in errors})
+        verdict = paint(
+            f"do not append yet: {len(errors)} problem{'s' if len(errors) != 1 else ''} would corrupt the panel "
+            f"({', '.join(checks)})" + (f"; and {skipped}" if skipped else ""),
+            "error",
+            colour,
+        )
+    elif skipped:
+        verdict = paint(f"no error, but {skipped}: confirm the missing wave or fix the period labels before appending",
+                        "warning", colour)
+    else:
+        verdict = "no error: the wave can be appended once the warnings below are understood"
+        if not any(f.severity == "warning" for f in wave):
+            verdict = "no error and no warning: the wave can be appended"
+    return verdict
+
+
+def _column_moves(result: CompareResult, width: int, colour: bool) -> list[str]:
+    """The table of how each column moved, new wave against the reference (none: no lines)."""
+    lines: list[str] = []
+    if result.columns:
+        lines.append(paint(f"how each column moved (new wave against {safe(result.reference)})", "bold", colour))
+        rows = []
+        for c in result.columns:
+            notes = []
+            if c.get("changed_units"):
+                notes.append(_plural(c["changed_units"], "fixed value") + " changed")
+            if c.get("implausible_jumps"):
+                notes.append(_plural(c["implausible_jumps"], "jump"))
+            if c.get("new_levels"):
+                notes.append(_plural(c["new_levels"], "new level"))
+            if c.get("vanished_levels"):
+                notes.append(_plural(c["vanished_levels"], "level") + " gone")
+            if c.get("periods_with_several_values"):
+                notes.append(_plural(c["periods_with_several_values"], "period") + " not shared by all units")
+            if c.get("expected_step") is not None:
+                notes.append(f"step {c['expected_step']:+g} a period expected")
+            rows.append(
+                [
+                    c["column"],
+                    c["compared_as"],
+                    fmt_num(c["psi"]),
+                    fmt_num(c["ks_statistic"]),
+                    _p_value(c["ks_p"]),
+                    f"{pct(c['missing_base'])} → {pct(c['missing_new'])}",
+                    "; ".join(notes),
+                ]
+            )
+        lines += table(
+            ["column", "as", "PSI", "KS D", "KS p", "missing then → now", "notes"],
+            rows,
+            width,
+            "llrrrrl",
+        )
+    return lines
+
+
 def render(
     result: CompareResult, width: int | None = None, colour: bool = False, color: bool | None = None, *,
     show: str | None = None,
@@ -97,22 +158,7 @@ def render(
             colour,
         )
     ]
-    skipped = _skipped_periods(wave)
-    if errors:
-        checks = sorted({f.check for f in errors})
-        verdict = paint(
-            f"do not append yet: {len(errors)} problem{'s' if len(errors) != 1 else ''} would corrupt the panel "
-            f"({', '.join(checks)})" + (f"; and {skipped}" if skipped else ""),
-            "error",
-            colour,
-        )
-    elif skipped:
-        verdict = paint(f"no error, but {skipped}: confirm the missing wave or fix the period labels before appending",
-                        "warning", colour)
-    else:
-        verdict = "no error: the wave can be appended once the warnings below are understood"
-        if not any(f.severity == "warning" for f in wave):
-            verdict = "no error and no warning: the wave can be appended"
+    verdict = _verdict(wave, errors, colour)
     lines += wrap(f"  verdict  {verdict}", width, 11)
 
     step = f", step {p['step']}" if p.get("step") is not None else ""
@@ -151,38 +197,5 @@ def render(
         lines.append(paint("base + new profiled together", "bold", colour))
         lines += findings_block(list(result.merged_findings), width, colour, show=show)
     lines.append("")
-    if result.columns:
-        lines.append(paint(f"how each column moved (new wave against {safe(result.reference)})", "bold", colour))
-        rows = []
-        for c in result.columns:
-            notes = []
-            if c.get("changed_units"):
-                notes.append(_plural(c["changed_units"], "fixed value") + " changed")
-            if c.get("implausible_jumps"):
-                notes.append(_plural(c["implausible_jumps"], "jump"))
-            if c.get("new_levels"):
-                notes.append(_plural(c["new_levels"], "new level"))
-            if c.get("vanished_levels"):
-                notes.append(_plural(c["vanished_levels"], "level") + " gone")
-            if c.get("periods_with_several_values"):
-                notes.append(_plural(c["periods_with_several_values"], "period") + " not shared by all units")
-            if c.get("expected_step") is not None:
-                notes.append(f"step {c['expected_step']:+g} a period expected")
-            rows.append(
-                [
-                    c["column"],
-                    c["compared_as"],
-                    fmt_num(c["psi"]),
-                    fmt_num(c["ks_statistic"]),
-                    _p_value(c["ks_p"]),
-                    f"{pct(c['missing_base'])} → {pct(c['missing_new'])}",
-                    "; ".join(notes),
-                ]
-            )
-        lines += table(
-            ["column", "as", "PSI", "KS D", "KS p", "missing then → now", "notes"],
-            rows,
-            width,
-            "llrrrrl",
-        )
+    lines += _column_moves(result, width, colour)
     return "\n".join(lines) + "\n"

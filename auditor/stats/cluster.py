@@ -40,7 +40,7 @@ import numpy as np
 import polars as pl
 
 from auditor.checks.config import Settings
-from auditor.errors import fail
+from auditor.errors import broken, fail
 from auditor.io.load import (
     PERIOD_ID,
     UNIT_ID,
@@ -192,7 +192,8 @@ def _count_bucket(*parts: dict[str, moments.Values]) -> dict[str, tuple[int, int
     out: dict[str, tuple[int, int]] = {}
     for c in parts[0]:
         counted = moments.merge_all_values([p[c] for p in parts]).counts()
-        assert counted is not None
+        if counted is None:
+            raise broken("counted is not None")
         out[c] = counted
     return out
 

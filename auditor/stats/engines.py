@@ -22,6 +22,7 @@ import numpy as np
 import polars as pl
 
 from auditor.checks.config import Settings
+from auditor.errors import broken
 from auditor.io.load import PERIOD_ID, UNIT_ID, Panel, integer_codes
 from auditor.stats import moments
 from auditor.stats.moments import Facts, Passes
@@ -67,7 +68,8 @@ def passes(panel: Panel, settings: Settings) -> Passes:
 
 def memory_passes(panel: Panel, settings: Settings) -> Passes:
     """The panel in memory as one shard of whole units."""
-    assert panel.eager is not None
+    if panel.eager is None:
+        raise broken("panel.eager is not None")
     tol, k = kernel_settings(settings)
     whole = moments.shard(
         panel.eager, list(panel.columns), n_units=panel.n_units, n_periods=panel.n_periods,
@@ -78,7 +80,8 @@ def memory_passes(panel: Panel, settings: Settings) -> Passes:
 
 def streaming_passes(panel: Panel, settings: Settings) -> Passes:
     """A streaming panel in bounded memory: ranges of units (one key column) or batches of rows."""
-    assert panel.by_period is not None
+    if panel.by_period is None:
+        raise broken("panel.by_period is not None")
     tol, k = kernel_settings(settings)
     facts = whole_column_facts(panel)
     if by_unit_ranges(panel):
@@ -96,7 +99,8 @@ def by_unit_ranges(panel: Panel) -> bool:
 def whole_column_facts(panel: Panel) -> dict[str, Facts]:
     """Each column of a streaming panel read whole, one or two at a time (one is read
     while another sorts): its first finite value and its exact value counts."""
-    assert panel.by_period is not None
+    if panel.by_period is None:
+        raise broken("panel.by_period is not None")
 
     def one(c: str) -> Facts:
         s = panel.collect(panel.by_period.select(c)).to_series()
@@ -112,7 +116,8 @@ def whole_column_facts(panel: Panel) -> dict[str, Facts]:
 
 def _unit_ranges(panel: Panel, tol: float, k: int) -> Iterable[moments.Shard]:
     """Shards of whole units: contiguous ranges of the sorted unit key, read one at a time."""
-    assert panel.by_period is not None
+    if panel.by_period is None:
+        raise broken("panel.by_period is not None")
     key = panel.unit[0]
     n, cols = panel.n_units, list(panel.columns)
     parts = max(1, int(np.ceil((panel.rows - panel.missing_keys) / PARTITION_ROWS)))
@@ -141,7 +146,8 @@ def code_units(frame: pl.DataFrame, unit: Sequence[str], units: pl.DataFrame) ->
 
 
 def _row_batches(panel: Panel) -> Iterable[pl.DataFrame]:
-    assert panel.by_period is not None
+    if panel.by_period is None:
+        raise broken("panel.by_period is not None")
     query = panel.by_period.select(*panel.unit, PERIOD_ID, *panel.columns)
     for batch in query.collect_batches(chunk_size=BATCH_ROWS):
         yield code_units(batch, panel.unit, panel.units)

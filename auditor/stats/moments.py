@@ -65,6 +65,7 @@ from typing import Any
 import numpy as np
 import polars as pl
 
+from auditor.errors import broken
 from auditor.io.load import PERIOD_ID, UNIT_ID
 
 DENSE_CELLS = 50_000_000  # units x periods up to which cell counts are held dense
@@ -783,7 +784,8 @@ def _coded(ctx: _Context, s: pl.Series) -> Coded:
     else:
         uu, cc = ctx.u, codes
         n_i = ctx.unit_rows
-        assert ctx.rep_row is not None
+        if ctx.rep_row is None:
+            raise broken("ctx.rep_row is not None")
         rep, per_row = ctx.rep_row.result()
         ref = np.take(codes, per_row, mode="clip")
     changed = np.zeros(ctx.m, dtype=bool)
@@ -858,7 +860,8 @@ def changes(frame: pl.DataFrame, columns: Sequence[str], *, n_units: int, n_peri
                   examples=examples, tolerance=tolerance)
     out = {}
     for c, col in whole.columns.items():
-        assert col.finals is not None
+        if col.finals is None:
+            raise broken("col.finals is not None")
         changing = np.zeros(n_units, dtype=bool)
         changing[whole.units] = col.finals.changing
         out[c] = (changing, col.finals.examples)
@@ -940,10 +943,12 @@ def merge(a: Shard, b: Shard) -> Shard:
     for c, ca in a.columns.items():
         cb = b.columns[c]
         if isinstance(ca, Numbers):
-            assert isinstance(cb, Numbers)
+            if not isinstance(cb, Numbers):
+                raise broken("isinstance(cb, Numbers)")
             columns[c] = _merge_numbers(ca, cb, ia, ib, ka, kb, size, whole)
         else:
-            assert isinstance(cb, Coded)
+            if not isinstance(cb, Coded):
+                raise broken("isinstance(cb, Coded)")
             columns[c] = _merge_coded(ca, cb, ia, ib, ka, kb, size, whole)
     return Shard(
         a.n_units, a.n_periods, units, whole,
@@ -1594,7 +1599,8 @@ def _finish_number(c: str, col: Numbers, merged: Shard, values: tuple[int, int],
     if col.finals is not None:
         changing, rhs, ex = col.finals.changing, col.finals.rhs, col.finals.examples[:examples]
     else:
-        assert refinement is not None and the_plan is not None
+        if refinement is None or the_plan is None:
+            raise broken("refinement is not None and the_plan is not None")
         want = the_plan.wanted[c]
         lo_w, hi_w = refinement.lo[c], refinement.hi[c]
 
@@ -1632,7 +1638,8 @@ def _finish_coded(c: str, col: Coded, merged: Shard, values: tuple[int, int], re
     if col.finals is not None:
         ex = col.finals.examples[:examples]
     else:
-        assert refinement is not None
+        if refinement is None:
+            raise broken("refinement is not None")
         ex = _examples_from(refinement.lo[c], np.flatnonzero(col.changed)[:examples], col.nested)
     return ColumnStats(
         nulls=col.nulls, non_finite=0, distinct=values[0], top=values[1], n_i=col.n, changing=col.changed,

@@ -99,21 +99,8 @@ def _decode(patterns: pl.Series, n_periods: int) -> np.ndarray:
 LABELLED_PATTERNS = 1000  # patterns given a text label; rarer ones keep only their periods
 
 
-def compute_structure(
-    panel: Panel,
-    settings: Settings,
-    unit_table: pl.DataFrame | None = None,
-    duplicate_cells: pl.DataFrame | None = None,
-) -> Structure:
-    """Structure of ``panel``: every field of the contract's ``panel`` object.
-
-    ``unit_table`` is the shared grouped pass by unit holding :func:`unit_exprs`
-    (computed here when None); ``duplicate_cells`` the first (unit, period, rows)
-    cells holding several rows when already known (found here otherwise).
-    """
-    n_periods = panel.n_periods
-    if unit_table is None:
-        unit_table = panel.collect(panel.lazy.group_by(UNIT_ID).agg(unit_exprs(panel)))
+def _per_unit(unit_table: pl.DataFrame, n_periods: int) -> pl.DataFrame:
+    """One row per unit: rows, first and last period, participation pattern, periods seen, gaps."""
     per_unit = unit_table.select(
         pl.col(UNIT_ID),
         pl.col("__rows").cast(pl.Int64).alias("rows"),
@@ -129,32 +116,18 @@ def compute_structure(
     per_unit = per_unit.with_columns(
         ((pl.col("last") - pl.col("first")).cast(pl.Int64) + 1 - pl.col("periods_seen")).alias("gap_periods")
     )
-    duplicate_keys = int((per_unit["rows"] - per_unit["periods_seen"]).sum())
-    n = per_unit.height
-    t_i = per_unit["rows"].to_numpy().astype(np.float64)
-    n_rows = float(t_i.sum())
-    inv_sum = float((1.0 / t_i).sum())
-    harmonic = n / inv_sum
-    t_mean = n_rows / n
-    unbalancedness = n / (t_mean * inv_sum)
+    return per_unit
 
-    gaps = per_unit.filter(pl.col("gap_periods") > 0)
-    units_with_gaps = gaps.height
-    gap_periods = int(gaps["gap_periods"].sum()) if units_with_gaps else 0
-    singletons = int((per_unit["rows"] == 1).sum())
-    balanced = (
-        duplicate_keys == 0
-        and bool((per_unit["periods_seen"] == n_periods).all())
-        and bool((per_unit["rows"] == n_periods).all())
-    )
 
-    # Participation patterns: units grouped by the set of periods they are seen in.
+def _patterns(per_unit: pl.DataFrame, panel: Panel) -> tuple[pl.DataFrame, np.ndarray, pl.DataFrame]:
+    """Participation patterns: (units by pattern, the periods each pattern holds as a boolean
+    matrix, the patterns table with period lists and labels), most common first."""
     pat = (
         per_unit.group_by("pattern")
         .agg(pl.len().alias("units"))
         .sort(["units", "pattern"], descending=[True, False])
     )
-    seen = _decode(pat["pattern"], n_periods)
+    seen = _decode(pat["pattern"], panel.n_periods)
     rows_idx, cols_idx = np.nonzero(seen)
     periods_lists = (
         pl.DataFrame({"r": rows_idx.astype(np.int64), "p": cols_idx.astype(np.uint32)})
@@ -173,9 +146,12 @@ def compute_structure(
             "units": pat["units"].cast(pl.Int64),
         }
     )
-    top = int(settings.get("profile", "patterns"))
+    return pat, seen, patterns
 
-    # Attrition by period, from the pattern table (a few rows) and first/last periods.
+
+def _attrition(per_unit: pl.DataFrame, pat: pl.DataFrame, seen: np.ndarray, panel: Panel) -> list[dict[str, Any]]:
+    """Attrition by period, from the pattern table (a few rows) and each unit's first and last period."""
+    n_periods = panel.n_periods
     weights = pat["units"].to_numpy().astype(np.int64)
     present = (seen * weights[:, None]).sum(axis=0)
     before = np.cumsum(seen, axis=1) - seen > 0  # seen in some earlier period
@@ -195,7 +171,12 @@ def compute_structure(
         }
         for t in range(n_periods)
     ]
+    return attrition
 
+
+def _examples(panel: Panel, per_unit: pl.DataFrame, gaps: pl.DataFrame, duplicate_keys: int,
+              duplicate_cells: pl.DataFrame | None, settings: Settings) -> tuple[tuple[dict[str, Any], ...], ...]:
+    """The first duplicated (unit, period) cells and the first units with gaps, as examples."""
     if duplicate_cells is not None:
         dup_cells = duplicate_cells
     elif duplicate_keys:
@@ -221,6 +202,50 @@ def compute_structure(
         {**lab, "absent_periods": int(g)}
         for lab, g in zip(gap_labels, gap_ex["gap_periods"].to_list(), strict=True)
     )
+    return duplicate_examples, gap_examples
+
+
+def compute_structure(
+    panel: Panel,
+    settings: Settings,
+    unit_table: pl.DataFrame | None = None,
+    duplicate_cells: pl.DataFrame | None = None,
+) -> Structure:
+    """Structure of ``panel``: every field of the contract's ``panel`` object.
+
+    ``unit_table`` is the shared grouped pass by unit holding :func:`unit_exprs`
+    (computed here when None); ``duplicate_cells`` the first (unit, period, rows)
+    cells holding several rows when already known (found here otherwise).
+    """
+    n_periods = panel.n_periods
+    if unit_table is None:
+        unit_table = panel.collect(panel.lazy.group_by(UNIT_ID).agg(unit_exprs(panel)))
+    per_unit = _per_unit(unit_table, n_periods)
+    duplicate_keys = int((per_unit["rows"] - per_unit["periods_seen"]).sum())
+    n = per_unit.height
+    t_i = per_unit["rows"].to_numpy().astype(np.float64)
+    n_rows = float(t_i.sum())
+    inv_sum = float((1.0 / t_i).sum())
+    harmonic = n / inv_sum
+    t_mean = n_rows / n
+    unbalancedness = n / (t_mean * inv_sum)
+
+    gaps = per_unit.filter(pl.col("gap_periods") > 0)
+    units_with_gaps = gaps.height
+    gap_periods = int(gaps["gap_periods"].sum()) if units_with_gaps else 0
+    singletons = int((per_unit["rows"] == 1).sum())
+    balanced = (
+        duplicate_keys == 0
+        and bool((per_unit["periods_seen"] == n_periods).all())
+        and bool((per_unit["rows"] == n_periods).all())
+    )
+
+    pat, seen, patterns = _patterns(per_unit, panel)
+    top = int(settings.get("profile", "patterns"))
+
+    attrition = _attrition(per_unit, pat, seen, panel)
+
+    duplicate_examples, gap_examples = _examples(panel, per_unit, gaps, duplicate_keys, duplicate_cells, settings)
 
     obs = per_unit.group_by("rows").agg(pl.len().alias("units")).sort("rows").rename({"rows": "t_i"})
     summary = {
