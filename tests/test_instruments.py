@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -14,6 +15,8 @@ from test_models import simulate
 
 from auditor.commands.instruments import instruments
 from auditor.errors import AuditError
+
+DATA = Path(__file__).parent / "data"
 
 SIM_REGS = ["x1a", "x1b", "x2", "z1", "z2"]
 
@@ -364,3 +367,17 @@ def test_with_one_overidentifying_restriction_the_sargan_test_decides_usability(
     assert all(c["c_p"] is None for c in sim_result.candidates)
     sargan_accepts = sim_result.tests["overidentification"]["p"] >= 0.05
     assert all(c["usable"] for c in sim_result.candidates) or not sargan_accepts
+
+
+def test_attrition_test_with_a_rounding_level_standard_error_is_not_reported():
+    # A small panel (found by tests/test_fuzz_commands.py) where s_i,t+1 varies within units
+    # only where the within residuals are zero: the unit-clustered scores vanish in exact
+    # arithmetic, so the clustered se is rounding (about 1e-16 of the coefficient) and t was
+    # ~2e15, a different ~1e15 after reordering the rows. The test has no information there:
+    # tests.attrition is null, whatever the row order.
+    frame = pl.read_csv(DATA / "attrition_rounding_se.csv",
+                        schema_overrides={"plot": pl.String})
+    kw = dict(unit="plot", time="wave", outcome="y", regressors=["x1", "x2", "z"], correlated=["x2"])
+    assert instruments(frame, **kw).to_dict()["tests"]["attrition"] is None
+    shuffled = frame[np.random.default_rng(0).permutation(frame.height)]
+    assert instruments(shuffled, **kw).to_dict()["tests"]["attrition"] is None

@@ -639,7 +639,8 @@ def _instrument_tests() -> Schema:
                 "rows": _int("Rows used (those before the grid's last period)."),
                 "rows_without_next": _int("Of those, rows whose unit is absent in the next period."),
             },
-        ), "when nobody leaves (or leaving is collinear with the regressors within units)"),
+        ), "when nobody leaves (or leaving is collinear with the regressors within units, or its clustered "
+                    "standard error is zero up to rounding)"),
         "attrition_note": _str("Why the attrition test was not computed (present only then: the dask "
                                "engine has no row's period)."),
     }, optional=("attrition_note",))

@@ -20,6 +20,12 @@ from auditor.stats.identification import sequential_rank
 from auditor.stats.pvalues import normal_sf
 
 VARIABLE = "next period observed"
+#: a clustered standard error at most this share of the coefficient is rounding, not
+#: information: the clustered scores vanish in exact arithmetic (the indicator varies within
+#: units only where the within residuals are zero), and t would be ~1e15, differing with
+#: the order of the rows; sqrt of the float64 epsilon, the usual threshold for "zero up to
+#: rounding" (common practice)
+ROUNDING_SE = float(np.sqrt(np.finfo(np.float64).eps))
 
 
 def nijman_verbeek(pa: models.PanelArrays, columns: list[str], period: np.ndarray, tol: float = 1e-9
@@ -28,7 +34,8 @@ def nijman_verbeek(pa: models.PanelArrays, columns: list[str], period: np.ndarra
     among them), ``period`` the grid index of each row. Returns the contract's
     ``tests.attrition`` (statistic = t squared, chi-square 1 df; ``t``, ``coef`` and the rows used
     beside it), or None when nobody leaves (the indicator has no within variation, or it is
-    collinear with the other columns within units)."""
+    collinear with the other columns within units), or when its clustered standard error is
+    zero up to rounding (:data:`ROUNDING_SE`): the test has no information then."""
     last = int(period.max())
     periods = last + 1
     present = np.bincount(pa.codes * periods + period, minlength=pa.n * periods) > 0
@@ -49,7 +56,7 @@ def nijman_verbeek(pa: models.PanelArrays, columns: list[str], period: np.ndarra
     fit, _ = models.within(sub, cols)
     j = fit.names.index(VARIABLE)
     se = float(fit.se_cluster[j])
-    if not se > 0:
+    if not se > ROUNDING_SE * abs(float(fit.coef[j])):
         return None
     t = float(fit.coef[j]) / se
     return {"statistic": t * t, "df": 1, "p": 2.0 * normal_sf(abs(t)), "variable": VARIABLE, "t": t,
