@@ -9,7 +9,7 @@ imports alike: all of them name a dependency) and fails on
 
 Layers, lowest first (DEVELOPERS.md, "Architecture map"):
 
-0. base: ``auditor.errors``, ``auditor.progress``, ``auditor.version``, ``auditor.vocab``
+0. base: ``auditor.errors``, ``auditor.progress``, ``auditor.version``, ``auditor.vocab``, ``auditor.dtypes``
 1. ``auditor.checks``: the Finding value, thresholds, the finding catalogue, the contract file
 2. ``auditor.io``: inputs to a validated panel, the period grid, outputs written whole
 3. ``auditor.stats``: the moments kernel, its engines and every statistic
@@ -39,7 +39,7 @@ import pytest
 PACKAGE = Path(__file__).resolve().parent.parent / "auditor"
 
 LAYERS = {
-    "auditor.errors": 0, "auditor.progress": 0, "auditor.version": 0, "auditor.vocab": 0,
+    "auditor.errors": 0, "auditor.progress": 0, "auditor.version": 0, "auditor.vocab": 0, "auditor.dtypes": 0,
     "auditor.checks": 1,
     "auditor.io": 2,
     "auditor.stats": 3,

@@ -12,7 +12,8 @@ from dataclasses import dataclass, field
 from typing import Any, Protocol
 
 SEVERITIES: tuple[str, ...] = ("error", "warning", "note")
-_RANK = {name: i for i, name in enumerate(SEVERITIES)}
+#: the one severity ranking (0 the most serious), for sorting in every renderer
+SEVERITY_RANK: dict[str, int] = {name: i for i, name in enumerate(SEVERITIES)}
 
 
 class SeverityOverrides(Protocol):
@@ -200,7 +201,7 @@ def make(
 def sort_findings(findings: Iterable[Finding]) -> tuple[Finding, ...]:
     """Findings in the contract's order: severity (error first), then check, then column."""
     return tuple(
-        sorted(findings, key=lambda f: (_RANK.get(f.severity, 99), f.check, f.column or ""))
+        sorted(findings, key=lambda f: (SEVERITY_RANK.get(f.severity, 99), f.check, f.column or ""))
     )
 
 
@@ -208,8 +209,8 @@ def exit_code(findings: Iterable[Finding], fail_on: str) -> int:
     """0 when no finding reaches ``fail_on`` ('error', 'warning' or 'never'), else 1."""
     if fail_on == "never":
         return 0
-    limit = _RANK[fail_on]
-    return 1 if any(_RANK.get(f.severity, 99) <= limit for f in findings) else 0
+    limit = SEVERITY_RANK[fail_on]
+    return 1 if any(SEVERITY_RANK.get(f.severity, 99) <= limit for f in findings) else 0
 
 
 def counts_by_severity(findings: Iterable[Finding]) -> dict[str, int]:

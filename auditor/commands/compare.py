@@ -43,6 +43,7 @@ import polars as pl
 
 from auditor.checks.config import Settings, load_settings
 from auditor.checks.findings import Finding, make, sort_findings
+from auditor.dtypes import compare_dtype_name, null_or_nan, type_family
 from auditor.errors import AuditError, fail, short_list
 from auditor.io.load import INTERNAL, UNIT_ID, Panel, load_panel, parse_unit
 from auditor.io.periods import grid_step
@@ -321,30 +322,9 @@ def _median_and_mad(s: pl.Series) -> tuple[float | None, float | None]:
     return m, float(np.median(np.abs(v - m)))
 
 
-def _dtype_name(dt: pl.DataType) -> str:
-    if isinstance(dt, pl.Datetime):
-        return "datetime"
-    if isinstance(dt, pl.Categorical):
-        return "categorical"
-    if isinstance(dt, pl.Enum):
-        return "enum"
-    return str(dt).lower()
-
-
 def _family(dt: pl.DataType) -> str:
-    if dt.is_integer():
-        return "integer"
-    if dt.is_float() or dt.is_decimal():
-        return "float"
-    if dt == pl.Boolean:
-        return "boolean"
-    if dt in (pl.String, pl.Utf8) or isinstance(dt, pl.Categorical | pl.Enum):
-        return "text"
-    if dt == pl.Date:
-        return "date"
-    if isinstance(dt, pl.Datetime):
-        return "datetime"
-    return _dtype_name(dt)
+    """The dtype's family (auditor.dtypes.type_family), or its name when it has none."""
+    return type_family(dt) or compare_dtype_name(dt)
 
 
 def _is_numeric(dt: pl.DataType) -> bool:
@@ -361,13 +341,6 @@ def _clean(col: str, dt: pl.DataType) -> pl.Expr:
     if dt.is_float():
         return pl.when(c.is_finite()).then(c).otherwise(None).alias(col)
     return c
-
-
-def _missing(col: str, dt: pl.DataType) -> pl.Expr:
-    e = pl.col(col).is_null()
-    if dt.is_float():
-        e = e | pl.col(col).is_nan()
-    return e
 
 
 def _json_value(v: Any) -> Any:
@@ -586,12 +559,12 @@ class _Comparison:
             # A width change within one family (int32 vs int64) changes nothing when appending.
             if _family(bs[c]) != _family(ns[c]):
                 changed.append(
-                    {"column": c, "base": _dtype_name(bs[c]), "new": _dtype_name(ns[c]), "key": c in keys}
+                    {"column": c, "base": compare_dtype_name(bs[c]), "new": compare_dtype_name(ns[c]), "key": c in keys}
                 )
         for c in added:
             self.add(
                 "column-added",
-                f"column '{c}' ({_dtype_name(ns[c])}) is new in this wave; after appending it is "
+                f"column '{c}' ({compare_dtype_name(ns[c])}) is new in this wave; after appending it is "
                 "missing for every base period: document it or leave it out of models that span them",
                 column=c,
                 count=1,
@@ -652,8 +625,8 @@ class _Comparison:
 
         compared = [*self.numeric, *self.levels, *[c for c in self.other if _family(bs[c]) == _family(ns[c])]]
         self.compared = compared
-        miss_b = [_missing(c, bs[c]).alias(f"__pa_miss_{j}") for j, c in enumerate(compared)]
-        miss_n = [_missing(c, ns[c]).alias(f"__pa_miss_{j}") for j, c in enumerate(compared)]
+        miss_b = [null_or_nan(c, bs[c]).alias(f"__pa_miss_{j}") for j, c in enumerate(compared)]
+        miss_n = [null_or_nan(c, ns[c]).alias(f"__pa_miss_{j}") for j, c in enumerate(compared)]
         self.B = self.bp.frame.select(
             UNIT_ID, bpos, *[cast_expr(c, bs[c]) for c in compared], *miss_b
         )

@@ -23,7 +23,8 @@ import polars as pl
 
 from auditor.checks.config import Settings
 from auditor.checks.contract import ColumnRules, Contract
-from auditor.contracts.rules import RuleResult, count, fit_to_type, type_family
+from auditor.contracts.rules import RuleResult, count, fit_to_type
+from auditor.dtypes import type_family
 from auditor.io.load import UNIT_ID, Panel, _to_lazy, load_panel
 
 BASE_UNIT = "__pa_base_unit"

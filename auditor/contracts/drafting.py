@@ -44,9 +44,9 @@ from auditor.contracts.rules import (
     invariant_counts,
     missing_as_null,
     step_changes,
-    type_family,
     unit_periods,
 )
+from auditor.dtypes import type_family
 from auditor.io.load import PERIOD_ID, UNIT_ID, Panel
 
 COMMENT_AT = 40  # the column where a rule's comment starts, when the rule is shorter

@@ -36,6 +36,7 @@ from auditor.checks.contract import (
     period_text,
     read_contract,
 )
+from auditor.dtypes import type_family
 from auditor.errors import fail, short_list
 from auditor.io.load import PERIOD_ID, UNIT_ID, Panel, parse_unit
 
@@ -195,23 +196,6 @@ def contract_keys(
 
 
 # --- column types -----------------------------------------------------------------
-
-
-def type_family(dtype: pl.DataType) -> str | None:
-    """The contract type name for a polars dtype (None when the contract has none for it)."""
-    if dtype == pl.Boolean:
-        return "boolean"
-    if dtype.is_integer():
-        return "integer"
-    if dtype.is_float() or isinstance(dtype, pl.Decimal):
-        return "float"
-    if dtype in (pl.String, pl.Categorical) or isinstance(dtype, pl.Categorical | pl.Enum):
-        return "text"
-    if dtype == pl.Date:
-        return "date"
-    if isinstance(dtype, pl.Datetime):
-        return "datetime"
-    return None
 
 
 def _type_matches(wanted: str, dtype: pl.DataType) -> bool:

@@ -17,13 +17,13 @@ from dataclasses import dataclass, replace
 from datetime import UTC, datetime
 from typing import TYPE_CHECKING, Any
 
+from auditor.checks.findings import SEVERITY_RANK
 from auditor.render.sanitise import visible
 from auditor.version import __version__
 
 if TYPE_CHECKING:  # pragma: no cover
     from auditor.checks.config import Settings
 
-_RANK = {"error": 0, "warning": 1, "note": 2}
 
 SECTIONS: tuple[tuple[str, str], ...] = (
     ("summary", "Summary"),
@@ -113,7 +113,7 @@ def _plural(n: Any, word: str, many: str | None = None) -> str:
 
 
 def _tag(severity: str) -> str:
-    s = severity if severity in _RANK else "note"
+    s = severity if severity in SEVERITY_RANK else "note"
     return f'<span class="pa-tag pa-{s}">{esc(severity)}</span>'
 
 
@@ -266,7 +266,7 @@ def _all_findings(result: Any, instruments: Mapping[str, Any] | None, comparison
         if doc:
             items.extend({**dict(f), "source": source} for f in doc.get("findings", []) or [])
     order = {"profile": 0, "model readiness": 1, "new wave": 2}
-    items.sort(key=lambda d: (_RANK.get(str(d.get("severity")), 9), order[d["source"]],
+    items.sort(key=lambda d: (SEVERITY_RANK.get(str(d.get("severity")), 9), order[d["source"]],
                               str(d.get("check")), str(d.get("column") or "")))
     return items
 
@@ -311,7 +311,7 @@ def _summary(result: Any, findings: list[dict[str, Any]], lim: Limits) -> str:
     if extra:
         text = "; ".join(extra)
         parts.append(text[0].upper() + text[1:] + ".")
-    tally = {s: sum(1 for f in findings if f.get("severity") == s) for s in _RANK}
+    tally = {s: sum(1 for f in findings if f.get("severity") == s) for s in SEVERITY_RANK}
     if findings:
         parts.append(
             f"The audit raised {_plural(tally['error'], 'error')}, {_plural(tally['warning'], 'warning')} "
@@ -321,7 +321,7 @@ def _summary(result: Any, findings: list[dict[str, Any]], lim: Limits) -> str:
         parts.append("The audit raised no finding.")
     chips = "".join(
         f'<span class="pa-chip pa-{s}"><b>{tally[s]:,}</b> {s}{"s" if tally[s] != 1 else ""}</span>'
-        for s in _RANK
+        for s in SEVERITY_RANK
     )
     top = findings[:5]
     lead = ""
@@ -925,7 +925,7 @@ def instruments_fragment(result: Any, *, figures: bool = True) -> str:
             svgs["anderson-rubin"] = fg.to_svg(fg.anderson_rubin_set(
                 doc["strength"], (doc.get("estimates") or {}).get("hausman_taylor")), name="anderson-rubin")
     items = [{**dict(f), "source": "model readiness"} for f in doc.get("findings", []) or []]
-    items.sort(key=lambda d: _RANK.get(str(d.get("severity")), 9))
+    items.sort(key=lambda d: SEVERITY_RANK.get(str(d.get("severity")), 9))
     return _fragment([_findings(items, lim), _readiness(doc, svgs, lim)])
 
 
@@ -940,7 +940,7 @@ def compare_fragment(result: Any, *, figures: bool = True) -> str:
         svgs["wave-shift"] = fg.to_svg(fg.wave_shift(doc["columns"], max_columns=lim.figure_columns),
                                        name="wave-shift")
     items = [{**dict(f), "source": "new wave"} for f in doc.get("findings", []) or []]
-    items.sort(key=lambda d: _RANK.get(str(d.get("severity")), 9))
+    items.sort(key=lambda d: SEVERITY_RANK.get(str(d.get("severity")), 9))
     return _fragment([_findings(items, lim), _new_wave(doc, svgs, lim)])
 
 

@@ -21,6 +21,7 @@ import numpy as np
 import polars as pl
 
 from auditor.checks.config import Settings
+from auditor.dtypes import null_or_non_finite
 from auditor.errors import fail, short_list
 from auditor.io.load import INTERNAL, PERIOD_ID, UNIT_ID, Panel
 from auditor.stats import identification, models
@@ -70,13 +71,6 @@ def _validate(panel: Panel, outcome: str, regs: list[str], correlated: list[str]
             parent = c.split("=", 1)[0] if c not in regs else c
             if parent not in regs:
                 raise fail("instruments-not-a-regressor", option=option, column=c, regressors=", ".join(regs))
-
-
-def _missing(col: str, dtype: pl.DataType) -> pl.Expr:
-    e = pl.col(col).is_null()
-    if dtype.is_float():
-        e = e | ~pl.col(col).is_finite()
-    return e
 
 
 # Kept for callers of the first release: the rank pass now lives in auditor.stats.identification.
@@ -130,7 +124,7 @@ def unit_modes(counts: pl.DataFrame, c: str) -> tuple[pl.DataFrame, int]:
 
 def value_counts_by_unit(frame: pl.DataFrame, c: str, dtype: pl.DataType) -> pl.DataFrame:
     """(unit, value, len): how often each unit holds each non-missing value of ``c``."""
-    return frame.filter(~_missing(c, dtype)).group_by([UNIT_ID, c]).len()
+    return frame.filter(~null_or_non_finite(c, dtype)).group_by([UNIT_ID, c]).len()
 
 
 def with_modes(frame: pl.DataFrame, c: str, modes: pl.DataFrame) -> pl.DataFrame:
@@ -149,12 +143,12 @@ def _treat_as_invariant(frame: pl.DataFrame, c: str, dtype: pl.DataType) -> tupl
 
 def complete(frame: pl.DataFrame, used: Sequence[str], schema: dict[str, pl.DataType]) -> pl.DataFrame:
     """The rows with every used column present (finite, for floats)."""
-    return frame.filter(~pl.any_horizontal([_missing(c, schema[c]) for c in used]))
+    return frame.filter(~pl.any_horizontal([null_or_non_finite(c, schema[c]) for c in used]))
 
 
 def missing_counts(frame: pl.DataFrame, used: Sequence[str], schema: dict[str, pl.DataType]) -> dict[str, int]:
     """Missing (null, NaN or infinite) values of each used column."""
-    return frame.select([_missing(c, schema[c]).sum().alias(c) for c in used]).row(0, named=True)
+    return frame.select([null_or_non_finite(c, schema[c]).sum().alias(c) for c in used]).row(0, named=True)
 
 
 def level_counts(frame: pl.DataFrame, c: str) -> pl.DataFrame:

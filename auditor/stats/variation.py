@@ -18,6 +18,7 @@ import polars as pl
 
 from auditor.checks.config import Settings
 from auditor.checks.findings import Finding, make
+from auditor.dtypes import profile_dtype_name
 from auditor.io.load import Panel
 from auditor.stats.moments import Passes, SparsePeriods, decompose, is_number
 
@@ -61,15 +62,6 @@ class Variation:
     missing_by_period: pl.DataFrame
     absorbed_basis: dict[str, Any]
     changing_examples: dict[str, tuple[dict[str, Any], ...]]
-
-
-def dtype_name(dtype: pl.DataType) -> str:
-    """A short lower-case name for a polars dtype (``float64``, ``int64``, ``string``, ...)."""
-    if isinstance(dtype, pl.Categorical | pl.Enum):
-        return "categorical"
-    if isinstance(dtype, pl.Datetime):
-        return "datetime"
-    return str(dtype).lower()
 
 
 is_numeric = is_number  # whether the within/between decomposition applies
@@ -118,7 +110,7 @@ def compute_variation(panel: Panel, settings: Settings, passes: Passes | None = 
         observed_twice = int((st.n_i >= 2).sum())
         rec: dict[str, Any] = {
             "name": c,
-            "dtype": dtype_name(dt),
+            "dtype": profile_dtype_name(dt),
             "missing_share": st.nulls / n_rows if n_rows else None,
             "distinct": st.distinct,
             "units_observed_twice": observed_twice,
