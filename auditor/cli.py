@@ -404,7 +404,7 @@ def _cmd_demo(args: argparse.Namespace) -> int:
 
 
 def _cmd_explain(args: argparse.Namespace) -> int:
-    from auditor.render.text_explain import render_all, render_one
+    from auditor.render.text_explain import render
 
     if args.json:
         from auditor.checks.explain import as_document
@@ -414,7 +414,7 @@ def _cmd_explain(args: argparse.Namespace) -> int:
         return 0
     from auditor.render.text import terminal_width
 
-    _say(render_one(args.code, terminal_width()) if args.code else render_all(terminal_width()))
+    _say(render(args.code or None, width=terminal_width()))
     return 0
 
 

@@ -201,7 +201,7 @@ def findings_block(findings: Sequence[Finding], width: int, colour: bool, exampl
     return lines
 
 
-def render(result: ProfileResult, width: int | None = None, colour: bool = False, *,
+def render(result: ProfileResult, *, width: int | None = None, colour: bool = False,
            show: str | None = None) -> str:
     """The profile as terminal text (``show``: the least severe findings listed, see findings_block)."""
     width = width or terminal_width()

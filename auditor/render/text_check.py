@@ -12,7 +12,7 @@ from __future__ import annotations
 
 from typing import TYPE_CHECKING, Any
 
-from auditor.render.text import paint, safe, wrap
+from auditor.render.text import paint, safe, terminal_width, wrap
 
 if TYPE_CHECKING:  # pragma: no cover
     from auditor.commands.check import CheckResult
@@ -31,15 +31,13 @@ def _example_text(example: dict[str, Any]) -> str:
     return ", ".join(f"{safe(k)}={safe(v)}" for k, v in example.items())
 
 
-def render(
-    result: CheckResult, width: int = 100, colour: bool = False, *, color: bool | None = None
-) -> str:
-    """The check result as terminal text, at most ``width`` characters a line.
-
-    ``colour`` (or its spelling ``color``) turns ANSI styles on.
-    """
-    color = colour if color is None else color
-    width = max(60, width)
+def render(result: CheckResult, *, width: int | None = None, colour: bool = False,
+           show: str | None = None) -> str:
+    """The check result as terminal text, at most ``width`` characters a line (the
+    terminal's when None, at least 60); ``colour`` turns ANSI styles on; ``show`` is
+    accepted for the common signature (a contract's rules are all listed)."""
+    color = colour
+    width = max(60, width or terminal_width())
     broken = result.failed
     skipped = result.not_evaluated
     total = len(result.rules)

@@ -140,13 +140,9 @@ def _column_moves(result: CompareResult, width: int, colour: bool) -> list[str]:
     return lines
 
 
-def render(
-    result: CompareResult, width: int | None = None, colour: bool = False, color: bool | None = None, *,
-    show: str | None = None,
-) -> str:
-    """The comparison as terminal text (``color`` is accepted as a synonym of ``colour``)."""
-    if color is not None:
-        colour = color
+def render(result: CompareResult, *, width: int | None = None, colour: bool = False,
+           show: str | None = None) -> str:
+    """The comparison as terminal text (``show``: the least severe findings listed)."""
     width = width or terminal_width()
     u, p, s = result.units, result.periods, result.schema
     wave = result.wave_findings

@@ -2,10 +2,18 @@
 
 from __future__ import annotations
 
-from auditor.render.text import wrap
+from auditor.render.text import terminal_width, wrap
 
 
-def render_all(width: int = 100) -> str:
+def render(code: str | None = None, *, width: int | None = None, colour: bool = False,
+           show: str | None = None) -> str:
+    """Every finding code on one line each (``code`` None), or one code in full; the
+    common text-renderer signature (``colour`` and ``show`` change nothing here)."""
+    width = width or terminal_width()
+    return _one(code, width) if code else _all(width)
+
+
+def _all(width: int) -> str:
     """Every finding code, one a line: the code, its default severity and command, what it looks for."""
     from auditor.checks.findings import CHECKS
 
@@ -21,7 +29,7 @@ def render_all(width: int = 100) -> str:
     return "\n".join(lines) + "\n"
 
 
-def render_one(code: str, width: int = 100) -> str:
+def _one(code: str, width: int) -> str:
     """One code: what it means, what its count counts, why it matters, what to do."""
     from auditor.checks.explain import check_or_fail
     from auditor.checks.findings import CHECKS

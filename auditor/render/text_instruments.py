@@ -254,12 +254,11 @@ def _richer(d: dict[str, Any], width: int, colour: bool) -> list[str]:
     return lines
 
 
-def render(result: InstrumentsResult, width: int | None = None, color: bool = False, *,
-           colour: bool | None = None, show: str | None = None) -> str:
-    """The instruments result as terminal text, ``width`` columns wide, ANSI colour when ``color``
-    (``colour`` is accepted as the same switch)."""
+def render(result: InstrumentsResult, *, width: int | None = None, colour: bool = False,
+           show: str | None = None) -> str:
+    """The instruments result as terminal text, ``width`` columns wide (the terminal's when
+    None), ANSI colour when ``colour``; ``show``: the least severe findings listed."""
     width = width or terminal_width()
-    colour = color if colour is None else colour
     d = result.to_dict()
     s = d["sample"]
     head = (
