@@ -251,9 +251,12 @@ def _beyond(design: Design, ident: identification.Identification, roles: Roles, 
                     "more than twice as many units as columns, or the first stage fits the units almost exactly)")
         else:
             lev = design.pa.select(list(roles.x1) + list(roles.x2), list(roles.z1) + list(roles.z2))
+            period = dense.astype(np.int64)
+            shared = instrument_sets.prepare(lev, sp, ht.components.theta, period, periods)
             for which in richer:
-                richer[which] = instrument_sets.fit(lev, sp, ht.components.theta, dense.astype(np.int64), periods,
-                                                    which, ht.fit, tol=float(settings.get(SECTION, "collinear_tol")))
+                richer[which] = instrument_sets.fit(lev, sp, ht.components.theta, period, periods, which, ht.fit,
+                                                    tol=float(settings.get(SECTION, "collinear_tol")),
+                                                    prepared=shared)
     attrition_test = None
     if fits.within is not None and ident.within:
         attrition_test = attrition.nijman_verbeek(design.pa, list(ident.within), design.period)

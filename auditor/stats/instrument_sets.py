@@ -61,13 +61,51 @@ class RicherFit:
         return out
 
 
-def _per_period(values: np.ndarray, key: np.ndarray, n: int, periods: int) -> np.ndarray:
-    """(n, periods) of the mean of ``values`` per unit and period (0 where the unit has no row)."""
+def _per_period(values: np.ndarray, key: np.ndarray, counts: np.ndarray, n: int, periods: int) -> np.ndarray:
+    """(n, periods) of the mean of ``values`` per unit and period (0 where the unit has no row);
+    ``counts``: the rows of each (unit, period) cell, as floats."""
     size = n * periods
-    counts = np.bincount(key, minlength=size).astype(float)
     sums = np.bincount(key, weights=values, minlength=size)
     out = np.divide(sums, counts, out=np.zeros(size), where=counts > 0)
     return out.reshape(n, periods)
+
+
+@dataclass(frozen=True)
+class _Cells:
+    """Each row's (unit, period) cell, the rows per cell, whether every cell is observed."""
+
+    key: np.ndarray
+    counts: np.ndarray
+    full: bool
+
+    @classmethod
+    def of(cls, sub: models.PanelArrays, period: np.ndarray, periods: int) -> _Cells:
+        key = sub.codes * periods + period
+        counts = np.bincount(key, minlength=sub.n * periods)
+        return cls(key, counts.astype(float), bool(counts.min() > 0))
+
+
+def _am_blocks(sub: models.PanelArrays, sp: models.HTSpec, cells: _Cells, periods: int) -> list[np.ndarray]:
+    """Amemiya-MaCurdy's unit-level instrument blocks: [1, Z1, X1 means, each X1 column's value
+    in every period, the observation indicators (unbalanced panels)]."""
+    n = sub.n
+    blocks = [np.ones((n, 1)), sub.zbar[:, [sub.z_names.index(c) for c in sp.z1]],
+              sub.xbar[:, [sub.x_names.index(c) for c in sp.means]]]
+    for c in sp.means:  # loop over the few X1 columns
+        blocks.append(_per_period(sub.x[:, sub.x_names.index(c)], cells.key, cells.counts, n, periods))
+    if not sub.balanced_counts or not cells.full:
+        blocks.append((cells.counts > 0).astype(float).reshape(n, periods))
+    return blocks
+
+
+def _bms_blocks(sub: models.PanelArrays, sp: models.HTSpec, cells: _Cells, periods: int) -> list[np.ndarray]:
+    """The blocks Breusch-Mizon-Schmidt adds: each X2 column's within deviation in every period."""
+    blocks = []
+    for c in sp.x2:
+        j = sub.x_names.index(c)
+        dev = sub.x[:, j] - models.gather(sub.xbar[:, j], sub.codes)
+        blocks.append(_per_period(dev, cells.key, cells.counts, sub.n, periods))
+    return blocks
 
 
 def unit_instruments(sub: models.PanelArrays, sp: models.HTSpec, period: np.ndarray, periods: int,
@@ -75,53 +113,73 @@ def unit_instruments(sub: models.PanelArrays, sp: models.HTSpec, period: np.ndar
     """The unit-level instruments U (n, m) of ``which`` (AM or BMS): [1, Z1, X1 means, each X1
     column's value in every period, the observation indicators (unbalanced panels), and for
     BMS each X2 column's within deviation in every period]."""
-    n = sub.n
-    key = sub.codes * periods + period
-    blocks = [np.ones((n, 1)), sub.zbar[:, [sub.z_names.index(c) for c in sp.z1]],
-              sub.xbar[:, [sub.x_names.index(c) for c in sp.means]]]
-    for c in sp.means:  # loop over the few X1 columns
-        blocks.append(_per_period(sub.x[:, sub.x_names.index(c)], key, n, periods))
-    if not sub.balanced_counts or np.bincount(key, minlength=n * periods).min() == 0:
-        blocks.append((np.bincount(key, minlength=n * periods) > 0).astype(float).reshape(n, periods))
+    cells = _Cells.of(sub, period, periods)
+    blocks = _am_blocks(sub, sp, cells, periods)
     if which == BMS:
-        for c in sp.x2:
-            j = sub.x_names.index(c)
-            dev = sub.x[:, j] - models.gather(sub.xbar[:, j], sub.codes)
-            blocks.append(_per_period(dev, key, n, periods))
+        blocks += _bms_blocks(sub, sp, cells, periods)
     return np.column_stack(blocks)
 
 
 def _centre_units(u: np.ndarray, weights: np.ndarray) -> np.ndarray:
-    """U with every column but the constant (column 0) centred on its row-weighted mean."""
-    out = u.copy()
+    """U with every column but the constant (column 0) centred on its row-weighted mean, in
+    place (``u`` is a fresh array of the caller's)."""
+    out = u
     if out.shape[1] > 1:
         means = weights @ out[:, 1:] / weights.sum()
         out[:, 1:] -= means
     return out
 
 
-def fit(sub: models.PanelArrays, sp: models.HTSpec, theta: np.ndarray, period: np.ndarray, periods: int,
-        which: str, ht: models.Fit, tol: float = 1e-9) -> RicherFit:
-    """The Amemiya-MaCurdy or Breusch-Mizon-Schmidt fit on ``sub`` (the Hausman-Taylor columns),
-    at Hausman-Taylor's ``theta``; ``ht`` is the Hausman-Taylor fit to contrast with."""
-    x1, x2, z1, z2 = list(sp.x1), list(sp.x2), list(sp.z1), list(sp.z2)
+@dataclass(frozen=True)
+class Prepared:
+    """What both richer fits share on one design: the within deviations W of the columns the
+    within fit identifies, the transformed design D = [const, X1, X2, Z1, Z2, y] at
+    Hausman-Taylor's theta (constant orthogonalised out, ``shifts``), their per-unit sums, and
+    the (unit, period) cells with Amemiya-MaCurdy's unit-level blocks."""
+
+    w: np.ndarray
+    d: np.ndarray
+    shifts: np.ndarray
+    g: models.UnitGrouper
+    sums_w: np.ndarray
+    sums_d: np.ndarray
+    cells: _Cells
+    am_blocks: tuple[np.ndarray, ...]
+
+
+def prepare(sub: models.PanelArrays, sp: models.HTSpec, theta: np.ndarray, period: np.ndarray,
+            periods: int) -> Prepared:
+    """The arrays :func:`fit` needs for either set (computed once for both)."""
+    k = 1 + len(sp.x1) + len(sp.x2) + len(sp.z1) + len(sp.z2)
     w = sub.within_deviations(list(sp.within))
-    u = _centre_units(unit_instruments(sub, sp, period, periods, which), sub.counts)
-    k = 1 + len(x1) + len(x2) + len(z1) + len(z2)
     d = np.empty((sub.nobs, k + 1), order="F")
     _, ys = models.quasi_demean(sub, theta, out=d[:, :k])  # const, X1, X2, Z1, Z2
     d[:, k] = ys
     shifts = models.orthogonalise(d, d[:, 0].copy(), skip=0)
     g = models.grouper(sub.codes, sub.n)
-    sums_w = g.sums(w)
-    sums_d = g.sums(d)
+    cells = _Cells.of(sub, period, periods)
+    return Prepared(w, d, shifts, g, g.sums(w), g.sums(d), cells, tuple(_am_blocks(sub, sp, cells, periods)))
+
+
+def fit(sub: models.PanelArrays, sp: models.HTSpec, theta: np.ndarray, period: np.ndarray, periods: int,
+        which: str, ht: models.Fit, tol: float = 1e-9, prepared: Prepared | None = None) -> RicherFit:
+    """The Amemiya-MaCurdy or Breusch-Mizon-Schmidt fit on ``sub`` (the Hausman-Taylor columns),
+    at Hausman-Taylor's ``theta``; ``ht`` is the Hausman-Taylor fit to contrast with;
+    ``prepared``: :func:`prepare` of the same arguments, shared by both sets."""
+    x1, x2, z1, z2 = list(sp.x1), list(sp.x2), list(sp.z1), list(sp.z2)
+    pre = prepared if prepared is not None else prepare(sub, sp, theta, period, periods)
+    w, d, shifts, g, sums_w, sums_d = pre.w, pre.d, pre.shifts, pre.g, pre.sums_w, pre.sums_d
+    blocks = list(pre.am_blocks) + (_bms_blocks(sub, sp, pre.cells, periods) if which == BMS else [])
+    u = _centre_units(np.column_stack(blocks), sub.counts)
+    k = 1 + len(x1) + len(x2) + len(z1) + len(z2)
     kw = w.shape[1]
     # cross-products of A = [W, U_i] with itself and with [D, y]
     aa = np.block([[w.T @ w, sums_w.T @ u], [u.T @ sums_w, u.T @ (sub.counts[:, None] * u)]])
     kept, _ = sequential_rank(aa, tol)
     kept_w = [i for i in kept if i < kw]
     kept_u = [i - kw for i in kept if i >= kw]
-    ad = np.vstack([w[:, kept_w].T @ d, u[:, kept_u].T @ sums_d])
+    wk = w[:, kept_w]  # once for both products (a copy: its layout is the one the sums were checked with)
+    ad = np.vstack([wk.T @ d, (u.T @ sums_d)[kept_u]])  # no copy of the n x m instruments
     ll = len(kept)
     gram = np.zeros((ll + k + 1, ll + k + 1))
     gram[:ll, :ll] = aa[np.ix_(kept, kept)]
@@ -134,7 +192,10 @@ def fit(sub: models.PanelArrays, sp: models.HTSpec, theta: np.ndarray, period: n
     sigma2 = float(e @ e) / max(nobs - k, 1)
     # per-unit scores of the fitted design: sum_t (A_it proj) e_it
     proj_w, proj_u = piv.proj[: len(kept_w)], piv.proj[len(kept_w):]
-    scores = g.weighted_sums(e, w[:, kept_w]) @ proj_w + (u[:, kept_u] * g.sums(e)[:, None]) @ proj_u
+    # (U_i proj_u) times the unit's sum of residuals: U (n x m) is never copied or scaled
+    proj_full = np.zeros((u.shape[1], proj_u.shape[1]))
+    proj_full[kept_u] = proj_u
+    scores = g.weighted_sums(e, wk) @ proj_w + (u @ proj_full) * g.sums(e)[:, None]
     factor = (sub.n / (sub.n - 1.0)) * ((nobs - 1.0) / max(nobs - k, 1)) if sub.n > 1 else np.nan
     cov_cl = factor * (piv.bread @ (scores.T @ scores) @ piv.bread)
     coef, (cov, cov_cl) = models.restore_constant(piv.coef, [sigma2 * piv.bread, cov_cl], 0, shifts[:k],
@@ -154,8 +215,7 @@ def fit(sub: models.PanelArrays, sp: models.HTSpec, theta: np.ndarray, period: n
         ih, ir = ht.index(compared), out.index(compared)
         v_eff = models.scaled_cov(out, ht.sigma2)
         against = models.contrast(out.coef[ir], v_eff[np.ix_(ir, ir)], ht.coef[ih], ht.cov[np.ix_(ih, ih)])
-    note = UNBALANCED_NOTE if not sub.balanced_counts or np.bincount(
-        sub.codes * periods + period, minlength=sub.n * periods).min() == 0 else None
+    note = UNBALANCED_NOTE if not sub.balanced_counts or not pre.cells.full else None
     if which == BMS and not sp.x2:
         note = "; ".join(filter(None, [note, "no X2 column, so Breusch-Mizon-Schmidt equals Amemiya-MaCurdy"]))
     return RicherFit(which, out, sargan, against, ll, note)
