@@ -108,18 +108,6 @@ def _bms_blocks(sub: models.PanelArrays, sp: models.HTSpec, cells: _Cells, perio
     return blocks
 
 
-def unit_instruments(sub: models.PanelArrays, sp: models.HTSpec, period: np.ndarray, periods: int,
-                     which: str) -> np.ndarray:
-    """The unit-level instruments U (n, m) of ``which`` (AM or BMS): [1, Z1, X1 means, each X1
-    column's value in every period, the observation indicators (unbalanced panels), and for
-    BMS each X2 column's within deviation in every period]."""
-    cells = _Cells.of(sub, period, periods)
-    blocks = _am_blocks(sub, sp, cells, periods)
-    if which == BMS:
-        blocks += _bms_blocks(sub, sp, cells, periods)
-    return np.column_stack(blocks)
-
-
 def _centre_units(u: np.ndarray, weights: np.ndarray) -> np.ndarray:
     """U with every column but the constant (column 0) centred on its row-weighted mean, in
     place (``u`` is a fresh array of the caller's)."""
