@@ -1,4 +1,5 @@
-"""The JSON and YAML documents of the demo and benchmark panels are byte-identical to the golden files.
+"""The JSON and YAML documents of the demo and benchmark panels, their text outputs and their
+HTML reports are byte-identical to the golden files.
 
 This is a regression guard for refactoring (issue 16: the package laid out in folders),
 not an oracle of correctness: the golden files in tests/data/golden/ were written by the
@@ -8,7 +9,10 @@ alter a document regenerates the files with the script and says so in its commit
 
 Nothing is dropped before the comparison: no document has a field that changes between
 runs (the ``tool`` object holds only the name and the version, no timing; paths are
-relative to the scratch folder the documents are computed in). A version bump changes
+relative to the scratch folder the documents are computed in). The HTML reports' one
+changing line, the time they were written, is replaced by ``<when>`` in the generator
+(``WRITTEN``); the text outputs are written at a fixed width of 100 columns without
+colour. A version bump changes
 ``tool.version`` and the draft's header line, and needs the files regenerated.
 """
 
@@ -34,11 +38,11 @@ def documents(tmp_path_factory: pytest.TempPathFactory) -> dict[str, bytes]:
     return _generator().documents(tmp_path_factory.mktemp("golden"))
 
 
-EXPECTED = sorted(p.name for p in GOLDEN.iterdir() if p.suffix in (".json", ".yaml"))
+EXPECTED = sorted(p.name for p in GOLDEN.iterdir() if p.suffix in (".json", ".yaml", ".txt", ".html"))
 
 
 def test_every_golden_file_is_regenerated(documents: dict[str, bytes]) -> None:
-    assert len(EXPECTED) == 11
+    assert len(EXPECTED) == 19
     assert sorted(documents) == EXPECTED
 
 

@@ -1,4 +1,5 @@
-"""Write the golden JSON and YAML documents of the demo panel and a small benchmark panel.
+"""Write the golden JSON and YAML documents of the demo panel and a small benchmark panel,
+and the demo's text outputs and HTML report.
 
 Every document is produced through the command line (``python -m auditor.cli ...``, the module every
 version of the package has) in a
@@ -16,6 +17,7 @@ that wrote them).
 from __future__ import annotations
 
 import os
+import re
 import subprocess
 import sys
 from pathlib import Path
@@ -39,7 +41,10 @@ BENCH_KEYS = ["--unit", "orchard", "--time", "season"]
 #: depend on how many threads the linear algebra splits its sums over (2 cores and 1 differ
 #: in the 16th digit), and a test session may have set these already (a local dask
 #: cluster sets them to 1 for its workers); fixed here, the bytes do not depend on the machine
-ENV = {"OPENBLAS_NUM_THREADS": "1", "OMP_NUM_THREADS": "1", "MKL_NUM_THREADS": "1"}
+ENV = {"OPENBLAS_NUM_THREADS": "1", "OMP_NUM_THREADS": "1", "MKL_NUM_THREADS": "1", "COLUMNS": "100",
+       "NO_COLOR": "1"}
+#: the report's one line that changes between runs: when it was written
+WRITTEN = re.compile(rb"written \d{4}-\d{2}-\d{2} \d{2}:\d{2} UTC")
 BENCH_INSTRUMENTS = [
     "--outcome", "y", "--regressors", "x1,x2,x3,x4,x5,x6,elevation,planted", "--correlated", "x1,planted",
 ]
@@ -83,6 +88,15 @@ def documents(folder: Path) -> dict[str, bytes]:
     docs["demo_draft.yaml"] = _run(folder, "rules", "draft", reg, *DEMO_KEYS)
     (folder / "demo_contract.yaml").write_bytes(docs["demo_draft.yaml"])
     docs["demo_check.json"] = _run(folder, "check", nxt, "--rules", "demo_contract.yaml", "--against", reg, "--json")
+    # the same runs as text, and the HTML report of the new season against the registry
+    docs["demo_profile.txt"] = _run(folder, "profile", reg, *DEMO_KEYS, "--fail-on", "never")
+    docs["demo_instruments.txt"] = _run(folder, "instruments", reg, *DEMO_KEYS, *DEMO_INSTRUMENTS,
+                                        "--fail-on", "never")
+    docs["demo_compare.txt"] = _run(folder, "compare", reg, nxt, *DEMO_KEYS, "--merged", "--fail-on", "never")
+    docs["demo_check.txt"] = _run(folder, "check", nxt, "--rules", "demo_contract.yaml", "--against", reg)
+    _run(folder, "report", nxt, *DEMO_KEYS, *DEMO_INSTRUMENTS, "--against", reg, "--out", "demo_report.html",
+         "--fail-on", "never")
+    docs["demo_report.html"] = WRITTEN.sub(b"written <when> UTC", (folder / "demo_report.html").read_bytes())
     # (b) the benchmark panel, small and seeded, with a next period as the new wave
     _bench_files(folder)
     panel, new = "panel.parquet", "next.parquet"
@@ -94,6 +108,11 @@ def documents(folder: Path) -> dict[str, bytes]:
     (folder / "bench_contract.yaml").write_bytes(docs["bench_draft.yaml"])
     docs["bench_check.json"] = _run(folder, "check", new, "--rules", "bench_contract.yaml", "--against", panel,
                                     "--json")
+    docs["bench_instruments.txt"] = _run(folder, "instruments", panel, *BENCH_KEYS, *BENCH_INSTRUMENTS,
+                                         "--fail-on", "never")
+    docs["bench_compare.txt"] = _run(folder, "compare", panel, new, *BENCH_KEYS, "--fail-on", "never")
+    _run(folder, "report", panel, *BENCH_KEYS, *BENCH_INSTRUMENTS, "--out", "bench_report.html", "--fail-on", "never")
+    docs["bench_report.html"] = WRITTEN.sub(b"written <when> UTC", (folder / "bench_report.html").read_bytes())
     return docs
 
 
