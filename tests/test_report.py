@@ -349,6 +349,32 @@ def test_new_wave_report_from_the_shipped_example(tmp_path):
     assert 'id="fig-shifted-distributions"' in page
 
 
+DEMO_MODEL = {"outcome": "log_yield_ha", "regressors": ["rainfall_mm", "irrigation_h", "labour_days"],
+              "correlated": ["labour_days"]}
+
+
+@pytest.mark.parametrize("with_base", [False, True])
+def test_report_reads_each_input_file_once(tmp_path, monkeypatch, with_base):
+    # the profile and the model readiness share one Panel: counting the files the source
+    # reader opens (auditor.io.sources.scan_source, which every input passes through)
+    from auditor.io import sources
+
+    opened: list[str] = []
+    real = sources.scan_source
+
+    def counting(path, *args, **kwargs):
+        opened.append(Path(path).name)
+        return real(path, *args, **kwargs)
+
+    monkeypatch.setattr(sources, "scan_source", counting)
+    against = EXAMPLES / "orchards.csv" if with_base else None
+    data = EXAMPLES / ("orchards_next_season.csv" if with_base else "orchards.csv")
+    report_command.write_report(data, unit="orchard_id", time="season", out=tmp_path / "r.html",
+                                against=against, **DEMO_MODEL)
+    expected = ["orchards.csv", "orchards_next_season.csv"] if with_base else ["orchards.csv"]
+    assert sorted(opened) == expected
+
+
 def test_shift_quantiles_match_numpy():
     # oracle: numpy.quantile with its default linear interpolation (NumPy reference, method "linear")
     rng = np.random.default_rng(3)
@@ -446,7 +472,7 @@ def test_every_result_renders_in_a_notebook() -> None:
     ).with_columns((pl.col("x") + pl.col("z") + rng.normal(size=n * periods)).alias("y"))
     base, new = df.filter(pl.col("t") < 2004), df.filter(pl.col("t") == 2004)
     for result in (
-        auditor.profile(df, "u", "t"),
+        auditor.profile(df, unit="u", time="t"),
         auditor.instruments(df, unit="u", time="t", outcome="y", regressors=["x", "z"], correlated=[]),
         auditor.compare(base, new, unit="u", time="t"),
     ):

@@ -220,7 +220,7 @@ def test_a_billion_laughs_is_refused():
 
 def test_ordinary_aliases_still_work():
     s = _settings(CORPUS / "rules_aliases.yaml")
-    assert s.get("profile", "high_missing_share") == 0.30 and s.get("compare", "missing_jump") == 0.30
+    assert s.profile.high_missing_share == 0.30 and s.compare.missing_jump == 0.30
 
 
 def test_a_number_of_5000_digits_is_refused_with_its_line():

@@ -468,7 +468,7 @@ def test_example_contract_thresholds_reach_the_settings():
     from auditor.checks.contract import read_contract
 
     _, settings = read_contract(EXAMPLES / "orchards_contract.yaml")
-    assert settings.get("profile", "high_missing_share") == 0.10
+    assert settings.profile.high_missing_share == 0.10
     assert settings.severity("few-switchers", "warning") == "note"
 
 

@@ -16,6 +16,15 @@ from functools import lru_cache
 from pathlib import Path
 from typing import Any
 
+from auditor.checks.sections import (
+    SECTIONS,
+    CheckThresholds,
+    CompareThresholds,
+    InstrumentsThresholds,
+    ProfileThresholds,
+    ReportThresholds,
+    read_section,
+)
 from auditor.errors import fail
 
 RULES_MAX_BYTES = 1_000_000
@@ -198,16 +207,28 @@ def _defaults() -> dict[str, Any]:
 
 @dataclass(frozen=True)
 class Settings:
-    """Thresholds by section and severity overrides; ``contract`` holds a contract's other parts."""
+    """Thresholds by section and severity overrides; ``contract`` holds a contract's other parts.
+
+    ``thresholds`` is the validated mapping (the shipped defaults with a rules file's
+    values merged in); it is read once, when the Settings is made, into one typed value
+    per section (auditor.checks.sections): ``settings.profile.few_switchers``,
+    ``settings.instruments.test_alpha``, ``settings.compare.psi_bins``,
+    ``settings.report.max_bytes``, ``settings.check.examples``.
+    """
 
     thresholds: dict[str, dict[str, Any]]
     severities: dict[str, str] = field(default_factory=dict)
     contract: dict[str, Any] = field(default_factory=dict)
     source: str | None = None
+    profile: ProfileThresholds = field(init=False, repr=False, compare=False)
+    instruments: InstrumentsThresholds = field(init=False, repr=False, compare=False)
+    compare: CompareThresholds = field(init=False, repr=False, compare=False)
+    report: ReportThresholds = field(init=False, repr=False, compare=False)
+    check: CheckThresholds = field(init=False, repr=False, compare=False)
 
-    def get(self, section: str, key: str) -> Any:
-        """The threshold ``key`` of ``section`` (e.g. ``get('profile', 'few_switchers')``)."""
-        return self.thresholds[section][key]
+    def __post_init__(self) -> None:
+        for name, cls in SECTIONS.items():
+            object.__setattr__(self, name, read_section(cls, self.thresholds[name]))
 
     def severity(self, check: str, default: str) -> str:
         """The severity for ``check``: the rules file's override or ``default``."""

@@ -112,7 +112,7 @@ def check(
     """
     clock = _time.perf_counter()
     contract, settings = read_contract(rules)
-    shown = int(settings.get("check", "examples"))
+    shown = settings.check.examples
     if keep_all:
         import dataclasses
 

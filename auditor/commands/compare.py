@@ -50,7 +50,6 @@ from auditor.io.periods import grid_step
 from auditor.io.waves import POS, key_text, label_at, period_scale
 from auditor.stats.pvalues import preload
 
-SECTION = "compare"
 BASE_UNIT = "__pa_base_unit"  # the base's unit code of a new row's unit (null: entering)
 MAD_TO_SD = 1.4826  # 1 / Phi^-1(3/4): the MAD of normal data times this is its sd (common practice)
 KS_EXACT_MAX_N = 10_000  # scipy.stats.ks_2samp's method 'auto' computes exactly up to this sample size
@@ -490,14 +489,11 @@ class _Comparison:
         self.units = basep.unit
         self.time = basep.time
         self.nkeys = [_key(j) for j in range(len(self.units))]
-        self.examples = int(settings.get("profile", "examples"))
+        self.examples = settings.profile.examples
         self.findings: list[Finding] = []
         self._counts: dict[tuple[str, str], pl.DataFrame] = {}
         self._appended: Panel | None = None
         self.tables: dict[str, list[pl.DataFrame]] = {}  # every row behind a finding, for --details
-
-    def get(self, key: str) -> Any:
-        return self.s.get(SECTION, key)
 
     def add(self, check: str, message: str, **kw: Any) -> Finding:
         f = make(check, self.s, message, **kw)
@@ -866,14 +862,14 @@ class _Comparison:
     # -- per column -----------------------------------------------------------------------
     def _columns(self) -> list[dict[str, Any]]:
         kinds = self._base_kinds()
-        tol = float(self.s.get("profile", "float_tolerance"))
+        tol = self.s.profile.float_tolerance
         # Columns held fixed within units: constant, time-invariant, and nearly-time-invariant
         # ones where few units change (a column that is nearly invariant only because its within
         # share is small still changes for most units, and is checked for jumps instead).
-        few = float(self.s.get("profile", "nearly_invariant_units_share"))
+        few = self.s.profile.nearly_invariant_units_share
         changing = getattr(self, "changing_share", {})
 
-        min_units = int(self.get("invariant_min_units"))
+        min_units = self.s.compare.invariant_min_units
         twice = getattr(self, "observed_twice", {})
 
         def fixed(c: str) -> bool:
@@ -902,8 +898,8 @@ class _Comparison:
     def _numeric_samples(self, jump_info: dict[str, dict[str, Any]]) -> dict[str, tuple[np.ndarray, np.ndarray, float]]:
         """Per numeric column: the reference sample and the new wave's (less the base's step
         for a stepped column), sorted, and their stability index; one column per thread."""
-        bins = int(self.get("psi_bins"))
-        smoothing = float(self.get("psi_smoothing"))
+        bins = self.s.compare.psi_bins
+        smoothing = self.s.compare.psi_smoothing
         new_values = []
         for c in self.numeric:
             values = pl.col(c)
@@ -1056,8 +1052,8 @@ class _Comparison:
         (:func:`change_scale`); and each unit's last value and its position (``__last``,
         ``__bpos``: arrays by base unit code, NaN where the unit has none). numpy, one
         column per thread."""
-        step_share = float(self.get("step_share"))
-        zero_share = float(self.get("jump_zero_share"))
+        step_share = self.s.compare.step_share
+        zero_share = self.s.compare.jump_zero_share
         n_units = self.bunits.height
         # rows in (unit, period) order by one integer sort (numpy's stable sort merges the
         # runs of a file written period by period), then each column's consecutive changes
@@ -1114,8 +1110,8 @@ class _Comparison:
         """implausible-jump: each returning unit's change across the boundary against what the
         base's own within-unit changes say (:meth:`_learn_changes`): a stepped column is judged
         in steps away from the expected change, the others in robust deviations."""
-        cut = float(self.get("jump_mads"))
-        step_cut = float(self.get("jump_steps"))
+        cut = self.s.compare.jump_mads
+        step_cut = self.s.compare.jump_steps
         zs = []
         for c in jump:
             entry = learned[c]
@@ -1207,8 +1203,8 @@ class _Comparison:
         return {"expected": "one value per period", "periods_with_several_values": per.height}
 
     def _categories(self, kinds: dict[str, str]) -> dict[str, dict[str, Any]]:
-        max_levels = int(self.get("category_max_levels"))
-        min_expected = float(self.get("vanished_min_expected"))
+        max_levels = self.s.compare.category_max_levels
+        min_expected = self.s.compare.vanished_min_expected
         distinct = getattr(self, "base_distinct", {})
         info: dict[str, dict[str, Any]] = {}
         n_new = self.N.height
@@ -1262,7 +1258,7 @@ class _Comparison:
     def _distribution(
         self, j: int, c: str, kind: str | None, jump: dict[str, Any] | None, cats: dict[str, Any] | None
     ) -> dict[str, Any]:
-        smoothing = float(self.get("psi_smoothing"))
+        smoothing = self.s.compare.psi_smoothing
         miss = f"__pa_miss_{j}"
         ref_rows, new_rows = self.ref.height, self.N.height
         mb = float(self.ref.get_column(miss).mean()) if ref_rows else math.nan
@@ -1279,7 +1275,7 @@ class _Comparison:
             bc, nc = self._level_counts("ref", c), self._level_counts("new", c)
             bd = dict(zip(bc[c].to_list(), bc["n"].to_list(), strict=True))
             nd = dict(zip(nc[c].to_list(), nc["n"].to_list(), strict=True))
-            max_levels = int(self.get("category_max_levels"))
+            max_levels = self.s.compare.category_max_levels
             if len(bd) > max_levels:
                 psi = math.nan
             else:
@@ -1287,7 +1283,7 @@ class _Comparison:
             kind_cmp = "levels"
             nb, nn = sum(bd.values()), sum(nd.values())
         ref = f"base period {self._lab(self.last_pos)}"
-        cut = float(self.get("psi_shift"))
+        cut = self.s.compare.psi_shift
         # A period-only column changes with the period by definition: its shift is no alarm
         # (period-value-differs judges it); a stepped column was compared less its step.
         if math.isfinite(psi) and psi > cut and kind != "period-only":
@@ -1299,7 +1295,7 @@ class _Comparison:
                 column=c,
                 count=nn,
             )
-        jump_amount = float(self.get("missing_jump"))
+        jump_amount = self.s.compare.missing_jump
         if math.isfinite(mb) and math.isfinite(mn) and mn - mb > jump_amount:
             self.add(
                 "missing-jump",

@@ -33,7 +33,7 @@ from auditor.checks.config import Settings, load_settings
 from auditor.checks.findings import Finding, make, sort_findings
 from auditor.io.load import Panel, load_panel
 from auditor.stats import attrition, identification, instrument_sets, models, strength
-from auditor.stats.design import SECTION, Design, Sample, _design, _moved_to_z, _sample, _validate
+from auditor.stats.design import Design, Sample, _design, _moved_to_z, _sample, _validate
 from auditor.vocab import p_phrase
 
 
@@ -242,7 +242,7 @@ def _beyond(design: Design, ident: identification.Identification, roles: Roles, 
         periods = int(dense.max()) + 1
         sp = roles.spec
         size = 2 + len(sp.z1) + len(sp.means) * (periods + 1) + periods + len(sp.x2) * periods
-        limit = int(settings.get(SECTION, "richer_max_instruments"))
+        limit = settings.instruments.richer_max_instruments
         if size > limit:
             note = (f"not computed: the richer instrument sets would hold about {size} unit-level columns "
                     f"(instruments.richer_max_instruments is {limit})")
@@ -255,7 +255,7 @@ def _beyond(design: Design, ident: identification.Identification, roles: Roles, 
             shared = instrument_sets.prepare(lev, sp, ht.components.theta, period, periods)
             for which in richer:
                 richer[which] = instrument_sets.fit(lev, sp, ht.components.theta, period, periods, which, ht.fit,
-                                                    tol=float(settings.get(SECTION, "collinear_tol")),
+                                                    tol=settings.instruments.collinear_tol,
                                                     prepared=shared)
     attrition_test = None
     if fits.within is not None and ident.within:
@@ -331,8 +331,8 @@ class Strength:
 def _strength(design: Design, ident: identification.Identification, roles: Roles, fits: Fits,
               validity: Validity, settings: Settings, pool: ThreadPoolExecutor) -> Strength:
     """Stage 7: Z2 strength (and X2 identified between units only), the X2 first stages beside it."""
-    get = lambda key: settings.get(SECTION, key)  # noqa: E731
-    size, thumb, lee = int(get("stock_yogo_size")), float(get("rule_of_thumb_f")), float(get("lee_f"))
+    t = settings.instruments
+    size, thumb, lee = t.stock_yogo_size, t.rule_of_thumb_f, t.lee_f
     sp, pa = roles.spec, design.pa
     excluded = [c for c in sp.means if c not in sp.x1_between_only]
     x2_within = [c for c in roles.x2 if c in sp.within]
@@ -353,12 +353,12 @@ def _strength(design: Design, ident: identification.Identification, roles: Roles
             r["p"] = strength.f_pvalue(f, r["df"])
             r["at_least_rule_of_thumb"] = None if f is None else bool(f >= thumb)
             r["at_least_lee"] = None if f is None else bool(f >= lee)
-        _anderson_rubin(rows, design, roles, fits, excluded, float(get("anderson_rubin_level")))
+        _anderson_rubin(rows, design, roles, fits, excluded, t.anderson_rubin_level)
         mundlak_p = {r["column"]: r["p"] for r in fits.mundlak.per_column} if fits.mundlak is not None else {}
         if roles.z2:
             cands, sugg = strength.candidates(
-                pa, excluded, list(roles.z1), list(roles.z2), mundlak_p, alpha=float(get("mundlak_alpha")),
-                size=size, rule_of_thumb=thumb, max_exhaustive=int(get("exhaustive_candidates")),
+                pa, excluded, list(roles.z1), list(roles.z2), mundlak_p, alpha=t.mundlak_alpha,
+                size=size, rule_of_thumb=thumb, max_exhaustive=t.exhaustive_candidates,
                 c_p=validity.c_p, states=validity.states or None, included_means=sp.x1_between_only)
     x2_rows = x2_job.result() if x2_job is not None else []
     for r in x2_rows:
@@ -441,6 +441,26 @@ def instruments(
     with progress.step("reading the panel"):
         panel = load_panel(data, unit, time, streaming={"memory": False, "streaming": True}.get(name),
                            settings=settings)
+    return instruments_panel(panel, outcome=outcome, regressors=regs, correlated=corr,
+                             period_effects=period_effects, treat_as_invariant=invariant, settings=settings)
+
+
+def instruments_panel(
+    panel: Panel,
+    *,
+    outcome: str,
+    regressors: Sequence[str] | str,
+    correlated: Sequence[str] | str | None = None,
+    period_effects: bool = False,
+    treat_as_invariant: Sequence[str] = (),
+    settings: Settings,
+) -> InstrumentsResult:
+    """Model readiness on an already loaded panel (as :func:`instruments`, without reading
+    the input again: the report profiles and checks one Panel)."""
+    regs = _names(regressors)
+    corr = None if correlated is None else _names(correlated)
+    invariant = _names(list(treat_as_invariant))
+    outcome = str(outcome).strip()
     _validate(panel, outcome, regs, corr, invariant)
     return _run(panel, outcome, regs, corr, bool(period_effects), invariant, settings)
 
@@ -449,21 +469,21 @@ def _run(panel: Panel, outcome: str, regs: list[str], corr: list[str] | None, pe
          invariant: list[str], settings: Settings, sample: Sample | None = None) -> InstrumentsResult:
     from auditor import progress
 
-    get = lambda key: settings.get(SECTION, key)  # noqa: E731
+    t = settings.instruments
     with progress.step(f"kinds and complete rows of {len(regs)} regressors"):
         if sample is None:
             sample = _sample(panel, outcome, regs, period_effects, invariant, settings)
         design = _design(sample)
     with progress.step("what each fit identifies"):
-        ident = identification.decide(design.pa, design.periods, design.x, design.z, tol=float(get("collinear_tol")),
-                                      near_r2=float(get("near_collinear_r2")))
+        ident = identification.decide(design.pa, design.periods, design.x, design.z, tol=t.collinear_tol,
+                                      near_r2=t.near_collinear_r2)
     if ident.moved_to_z:
         design = _moved_to_z(design, ident.moved_to_z)
     outcome_invariant = sample.kinds[outcome] in ("time-invariant", "constant")
     expand: dict[str, list[str]] = {}
     for name, parent in sample.design_cols:
         expand.setdefault(parent, []).append(name)
-    alpha, test_alpha = float(get("mundlak_alpha")), float(get("test_alpha"))
+    alpha, test_alpha = t.mundlak_alpha, t.test_alpha
     # Fits that do not feed one another run side by side in a second thread (numpy
     # releases the interpreter lock): random effects beside the roles and Hausman-Taylor,
     # the X2 first stages beside the Z2 strength. Findings are sorted at the end.
@@ -511,7 +531,7 @@ def _tests(fits: Fits, roles: Roles, alpha: float) -> dict[str, Any]:
 
 def _document(panel: Panel, sample: Sample, design: Design, ident: identification.Identification, roles: Roles,
               fits: Fits, stren: Strength, findings: list[Finding], settings: Settings) -> InstrumentsResult:
-    get = lambda key: settings.get(SECTION, key)  # noqa: E731
+    t = settings.instruments
     estimates: dict[str, Any] = {
         "within": fits.within.to_dict() if fits.within is not None else None,
         "between": fits.between.to_dict() if fits.between is not None else None,
@@ -563,11 +583,11 @@ def _document(panel: Panel, sample: Sample, design: Design, ident: identificatio
         cragg_donald=stren.cragg_donald,
         candidates=stren.candidates,
         suggestion=stren.suggestion,
-        tests=_tests(fits, roles, float(get("mundlak_alpha"))),
+        tests=_tests(fits, roles, t.mundlak_alpha),
         estimates=estimates,
         variance_components=components,
         sample=sample_doc,
-        reference_f={"rule_of_thumb": float(get("rule_of_thumb_f")), "lee": float(get("lee_f"))},
+        reference_f={"rule_of_thumb": t.rule_of_thumb_f, "lee": t.lee_f},
         findings=tuple(sort_findings(findings)),
         source=panel.source,
     )
@@ -686,9 +706,9 @@ def _identification_findings(sample: Sample, design: Design, ident: identificati
 
 def _fit_findings(sample: Sample, roles: Roles, fits: Fits, settings: Settings) -> list[Finding]:
     out = []
-    test_alpha = float(settings.get(SECTION, "test_alpha"))
-    alpha = float(settings.get(SECTION, "mundlak_alpha"))
-    n_examples = int(settings.get(SECTION, "examples"))
+    test_alpha = settings.instruments.test_alpha
+    alpha = settings.instruments.mundlak_alpha
+    n_examples = settings.instruments.examples
     if fits.too_few_units:
         out.append(make(
             "too-few-units", settings,
@@ -784,8 +804,8 @@ def _beyond_findings(fits: Fits, test_alpha: float, settings: Settings) -> list[
 def _instrument_findings(roles: Roles, fits: Fits, validity: Validity, stren: Strength,
                          settings: Settings) -> list[Finding]:
     out = []
-    alpha = float(settings.get(SECTION, "mundlak_alpha"))
-    thumb = float(settings.get(SECTION, "rule_of_thumb_f"))
+    alpha = settings.instruments.mundlak_alpha
+    thumb = settings.instruments.rule_of_thumb_f
     mundlak_p = {r["column"]: r["p"] for r in fits.mundlak.per_column} if fits.mundlak is not None else {}
     if roles.declared:
         for c in roles.spec.means:
@@ -817,7 +837,7 @@ def _instrument_findings(roles: Roles, fits: Fits, validity: Validity, stren: St
             "biased towards random effects.",
             column=r["endogenous"],
         ))
-    weak_share = float(settings.get(SECTION, "weak_within_share"))
+    weak_share = settings.instruments.weak_within_share
     for r in stren.x2_rows:
         share = r.get("within_share")
         if share is not None and share < weak_share:

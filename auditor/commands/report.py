@@ -140,40 +140,53 @@ def _report_parts(data: Any, unit: Any, time: str, outcome: str | None, regresso
                   correlated: Sequence[str] | None, against: Any, settings: Settings, period_effects: bool,
                   treat_as_invariant: Sequence[str], engine: str = "auto",
                   scheduler: str | None = None) -> tuple[Any, Any, Any, Any, Limits]:
-    """The profile (of base + new with ``against``), model readiness and the comparison behind a report."""
+    """The profile (of base + new with ``against``), model readiness and the comparison behind
+    a report. The input is read once: the profile and the model readiness share one Panel
+    (the appended one with ``against``); only on a dask cluster does each run its own passes."""
     from auditor.commands.profile import profile, profile_panel
+    from auditor.stats.engines import resolve_engine
 
     comp = None
     quantiles = None
     lim = Limits.from_settings(settings)
-    model_data = data
-    model_engine = {"engine": engine, "scheduler": scheduler}
+    model = {"outcome": outcome, "regressors": list(regressors or ()), "settings": settings,
+             "correlated": None if correlated is None else list(correlated),
+             "period_effects": period_effects, "treat_as_invariant": list(treat_as_invariant)}
+    wanted = outcome is not None and bool(regressors)
+    inst = None
     if against is not None:
         from auditor.commands.compare import compare
-        from auditor.io.load import INTERNAL, PERIOD_ID
+        from auditor.io.load import PERIOD_ID
 
         comp = compare(against, data, unit=unit, time=time, settings=settings, appended=True, engine=engine,
                        scheduler=scheduler)
-        model_engine = {"engine": "memory", "scheduler": None}  # the appended panel is held here
         if comp.appended is None or comp.sides is None:
             raise RuntimeError("compare(appended=True) returned no appended panel")
         result = profile_panel(comp.appended, settings)
-        model_data = comp.appended.frame.drop([c for c in INTERNAL if c in comp.appended.frame.columns])
         base, new = comp.sides
         # like with like, as compare does: the new wave against the base's last period
         last = base.frame.filter(base.frame[PERIOD_ID] == base.n_periods - 1)
         quantiles = shift_quantiles(last, new.frame, as_document(comp) or {},
                                     columns=lim.shift_columns, points=lim.quantiles)
-    else:
+        panel = comp.appended
+    elif resolve_engine(engine, None, scheduler) == "dask":
         result = profile(data, unit=unit, time=time, settings=settings, engine=engine, scheduler=scheduler)
-    inst = None
-    if outcome is not None and regressors:
-        from auditor.commands.instruments import instruments
+        if wanted:
+            from auditor.commands.instruments import instruments
 
-        inst = instruments(model_data, unit=unit, time=time, outcome=outcome, regressors=list(regressors),
-                           correlated=None if correlated is None else list(correlated), settings=settings,
-                           period_effects=period_effects, treat_as_invariant=list(treat_as_invariant),
-                           **model_engine)
+            inst = instruments(data, unit=unit, time=time, engine=engine, scheduler=scheduler, **model)
+        return result, inst, comp, quantiles, lim
+    else:
+        from auditor.io.load import load_panel
+
+        name = resolve_engine(engine, None, scheduler)
+        panel = load_panel(data, unit, time, streaming={"memory": False, "streaming": True}.get(name),
+                           settings=settings)
+        result = profile_panel(panel, settings)
+    if wanted:
+        from auditor.commands.instruments import instruments_panel
+
+        inst = instruments_panel(panel, **model)
     return result, inst, comp, quantiles, lim
 
 

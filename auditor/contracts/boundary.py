@@ -46,8 +46,8 @@ def across_waves(
     from auditor.io.waves import key_text, period_scale
 
     units, time = new.unit, new.time
-    limit = int(settings.get("check", "examples"))
-    tol = float(settings.get("profile", "float_tolerance"))
+    limit = settings.check.examples
+    tol = settings.profile.float_tolerance
     spanning = [
         fit_to_type(c, new.schema[c.name])[0]
         for c in contract.columns

@@ -180,8 +180,6 @@ class _Drafter:
         self.names = [c for c in panel.schema if c not in self.keys]
         self.fams = {c: type_family(panel.schema[c]) for c in self.names}
 
-    def get(self, key: str) -> Any:
-        return self.s.get("check", key)
 
     # -- panel ------------------------------------------------------------------------------
     def panel_part(self) -> Rules:
@@ -196,14 +194,14 @@ class _Drafter:
                 f"the first period; open at the end, so later waves pass (last so far: {labels[-1]})")
         per_unit = unit_periods(p)
         present_last = int(self.frame.filter(pl.col(PERIOD_ID) == p.n_periods - 1).select(pl.col(UNIT_ID).n_unique()).item())
-        slack = float(self.get("draft_units_slack"))
+        slack = self.s.check.draft_units_slack
         floor = int(math.floor(present_last * (1 - slack)))
         doc.put("min_units", floor, f"{_n(present_last)} units in the last period ({labels[-1]}), less {slack:.0%}")
         if int(per_unit["periods"].min()) == p.n_periods and p.n_periods > 1:
             doc.put("balanced", True, f"every unit in each of the {p.n_periods} periods")
         table = attrition_shares(p, per_unit)
         if table.height:
-            margin = float(self.get("draft_attrition_margin"))
+            margin = self.s.check.draft_attrition_margin
             worst = table.sort("share", descending=True).row(0, named=True)
             doc.put("max_attrition", _ceil_share(worst["share"] + margin),
                     f"at most {worst['share']:.1%} of a period's units never seen again "
@@ -284,7 +282,7 @@ class _Drafter:
         moves = self._moves(moving)
         rows = self.frame.height
         # the profile's kinds, confirmed by the exact rules the draft states (it must pass its data)
-        tol = float(self.s.get("profile", "float_tolerance"))
+        tol = self.s.profile.float_tolerance
         fixed = [c for c in self.names if kinds[c] in ("constant", "time-invariant")]
         changing = invariant_counts(p, fixed, tol) if fixed else {}
         self.fixed = {c for c in fixed if changing[c] == 0}
@@ -315,7 +313,7 @@ class _Drafter:
                 direction = "decreasing"
             if move["rises"] + move["falls"] >= 5:
                 share_up = move["rises"] / (move["rises"] + move["falls"])
-        cut = float(self.get("draft_trend_share"))
+        cut = self.s.check.draft_trend_share
         up = not binary and (direction == "increasing" or (share_up is not None and share_up >= cut))
         down = not binary and (direction == "decreasing" or (share_up is not None and 1 - share_up >= cut))
         why_up = ("values only rise within units" if direction == "increasing"
@@ -334,7 +332,7 @@ class _Drafter:
         # -- missing values
         nulls = int(stats[f"{c}\x00null"])
         if rows and nulls:
-            margin = float(self.get("draft_missing_margin"))
+            margin = self.s.check.draft_missing_margin
             shares = (by_period[f"{c}\x00null"] / by_period["__pa_rows"]).to_numpy()
             worst = int(np.argmax(shares))
             label = p.grid[int(by_period[PERIOD_ID][worst])]
@@ -354,19 +352,19 @@ class _Drafter:
             n = move["rises"] if direction == "increasing" else move["falls"]
             verb = "rises" if direction == "increasing" else "falls"
             spec.put("monotone", direction, f"{verb} {_n(n)} times within units, never the other way")
-        rare = float(self.s.get("profile", "nearly_invariant_units_share"))
+        rare = self.s.profile.nearly_invariant_units_share
         if kind == "nearly-time-invariant" and 0 < changing <= rare * twice:
             spec.comment = (f"changes within {_n(changing)} of {_n(twice)} units: not drafted as invariant; "
                             "if those changes are errors, fix them and add invariant: true")
         if (up or down) and move is not None and move["n"] and fam in ("integer", "float"):
             lo, hi, biggest = move["lo"], move["hi"], move["abs"]
-            tol = float(self.s.get("profile", "float_tolerance"))
+            tol = self.s.profile.float_tolerance
             if hi - lo <= tol * (1 + abs(hi)):
                 step = _number(hi, fam == "integer" and float(hi).is_integer())
                 spec.put("max_change_per_period", abs(step),
                          f"every change within units is {step:+g} a period ({_n(move['n'])} changes)")
             else:
-                slack = float(self.get("draft_change_slack"))
+                slack = self.s.check.draft_change_slack
                 limit = _outward(0.0, float(biggest), slack, whole=fam == "integer")[1]
                 spec.put("max_change_per_period", _number(limit, fam == "integer"),
                          f"at most {_shown(biggest)} a period within units, plus {slack:.0%}")
@@ -381,7 +379,7 @@ class _Drafter:
             lo, hi = float(lo), float(hi)
         plus_inf = int(stats.get(f"{c}\x00+inf") or 0)
         minus_inf = int(stats.get(f"{c}\x00-inf") or 0)
-        slack = float(self.get("draft_range_slack"))
+        slack = self.s.check.draft_range_slack
         seen = f"{_shown(lo)} to {_shown(hi)}"
         keep_lo = not (follows or down) and not minus_inf
         keep_hi = not (follows or up) and not plus_inf
@@ -421,8 +419,8 @@ class _Drafter:
             spec.comment = "; ".join(notes)
 
     def _allowed(self, spec: Rules, c: str, distinct: int, *, follows: bool, trending: bool) -> None:
-        most = int(self.get("draft_max_levels"))
-        need = int(self.get("draft_level_min_units"))
+        most = self.s.check.draft_max_levels
+        need = self.s.check.draft_level_min_units
         if not 0 < distinct <= most or follows or trending:
             return
         levels = self._levels(c)

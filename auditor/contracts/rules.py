@@ -117,7 +117,7 @@ def run_contract(
     """
     timings = timings if timings is not None else {}
     schema = panel.schema
-    limit = int(settings.get("check", "examples"))
+    limit = settings.check.examples
     out: list[RuleResult] = []
     present = [c for c in contract.columns if c.name in schema]
     plan = {c.name: fit_to_type(c, schema[c.name]) for c in present}
@@ -789,7 +789,7 @@ def _within_rules(
     from auditor.vocab import clean
 
     out: dict[str, list[RuleResult]] = {c.name: [] for c in columns}
-    tol = float(settings.get("profile", "float_tolerance"))
+    tol = settings.profile.float_tolerance
     inv = [c for c in columns if c.invariant]
     if inv:
         counts = invariant_counts(panel, [c.name for c in inv], tol)

@@ -331,7 +331,7 @@ def _streams_by_size(binary_inputs: Sequence[Path], settings: Any) -> bool:
         return False
     share = 0.25
     if settings is not None:
-        share = float(settings.get("profile", "streaming_memory_share"))
+        share = settings.profile.streaming_memory_share
     total = sum(p.stat().st_size for p in binary_inputs)
     from auditor.io.sources import memory_bytes  # looked up here: tests replace it
 

@@ -178,7 +178,7 @@ def _non_finite(panel: Panel, columns: Sequence[str]) -> pl.DataFrame:
 def profile_tables(result: ProfileResult) -> dict[str, pl.DataFrame]:
     """Every offending row or unit of the profile's findings, one table per finding code."""
     panel = result.data
-    tol = float(result.settings.get("profile", "float_tolerance"))
+    tol = result.settings.profile.float_tolerance
     codes = {f.check for f in result.findings}
     by_code: dict[str, list[str]] = {}
     for f in result.findings:

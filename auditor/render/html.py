@@ -70,15 +70,21 @@ def _int(v: Any) -> str:
         return esc(v)
 
 
-def _num(v: Any, digits: int = 3) -> str:
+def _finite(v: Any) -> float | str | None:
+    """``v`` as a float, None when missing or NaN, or its escaped text when it is no number."""
     if v is None:
-        return "\u2013"
+        return None
     try:
         x = float(v)
     except (TypeError, ValueError):
         return esc(v)
-    if x != x:
-        return "\u2013"
+    return x if x == x else None
+
+
+def _num(v: Any, digits: int = 3) -> str:
+    x = _finite(v)
+    if not isinstance(x, float):
+        return "\u2013" if x is None else x
     if x != 0 and (abs(x) >= 1e6 or abs(x) < 10 ** (-digits)):
         return f"{x:.{digits}g}"
     if abs(x) >= 1000:
@@ -87,14 +93,9 @@ def _num(v: Any, digits: int = 3) -> str:
 
 
 def _pct(v: Any, digits: int = 1) -> str:
-    if v is None:
-        return "\u2013"
-    try:
-        x = float(v)
-    except (TypeError, ValueError):
-        return esc(v)
-    if x != x:
-        return "\u2013"
+    x = _finite(v)
+    if not isinstance(x, float):
+        return "\u2013" if x is None else x
     if 0 < x < 0.001:
         return "&lt;0.1%"
     return f"{x:.{digits}%}"
@@ -176,26 +177,17 @@ class Limits:
 
     @classmethod
     def from_settings(cls, settings: Settings | None) -> Limits:
-        """The limits in ``settings`` (section ``report``), the built-in ones where absent."""
+        """The limits in ``settings`` (section ``report``, the patterns listed from ``profile``
+        and the F lines the instruments check uses); the shipped defaults without settings."""
         if settings is None:
             from auditor.checks.config import default_settings
 
             settings = default_settings()
-        section = settings.thresholds.get("report", {})
-        values: dict[str, Any] = {}
-        for name in cls.__dataclass_fields__:
-            if name in section:
-                values[name] = section[name]
-        profile = settings.thresholds.get("profile", {})
-        if "patterns" in profile:
-            values["patterns"] = profile["patterns"]
-        # the F lines drawn are the ones the instruments check uses
-        inst = settings.thresholds.get("instruments", {})
-        if "rule_of_thumb_f" in inst:
-            values["f_rule_of_thumb"] = float(inst["rule_of_thumb_f"])
-        if "lee_f" in inst:
-            values["f_t_test"] = float(inst["lee_f"])
-        return cls(**values)
+        r = settings.report
+        return cls(findings=r.findings, columns=r.columns, patterns=settings.profile.patterns,
+                   pattern_rows=r.pattern_rows, figure_columns=r.figure_columns, periods_table=r.periods_table,
+                   shift_columns=r.shift_columns, quantiles=r.quantiles, max_bytes=r.max_bytes,
+                   f_rule_of_thumb=settings.instruments.rule_of_thumb_f, f_t_test=settings.instruments.lee_f)
 
 
 # --- figures ---------------------------------------------------------------------------

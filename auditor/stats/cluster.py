@@ -320,8 +320,8 @@ class Session:
 
     def __init__(self, client: Any, shell: Panel, parts: list[Partition], settings: Settings) -> None:
         self.client, self.shell, self.parts, self.settings = client, shell, parts, settings
-        self.tol = float(settings.get("profile", "float_tolerance"))
-        self.examples = int(settings.get("profile", "examples"))
+        self.tol = settings.profile.float_tolerance
+        self.examples = settings.profile.examples
         self.peaks: dict[str, int] = {}
 
     def survey(self) -> Panel:
@@ -415,7 +415,7 @@ class Session:
                 raise readiness._no_complete_rows(rows_keyed, dropped, miss)
             readiness._check_units(panel, facts["units"])
             periods_present = tuple(sorted(facts["periods"].to_list()))
-            limit = int(self.settings.get(readiness.SECTION, "max_levels"))
+            limit = self.settings.instruments.max_levels
             design = (facts["levels"], periods_present, period_effects, limit)
             d = readiness.design_columns(panel, outcome, regs, *design)  # refuses too many levels here
             names = ["__pa_y", *[name for name, _ in d.design_cols], *d.added]

@@ -24,10 +24,7 @@ from auditor.checks.config import Settings
 from auditor.dtypes import null_or_non_finite
 from auditor.errors import fail, short_list
 from auditor.io.load import INTERNAL, PERIOD_ID, UNIT_ID, Panel
-from auditor.stats import identification, models
-
-SECTION = "instruments"
-
+from auditor.stats import models
 
 _TEXT_TYPES = (pl.String, pl.Categorical, pl.Enum)
 
@@ -71,10 +68,6 @@ def _validate(panel: Panel, outcome: str, regs: list[str], correlated: list[str]
             parent = c.split("=", 1)[0] if c not in regs else c
             if parent not in regs:
                 raise fail("instruments-not-a-regressor", option=option, column=c, regressors=", ".join(regs))
-
-
-# Kept for callers of the first release: the rank pass now lives in auditor.stats.identification.
-sequential_rank = identification.sequential_rank
 
 
 # --------------------------------------------------------------------------- stage 1: the sample
@@ -243,7 +236,7 @@ def _sample(panel: Panel, outcome: str, regs: list[str], period_effects: bool, i
     periods_present = tuple(sorted(frame[PERIOD_ID].unique().to_list()))
     levels = {c: level_counts(frame, c) for c in regs if _is_text(schema[c])}
     d = design_columns(panel, outcome, regs, levels, periods_present, period_effects,
-                       int(settings.get(SECTION, "max_levels")))
+                       settings.instruments.max_levels)
     return Sample(outcome, kinds, info, frame.select(d.exprs), d.design_cols, d.added, d.base_levels,
                   d.constant_text, periods_present, rows_keyed, dropped, miss_counts, tuple(treated),
                   tuple(invariant))

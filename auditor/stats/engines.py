@@ -56,7 +56,7 @@ def resolve_engine(engine: str | None, streaming: bool | None = None, scheduler:
 
 def kernel_settings(settings: Settings) -> tuple[float, int]:
     """(relative float tolerance, examples per column) from the settings."""
-    return float(settings.get("profile", "float_tolerance")), int(settings.get("profile", "examples"))
+    return settings.profile.float_tolerance, settings.profile.examples
 
 
 def passes(panel: Panel, settings: Settings) -> Passes:

@@ -189,7 +189,7 @@ def _examples(panel: Panel, per_unit: pl.DataFrame, gaps: pl.DataFrame, duplicat
         )
     else:
         dup_cells = pl.DataFrame(schema={UNIT_ID: pl.UInt32, PERIOD_ID: pl.UInt32, "n": pl.UInt32})
-    k = int(settings.get("profile", "examples"))
+    k = settings.profile.examples
     dup_ex = dup_cells.sort(UNIT_ID, PERIOD_ID).head(k)
     dup_labels = panel.unit_labels(dup_ex[UNIT_ID].to_list())
     duplicate_examples = tuple(
@@ -241,7 +241,7 @@ def compute_structure(
     )
 
     pat, seen, patterns = _patterns(per_unit, panel)
-    top = int(settings.get("profile", "patterns"))
+    top = settings.profile.patterns
 
     attrition = _attrition(per_unit, pat, seen, panel)
 
@@ -361,7 +361,7 @@ def structure_findings(panel: Panel, s: Structure, settings: Settings) -> list[F
                 count=d["singleton_units"],
             )
         )
-    twins = key_twins(panel, int(settings.get("profile", "examples")))
+    twins = key_twins(panel, settings.profile.examples)
     if twins is not None:
         units, groups, examples = twins
         out.append(

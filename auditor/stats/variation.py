@@ -215,8 +215,8 @@ def classify(
         return "period-only"
     if units_changing == 0:
         return "time-invariant"
-    share = float(settings.get("profile", "nearly_invariant_units_share"))
-    low_within = float(settings.get("profile", "nearly_invariant_within_share"))
+    share = settings.profile.nearly_invariant_units_share
+    low_within = settings.profile.nearly_invariant_within_share
     if units_changing <= share * units_observed_twice or (
         within_share is not None and within_share < low_within
     ):
@@ -240,7 +240,7 @@ def _absorbed(
     without iterating. In memory the right-hand sides (per-period sums of the
     within deviations) come from the moments kernel, whatever the engine.
     """
-    cut = float(settings.get("profile", "absorbed_r2"))
+    cut = settings.profile.absorbed_r2
     numeric_set = set(numeric)
     todo = [
         r for r in records
@@ -308,10 +308,10 @@ def _explained_shares(
 def variation_findings(panel: Panel, v: Variation, settings: Settings) -> list[Finding]:
     """Findings about columns: constant, nearly invariant, absorbed, near-constant, missing, ..."""
     out: list[Finding] = []
-    near = float(settings.get("profile", "near_constant_share"))
-    few = int(settings.get("profile", "few_switchers"))
-    high = float(settings.get("profile", "high_missing_share"))
-    rare = float(settings.get("profile", "nearly_invariant_units_share"))
+    near = settings.profile.near_constant_share
+    few = settings.profile.few_switchers
+    high = settings.profile.high_missing_share
+    rare = settings.profile.nearly_invariant_units_share
     for r in v.columns.iter_rows(named=True):
         c, kind = r["name"], r["kind"]
         if r["distinct"] == 0:
