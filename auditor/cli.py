@@ -246,7 +246,7 @@ def _cmd_profile(args: argparse.Namespace) -> int:
     from auditor.commands.profile import profile
     from auditor.render.text import render
 
-    result = profile(_data(args), args.unit, args.time, settings=_settings(args), **_engine(args))
+    result = profile(_data(args), unit=args.unit, time=args.time, settings=_settings(args), **_engine(args))
     if args.details:
         from auditor.render.details import profile_tables
 

@@ -85,8 +85,8 @@ def test_profile_on_the_cluster_equals_the_memory_engine(scheduler, waves, monke
     monkeypatch.setattr(cluster, "PARTITION_ROWS", 30)  # one partition per row group of 40 rows
     parts = cluster.partitions(sorted(waves.glob("*.parquet")), dict(pl.scan_parquet(waves).collect_schema()))
     assert len(parts) > 10
-    on_cluster = auditor.profile(waves, "hive", "season", engine="dask", scheduler=scheduler)
-    memory = auditor.profile(waves, "hive", "season", engine="memory")
+    on_cluster = auditor.profile(waves, unit="hive", time="season", engine="dask", scheduler=scheduler)
+    memory = auditor.profile(waves, unit="hive", time="season", engine="memory")
     a, b = without_engine(on_cluster.to_dict()), without_engine(memory.to_dict())
     assert a["panel"]["duplicate_keys"] == 2 and a["panel"]["missing_keys"] > 0
     kinds = {c["name"]: c["kind"] for c in a["columns"]}
@@ -151,7 +151,7 @@ def test_an_unknown_engine_name_is_refused():
     from auditor.errors import AuditError
 
     with pytest.raises(AuditError, match="--engine must be one of auto, memory, streaming, dask"):
-        auditor.profile("unused.parquet", "hive", "season", engine="spark")
+        auditor.profile("unused.parquet", unit="hive", time="season", engine="spark")
 
 
 def test_help_and_the_memory_engine_never_import_dask(waves):
@@ -285,7 +285,7 @@ def test_an_off_by_one_in_the_kernel_fails_every_driver(scheduler, waves, tmp_pa
     waves = data
 
     def within_sd(engine: str) -> float:
-        doc = auditor.profile(waves, "hive", "season", engine=engine,
+        doc = auditor.profile(waves, unit="hive", time="season", engine=engine,
                               scheduler=scheduler if engine == "dask" else None).to_dict()
         return next(c["within_sd"] for c in doc["columns"] if c["name"] == "honey_kg")
 

@@ -377,7 +377,7 @@ def test_check_and_profile_share_one_test_of_a_unit_that_changes(tmp_path):
     rules = tmp_path / "contract.yaml"
     rules.write_text("panel: {unit: plot, time: year}\ncolumns:\n  depth: {invariant: true}\n")
     inv = next(r for r in check(frame, rules=rules).rules if r.rule == "invariant")
-    profiled = auditor.profile(frame, "plot", "year").columns.filter(pl.col("name") == "depth")
+    profiled = auditor.profile(frame, unit="plot", time="year").columns.filter(pl.col("name") == "depth")
     assert inv.failing == profiled["units_changing"].item() == 1  # plot 3 only
     assert inv.examples[0]["plot"] == 3 and inv.examples[0]["values"] == [7.0, 7.5]
 

@@ -26,7 +26,7 @@ def _balanced(n: int = 40, periods: int = 5, seed: int = 0) -> pl.DataFrame:
 def test_three_duplicate_rows_give_duplicate_keys_3() -> None:
     df = _balanced()
     df = pl.concat([df, df.head(3)])
-    r = auditor.profile(df, "id", "yr")
+    r = auditor.profile(df, unit="id", time="yr")
     assert r.panel["duplicate_keys"] == 3
     f = _checks(r)["duplicate-keys"][0]
     assert f.severity == "error" and f.count == 3
@@ -38,7 +38,7 @@ def test_two_null_keys_give_missing_keys_2() -> None:
         pl.when(pl.int_range(pl.len()) == 4).then(None).otherwise(pl.col("id")).alias("id"),
         pl.when(pl.int_range(pl.len()) == 7).then(None).otherwise(pl.col("yr")).alias("yr"),
     )
-    r = auditor.profile(df, "id", "yr")
+    r = auditor.profile(df, unit="id", time="yr")
     assert r.panel["missing_keys"] == 2
     assert r.panel["rows"] == 200
     f = _checks(r)["missing-keys"][0]
@@ -50,7 +50,7 @@ def test_internal_gaps_are_counted_per_unit_and_period() -> None:
     df = _balanced()
     # unit 1 loses 2002 and 2003 (two gap periods), unit 2 loses 2004 (one); unit 3 loses 2005 (its end: no gap)
     drop = ((pl.col("id") == 1) & pl.col("yr").is_in([2002, 2003])) | ((pl.col("id") == 2) & (pl.col("yr") == 2004)) | ((pl.col("id") == 3) & (pl.col("yr") == 2005))
-    r = auditor.profile(df.filter(~drop), "id", "yr")
+    r = auditor.profile(df.filter(~drop), unit="id", time="yr")
     assert r.panel["units_with_gaps"] == 2
     assert r.panel["gap_periods"] == 3
     assert r.panel["balanced"] is False
@@ -66,7 +66,7 @@ def test_attrition_counts_entries_exits_and_returns() -> None:
     df = _balanced(n=4, periods=4)
     # unit 0 enters in 2002; unit 1 leaves after 2003; unit 2 misses 2002 and returns in 2003.
     drop = ((pl.col("id") == 0) & (pl.col("yr") == 2001)) | ((pl.col("id") == 1) & (pl.col("yr") == 2004)) | ((pl.col("id") == 2) & (pl.col("yr") == 2002))
-    r = auditor.profile(df.filter(~drop), "id", "yr")
+    r = auditor.profile(df.filter(~drop), unit="id", time="yr")
     att = {a["period"]: a for a in r.panel["attrition"]}
     assert att[2001] == {"period": 2001, "present": 3, "entering": 3, "leaving": 0, "returning": 0}
     assert att[2002]["present"] == 3 and att[2002]["entering"] == 1
@@ -78,7 +78,7 @@ def test_attrition_counts_entries_exits_and_returns() -> None:
 def test_singletons_and_unbalancedness() -> None:
     df = _balanced(n=10, periods=4)
     df = df.filter(~((pl.col("id") < 2) & (pl.col("yr") > 2001)))  # two units seen once
-    r = auditor.profile(df, "id", "yr")
+    r = auditor.profile(df, unit="id", time="yr")
     assert r.panel["singleton_units"] == 2
     t = np.array([1, 1] + [4] * 8, dtype=float)
     # Ahrens and Pincus (1981): r = n / (T_mean * sum 1/T_i); the harmonic mean is n / sum 1/T_i.
@@ -89,7 +89,7 @@ def test_singletons_and_unbalancedness() -> None:
 
 def test_irregular_grid_reports_the_missing_period() -> None:
     df = _balanced(periods=5).filter(pl.col("yr") != 2003)
-    r = auditor.profile(df, "id", "yr")
+    r = auditor.profile(df, unit="id", time="yr")
     f = _checks(r)["irregular-periods"][0]
     assert f.count == 1 and f.examples[0] == {"from": 2002, "to": 2004}
     assert r.panel["step"] is None and r.panel["grid_step"] == 1
@@ -121,7 +121,7 @@ def test_column_kinds_and_their_findings() -> None:
             "soil": np.repeat(np.array(["loam", "clay", "sand"])[rng.integers(0, 3, n)], periods),
         }
     )
-    r = auditor.profile(df, "id", "t")
+    r = auditor.profile(df, unit="id", time="t")
     kinds = dict(zip(r.columns["name"], r.columns["kind"], strict=True))
     assert kinds == {
         "const": "constant",
@@ -151,7 +151,7 @@ def test_missing_in_period_and_high_missing() -> None:
         pl.when(pl.col("yr") == 2003).then(None).otherwise(pl.col("x")).alias("asked"),
         pl.when(pl.col("id") < 3).then(None).otherwise(pl.col("x")).alias("sparse"),
     )
-    r = auditor.profile(df, "id", "yr")
+    r = auditor.profile(df, unit="id", time="yr")
     c = _checks(r)
     mip = [f for f in c["missing-in-period"] if f.column == "asked"][0]
     assert mip.count == 1 and mip.examples[0] == {"period": "2003"}
@@ -166,7 +166,7 @@ def test_non_finite_values_are_reported_and_left_out() -> None:
     x = df["x"].to_numpy().copy()
     x[[0, 5]] = [np.inf, -np.inf]
     x[7] = np.nan
-    r = auditor.profile(df.with_columns(pl.Series("x", x)), "id", "yr")
+    r = auditor.profile(df.with_columns(pl.Series("x", x)), unit="id", time="yr")
     f = _checks(r)["non-finite"][0]
     assert f.count == 2
     row = r.columns.to_dicts()[0]
@@ -179,6 +179,6 @@ def test_rules_file_overrides_a_threshold_and_a_severity(tmp_path) -> None:
     df = pl.concat([_balanced(), _balanced().head(1)])
     rules = tmp_path / "r.yaml"
     rules.write_text("thresholds:\n  profile:\n    few_switchers: 3\nseverities:\n  duplicate-keys: warning\n")
-    r = auditor.profile(df, "id", "yr", rules=rules)
-    assert r.settings.get("profile", "few_switchers") == 3
+    r = auditor.profile(df, unit="id", time="yr", rules=rules)
+    assert r.settings.profile.few_switchers == 3
     assert _checks(r)["duplicate-keys"][0].severity == "warning"

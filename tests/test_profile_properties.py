@@ -55,7 +55,7 @@ def _approx_equal(a, b, rel: float = 1e-9) -> bool:
 def test_tss_equals_wss_plus_bss(df: pl.DataFrame) -> None:
     # The decomposition TSS = WSS + BSS holds to rounding (check-values.md, published properties);
     # WSS and BSS are recomputed here directly with numpy as the oracle.
-    r = auditor.profile(df, "unit", "wave")
+    r = auditor.profile(df, unit="unit", time="wave")
     row = r.columns.filter(pl.col("name") == "x").to_dicts()[0]
     x = df["x"].to_numpy()
     u = df["unit"].to_numpy()
@@ -73,12 +73,12 @@ def test_tss_equals_wss_plus_bss(df: pl.DataFrame) -> None:
 @settings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(panels(), st.integers(0, 1000))
 def test_shuffling_rows_and_relabelling_units_change_nothing(df: pl.DataFrame, seed: int) -> None:
-    base = _doc(auditor.profile(df, "unit", "wave"))
+    base = _doc(auditor.profile(df, unit="unit", time="wave"))
     shuffled = df.sample(fraction=1.0, shuffle=True, seed=seed)
-    assert _approx_equal(base, _doc(auditor.profile(shuffled, "unit", "wave")))
+    assert _approx_equal(base, _doc(auditor.profile(shuffled, unit="unit", time="wave")))
     # relabel units by an order-preserving map (examples name units by their labels)
     relabelled = df.with_columns((pl.col("unit") * 7 + 1000).alias("unit"))
-    other = _doc(auditor.profile(relabelled, "unit", "wave"))
+    other = _doc(auditor.profile(relabelled, unit="unit", time="wave"))
     for f in other["findings"]:
         for e in f["examples"]:
             if "unit" in e:
@@ -90,13 +90,13 @@ def test_shuffling_rows_and_relabelling_units_change_nothing(df: pl.DataFrame, s
 @given(df=panels())
 def test_pandas_polars_csv_parquet_give_the_same_document(df: pl.DataFrame, tmp_path_factory) -> None:
     folder = tmp_path_factory.mktemp("io")
-    ref = _doc(auditor.profile(df, "unit", "wave"))
-    assert _approx_equal(ref, _doc(auditor.profile(df.to_pandas(), "unit", "wave")))
+    ref = _doc(auditor.profile(df, unit="unit", time="wave"))
+    assert _approx_equal(ref, _doc(auditor.profile(df.to_pandas(), unit="unit", time="wave")))
     df.write_parquet(folder / "p.parquet")
-    assert _approx_equal(ref, _doc(auditor.profile(folder / "p.parquet", "unit", "wave")))
+    assert _approx_equal(ref, _doc(auditor.profile(folder / "p.parquet", unit="unit", time="wave")))
     # text files keep unit keys as text: the same document once keys are compared as text
     df.write_csv(folder / "p.csv")
-    from_csv = _doc(auditor.profile(folder / "p.csv", "unit", "wave"))
+    from_csv = _doc(auditor.profile(folder / "p.csv", unit="unit", time="wave"))
     assert from_csv["panel"] == ref["panel"] or _approx_equal(
         json.loads(json.dumps(ref["panel"])), from_csv["panel"]
     )
@@ -111,7 +111,7 @@ def test_large_offset_gives_the_same_within_share_as_the_noise_alone() -> None:
     df = pl.DataFrame(
         {"u": np.repeat(np.arange(n), periods), "t": np.tile(np.arange(periods), n), "noise": noise, "big": 1e9 + noise}
     )
-    r = auditor.profile(df, "u", "t")
+    r = auditor.profile(df, unit="u", time="t")
     rows = {d["name"]: d for d in r.columns.to_dicts()}
     assert rows["big"]["within_share"] == pytest.approx(rows["noise"]["within_share"], abs=1e-6)
     assert rows["big"]["between_sd"] == pytest.approx(rows["noise"]["between_sd"], rel=1e-4)
@@ -139,7 +139,7 @@ def test_within_sd_does_not_depend_on_which_unit_comes_first() -> None:
     for order in (range(len(x)), reversed(range(len(x)))):  # the far value first, then last
         idx = list(order)
         df = pl.DataFrame({"u": [unit[i] for i in idx], "t": [wave[i] for i in idx], "x": [x[i] for i in idx]})
-        got = {d["name"]: d for d in auditor.profile(df, "u", "t").columns.to_dicts()}["x"]["within_sd"]
+        got = {d["name"]: d for d in auditor.profile(df, unit="u", time="t").columns.to_dicts()}["x"]["within_sd"]
         assert got == pytest.approx(expected, rel=1e-14)
 
 
@@ -159,7 +159,7 @@ def test_age_growing_by_one_is_absorbed_in_an_unbalanced_panel() -> None:
             "slopes": np.repeat(rng.normal(size=n), periods) * t,
         }
     ).filter(pl.Series(keep))
-    r = auditor.profile(df, "u", "t")
+    r = auditor.profile(df, unit="u", time="t")
     rows = {d["name"]: d for d in r.columns.to_dicts()}
     assert rows["age"]["absorbed_by_time"] is True
     assert rows["age"]["time_r2"] == pytest.approx(1.0, abs=1e-9)
@@ -177,7 +177,7 @@ def test_time_r2_matches_least_squares_with_unit_and_period_dummies() -> None:
     keep = rng.random(n * periods) < 0.7
     x = rng.normal(size=n * periods) + 0.5 * t
     u, t, x = u[keep], t[keep], x[keep]
-    r = auditor.profile(pl.DataFrame({"u": u, "t": t, "x": x}), "u", "t")
+    r = auditor.profile(pl.DataFrame({"u": u, "t": t, "x": x}), unit="u", time="t")
     got = r.columns.to_dicts()[0]["time_r2"]
     du = (u[:, None] == np.unique(u)[None, :]).astype(float)
     dt = (t[:, None] == np.arange(1, periods)[None, :]).astype(float)

@@ -31,9 +31,11 @@ def test_data_first_then_keyword_only_keys() -> None:
         assert first.name in ("data", "base"), name
         assert first.kind is inspect.Parameter.POSITIONAL_OR_KEYWORD
         keyword_only = {p.name for p in params if p.kind is inspect.Parameter.KEYWORD_ONLY}
-        # profile keeps unit and time positional as well (its callers pass them so)
         keys = {"unit", "time"} if name != "check" else {"rules"}
-        assert name == "profile" or keys <= keyword_only, name
+        assert keys <= keyword_only, name
+        # compare's second argument is the new wave; every other function takes one data argument
+        positional = [p.name for p in params if p.kind is not inspect.Parameter.KEYWORD_ONLY]
+        assert positional == (["base", "new"] if name == "compare" else ["data"]), name
 
 
 def test_an_unknown_name_is_an_attribute_error() -> None:

@@ -255,7 +255,7 @@ def test_a_to_dict_call_is_recorded():
 
     before = len(DOCUMENTS["profile"])
     frame = pl.DataFrame({"u": [1, 1, 2, 2], "t": [1, 2, 1, 2], "x": [0.5, 1.5, 2.0, 7.25]})
-    profile(frame, "u", "t").to_dict()
+    profile(frame, unit="u", time="t").to_dict()
     assert len(DOCUMENTS["profile"]) == before + 1
     assert list(DOCUMENTS["profile"].values())[-1][1] == "to_dict"
 

@@ -37,7 +37,7 @@ def parquet(tmp_path_factory):
 
 
 def _doc(path, streaming, unit="u", time="t"):
-    d = auditor.profile(path, unit, time, streaming=streaming).to_dict()
+    d = auditor.profile(path, unit=unit, time=time, streaming=streaming).to_dict()
     assert d["panel"].pop("engine") == ("streaming" if streaming else "in-memory")
     return d
 
@@ -89,8 +89,8 @@ def test_streaming_with_text_keys_and_duplicates_in_partitions(tmp_path, monkeyp
     path = tmp_path / "hh.parquet"
     df.write_parquet(path)
     monkeypatch.setattr(engines, "PARTITION_ROWS", 50)
-    streamed = auditor.profile(path, "hh", "wave", streaming=True).to_dict()
-    whole = auditor.profile(path, "hh", "wave", streaming=False).to_dict()
+    streamed = auditor.profile(path, unit="hh", time="wave", streaming=True).to_dict()
+    whole = auditor.profile(path, unit="hh", time="wave", streaming=False).to_dict()
     assert streamed["panel"].pop("engine") == "streaming"
     whole["panel"].pop("engine")
     assert streamed["panel"]["duplicate_keys"] == 3

@@ -469,7 +469,7 @@ def test_a_binary_column_with_few_switchers_gets_one_finding():
     df = pl.DataFrame({"id": np.repeat(np.arange(n), 3), "t": np.tile([1, 2, 3], n)}).with_columns(
         ((pl.col("id") < 3) & (pl.col("t") == 3)).cast(pl.Int64).alias("flag"),
         (pl.col("id") * 1.5 + pl.col("t") ** 2).alias("x"))
-    found = [f.check for f in auditor.profile(df, "id", "t").findings if f.column == "flag"]
+    found = [f.check for f in auditor.profile(df, unit="id", time="t").findings if f.column == "flag"]
     assert "few-switchers" in found and "nearly-time-invariant" not in found
 
 
@@ -648,7 +648,7 @@ def test_profile_of_a_narrow_integer_column_spanning_its_type(tmp_path):
     import auditor
 
     f = pl.DataFrame({"id": [0, 1, 2, 3], "t": [2000] * 4, "c": pl.Series([None, 127, 0, -128], dtype=pl.Int8)})
-    row = auditor.profile(f, "id", "t").columns.row(0, named=True)
+    row = auditor.profile(f, unit="id", time="t").columns.row(0, named=True)
     assert row["distinct"] == f["c"].drop_nulls().n_unique() == 3  # polars oracle
 
 

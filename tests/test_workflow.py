@@ -82,8 +82,8 @@ def test_profile_details_list_exactly_what_the_findings_count(hive_csv, tmp_path
     assert main(["profile", str(hive_csv), *KEYS, "--details", str(out), "--json", "--fail-on", "never"]) == 0
     from auditor.commands.profile import profile
 
-    counts = {f.check: f.count for f in profile(str(hive_csv), "hive", "year").findings if not f.column}
-    by_col = {(f.check, f.column): f.count for f in profile(str(hive_csv), "hive", "year").findings if f.column}
+    counts = {f.check: f.count for f in profile(str(hive_csv), unit="hive", time="year").findings if not f.column}
+    by_col = {(f.check, f.column): f.count for f in profile(str(hive_csv), unit="hive", time="year").findings if f.column}
     dup = _read(out / "duplicate-keys.csv")
     assert sum(1 for r in dup if r["copy"] != "1") == counts["duplicate-keys"] == 4  # planted: 4 extra rows
     assert list(dup[0])[:3] == ["hive", "year", "copy"]  # the keys first, then the period
@@ -104,7 +104,7 @@ def test_profile_details_list_exactly_what_the_findings_count(hive_csv, tmp_path
 def test_examples_say_the_usual_value_the_odd_one_and_its_period(hive_csv):
     from auditor.commands.profile import profile
 
-    f = next(f for f in profile(str(hive_csv), "hive", "year").findings if f.check == "nearly-time-invariant")
+    f = next(f for f in profile(str(hive_csv), unit="hive", time="year").findings if f.check == "nearly-time-invariant")
     ex = {e["hive"]: e["values"] for e in f.examples}
     assert ex["H-002"] == "8 in 2015-2018, 10 in 2019-2020, 8 in 2021-2022"
     proc = run_cli("profile", str(hive_csv), *KEYS)

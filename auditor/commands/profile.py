@@ -70,9 +70,9 @@ class ProfileResult:
 
 def profile(
     data: Any,
+    *,
     unit: str | Sequence[str],
     time: str,
-    *,
     rules: str | Path | None = None,
     settings: Settings | None = None,
     streaming: bool | None = None,
