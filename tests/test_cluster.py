@@ -160,7 +160,7 @@ def test_help_and_the_memory_engine_never_import_dask(waves):
 
     code = (
         "import sys, auditor.cli, auditor; "
-        "auditor.profile(sys.argv[1], 'hive', 'season', engine='memory'); "
+        "auditor.profile(sys.argv[1], unit='hive', time='season', engine='memory'); "
         "print(sorted(m for m in sys.modules if m.split('.')[0] in ('dask', 'distributed')))"
     )
     out = subprocess.run([sys.executable, "-c", code, str(waves)], capture_output=True, text=True, check=True)
