@@ -56,14 +56,14 @@ def wage_result(request, wagepan):
 
 
 def test_wagepan_random_effects_equal_example_14_4(wage_result):
-    re = wage_result.estimates["random"]["coef"]
+    re = wage_result.estimates.random.coef
     for col, value in EX_14_4_RE.items():
         assert abs(re[col] - value) <= _digits(value), col
-    assert abs(wage_result.variance_components["theta_mean"] - 0.643) <= 5e-4
+    assert abs(wage_result.variance_components.theta_mean - 0.643) <= 5e-4
 
 
 def test_wagepan_within_equals_example_14_4_fixed_effects(wage_result):
-    fe = wage_result.estimates["within"]["coef"]
+    fe = wage_result.estimates.within.coef
     for col, value in EX_14_4_FE.items():
         assert abs(fe[col] - value) <= _digits(value), col
     assert "exper" not in fe
@@ -72,11 +72,11 @@ def test_wagepan_within_equals_example_14_4_fixed_effects(wage_result):
 def test_wagepan_exper_is_set_aside_by_the_within_fit_only(wage_result):
     # methods.md section 4: potential experience beside a full set of period effects is collinear
     # within units only (a fact of the trade, common practice); the levels fits keep it
-    assert [(i["column"], i["reason"], i["fits"]) for i in wage_result.not_identified] == [
+    assert [(i.column, i.reason, list(i.fits)) for i in wage_result.not_identified] == [
         ("exper", "absorbed-by-time", ["within"])]
     for fit in ("random", "mundlak", "hausman_taylor", "between"):
-        est = wage_result.estimates[fit]
-        assert est is not None and "exper" in est["coef"], fit
+        est = getattr(wage_result.estimates, fit)
+        assert est is not None and "exper" in est.coef, fit
     msg = next(f.message for f in wage_result.findings if f.check == "not-identified")
     assert "depend on" in msg and "keep it" in msg
 
@@ -123,24 +123,24 @@ def test_wagepan_hausman_contrast_of_expersq_married_union(wagepan):
     v_re = re["cov"].loc[cols, cols].to_numpy() * fe.scale / re["sigma2"]
     h = float(d @ np.linalg.solve(v_w - v_re, d))
     for how in ("explicit", "period-effects"):
-        t = _wage(wagepan, how).tests["hausman_within_random"]
-        assert t["df"] == 3
-        assert t["statistic"] == pytest.approx(h, rel=1e-6)
-        assert t["p"] == pytest.approx(stats.chi2.sf(h, 3), rel=1e-6)
+        t = _wage(wagepan, how).tests.hausman_within_random
+        assert t.df == 3
+        assert t.statistic == pytest.approx(h, rel=1e-6)
+        assert t.p == pytest.approx(stats.chi2.sf(h, 3), rel=1e-6)
 
 
 def test_wagepan_explicit_dummies_equal_period_effects(wagepan):
     a, b = _wage(wagepan, "explicit", correlated=["educ"]), _wage(wagepan, "period-effects", correlated=["educ"])
     for fit in ("within", "random", "mundlak", "hausman_taylor", "between"):
         for col in BASE:
-            ca, cb = a.estimates[fit]["coef"].get(col), b.estimates[fit]["coef"].get(col)
+            ca, cb = getattr(a.estimates, fit).coef.get(col), getattr(b.estimates, fit).coef.get(col)
             assert (ca is None) == (cb is None), (fit, col)
             if ca is not None:
                 assert ca == pytest.approx(cb, rel=1e-9, abs=1e-12), (fit, col)
     assert a.order_condition == b.order_condition
     for name in ("mundlak", "hausman_within_random", "overidentification", "hausman_within_ht"):
-        assert a.tests[name]["df"] == b.tests[name]["df"]
-        assert a.tests[name]["statistic"] == pytest.approx(b.tests[name]["statistic"], rel=1e-8)
+        assert getattr(a.tests, name).df == getattr(b.tests, name).df
+        assert getattr(a.tests, name).statistic == pytest.approx(getattr(b.tests, name).statistic, rel=1e-8)
 
 
 def test_unbalanced_explicit_dummies_equal_period_effects(wagepan):
@@ -150,18 +150,18 @@ def test_unbalanced_explicit_dummies_equal_period_effects(wagepan):
     rng = np.random.default_rng(4)
     d = wagepan[rng.random(len(wagepan)) > 0.2].reset_index(drop=True)
     a, b = _wage(d, "explicit", correlated=["educ"]), _wage(d, "period-effects", correlated=["educ"])
-    assert a.sample["balanced"] is False
+    assert a.sample.balanced is False
     for fit in ("within", "random", "mundlak", "hausman_taylor"):
         for col in BASE:
-            ca, cb = a.estimates[fit]["coef"].get(col), b.estimates[fit]["coef"].get(col)
+            ca, cb = getattr(a.estimates, fit).coef.get(col), getattr(b.estimates, fit).coef.get(col)
             assert (ca is None) == (cb is None)
             if ca is not None:
                 assert ca == pytest.approx(cb, rel=1e-9, abs=1e-12), (fit, col)
     for col in ("expersq", "married", "union"):
-        assert a.estimates["mundlak"]["coef"][col] == pytest.approx(a.estimates["within"]["coef"][col], rel=1e-9)
+        assert a.estimates.mundlak.coef[col] == pytest.approx(a.estimates.within.coef[col], rel=1e-9)
     for name in ("mundlak", "hausman_within_random", "overidentification", "hausman_within_ht"):
-        assert a.tests[name]["df"] == b.tests[name]["df"]
-        assert a.tests[name]["statistic"] == pytest.approx(b.tests[name]["statistic"], rel=1e-8)
+        assert getattr(a.tests, name).df == getattr(b.tests, name).df
+        assert getattr(a.tests, name).statistic == pytest.approx(getattr(b.tests, name).statistic, rel=1e-8)
     assert a.order_condition == b.order_condition
 
 
@@ -178,41 +178,41 @@ def test_unbalanced_mundlak_matches_statsmodels_with_period_means(wagepan):
         m[f"m_{c}"] = m.groupby("nr")[c].transform("mean")
     exog = sm.add_constant(m[[*BASE, *DUMMIES, *[f"m_{c}" for c in tested + DUMMIES]]])
     ref = sm.OLS(m["lwage"], exog).fit(cov_type="cluster", cov_kwds={"groups": m["nr"].to_numpy()})
-    got = r.estimates["mundlak"]["coef"]
+    got = r.estimates.mundlak.coef
     for c in BASE:
         assert got[c] == pytest.approx(ref.params[c], rel=1e-7, abs=1e-10)
-    per = {row["column"]: row for row in r.tests["mundlak"]["per_column"]}
+    per = {row.column: row for row in r.tests.mundlak.per_column}
     assert sorted(per) == sorted(tested)
     for c in tested:
         # statsmodels' cluster p-values use the normal distribution, as ours do
-        assert per[c]["p"] == pytest.approx(ref.pvalues[f"m_{c}"], rel=1e-6)
+        assert per[c].p == pytest.approx(ref.pvalues[f"m_{c}"], rel=1e-6)
     w = ref.wald_test(", ".join(f"m_{c} = 0" for c in tested), use_f=False, scalar=True)
-    assert r.tests["mundlak"]["statistic"] == pytest.approx(float(w.statistic), rel=1e-6)
+    assert r.tests.mundlak.statistic == pytest.approx(float(w.statistic), rel=1e-6)
 
 
 # --------------------------------------------------------------------------- scale and shift
 
 
 def _decisions(r):
-    return (r.roles, r.order_condition, [(i["column"], i["reason"], i["fits"]) for i in r.not_identified],
-            [(c["column"], c["kind"], c["role"]) for c in r.columns])
+    return (r.roles, r.order_condition, [(i.column, i.reason, i.fits) for i in r.not_identified],
+            [(c.column, c.kind, c.role) for c in r.columns])
 
 
 def _compare_fits(a, b, skip=("const",), rel=1e-7):
     for fit in ("within", "between", "random", "mundlak", "hausman_taylor"):
-        ea, eb = a.estimates[fit], b.estimates[fit]
+        ea, eb = getattr(a.estimates, fit), getattr(b.estimates, fit)
         assert (ea is None) == (eb is None)
         if ea is None:
             continue
-        for col, value in ea["coef"].items():
+        for col, value in ea.coef.items():
             if col in skip or col.startswith("mean(") and col[5:-1] in skip:
                 continue
-            assert value == pytest.approx(eb["coef"][col], rel=rel, abs=1e-9), (fit, col)
-            assert ea["se"][col] == pytest.approx(eb["se"][col], rel=rel, abs=1e-9), (fit, col)
+            assert value == pytest.approx(eb.coef[col], rel=rel, abs=1e-9), (fit, col)
+            assert ea.se[col] == pytest.approx(eb.se[col], rel=rel, abs=1e-9), (fit, col)
     for name in ("mundlak", "hausman_within_random", "overidentification", "hausman_within_ht"):
-        ta, tb = a.tests[name], b.tests[name]
-        assert ta["df"] == tb["df"]
-        assert ta["statistic"] == pytest.approx(tb["statistic"], rel=rel)
+        ta, tb = getattr(a.tests, name), getattr(b.tests, name)
+        assert ta.df == tb.df
+        assert ta.statistic == pytest.approx(tb.statistic, rel=rel)
 
 
 def test_shifts_change_no_decision_and_no_coefficient(wagepan):
@@ -225,9 +225,9 @@ def test_shifts_change_no_decision_and_no_coefficient(wagepan):
     assert _decisions(moved) == _decisions(base)
     _compare_fits(base, moved)
     for a, b in zip(base.strength, moved.strength, strict=True):
-        assert a["partial_f"] == pytest.approx(b["partial_f"], rel=1e-7)
+        assert a.partial_f == pytest.approx(b.partial_f, rel=1e-7)
     # the constant moves by exactly what the shifts imply
-    re_a, re_b = base.estimates["random"]["coef"], moved.estimates["random"]["coef"]
+    re_a, re_b = base.estimates.random.coef, moved.estimates.random.coef
     implied = re_a["const"] - 30_000 * re_a["married"] - 100_000 * re_a["black"] - 30_000 * re_a["exper"]
     assert re_b["const"] == pytest.approx(implied, rel=1e-6, abs=1e-5)
 
@@ -240,10 +240,10 @@ def test_units_change_no_decision(wagepan):
     assert _decisions(cents) == _decisions(base)
     for fit in ("within", "random", "hausman_taylor"):
         for col in ("expersq", "educ"):
-            if col in base.estimates[fit]["coef"]:
-                assert cents.estimates[fit]["coef"][col] * 100 == pytest.approx(base.estimates[fit]["coef"][col],
+            if col in getattr(base.estimates, fit).coef:
+                assert getattr(cents.estimates, fit).coef[col] * 100 == pytest.approx(getattr(base.estimates, fit).coef[col],
                                                                                   rel=1e-8)
-        assert cents.estimates[fit]["coef"]["union"] == pytest.approx(base.estimates[fit]["coef"]["union"], rel=1e-8)
+        assert getattr(cents.estimates, fit).coef["union"] == pytest.approx(getattr(base.estimates, fit).coef["union"], rel=1e-8)
 
 
 def test_near_dependence_is_a_warning_and_the_column_stays(wagepan):
@@ -253,10 +253,10 @@ def test_near_dependence_is_a_warning_and_the_column_stays(wagepan):
     d = wagepan.assign(exper=wagepan["exper"] + rng.normal(scale=0.02, size=len(wagepan)))
     r = _wage(d, "explicit")
     assert r.not_identified == ()
-    assert "exper" in r.estimates["within"]["coef"]
+    assert "exper" in r.estimates.within.coef
     near = [f for f in r.findings if f.check == "near-collinear"]
     assert [f.column for f in near] == ["exper"]
-    assert any(n["column"] == "exper" and n["fit"] == "within" and n["r2"] > 0.999 for n in r.near_collinear)
+    assert any(n.column == "exper" and n.fit == "within" and n.r2 > 0.999 for n in r.near_collinear)
 
 
 # --------------------------------------------------------------------------- Monte Carlo
@@ -294,7 +294,7 @@ def _rejections(draws, tests):
     counts = dict.fromkeys(tests, 0)
     for r in draws:
         for name in tests:
-            counts[name] += r.tests[name]["p"] < 0.05
+            counts[name] += getattr(r.tests, name).p < 0.05
     return {k: v / len(draws) for k, v in counts.items()}
 
 
@@ -352,8 +352,8 @@ def test_sargan_and_ht_contrast_keep_their_size_and_have_power():
     # the unit effect -> both reject in at least 80%
     names = ("overidentification", "hausman_within_ht")
     valid = [_ht(_ht_panel(s, False)) for s in range(50)]
-    assert {r.order_condition["k1"] for r in valid} == {3}  # exper is identified by its own mean
-    assert {(r.tests[n]["df"]) for r in valid for n in names} == {2}  # k1 - g2
+    assert {r.order_condition.k1 for r in valid} == {3}  # exper is identified by its own mean
+    assert {(getattr(r.tests, n).df) for r in valid for n in names} == {2}  # k1 - g2
     rates = _rejections(valid, names)
     assert all(rate <= 0.15 for rate in rates.values()), rates
     power = _rejections([_ht(_ht_panel(s, True)) for s in range(25)], names)
@@ -370,13 +370,13 @@ def test_just_identified_ht_equals_within_with_a_trend_and_period_effects_unbala
     d = d[np.random.default_rng(5).random(len(d)) > 0.2]
     r = instruments(d, unit="id", time="year", outcome="y", regressors=["x1a", "x2", "exper", "z1", "z2"],
                     correlated=["x2", "z2"], period_effects=True)
-    assert r.order_condition == {"k1": 1, "g2": 1, "met": True}
-    w, ht = r.estimates["within"]["coef"], r.estimates["hausman_taylor"]["coef"]
+    assert r.order_condition.to_dict() == {"k1": 1, "g2": 1, "met": True}
+    w, ht = r.estimates.within.coef, r.estimates.hausman_taylor.coef
     # the period effects' within coefficients depend on exper being set aside (it is a member of
     # their collinear set); the other time-varying coefficients do not
     for col in ("x1a", "x2"):
         assert ht[col] == pytest.approx(w[col], rel=1e-8, abs=1e-10), col
-    assert "exper" in ht and r.tests["overidentification"] is None
+    assert "exper" in ht and r.tests.overidentification is None
 
 
 def test_ht_unit_step_matches_statsmodels_iv2sls():
@@ -401,10 +401,10 @@ def test_ht_unit_step_matches_statsmodels_iv2sls():
     t_i = g.size().to_numpy().astype(float)
     s2u = float(np.mean(resid**2)) - fe.scale * float(np.mean(1 / t_i))
     theta = 1 - np.sqrt(fe.scale / (fe.scale + t_i * s2u))
-    comp = r.variance_components["hausman_taylor"]
-    assert comp["sigma_u"] == pytest.approx(np.sqrt(s2u), rel=1e-8)
-    assert comp["sigma_e"] == pytest.approx(np.sqrt(fe.scale), rel=1e-8)
-    assert comp["theta_mean"] == pytest.approx(float(np.mean(theta)), rel=1e-8)
+    comp = r.variance_components.hausman_taylor
+    assert comp.sigma_u == pytest.approx(np.sqrt(s2u), rel=1e-8)
+    assert comp.sigma_e == pytest.approx(np.sqrt(fe.scale), rel=1e-8)
+    assert comp.theta_mean == pytest.approx(float(np.mean(theta)), rel=1e-8)
 
 
 def test_random_effects_on_an_unbalanced_panel_use_the_mean_of_inverse_counts():
@@ -416,19 +416,19 @@ def test_random_effects_on_an_unbalanced_panel_use_the_mean_of_inverse_counts():
     assert d.groupby("firm").size().nunique() > 1
     ref = _swamy_arora(d, "invest", ["value", "capital"], [], "firm")
     r = instruments(d, unit="firm", time="year", outcome="invest", regressors=["value", "capital"], correlated=[])
-    got = r.estimates["random"]
+    got = r.estimates.random
     for c in ("const", "value", "capital"):
-        assert got["coef"][c] == pytest.approx(ref["coef"][c], rel=1e-8)
-        assert got["se"][c] == pytest.approx(np.sqrt(ref["cov"].loc[c, c]), rel=1e-8)
-    assert r.variance_components["sigma_u"] == pytest.approx(np.sqrt(ref["sigma2_u"]), rel=1e-8)
-    assert r.variance_components["theta_mean"] == pytest.approx(float(np.mean(ref["theta"])), rel=1e-8)
+        assert got.coef[c] == pytest.approx(ref["coef"][c], rel=1e-8)
+        assert got.se[c] == pytest.approx(np.sqrt(ref["cov"].loc[c, c]), rel=1e-8)
+    assert r.variance_components.sigma_u == pytest.approx(np.sqrt(ref["sigma2_u"]), rel=1e-8)
+    assert r.variance_components.theta_mean == pytest.approx(float(np.mean(ref["theta"])), rel=1e-8)
 
 
 def test_every_strength_row_p_equals_scipy_f_sf(wagepan):
     r = _wage(wagepan, "explicit", correlated=["educ"])
     assert r.strength
     for row in r.strength:
-        assert row["p"] == pytest.approx(stats.f.sf(row["partial_f"], *row["df"]), rel=1e-10)  # scipy.stats
+        assert row.p == pytest.approx(stats.f.sf(row.partial_f, *row.df), rel=1e-10)  # scipy.stats
 
 
 def test_rest_of_set_sargan_matches_statsmodels_iv2sls():
@@ -471,9 +471,9 @@ def test_two_z2_columns_use_stock_yogo_for_k1_minus_g2_plus_1():
     d["z3"] = d.groupby("unit")["z3"].transform("mean")
     r = instruments(d, unit="unit", time="t", outcome="y", regressors=["x1a", "x1b", "x1c", "x2", "z1", "z2", "z3"],
                     correlated=["x2", "z2", "z3"])
-    assert r.order_condition == {"k1": 3, "g2": 2, "met": True}
-    assert [row["critical_value"] for row in r.strength] == [19.93, 19.93]
-    assert all(row["verdict_basis"] == "conditional_f" for row in r.strength)
+    assert r.order_condition.to_dict() == {"k1": 3, "g2": 2, "met": True}
+    assert [row.critical_value for row in r.strength] == [19.93, 19.93]
+    assert all(row.verdict_basis == "conditional_f" for row in r.strength)
     assert r.cragg_donald is not None
 
 
@@ -486,8 +486,8 @@ def test_critical_value_label_follows_the_size_setting(tmp_path):
     r = instruments(simulate(), unit="unit", time="t", outcome="y", regressors=["x1a", "x1b", "x2", "z1", "z2"],
                     correlated=["x2", "z2"], rules=rules)
     row = r.strength[0]
-    assert row["critical_value"] == 7.25
-    assert row["critical_source"] == "Stock-Yogo 2005, 25% maximal size"
+    assert row.critical_value == 7.25
+    assert row.critical_source == "Stock-Yogo 2005, 25% maximal size"
     from auditor.render.text_instruments import render
 
     assert "Stock-Yogo 25%" in render(r, width=120)
@@ -497,11 +497,11 @@ def test_a_rejected_set_leaves_candidates_undecided_and_says_so(wagepan):
     # wagepan with educ as Z2: Sargan rejects and no single X1 mean can be blamed, so no candidate
     # is usable: true and the suggestion says the set is rejected
     r = _wage(wagepan, "explicit", correlated=["educ"])
-    assert r.tests["overidentification"]["p"] < 0.05
-    assert {c["state"] for c in r.candidates} == {"undecided"}
-    assert all(c["usable"] is None for c in r.candidates)
+    assert r.tests.overidentification.p < 0.05
+    assert {c.state for c in r.candidates} == {"undecided"}
+    assert all(c.usable is None for c in r.candidates)
     sug = r.suggestion[0]
-    assert sug["set_rejected"] is True and sug["basis"] == "undecided"
+    assert sug.set_rejected is True and sug.basis == "undecided"
     from auditor.render.text_instruments import render
 
     text = render(r, width=200)

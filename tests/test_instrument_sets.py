@@ -146,9 +146,9 @@ def test_the_api_shows_the_three_estimators_side_by_side():
     d = simulate(seed=34)
     r = instruments(d, unit="unit", time="t", outcome="y", regressors=X1 + X2 + Z1 + Z2, correlated=["x2", "z2"])
     for key in ("hausman_taylor", "amemiya_macurdy", "breusch_mizon_schmidt"):
-        assert set(r.estimates[key]["coef"]) == set(r.estimates["hausman_taylor"]["coef"])
-        assert r.tests["overidentification_by_estimator"][key]["df"] >= 1
-    assert set(r.tests["hausman_against_ht"]) == {"amemiya_macurdy", "breusch_mizon_schmidt"}
+        assert set(getattr(r.estimates, key).coef) == set(r.estimates.hausman_taylor.coef)
+        assert getattr(r.tests.overidentification_by_estimator, key).df >= 1
+    assert set(r.tests.hausman_against_ht.to_dict()) == {"amemiya_macurdy", "breusch_mizon_schmidt"}
     from auditor.render.text_instruments import render
 
     text = render(r, width=160)
@@ -182,7 +182,7 @@ def test_attrition_test_rejects_selective_and_keeps_its_size_under_random_attrit
         for s in range(reps):
             r = instruments(_attrition_panel(s, selective), unit="unit", time="t", outcome="y", regressors=["x"],
                             correlated=[])
-            hits += r.tests["attrition"]["p"] < 0.05
+            hits += r.tests.attrition.p < 0.05
         return hits / reps
 
     assert rate(True, 25) >= 0.80
@@ -200,17 +200,17 @@ def test_attrition_test_matches_statsmodels_with_unit_dummies():
     sub = d[d["t"] < d["t"].max()].copy()
     sub["nxt"] = [float((u, t + 1) in present) for u, t in zip(sub["unit"], sub["t"], strict=True)]
     ref = smf.ols("y ~ x + nxt + C(unit)", data=sub).fit()
-    a = r.tests["attrition"]
-    assert a["coef"] == pytest.approx(ref.params["nxt"], rel=1e-8)
+    a = r.tests.attrition
+    assert a.coef == pytest.approx(ref.params["nxt"], rel=1e-8)
     dm = sub[["y", "x", "nxt"]] - sub.groupby("unit")[["y", "x", "nxt"]].transform("mean")
     cl = sm.OLS(dm["y"], dm[["x", "nxt"]]).fit(cov_type="cluster", cov_kwds={"groups": sub["unit"].to_numpy()})
-    assert a["t"] == pytest.approx(cl.params["nxt"] / cl.bse["nxt"], rel=1e-8)
+    assert a.t == pytest.approx(cl.params["nxt"] / cl.bse["nxt"], rel=1e-8)
     assert "selective-attrition" in [f.check for f in r.findings]
 
 
 def test_no_attrition_test_when_nobody_leaves():
     r = instruments(simulate(seed=35), unit="unit", time="t", outcome="y", regressors=["x1a"], correlated=[])
-    assert r.tests["attrition"] is None
+    assert r.tests.attrition is None
 
 
 # --------------------------------------------------------------------------- Anderson-Rubin
@@ -230,16 +230,16 @@ def _grid_accepts(um, dd, b0):
 
 
 def _inside(ar, b0):
-    return any((lo is None or b0 >= lo) and (hi is None or b0 <= hi) for lo, hi in ar["intervals"])
+    return any((lo is None or b0 >= lo) and (hi is None or b0 <= hi) for lo, hi in ar.intervals)
 
 
 @pytest.mark.parametrize("related", [True, False])
 def test_anderson_rubin_set_matches_a_grid_of_statsmodels_f_tests(related):
     d = simulate(seed=36, related=related)
     r = instruments(d, unit="unit", time="t", outcome="y", regressors=X1 + X2 + Z1 + Z2, correlated=["x2", "z2"])
-    ar = r.strength[0]["anderson_rubin"]
+    ar = r.strength[0].anderson_rubin
     um, dd = _ar_inputs(d)
-    bounds = [v for piece in ar["intervals"] for v in piece if v is not None]
+    bounds = [v for piece in ar.intervals for v in piece if v is not None]
     for b0 in np.linspace(-6, 8, 141):
         if any(abs(b0 - v) < 1e-6 for v in bounds):
             continue
@@ -249,9 +249,9 @@ def test_anderson_rubin_set_matches_a_grid_of_statsmodels_f_tests(related):
         assert float(fit.f_test("x1a = 0, x1b = 0").pvalue) == pytest.approx(0.05, rel=1e-6)
     if related:
         # strong instruments: a bounded interval holding the simulated truth (z2 coefficient 1.0)
-        assert ar["kind"] == "interval" and _inside(ar, 1.0)
+        assert ar.kind == "interval" and _inside(ar, 1.0)
     else:
-        assert ar["kind"] in ("two rays", "whole line")  # irrelevant instruments: unbounded
+        assert ar.kind in ("two rays", "whole line")  # irrelevant instruments: unbounded
 
 
 def test_anderson_rubin_with_an_irrelevant_instrument_is_unbounded():
@@ -272,5 +272,5 @@ def test_anderson_rubin_is_not_computed_with_two_z2_columns():
     d["x1c"] = np.random.default_rng(39).normal(size=len(d))
     r = instruments(d, unit="unit", time="t", outcome="y", regressors=["x1a", "x1b", "x1c", "x2", "z1", "z2", "z3"],
                     correlated=["x2", "z2", "z3"])
-    assert all(row["anderson_rubin"] is None for row in r.strength)
-    assert all("not computed" in row["anderson_rubin_note"] for row in r.strength)
+    assert all(row.anderson_rubin is None for row in r.strength)
+    assert all("not computed" in row.anderson_rubin_note for row in r.strength)

@@ -39,23 +39,23 @@ def sim_result():
 
 def test_roles_follow_kinds_and_declaration(sim_result):
     # Hausman and Taylor (1981) notation, methods.md section 4: time-varying -> X, invariant -> Z
-    assert sim_result.roles == {"X1": ["x1a", "x1b"], "X2": ["x2"], "Z1": ["z1"], "Z2": ["z2"]}
-    assert sim_result.order_condition == {"k1": 2, "g2": 1, "met": True}
+    assert sim_result.roles.to_dict() == {"X1": ["x1a", "x1b"], "X2": ["x2"], "Z1": ["z1"], "Z2": ["z2"]}
+    assert sim_result.order_condition.to_dict() == {"k1": 2, "g2": 1, "met": True}
 
 
 def test_ht_recovers_z2_and_random_effects_is_biased_through_the_api(sim_result):
     # known truth of the simulated design (tests/test_models.py::simulate): z2 coefficient 1.0
-    ht = sim_result.estimates["hausman_taylor"]
-    assert abs(ht["coef"]["z2"] - 1.0) < 3 * ht["se"]["z2"]
-    re = sim_result.estimates["random"]
-    assert abs(re["coef"]["z2"] - 1.0) > 5 * re["se"]["z2"]
-    assert sim_result.strength[0]["verdict"] == "strong"
+    ht = sim_result.estimates.hausman_taylor
+    assert abs(ht.coef["z2"] - 1.0) < 3 * ht.se["z2"]
+    re = sim_result.estimates.random
+    assert abs(re.coef["z2"] - 1.0) > 5 * re.se["z2"]
+    assert sim_result.strength[0].verdict == "strong"
 
 
 def test_unrelated_instruments_are_weak_with_a_finding():
     # known truth: z2 does not load on the unit components of x1a, x1b
     r = run(simulate(related=False), regressors=SIM_REGS, correlated=["x2", "z2"])
-    assert r.strength[0]["verdict"] == "weak"
+    assert r.strength[0].verdict == "weak"
     weak = [f for f in r.findings if f.check == "weak-instrument"]
     assert len(weak) == 1 and weak[0].column == "z2"
 
@@ -63,10 +63,10 @@ def test_unrelated_instruments_are_weak_with_a_finding():
 def test_every_x_correlated_fails_the_order_condition():
     # Hausman and Taylor (1981): order condition k1 >= g2; here k1 = 0 < g2 = 1
     r = run(simulate(), regressors=SIM_REGS, correlated=["x1a", "x1b", "x2", "z2"])
-    assert r.order_condition == {"k1": 0, "g2": 1, "met": False}
-    assert r.estimates["hausman_taylor"] is None
+    assert r.order_condition.to_dict() == {"k1": 0, "g2": 1, "met": False}
+    assert r.estimates.hausman_taylor is None
     assert "order-condition" in checks(r, "error")
-    assert r.strength[0]["verdict"] == "not-identified"
+    assert r.strength[0].verdict == "not-identified"
     msg = next(f.message for f in r.findings if f.check == "order-condition")
     assert "not identified" in msg
 
@@ -74,8 +74,8 @@ def test_every_x_correlated_fails_the_order_condition():
 def test_just_identified_has_no_overidentification_tests():
     # Hausman and Taylor (1981): with k1 = g2 nothing is over-identified
     r = run(simulate(), regressors=SIM_REGS, correlated=["x1b", "x2", "z2"])
-    assert r.order_condition["k1"] == 1
-    assert r.tests["overidentification"] is None and r.tests["hausman_within_ht"] is None
+    assert r.order_condition.k1 == 1
+    assert r.tests.overidentification is None and r.tests.hausman_within_ht is None
 
 
 def test_json_uses_the_contract_names(sim_result):
@@ -101,11 +101,11 @@ def test_grunfeld_through_the_api_matches_baltagi_table_2_1():
     d = grunfeld.load_pandas().data
     d = d[d["firm"] != "American Steel"]
     r = instruments(d, unit="firm", time="year", outcome="invest", regressors=["value", "capital"], correlated=[])
-    w, re = r.estimates["within"], r.estimates["random"]
-    assert abs(w["coef"]["value"] - 0.1101) <= 5e-5 and abs(w["se"]["capital"] - 0.0174) <= 5e-5
-    assert abs(re["coef"]["const"] - (-57.83)) <= 5e-3 and abs(re["se"]["const"] - 28.90) <= 5e-3
-    assert abs(r.variance_components["sigma_u"] - 84.20) <= 5e-3
-    assert abs(r.variance_components["theta_mean"] - 0.8612) <= 5e-5
+    w, re = r.estimates.within, r.estimates.random
+    assert abs(w.coef["value"] - 0.1101) <= 5e-5 and abs(w.se["capital"] - 0.0174) <= 5e-5
+    assert abs(re.coef["const"] - (-57.83)) <= 5e-3 and abs(re.se["const"] - 28.90) <= 5e-3
+    assert abs(r.variance_components.sigma_u - 84.20) <= 5e-3
+    assert abs(r.variance_components.theta_mean - 0.8612) <= 5e-5
 
 
 def test_period_effects_within_equals_statsmodels_two_way_dummies():
@@ -116,7 +116,7 @@ def test_period_effects_within_equals_statsmodels_two_way_dummies():
     r = instruments(d, unit="firm", time="year", outcome="invest", regressors=["value", "capital"],
                     correlated=[], period_effects=True)
     ref = smf.ols("invest ~ value + capital + C(firm) + C(year)", data=d).fit()
-    w = r.estimates["within"]["coef"]
+    w = r.estimates.within.coef
     assert w["value"] == pytest.approx(ref.params["value"], abs=1e-8)
     assert w["capital"] == pytest.approx(ref.params["capital"], abs=1e-8)
     assert w["period=1940"] == pytest.approx(ref.params["C(year)[T.1940.0]"], abs=1e-7)
@@ -152,17 +152,17 @@ def test_not_identified_columns_are_named_with_their_reason():
     d = _hand_panel()
     r = run(d, regressors=["x1", "x2", "x_sum", "z1", "z_copy", "everywhere", "price", "age"], correlated=[],
             period_effects=True)
-    reasons = {item["column"]: item["reason"] for item in r.not_identified}
+    reasons = {item.column: item.reason for item in r.not_identified}
     assert reasons == {"x_sum": "collinear-within", "z_copy": "collinear-between", "everywhere": "constant",
                        "price": "period-only", "age": "absorbed-by-time"}
-    x_sum = next(i for i in r.not_identified if i["column"] == "x_sum")
-    assert sorted(x_sum["with"]) == ["x1", "x2"]
+    x_sum = next(i for i in r.not_identified if i.column == "x_sum")
+    assert sorted(x_sum.with_) == ["x1", "x2"]
     # methods.md section 4: exact in levels too, so every fit loses it; age only within units
-    assert x_sum["fits"] == ["within", "between", "random", "mundlak", "hausman_taylor"]
-    age = next(i for i in r.not_identified if i["column"] == "age")
-    assert age["fits"] == ["within"] and "age" in r.estimates["random"]["coef"]
+    assert list(x_sum.fits) == ["within", "between", "random", "mundlak", "hausman_taylor"]
+    age = next(i for i in r.not_identified if i.column == "age")
+    assert list(age.fits) == ["within"] and "age" in r.estimates.random.coef
     assert sum(1 for f in r.findings if f.check == "not-identified") == 5
-    assert "x1" in r.estimates["within"]["coef"] and "x_sum" not in r.estimates["within"]["coef"]
+    assert "x1" in r.estimates.within.coef and "x_sum" not in r.estimates.within.coef
 
 
 def test_collinear_column_left_out_does_not_change_the_others():
@@ -170,16 +170,16 @@ def test_collinear_column_left_out_does_not_change_the_others():
     d = _hand_panel()
     with_dup = run(d, regressors=["x1", "x2", "x_sum"], correlated=[])
     without = run(d, regressors=["x1", "x2"], correlated=[])
-    assert with_dup.estimates["within"]["coef"]["x1"] == pytest.approx(without.estimates["within"]["coef"]["x1"],
+    assert with_dup.estimates.within.coef["x1"] == pytest.approx(without.estimates.within.coef["x1"],
                                                                        abs=1e-10)
 
 
 def test_text_regressor_becomes_indicators_with_the_most_common_level_as_base():
     # hand-built: soil has 30 'loam', 20 'sand', 10 'clay' units
     r = run(_hand_panel(), regressors=["x1", "soil"], correlated=[])
-    assert r.roles["Z1"] == ["soil=sand", "soil=clay"]
-    assert "soil=loam" not in r.estimates["random"]["coef"]
-    base = {c["column"]: c["base_level"] for c in r.columns}
+    assert list(r.roles.z1) == ["soil=sand", "soil=clay"]
+    assert "soil=loam" not in r.estimates.random.coef
+    base = {c.column: c.base_level for c in r.columns}
     assert base["soil=sand"] == "loam"
 
 
@@ -188,14 +188,14 @@ def test_treat_as_invariant_replaces_a_few_changes():
     d = _hand_panel()
     d.loc[[0, 7, 14], "z1"] += 10.0  # units 0, 1, 2, one period each
     r = run(d, regressors=["x1", "z1"], correlated=[])
-    assert r.roles["X1"] == ["x1", "z1"]  # nearly-time-invariant counts as X (methods.md section 4)
+    assert list(r.roles.x1) == ["x1", "z1"]  # nearly-time-invariant counts as X (methods.md section 4)
     assert "nearly-invariant-regressor" in checks(r)
     r2 = run(d, regressors=["x1", "z1"], correlated=[], treat_as_invariant=["z1"])
-    assert r2.roles["Z1"] == ["z1"]
+    assert list(r2.roles.z1) == ["z1"]
     note = next(f for f in r2.findings if f.check == "treated-as-invariant")
     assert note.count == 3
     clean = run(_hand_panel(), regressors=["x1", "z1"], correlated=[])
-    assert r2.estimates["random"]["coef"]["z1"] == pytest.approx(clean.estimates["random"]["coef"]["z1"], rel=1e-10)
+    assert r2.estimates.random.coef["z1"] == pytest.approx(clean.estimates.random.coef["z1"], rel=1e-10)
 
 
 def test_without_declaration_x2_is_suggested_and_z2_must_be_declared():
@@ -205,7 +205,7 @@ def test_without_declaration_x2_is_suggested_and_z2_must_be_declared():
     # evidence is not disturbed by z2's own correlation with u_i
     r = run(simulate(related=False), regressors=SIM_REGS)
     assert r.roles_declared is False
-    assert r.roles["X2"] == ["x2"] and r.roles["Z2"] == []
+    assert list(r.roles.x2) == ["x2"] and list(r.roles.z2) == []
     assert "correlated-not-declared" in checks(r, "note")
 
 
@@ -215,7 +215,7 @@ def test_outcome_time_invariant_is_an_error_finding():
     d["y"] = d["z1"] * 2
     r = run(d, regressors=["x1", "x2"], correlated=[])
     assert "outcome-time-invariant" in checks(r, "error")
-    assert r.estimates["within"] is None
+    assert r.estimates.within is None
 
 
 def test_too_few_units_for_the_unit_level_parameters():
@@ -224,7 +224,7 @@ def test_too_few_units_for_the_unit_level_parameters():
     d = d[d["unit"] < 3]
     r = run(d, regressors=["x1", "x2", "z1"], correlated=[])
     assert "too-few-units" in checks(r, "error")
-    assert r.estimates["random"] is None and r.estimates["within"] is not None
+    assert r.estimates.random is None and r.estimates.within is not None
 
 
 def test_pandas_and_polars_input_give_the_same_document(sim_result):
@@ -241,8 +241,8 @@ def test_shuffled_rows_give_the_same_estimates(sim_result):
     d = simulate().sample(frac=1.0, random_state=3)
     r = run(d, regressors=SIM_REGS, correlated=["x2", "z2"])
     for name in ("within", "random", "hausman_taylor"):
-        for k, v in sim_result.estimates[name]["coef"].items():
-            assert r.estimates[name]["coef"][k] == pytest.approx(v, rel=1e-9, abs=1e-12)
+        for k, v in getattr(sim_result.estimates, name).coef.items():
+            assert getattr(r.estimates, name).coef[k] == pytest.approx(v, rel=1e-9, abs=1e-12)
 
 
 def test_missing_values_drop_rows_with_a_note():
@@ -250,7 +250,7 @@ def test_missing_values_drop_rows_with_a_note():
     d = _hand_panel()
     d.loc[[3, 50, 51, 200], "x1"] = np.nan
     r = run(d, regressors=["x1", "x2"], correlated=[])
-    assert r.sample["rows"] == 296 and r.sample["rows_dropped"] == 4
+    assert r.sample.rows == 296 and r.sample.rows_dropped == 4
     assert next(f for f in r.findings if f.check == "rows-dropped").count == 4
 
 
@@ -343,7 +343,7 @@ def test_an_x1_column_correlated_with_the_effect_is_caught_by_the_c_test():
     assert "overidentification-rejected" in checks(r)
     invalid = [f.column for f in r.findings if f.check == "invalid-instrument"]
     assert invalid == ["x1b"]
-    usable = {c["instrument"]: c["usable"] for c in r.candidates}
+    usable = {c.instrument: c.usable for c in r.candidates}
     assert usable == {"x1a": True, "x1b": False, "x1c": True}
 
 
@@ -353,7 +353,7 @@ def test_x2_with_little_within_variation_is_flagged():
     unit_part = d.groupby("unit")["x2"].transform("mean")
     d["x2"] = 10 * unit_part + 0.05 * (d["x2"] - unit_part)
     r = run(d, regressors=SIM_REGS, correlated=["x2", "z2"])
-    share = r.x2_strength[0]["within_share"]
+    share = r.x2_strength[0].within_share
     assert share < 0.05
     assert [f.column for f in r.findings if f.check == "weak-within-variation"] == ["x2"]
 
@@ -362,11 +362,11 @@ def test_with_one_overidentifying_restriction_the_sargan_test_decides_usability(
     # Hausman and Taylor (1981): k1 - g2 = 1 over-identifying restriction; leaving one mean out
     # would just identify the model, so no per-column C test exists (Hayashi 2000, section 3.6)
     # and the Mundlak p, disturbed by the correlated z2, is shown but does not decide
-    bases = {c["instrument"]: c["usable_basis"] for c in sim_result.candidates}
+    bases = {c.instrument: c.usable_basis for c in sim_result.candidates}
     assert all(b.startswith("sargan") for b in bases.values())
-    assert all(c["c_p"] is None for c in sim_result.candidates)
-    sargan_accepts = sim_result.tests["overidentification"]["p"] >= 0.05
-    assert all(c["usable"] for c in sim_result.candidates) or not sargan_accepts
+    assert all(c.c_p is None for c in sim_result.candidates)
+    sargan_accepts = sim_result.tests.overidentification.p >= 0.05
+    assert all(c.usable for c in sim_result.candidates) or not sargan_accepts
 
 
 def test_attrition_test_with_a_rounding_level_standard_error_is_not_reported():

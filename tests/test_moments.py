@@ -330,14 +330,14 @@ def test_fits_on_equivalent_rows_match_baltagi_table_2_1(shards, monkeypatch):
     monkeypatch.setattr(readiness, "_sample", lambda *a, **k: design.equivalent_sample(rows_sample(*a, **k), shards))
     r = readiness.instruments(d, unit="firm", time="year", outcome="invest", regressors=["value", "capital"],
                               correlated=[])
-    w, re = r.estimates["within"], r.estimates["random"]
-    assert abs(w["coef"]["value"] - 0.1101) <= 5e-5 and abs(w["se"]["value"] - 0.0119) <= 5e-5
-    assert abs(w["coef"]["capital"] - 0.3101) <= 5e-5 and abs(w["se"]["capital"] - 0.0174) <= 5e-5
-    assert abs(re["coef"]["value"] - 0.1098) <= 5e-5 and abs(re["se"]["value"] - 0.0105) <= 5e-5
-    assert abs(re["coef"]["const"] - (-57.83)) <= 5e-3 and abs(re["se"]["const"] - 28.90) <= 5e-3
-    assert abs(r.variance_components["sigma_u"] - 84.20) <= 5e-3
-    assert abs(r.variance_components["sigma_e"] - 52.77) <= 5e-3
-    assert abs(r.variance_components["theta_mean"] - 0.8612) <= 5e-5
+    w, re = r.estimates.within, r.estimates.random
+    assert abs(w.coef["value"] - 0.1101) <= 5e-5 and abs(w.se["value"] - 0.0119) <= 5e-5
+    assert abs(w.coef["capital"] - 0.3101) <= 5e-5 and abs(w.se["capital"] - 0.0174) <= 5e-5
+    assert abs(re.coef["value"] - 0.1098) <= 5e-5 and abs(re.se["value"] - 0.0105) <= 5e-5
+    assert abs(re.coef["const"] - (-57.83)) <= 5e-3 and abs(re.se["const"] - 28.90) <= 5e-3
+    assert abs(r.variance_components.sigma_u - 84.20) <= 5e-3
+    assert abs(r.variance_components.sigma_e - 52.77) <= 5e-3
+    assert abs(r.variance_components.theta_mean - 0.8612) <= 5e-5
     assert r.to_dict()["sample"]["rows"] == 200  # the panel's rows, not the equivalent rows
 
 

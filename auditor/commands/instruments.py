@@ -21,7 +21,7 @@ The flow is a chain of typed stages, each a frozen value built from the ones bef
 from __future__ import annotations
 
 import dataclasses
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
@@ -31,41 +31,67 @@ import numpy as np
 
 from auditor.checks.config import Settings, load_settings
 from auditor.checks.findings import Finding, make, sort_findings
+from auditor.commands.instruments_values import (
+    AttritionTest,
+    Candidate,
+    ChiSquareTest,
+    ColumnUse,
+    ContrastsWithHT,
+    Estimates,
+    FitCoefficients,
+    MundlakTest,
+    NearCollinear,
+    OrderCondition,
+    ReferenceF,
+    RoleColumns,
+    SampleSummary,
+    SarganByEstimator,
+    SetAside,
+    SpecificationTests,
+    SuggestedSet,
+    UnitStrength,
+    VarianceComponents,
+    X2Strength,
+    plain,
+)
 from auditor.io.load import Panel, load_panel
 from auditor.stats import attrition, identification, instrument_sets, models, strength
 from auditor.stats.design import Design, Sample, _design, _moved_to_z, _sample, _validate
-from auditor.vocab import p_phrase
+from auditor.vocab import clean, p_phrase
 
 
 @dataclass(frozen=True)
 class InstrumentsResult:
     """Everything ``panel-audit instruments`` reports; ``to_dict()`` is the contract's JSON.
 
-    ``roles`` maps X1/X2/Z1/Z2 to column names (the constant is always in Z1 and not
+    Every field is a typed value (auditor.commands.instruments_values) holding its slice
+    of the document. ``roles`` lists X1/X2/Z1/Z2 (the constant is always in Z1 and not
     listed; period effects are exogenous and listed in X1 and in ``period_effects``);
     ``roles_declared`` is false when X2 was suggested from the data. ``columns``
     describes each regressor as used (kind, role, within share, the fits that identify
-    it). Estimates are dicts of ``coef``/``se``/``se_cluster`` keyed by column name.
+    it). ``estimates`` holds each fit's coefficients and standard errors by column name.
+    :meth:`from_dict` rebuilds a result from its document (for example one read back
+    from disk) so that the renderers can show it.
     """
 
     outcome: str
-    roles: dict[str, list[str]]
+    roles: RoleColumns
     roles_declared: bool
     period_effects: tuple[str, ...]
-    columns: tuple[dict[str, Any], ...]
-    not_identified: tuple[dict[str, Any], ...]
-    near_collinear: tuple[dict[str, Any], ...]
-    order_condition: dict[str, Any]
-    strength: tuple[dict[str, Any], ...]
-    x2_strength: tuple[dict[str, Any], ...]
+    columns: tuple[ColumnUse, ...]
+    not_identified: tuple[SetAside, ...]
+    near_collinear: tuple[NearCollinear, ...]
+    order_condition: OrderCondition | None
+    strength: tuple[UnitStrength, ...]
+    x2_strength: tuple[X2Strength, ...]
     cragg_donald: float | None
-    candidates: tuple[dict[str, Any], ...]
-    suggestion: tuple[dict[str, Any], ...]
-    tests: dict[str, Any]
-    estimates: dict[str, Any]
-    variance_components: dict[str, Any] | None
-    sample: dict[str, Any]
-    reference_f: dict[str, float]
+    candidates: tuple[Candidate, ...]
+    suggestion: tuple[SuggestedSet, ...]
+    tests: SpecificationTests
+    estimates: Estimates
+    variance_components: VarianceComponents | None
+    sample: SampleSummary
+    reference_f: ReferenceF
     findings: tuple[Finding, ...]
     source: str
 
@@ -78,32 +104,63 @@ class InstrumentsResult:
     def to_dict(self) -> dict[str, Any]:
         """The contract's ``instruments`` document (non-finite numbers as null)."""
         from auditor.version import tool_info
-        from auditor.vocab import clean
 
         return clean(
             {
                 "tool": tool_info(),
                 "source": self.source,
                 "outcome": self.outcome,
-                "sample": self.sample,
-                "roles": self.roles,
+                "sample": plain(self.sample),
+                "roles": plain(self.roles),
                 "roles_declared": self.roles_declared,
                 "period_effects": list(self.period_effects),
-                "columns": list(self.columns),
-                "not_identified": list(self.not_identified),
-                "near_collinear": list(self.near_collinear),
-                "order_condition": self.order_condition,
-                "strength": list(self.strength),
-                "x2_strength": list(self.x2_strength),
+                "columns": plain(self.columns),
+                "not_identified": plain(self.not_identified),
+                "near_collinear": plain(self.near_collinear),
+                "order_condition": plain(self.order_condition),
+                "strength": plain(self.strength),
+                "x2_strength": plain(self.x2_strength),
                 "cragg_donald": self.cragg_donald,
-                "reference_f": self.reference_f,
-                "candidates": list(self.candidates),
-                "suggestion": list(self.suggestion),
-                "tests": self.tests,
-                "estimates": self.estimates,
-                "variance_components": self.variance_components,
+                "reference_f": plain(self.reference_f),
+                "candidates": plain(self.candidates),
+                "suggestion": plain(self.suggestion),
+                "tests": plain(self.tests),
+                "estimates": plain(self.estimates),
+                "variance_components": plain(self.variance_components),
                 "findings": [f.to_dict() for f in self.findings],
             }
+        )
+
+    @classmethod
+    def from_dict(cls, doc: Mapping[str, Any]) -> InstrumentsResult:
+        """The result rebuilt from its contract document (``to_dict()`` of the rebuilt result
+        gives ``doc`` back; a name missing from a partial document takes an empty value)."""
+        doc = clean(dict(doc))
+        findings = tuple(
+            Finding(check=str(f.get("check")), severity=str(f.get("severity")), message=str(f.get("message", "")),
+                    column=f.get("column"), count=f.get("count"), examples=tuple(f.get("examples") or ()))
+            for f in doc.get("findings") or ())
+        return cls(
+            outcome=str(doc.get("outcome", "")),
+            roles=RoleColumns.from_dict(doc.get("roles") or {}),
+            roles_declared=bool(doc.get("roles_declared", True)),
+            period_effects=tuple(doc.get("period_effects") or ()),
+            columns=ColumnUse.rows(doc.get("columns")),
+            not_identified=SetAside.rows(doc.get("not_identified")),
+            near_collinear=NearCollinear.rows(doc.get("near_collinear")),
+            order_condition=OrderCondition.maybe(doc.get("order_condition")),
+            strength=UnitStrength.rows(doc.get("strength")),
+            x2_strength=X2Strength.rows(doc.get("x2_strength")),
+            cragg_donald=doc.get("cragg_donald"),
+            candidates=Candidate.rows(doc.get("candidates")),
+            suggestion=SuggestedSet.rows(doc.get("suggestion")),
+            tests=SpecificationTests.from_dict(doc.get("tests") or {}),
+            estimates=Estimates.from_dict(doc.get("estimates") or {}),
+            variance_components=VarianceComponents.maybe(doc.get("variance_components")),
+            sample=SampleSummary.from_dict(doc.get("sample") or {}),
+            reference_f=ReferenceF.from_dict(doc.get("reference_f") or {}),
+            findings=findings,
+            source=str(doc.get("source", "")),
         )
 
 
@@ -185,7 +242,7 @@ class Fits:
     units: int
     richer: dict[str, instrument_sets.RicherFit | None] = dataclasses.field(default_factory=dict)
     richer_note: str | None = None
-    attrition: dict[str, Any] | None = None
+    attrition: AttritionTest | None = None
     attrition_note: str | None = None
 
 
@@ -259,7 +316,8 @@ def _beyond(design: Design, ident: identification.Identification, roles: Roles, 
                                                     prepared=shared)
     attrition_test = None
     if fits.within is not None and ident.within:
-        attrition_test = attrition.nijman_verbeek(design.pa, list(ident.within), design.period)
+        attrition_test = AttritionTest.maybe(clean(attrition.nijman_verbeek(design.pa, list(ident.within),
+                                                                            design.period)))
     return dataclasses.replace(fits, richer=richer, richer_note=note, attrition=attrition_test)
 
 
@@ -321,11 +379,11 @@ class Strength:
     """Instrument strength rows for the unit-level endogenous columns, X2 first stages,
     the candidate search and the suggested sets."""
 
-    rows: tuple[dict[str, Any], ...]
+    rows: tuple[UnitStrength, ...]
     cragg_donald: float | None
-    candidates: tuple[dict[str, Any], ...]
-    suggestion: tuple[dict[str, Any], ...]
-    x2_rows: tuple[dict[str, Any], ...]
+    candidates: tuple[Candidate, ...]
+    suggestion: tuple[SuggestedSet, ...]
+    x2_rows: tuple[X2Strength, ...]
 
 
 def _strength(design: Design, ident: identification.Identification, roles: Roles, fits: Fits,
@@ -363,7 +421,8 @@ def _strength(design: Design, ident: identification.Identification, roles: Roles
     x2_rows = x2_job.result() if x2_job is not None else []
     for r in x2_rows:
         r["within_share"] = ident.within_share.get(r["endogenous"])
-    return Strength(tuple(rows), cd, tuple(cands), tuple(sugg), tuple(x2_rows))
+    return Strength(UnitStrength.rows(clean(rows)), cd, Candidate.rows(clean(cands)), SuggestedSet.rows(clean(sugg)),
+                    X2Strength.rows(clean(x2_rows)))
 
 
 def _anderson_rubin(rows: list[dict[str, Any]], design: Design, roles: Roles, fits: Fits, excluded: list[str],
@@ -502,47 +561,52 @@ def _run(panel: Panel, outcome: str, regs: list[str], corr: list[str] | None, pe
 # --------------------------------------------------------------------------- the document
 
 
-def _tests(fits: Fits, roles: Roles, alpha: float) -> dict[str, Any]:
-    tests: dict[str, Any] = {"mundlak": None, "hausman_within_random": None, "overidentification": None,
-                             "hausman_within_ht": None}
+def _test(test: models.WaldTest | None, **extra: str) -> ChiSquareTest | None:
+    """A statistics module's test as the document's value (``extra``: names written after its own)."""
+    return None if test is None else ChiSquareTest.from_dict(clean({**test.to_dict(), **extra}))
+
+
+def _tests(fits: Fits, roles: Roles, alpha: float) -> SpecificationTests:
+    mundlak = None
     if fits.mundlak is not None:
         mu = fits.mundlak
-        tests["mundlak"] = {**mu.to_dict(), "alpha": alpha,
-                            "flagged": [r["column"] for r in mu.per_column if r["p"] is not None and r["p"] < alpha]}
-    if fits.hausman_random is not None:
-        tests["hausman_within_random"] = fits.hausman_random.to_dict()
+        mundlak = MundlakTest.from_dict(clean({
+            **mu.to_dict(), "alpha": alpha,
+            "flagged": [r["column"] for r in mu.per_column if r["p"] is not None and r["p"] < alpha]}))
     ht = fits.hausman_taylor
-    if ht is not None and ht.sargan is not None:
-        tests["overidentification"] = {**ht.sargan.to_dict(), "name": "Sargan"}
-    if ht is not None and ht.hausman_within is not None:
-        tests["hausman_within_ht"] = ht.hausman_within.to_dict()
-    by_est: dict[str, Any] = {"hausman_taylor": tests["overidentification"]}
-    against: dict[str, Any] = {}
-    for name, rf in fits.richer.items():
-        by_est[name] = None if rf is None or rf.sargan is None else {**rf.sargan.to_dict(), "name": "Sargan"}
-        against[name] = None if rf is None or rf.against_ht is None else rf.against_ht.to_dict()
-    tests["overidentification_by_estimator"] = by_est if ht is not None else None
-    tests["hausman_against_ht"] = against if ht is not None else None
-    tests["attrition"] = fits.attrition
-    if fits.attrition_note:
-        tests["attrition_note"] = fits.attrition_note
-    return tests
+    by_est = against = None
+    if ht is not None:
+        richer = {name: fits.richer.get(name) for name in (instrument_sets.AM, instrument_sets.BMS)}
+        by_est = SarganByEstimator(
+            hausman_taylor=_test(ht.sargan, name="Sargan"),
+            **{k: _test(None if rf is None else rf.sargan, name="Sargan") for k, rf in richer.items()})
+        against = ContrastsWithHT(**{k: _test(None if rf is None else rf.against_ht) for k, rf in richer.items()})
+    return SpecificationTests(
+        mundlak=mundlak,
+        hausman_within_random=_test(fits.hausman_random),
+        overidentification=_test(ht.sargan, name="Sargan") if ht is not None else None,
+        hausman_within_ht=_test(ht.hausman_within) if ht is not None else None,
+        overidentification_by_estimator=by_est,
+        hausman_against_ht=against,
+        attrition=fits.attrition,
+        attrition_note=fits.attrition_note or None,
+    )
 
 
 def _document(panel: Panel, sample: Sample, design: Design, ident: identification.Identification, roles: Roles,
               fits: Fits, stren: Strength, findings: list[Finding], settings: Settings) -> InstrumentsResult:
     t = settings.instruments
-    estimates: dict[str, Any] = {
-        "within": fits.within.to_dict() if fits.within is not None else None,
-        "between": fits.between.to_dict() if fits.between is not None else None,
-        "random": fits.random.to_dict() if fits.random is not None else None,
-        "mundlak": fits.mundlak.fit.to_dict() if fits.mundlak is not None else None,
-        "hausman_taylor": fits.hausman_taylor.fit.to_dict() if fits.hausman_taylor is not None else None,
-    }
-    for name in (instrument_sets.AM, instrument_sets.BMS):
-        rf = fits.richer.get(name)
-        estimates[name] = rf.estimates() if rf is not None else None
 
+    def coefficients(fit: models.Fit | None) -> FitCoefficients | None:
+        return None if fit is None else FitCoefficients.from_dict(clean(fit.to_dict()))
+
+    richer = {name: fits.richer.get(name) for name in (instrument_sets.AM, instrument_sets.BMS)}
+    estimates = Estimates(
+        within=coefficients(fits.within), between=coefficients(fits.between), random=coefficients(fits.random),
+        mundlak=coefficients(fits.mundlak.fit if fits.mundlak is not None else None),
+        hausman_taylor=coefficients(fits.hausman_taylor.fit if fits.hausman_taylor is not None else None),
+        **{k: None if rf is None else FitCoefficients.from_dict(clean(rf.estimates())) for k, rf in richer.items()},
+    )
     components = fits.components.to_dict() if fits.components is not None else None
     if fits.hausman_taylor is not None:
         components = {**(components or {}), "hausman_taylor": fits.hausman_taylor.components.to_dict()}
@@ -570,14 +634,14 @@ def _document(panel: Panel, sample: Sample, design: Design, ident: identificatio
     }
     return InstrumentsResult(
         outcome=sample.outcome,
-        roles=roles.as_dict(),
+        roles=RoleColumns.from_dict(roles.as_dict()),
         roles_declared=roles.declared,
         period_effects=tuple(ident.periods),
-        columns=tuple(columns),
-        not_identified=tuple(not_id),
-        near_collinear=tuple({"column": n.column, "fit": n.fit, "r2": n.r2, "with": list(n.with_)}
-                             for n in ident.near),
-        order_condition={"k1": roles.spec.k1, "g2": roles.spec.g2, "met": roles.order_met},
+        columns=ColumnUse.rows(clean(columns)),
+        not_identified=SetAside.rows(clean(not_id)),
+        near_collinear=NearCollinear.rows(clean([{"column": n.column, "fit": n.fit, "r2": n.r2, "with": list(n.with_)}
+                                                 for n in ident.near])),
+        order_condition=OrderCondition(k1=int(roles.spec.k1), g2=int(roles.spec.g2), met=bool(roles.order_met)),
         strength=stren.rows,
         x2_strength=stren.x2_rows,
         cragg_donald=stren.cragg_donald,
@@ -585,9 +649,9 @@ def _document(panel: Panel, sample: Sample, design: Design, ident: identificatio
         suggestion=stren.suggestion,
         tests=_tests(fits, roles, t.mundlak_alpha),
         estimates=estimates,
-        variance_components=components,
-        sample=sample_doc,
-        reference_f={"rule_of_thumb": t.rule_of_thumb_f, "lee": t.lee_f},
+        variance_components=VarianceComponents.maybe(clean(components)),
+        sample=SampleSummary.from_dict(clean(sample_doc)),
+        reference_f=ReferenceF(rule_of_thumb=float(t.rule_of_thumb_f), lee=float(t.lee_f)),
         findings=tuple(sort_findings(findings)),
         source=panel.source,
     )
@@ -776,11 +840,11 @@ def _beyond_findings(fits: Fits, test_alpha: float, settings: Settings) -> list[
     """Attrition, and the extra restrictions of the richer instrument sets."""
     out = []
     a = fits.attrition
-    if a is not None and a["p"] is not None and a["p"] < test_alpha:
+    if a is not None and a.p is not None and a.p < test_alpha:
         out.append(make(
             "selective-attrition", settings,
             f"The Nijman-Verbeek test finds that being observed in the next period is related to the outcome "
-            f"within units (t = {a['t']:.3g}, {p_phrase(a['p'])}): leaving the panel appears related to the "
+            f"within units (t = {a.t:.3g}, {p_phrase(a.p)}): leaving the panel appears related to the "
             "idiosyncratic error, so the within estimates on the observed rows may be inconsistent.",
         ))
     for name, rf in fits.richer.items():
@@ -825,26 +889,26 @@ def _instrument_findings(roles: Roles, fits: Fits, validity: Validity, stren: St
                 column=c,
             ))
     for r in stren.rows:
-        if r["verdict"] != "weak":
+        if r.verdict != "weak":
             continue
-        basis = "conditional F" if r["verdict_basis"] == "conditional_f" else "first-stage F"
-        value = r["conditional_f"] if r["verdict_basis"] == "conditional_f" else r["partial_f"]
-        crit = r["critical_value"] if r["critical_value"] is not None else thumb
+        basis = "conditional F" if r.verdict_basis == "conditional_f" else "first-stage F"
+        value = r.conditional_f if r.verdict_basis == "conditional_f" else r.partial_f
+        crit = r.critical_value if r.critical_value is not None else thumb
         out.append(make(
             "weak-instrument", settings,
-            f"The unit means of X1 explain '{r['endogenous']}' weakly ({basis} {value:.3g} below {crit:.4g}, "
-            f"{r['critical_source']}), so its Hausman-Taylor coefficient is imprecise and, in finite samples, "
+            f"The unit means of X1 explain '{r.endogenous}' weakly ({basis} {value:.3g} below {crit:.4g}, "
+            f"{r.critical_source}), so its Hausman-Taylor coefficient is imprecise and, in finite samples, "
             "biased towards random effects.",
-            column=r["endogenous"],
+            column=r.endogenous,
         ))
     weak_share = settings.instruments.weak_within_share
     for r in stren.x2_rows:
-        share = r.get("within_share")
+        share = r.within_share
         if share is not None and share < weak_share:
             out.append(make(
                 "weak-within-variation", settings,
-                f"Only {share:.1%} of the variation of '{r['endogenous']}' is within units, so its own within "
+                f"Only {share:.1%} of the variation of '{r.endogenous}' is within units, so its own within "
                 "deviation is a weak instrument and its Hausman-Taylor coefficient is imprecise.",
-                column=r["endogenous"],
+                column=r.endogenous,
             ))
     return out

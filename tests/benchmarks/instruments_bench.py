@@ -50,7 +50,7 @@ total = time.perf_counter() - t0
 s = io.StringIO()
 pstats.Stats(pr, stream=s).sort_stats("cumulative").print_stats(18)
 print(s.getvalue())
-print(json.dumps({"total": total, "verdict": r.strength[0]["verdict"] if r.strength else None}))
+print(json.dumps({"total": total, "verdict": r.strength[0].verdict if r.strength else None}))
 """
 
 
