@@ -13,6 +13,7 @@ import numpy as np
 import polars as pl
 import pytest
 
+from auditor.commands.instruments_values import UnitStrength
 from auditor.render import figures as fg
 
 SEASONS = [2019, 2020, 2021, 2022, 2023]
@@ -49,8 +50,8 @@ def test_every_title_is_a_question():
         fg.entry_exit([{"period": 1, "present": 1, "entering": 1, "leaving": 1, "returning": 0}]),
         fg.within_shares(pl.DataFrame({"name": ["a"], "kind": ["time-varying"], "within_share": [0.5]})),
         fg.missing_map(pl.DataFrame({"column": ["a"], "period": ["1"], "missing_share": [0.5]}), [1]),
-        fg.first_stage_strength([{"endogenous": "z", "instruments": ["x"], "partial_f": 12.0,
-                                  "critical_value": 16.38, "verdict": "weak"}]),
+        fg.first_stage_strength([UnitStrength(endogenous="z", instruments=("x",), partial_f=12.0,
+                                              critical_value=16.38, verdict="weak")]),
         fg.wave_shift([{"column": "a", "ks_statistic": 0.2, "ks_p": 0.01}]),
     ]
     for f in figs:
@@ -205,10 +206,10 @@ def test_first_stage_marks_rule_of_thumb_and_size_bound():
     # from memory as in shared/check-values.md; 19.93: Stock and Yogo (2005) Table 5.2, one
     # endogenous regressor, two instruments, 10 % maximal size (from memory, check-values.md)
     rows = [
-        {"endogenous": "schooling", "instruments": ["hours", "tenure"], "partial_f": 35.2,
-         "critical_value": 19.93, "verdict": "strong"},
-        {"endogenous": "union", "instruments": ["hours"], "partial_f": 4.1,
-         "critical_value": 16.38, "verdict": "weak"},
+        UnitStrength(endogenous="schooling", instruments=("hours", "tenure"), partial_f=35.2,
+                     critical_value=19.93, verdict="strong"),
+        UnitStrength(endogenous="union", instruments=("hours",), partial_f=4.1, critical_value=16.38,
+                     verdict="weak"),
     ]
     fig = fg.first_stage_strength(rows, rule_of_thumb=10.0, t_test_bound=104.7)
     ax = fig.axes[0]

@@ -26,7 +26,9 @@ One kind of upward import is allowed, and only this one: a renderer may name the
 type it renders (``ProfileResult``, ``CompareResult``, ``InstrumentsResult``,
 ``CheckResult``, ``RuleResult``) inside ``if TYPE_CHECKING:``, for its annotations. Such
 an import never runs, so it cannot form a cycle; the cycle check uses the imports that
-run. (Moving the result types below the renderers is issue 16's item 2, not done yet.)
+run. The results' parts are typed values defined beside their command
+(``auditor.commands.instruments_values`` for ``InstrumentsResult``: its strength rows, tests,
+estimates and the rest); renderers read their attributes and may name those types the same way.
 """
 
 from __future__ import annotations
@@ -72,7 +74,14 @@ def _layer_of(module: str) -> str:
 
 
 #: the result types a renderer may import for its annotations (see the module's docstring)
-RESULT_TYPES = frozenset({"ProfileResult", "CompareResult", "InstrumentsResult", "CheckResult", "RuleResult"})
+RESULT_TYPES = frozenset({
+    "ProfileResult", "CompareResult", "InstrumentsResult", "CheckResult", "RuleResult",
+    # the typed parts of InstrumentsResult (auditor.commands.instruments_values)
+    "SampleSummary", "RoleColumns", "ColumnUse", "SetAside", "NearCollinear", "OrderCondition", "ConfidenceSet",
+    "UnitStrength", "X2Strength", "Candidate", "SuggestedSet", "ReferenceF", "ChiSquareTest", "MeanEffect",
+    "MundlakTest", "AttritionTest", "SarganByEstimator", "ContrastsWithHT", "SpecificationTests", "FitCoefficients",
+    "Estimates", "VarianceComponents",
+})
 
 
 def _type_only_nodes(tree: ast.AST) -> set[int]:
@@ -200,6 +209,11 @@ def test_the_type_only_allowance_is_narrow() -> None:
     # only renderers, only result types, only under TYPE_CHECKING: a renderer that imported
     # a command's function (or a result type at run time) would be an upward import
     assert all(m.startswith("auditor.render.") for m in TYPE_ONLY_RESULTS)
+    # every allowed name is a result class the package defines (RuleResult lives in auditor.contracts.rules,
+    # the others in auditor.commands)
+    defined = {node.name for m, path in MODULES.items() if m.startswith(("auditor.commands.", "auditor.contracts."))
+               for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))) if isinstance(node, ast.ClassDef)}
+    assert RESULT_TYPES <= defined, sorted(RESULT_TYPES - defined)
     assert upward_imports({"auditor.render.x": {"auditor.commands.y"}}, {"auditor.render.x": set()}) == [
         "auditor.render.x -> auditor.commands.y"]
 

@@ -16,6 +16,7 @@ import polars as pl
 import pytest
 
 from auditor.commands import report as report_command
+from auditor.commands.instruments import InstrumentsResult
 from auditor.errors import AuditError
 from auditor.render import html as report
 
@@ -80,6 +81,8 @@ INSTRUMENTS_DOC = {
     "findings": [{"check": "weak-instruments", "severity": "warning", "column": "area_ha", "count": 1,
                   "message": "a made-up finding for the test", "examples": []}],
 }
+# the renderers take typed results; a document read back from JSON is rebuilt first
+INSTRUMENTS = InstrumentsResult.from_dict(INSTRUMENTS_DOC)
 COMPARE_DOC = {
     "tool": {"name": "panel-audit", "version": "0"},
     "schema": {"added": ["pest_index"], "removed": [], "type_changed": []},
@@ -130,7 +133,7 @@ def test_page_parses_and_holds_the_five_profile_sections(small_profile):
 
 
 def test_readiness_and_new_wave_sections_appear_only_when_given(small_profile):
-    page = report.render_html(small_profile, INSTRUMENTS_DOC, COMPARE_DOC)
+    page = report.render_html(small_profile, INSTRUMENTS, COMPARE_DOC)
     ids = section_ids(page)
     assert ids == ["summary", "findings", "structure", "variation", "missing", "readiness", "new-wave"]
     assert 'id="fig-first-stage"' in page and 'id="fig-wave-shift"' in page
@@ -154,7 +157,7 @@ def test_summary_puts_the_most_serious_finding_first(small_profile):
 
 
 def test_findings_of_other_results_are_merged_by_severity(small_profile):
-    page = report.render_html(small_profile, INSTRUMENTS_DOC, None, figures=False)
+    page = report.render_html(small_profile, INSTRUMENTS, None, figures=False)
     body = page[page.index('id="findings"'):page.index('id="structure"')]
     assert "a made-up finding for the test" in body
     assert "model readiness" in body  # the from column appears once findings come from two results
@@ -188,7 +191,7 @@ def test_control_characters_in_names_are_shown_escaped():
 
 
 def test_no_outside_resource_is_referenced(small_profile):
-    page = report.render_html(small_profile, INSTRUMENTS_DOC, COMPARE_DOC)
+    page = report.render_html(small_profile, INSTRUMENTS, COMPARE_DOC)
     for tag, attrs in parse(page).tags:
         assert tag not in {"script", "link", "iframe", "img", "object", "embed"}, tag
         for name, value in attrs.items():
@@ -399,7 +402,7 @@ def test_profile_repr_html_is_a_fragment_of_the_same_renderer(small_profile):
 
 
 def test_instruments_and_compare_fragments_render_their_sections():
-    a = report.instruments_fragment(INSTRUMENTS_DOC)
+    a = report.instruments_fragment(INSTRUMENTS)
     b = report.compare_fragment(COMPARE_DOC)
     assert "readiness" in section_ids(a) and "new-wave" in section_ids(b)
     assert "<svg" in a and "<svg" in b

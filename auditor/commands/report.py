@@ -121,9 +121,9 @@ def build_report(
         result, inst, comp, quantiles, lim = _report_parts(
             data, unit, time, outcome, regressors, correlated, against, settings, period_effects, treat_as_invariant,
             engine, scheduler)
-        inst_doc, comp_doc = as_document(inst), as_document(comp)
-        drawn = build_figures(result, inst_doc, comp_doc, quantiles=quantiles, limits=lim)
-        page = render_html(result, inst_doc, comp_doc, figures=drawn, settings=settings)
+        comp_doc = as_document(comp)
+        drawn = build_figures(result, inst, comp_doc, quantiles=quantiles, limits=lim)
+        page = render_html(result, inst, comp_doc, figures=drawn, settings=settings)
         outputs.stage(out_path, page)
         if png_path is not None:
             from auditor.render.figures import to_png

@@ -23,6 +23,8 @@ import polars as pl
 if TYPE_CHECKING:  # pragma: no cover
     from matplotlib.figure import Figure
 
+    from auditor.commands.instruments_values import FitCoefficients, UnitStrength
+
 # Okabe & Ito (2008), "Color Universal Design": a palette that stays distinct
 # under the common colour-vision deficiencies.
 INK = "#1F2430"
@@ -514,15 +516,15 @@ def missing_map(
 
 @_styled
 def first_stage_strength(
-    strength: Sequence[Mapping[str, Any]],
+    strength: Sequence[UnitStrength],
     *,
     rule_of_thumb: float = 10.0,
     t_test_bound: float = 104.7,
 ) -> Figure:
     """Are the excluded instruments strong enough? Each first-stage F on a log scale.
 
-    ``strength`` is the contract's list (``endogenous``, ``instruments``,
-    ``partial_f``, ``critical_value``, ``verdict``). Each bar is one first-stage
+    ``strength`` is the instruments result's strength rows (``endogenous``, ``instruments``,
+    ``partial_f``, ``critical_value``, ``verdict`` are read). Each bar is one first-stage
     F, its colour the verdict; a black tick marks that row's Stock-Yogo critical
     value; dashed lines mark ``rule_of_thumb`` (Staiger & Stock 1997) and
     ``t_test_bound`` (Lee, McCrary, Moreira & Porter 2022). Returns the Figure.
@@ -531,22 +533,22 @@ def first_stage_strength(
     import numpy as np
 
     title = "Are the excluded instruments strong enough?"
-    rows = [r for r in strength if r.get("partial_f") is not None]
+    rows = [r for r in strength if r.partial_f is not None]
     fig = _new_figure(max(1.9, 1.3 + 0.34 * max(len(rows), 1)))
     ax = fig.axes[0]
     if not rows:
         return _empty(fig, ax, title, "no first stage could be computed")
     y = np.arange(len(rows))[::-1]
-    f = np.array([max(float(r["partial_f"]), 1e-3) for r in rows])
-    colours = [VERDICT_COLOURS.get(str(r.get("verdict")), GREY) for r in rows]
+    f = np.array([max(float(r.partial_f or 0.0), 1e-3) for r in rows])
+    colours = [VERDICT_COLOURS.get(str(r.verdict), GREY) for r in rows]
     ax.barh(y, f, height=0.6, color=colours, linewidth=0, left=0)
     labels = []
     for r in rows:
-        inst = ", ".join(str(i) for i in (r.get("instruments") or []))
-        labels.append(plain(f"{r.get('endogenous')} \u2190 {inst}", 40))
+        inst = ", ".join(str(i) for i in r.instruments)
+        labels.append(plain(f"{r.endogenous} \u2190 {inst}", 40))
     ax.set_yticks(y, labels)
     ax.set_xscale("log")
-    crit = [r.get("critical_value") for r in rows]
+    crit = [r.critical_value for r in rows]
     values = list(f) + [rule_of_thumb, t_test_bound] + [c for c in crit if c is not None]
     ax.set_xlim(min(0.5, min(values) / 2), max(values) * 2.5)
     ax.set_ylim(-0.7, len(rows) - 0.3)
@@ -571,7 +573,7 @@ def first_stage_strength(
     from matplotlib.lines import Line2D
     from matplotlib.patches import Patch
 
-    seen = [v for v in VERDICT_COLOURS if v in {str(r.get("verdict")) for r in rows}]
+    seen = [v for v in VERDICT_COLOURS if v in {str(r.verdict) for r in rows}]
     handles = [Patch(color=VERDICT_COLOURS[v], label=v) for v in seen]
     handles.append(Line2D([], [], color=INK, linewidth=2.0, label="Stock-Yogo critical value"))
     handles.append(Line2D([], [], color=MUTED, linestyle=(0, (4, 3)), label="rule of thumb"))
@@ -581,54 +583,53 @@ def first_stage_strength(
 
 
 @_styled
-def anderson_rubin_set(strength: Sequence[Mapping[str, Any]], estimates: Mapping[str, Any] | None) -> Figure:
+def anderson_rubin_set(strength: Sequence[UnitStrength], estimates: FitCoefficients | None) -> Figure:
     """Where can the correlated fixed coefficient lie? The Anderson-Rubin set beside the
     Hausman-Taylor 95% interval (estimate +- 1.96 classical standard errors), on the coefficient's axis.
 
     ``strength`` rows carry ``anderson_rubin`` (``intervals`` with None for an infinite end,
-    ``kind``); ``estimates`` is the contract's ``estimates.hausman_taylor``. A ray is drawn to the
+    ``kind``); ``estimates`` is the result's ``estimates.hausman_taylor``. A ray is drawn to the
     edge of the axis with an arrow head; an empty set is said in words. Returns the Figure.
     """
     _mpl()
     title = "Where can the correlated fixed coefficient lie?"
-    rows = [r for r in strength if r.get("anderson_rubin") is not None]
-    fig = _new_figure(max(1.9, 1.3 + 0.55 * max(len(rows), 1)))
+    sets = [(r, r.anderson_rubin) for r in strength if r.anderson_rubin is not None]
+    fig = _new_figure(max(1.9, 1.3 + 0.55 * max(len(sets), 1)))
     ax = fig.axes[0]
-    if not rows:
+    if not sets:
         return _empty(fig, ax, title, "no Anderson-Rubin set was computed")
-    coef = (estimates or {}).get("coef") or {}
-    se = (estimates or {}).get("se") or {}
-    finite = []
-    for r in rows:
-        for lo, hi in r["anderson_rubin"]["intervals"]:
+    coef = estimates.coef if estimates is not None else {}
+    se = estimates.se if estimates is not None else {}
+    finite: list[float] = []
+    for r, ar in sets:
+        for lo, hi in ar.intervals:
             finite += [v for v in (lo, hi) if v is not None]
-        c, s = coef.get(r["endogenous"]), se.get(r["endogenous"])
+        c, s = coef.get(r.endogenous), se.get(r.endogenous)
         if c is not None and s is not None:
             finite += [c - 1.96 * s, c + 1.96 * s]
     lo_ax, hi_ax = (min(finite), max(finite)) if finite else (-1.0, 1.0)
     pad = 0.25 * max(hi_ax - lo_ax, 1e-9)
     lo_ax, hi_ax = lo_ax - pad, hi_ax + pad
     labels = []
-    for i, r in enumerate(rows):
-        y = len(rows) - 1 - i
-        ar = r["anderson_rubin"]
-        for lo, hi in ar["intervals"]:
+    for i, (r, ar) in enumerate(sets):
+        y = len(sets) - 1 - i
+        for lo, hi in ar.intervals:
             a, b = (lo_ax if lo is None else lo), (hi_ax if hi is None else hi)
             ax.plot([a, b], [y + 0.12, y + 0.12], color=BLUE, linewidth=5, solid_capstyle="butt")
             for end, edge, head in ((lo, lo_ax, "<"), (hi, hi_ax, ">")):
                 if end is None:
                     ax.plot([edge], [y + 0.12], marker=head, color=BLUE, markersize=7)
-        if ar.get("kind") == "empty":
+        if ar.kind == "empty":
             ax.text((lo_ax + hi_ax) / 2, y + 0.12, "empty set: the instruments reject the model at every value",
                     ha="center", va="center", fontsize=7.5, color=VERMILLION)
-        c, s = coef.get(r["endogenous"]), se.get(r["endogenous"])
+        c, s = coef.get(r.endogenous), se.get(r.endogenous)
         if c is not None and s is not None:
             ax.plot([c - 1.96 * s, c + 1.96 * s], [y - 0.18, y - 0.18], color=ORANGE, linewidth=3,
                     solid_capstyle="butt")
             ax.plot([c], [y - 0.18], marker="o", color=INK, markersize=4)
-        labels.append(plain(r.get("endogenous"), 30))
-    ax.set_yticks(list(range(len(rows)))[::-1], labels)
-    ax.set_ylim(-0.7, len(rows) - 0.3)
+        labels.append(plain(r.endogenous, 30))
+    ax.set_yticks(list(range(len(sets)))[::-1], labels)
+    ax.set_ylim(-0.7, len(sets) - 0.3)
     ax.set_xlim(lo_ax, hi_ax)
     ax.xaxis.grid(True)
     ax.set_axisbelow(True)
@@ -636,7 +637,8 @@ def anderson_rubin_set(strength: Sequence[Mapping[str, Any]], estimates: Mapping
     ax.set_title(title)
     from matplotlib.lines import Line2D
 
-    level = int(round(100 * float(rows[0]["anderson_rubin"].get("level", 0.95))))
+    first = sets[0][1].level
+    level = int(round(100 * float(first if first is not None else 0.95)))
     handles = [Line2D([], [], color=BLUE, linewidth=5, label=f"Anderson-Rubin {level}% set"),
                Line2D([], [], color=ORANGE, linewidth=3, label="Hausman-Taylor 95% interval")]
     fig.legend(handles=handles, loc="outside lower center", ncols=2)

@@ -20,9 +20,12 @@ from typing import TYPE_CHECKING, Any
 from auditor.checks.findings import SEVERITY_RANK
 from auditor.render.sanitise import visible
 from auditor.version import __version__
+from auditor.vocab import clean
 
 if TYPE_CHECKING:  # pragma: no cover
     from auditor.checks.config import Settings
+    from auditor.commands.instruments import InstrumentsResult
+    from auditor.commands.instruments_values import SpecificationTests, UnitStrength
 
 
 SECTIONS: tuple[tuple[str, str], ...] = (
@@ -195,7 +198,7 @@ class Limits:
 
 def build_figures(
     result: Any,
-    instruments: Mapping[str, Any] | None = None,
+    instruments: InstrumentsResult | None = None,
     comparison: Mapping[str, Any] | None = None,
     *,
     quantiles: Mapping[str, tuple[Sequence[float], Sequence[float]]] | None = None,
@@ -203,9 +206,9 @@ def build_figures(
 ) -> dict[str, Any]:
     """Every figure the report shows, by name (see ``FIGURE_FILES``), as matplotlib Figures.
 
-    ``result`` is a ProfileResult; ``instruments`` and ``comparison`` the
-    contract's JSON of those results; ``quantiles`` (column -> base and new
-    quantiles) feeds the shifted-distributions figure.
+    ``result`` is a ProfileResult; ``instruments`` an InstrumentsResult and
+    ``comparison`` the contract's JSON of a CompareResult; ``quantiles`` (column ->
+    base and new quantiles) feeds the shifted-distributions figure.
     """
     from auditor.render import figures as fg
 
@@ -225,19 +228,32 @@ def build_figures(
         out["within-share"] = fg.within_shares(columns, max_columns=lim.figure_columns)
     if details is not None and getattr(details, "missing_by_period", None) is not None:
         out["missing-map"] = fg.missing_map(details.missing_by_period, grid, max_columns=lim.figure_columns)
-    if instruments is not None and instruments.get("strength"):
-        out["first-stage"] = fg.first_stage_strength(
-            instruments["strength"], rule_of_thumb=lim.f_rule_of_thumb, t_test_bound=lim.f_t_test
-        )
-        if any(r.get("anderson_rubin") for r in instruments["strength"]):
-            out["anderson-rubin"] = fg.anderson_rubin_set(
-                instruments["strength"], (instruments.get("estimates") or {}).get("hausman_taylor"))
+    if instruments is not None:
+        out.update(_readiness_figures(instruments, lim))
     if comparison is not None and comparison.get("columns"):
         out["wave-shift"] = fg.wave_shift(comparison["columns"], max_columns=lim.figure_columns)
         if quantiles:
             ks = {str(c.get("column")): c.get("ks_statistic") for c in comparison["columns"]}
             out["shifted-distributions"] = fg.shifted_distributions(quantiles, ks=ks)
     return out
+
+
+def _readiness_figures(inst: InstrumentsResult, lim: Limits) -> dict[str, Any]:
+    """The first-stage figure (with strength rows) and the Anderson-Rubin figure (with a set)."""
+    from auditor.render import figures as fg
+
+    out: dict[str, Any] = {}
+    if inst.strength:
+        out["first-stage"] = fg.first_stage_strength(inst.strength, rule_of_thumb=lim.f_rule_of_thumb,
+                                                     t_test_bound=lim.f_t_test)
+        if any(r.anderson_rubin is not None for r in inst.strength):
+            out["anderson-rubin"] = fg.anderson_rubin_set(inst.strength, inst.estimates.hausman_taylor)
+    return out
+
+
+def _readiness_findings(inst: InstrumentsResult) -> list[dict[str, Any]]:
+    """The instruments findings as the document writes them, marked as from model readiness."""
+    return [{**clean(f.to_dict()), "source": "model readiness"} for f in inst.findings]
 
 
 def _svgs(figures: Mapping[str, Any]) -> dict[str, str]:
@@ -249,12 +265,14 @@ def _svgs(figures: Mapping[str, Any]) -> dict[str, str]:
 # --- sections --------------------------------------------------------------------------
 
 
-def _all_findings(result: Any, instruments: Mapping[str, Any] | None, comparison: Mapping[str, Any] | None) -> list[dict[str, Any]]:
+def _all_findings(result: Any, instruments: InstrumentsResult | None, comparison: Mapping[str, Any] | None) -> list[dict[str, Any]]:
     items: list[dict[str, Any]] = []
     for f in getattr(result, "findings", ()) or ():
         d = f.to_dict() if hasattr(f, "to_dict") else dict(f)
         items.append({**d, "source": "profile"})
-    for doc, source in ((instruments, "model readiness"), (comparison, "new wave")):
+    if instruments is not None:
+        items.extend(_readiness_findings(instruments))
+    for doc, source in ((comparison, "new wave"),):
         if doc:
             items.extend({**dict(f), "source": source} for f in doc.get("findings", []) or [])
     order = {"profile": 0, "model readiness": 1, "new wave": 2}
@@ -520,34 +538,33 @@ def _names(values: Iterable[Any]) -> str:
     return ", ".join(items) if items else '<span class="pa-quiet">none</span>'
 
 
-def _readiness(doc: Mapping[str, Any], svgs: Mapping[str, str], lim: Limits) -> str:
-    roles = doc.get("roles") or {}
+def _readiness(inst: InstrumentsResult, svgs: Mapping[str, str], lim: Limits) -> str:
+    roles = inst.roles
     parts = ['<section id="readiness"><h2>Model readiness</h2>',
              "<p>Where each regressor sits for a Hausman-Taylor fit: whether it changes over time "
              "and whether it is taken as correlated with the unit effect.</p>",
              '<table class="pa-roles"><thead><tr><th></th><th>not correlated with the unit effect</th>'
              "<th>correlated with the unit effect</th></tr></thead><tbody>"
-             f"<tr><th>changes over time</th><td><b>X1</b> {_names(roles.get('X1'))}</td>"
-             f"<td><b>X2</b> {_names(roles.get('X2'))}</td></tr>"
-             f"<tr><th>fixed over time</th><td><b>Z1</b> {_names(roles.get('Z1'))}</td>"
-             f"<td><b>Z2</b> {_names(roles.get('Z2'))}</td></tr></tbody></table>"]
-    parts.append(_identified(doc))
-    oc = doc.get("order_condition") or {}
-    if oc:
-        met = "met" if oc.get("met") else "<b>not met</b>"
-        parts.append(f"<p>Order condition: k1 = {_int(oc.get('k1'))} time-varying exogenous regressors "
-                     f"against g2 = {_int(oc.get('g2'))} correlated fixed ones, {met}.</p>")
+             f"<tr><th>changes over time</th><td><b>X1</b> {_names(roles.x1)}</td>"
+             f"<td><b>X2</b> {_names(roles.x2)}</td></tr>"
+             f"<tr><th>fixed over time</th><td><b>Z1</b> {_names(roles.z1)}</td>"
+             f"<td><b>Z2</b> {_names(roles.z2)}</td></tr></tbody></table>"]
+    parts.append(_identified(inst))
+    oc = inst.order_condition
+    if oc is not None:
+        met = "met" if oc.met else "<b>not met</b>"
+        parts.append(f"<p>Order condition: k1 = {_int(oc.k1)} time-varying exogenous regressors "
+                     f"against g2 = {_int(oc.g2)} correlated fixed ones, {met}.</p>")
     parts.append(_figure(svgs, "first-stage",
                          f"Bars: the first-stage F of each correlated fixed regressor on its excluded "
                          f"instruments. Black tick: its Stock-Yogo (2005) critical value; dashed: "
                          f"F = {lim.f_rule_of_thumb:g} (Staiger-Stock 1997); dotted: "
                          f"F = {lim.f_t_test:g} (Lee, McCrary, Moreira and Porter 2022)."))
-    strength = doc.get("strength") or []
-    if strength:
-        rows = [[f"<code>{esc(s.get('endogenous'), 60)}</code>", esc(s.get("role")), _names(s.get("instruments")),
-                 _num(s.get("partial_f")), _num(s.get("robust_f")), _num(s.get("partial_r2")),
-                 esc("; ".join(str(d) for d in s.get("df") or [])), _num(s.get("critical_value")),
-                 esc(s.get("verdict")), _ar_cell(s)] for s in strength]
+    if inst.strength:
+        rows = [[f"<code>{esc(s.endogenous, 60)}</code>", esc(s.role), _names(s.instruments),
+                 _num(s.partial_f), _num(s.robust_f), _num(s.partial_r2),
+                 esc("; ".join(str(d) for d in s.df)), _num(s.critical_value),
+                 esc(s.verdict), _ar_cell(s)] for s in inst.strength]
         parts.append("<h3>First stages</h3>")
         parts.append(_table(["regressor", "role", "instruments", "partial F", "robust F", "partial R\u00b2",
                              "df", "critical value", "verdict", "Anderson-Rubin set"], rows, numeric=[3, 4, 5, 7]))
@@ -555,136 +572,131 @@ def _readiness(doc: Mapping[str, Any], svgs: Mapping[str, str], lim: Limits) -> 
                              "Blue: the values of the coefficient the Anderson-Rubin test does not reject (robust "
                              "to weak instruments; an arrow marks an unbounded end). Orange: the Hausman-Taylor "
                              "estimate \u00b1 1.96 standard errors, which is reliable only with strong instruments."))
-    parts.append(_candidates(doc, lim))
-    trows = _test_rows(doc.get("tests") or {})
-    if trows:
-        parts.append("<h3>Tests</h3>")
-        parts.append(_table(["test", "statistic", "df", "p"], trows, cls="pa-narrow", numeric=[1, 2, 3]))
-    est = {k: v for k, v in (doc.get("estimates") or {}).items() if isinstance(v, Mapping)}
-    if est:
-        periods = set(doc.get("period_effects") or [])
-        names: list[str] = []
-        for v in est.values():
-            for n in (v.get("coef") or {}):
-                if n not in names and n not in periods and not (n.startswith("mean(") and n[5:-1] in periods):
-                    names.append(n)
-        erows = []
-        for n in names[: lim.columns]:
-            r = [f"<code>{esc(n, 60)}</code>"]
-            for v in est.values():
-                c = (v.get("coef") or {}).get(n)
-                s = (v.get("se") or {}).get(n)
-                pm = f'<br><span class="pa-quiet">\u00b1 {_num(s, 3)}</span>' if s is not None else ""
-                r.append("\u2013" if c is None else f"{_num(c, 4)}{pm}")
-            erows.append(r)
-        pretty = {**_FIT_NAMES, "amemiya_macurdy": "Amemiya-MaCurdy",
-                  "breusch_mizon_schmidt": "Breusch-Mizon-Schmidt"}
-        parts.append("<h3>Estimates (coefficient \u00b1 standard error)</h3>")
-        parts.append(_table(["regressor", *[esc(pretty.get(k, k)) for k in est]], erows,
-                            numeric=list(range(1, len(est) + 1))))
-        if periods:
-            parts.append(_note(f"The {len(periods)} period effects are estimated in every fit and not shown "
-                               "(see the JSON document)."))
-    vc = doc.get("variance_components") or {}
-    if vc:
-        parts.append(_facts([("sd of unit effect", _num(vc.get("sigma_u"))),
-                             ("sd of idiosyncratic error", _num(vc.get("sigma_e"))),
-                             ("mean quasi-demeaning weight", _num(vc.get("theta_mean")))]))
+    parts.append(_candidates(inst, lim))
+    parts.append("<h3>Tests</h3>")
+    parts.append(_table(["test", "statistic", "df", "p"], _test_rows(inst.tests), cls="pa-narrow",
+                        numeric=[1, 2, 3]))
+    parts.append(_estimates(inst, lim))
+    vc = inst.variance_components
+    if vc is not None:
+        parts.append(_facts([("sd of unit effect", _num(vc.sigma_u)),
+                             ("sd of idiosyncratic error", _num(vc.sigma_e)),
+                             ("mean quasi-demeaning weight", _num(vc.theta_mean))]))
     parts.append("</section>")
     return "".join(parts)
 
 
 _FIT_NAMES = {"within": "within", "between": "between", "random": "random effects", "mundlak": "Mundlak",
-              "hausman_taylor": "Hausman-Taylor"}
+              "hausman_taylor": "Hausman-Taylor", "amemiya_macurdy": "Amemiya-MaCurdy",
+              "breusch_mizon_schmidt": "Breusch-Mizon-Schmidt"}
+_IDENTIFYING_FITS = 5  # within, between, random effects, Mundlak, Hausman-Taylor: "every fit"
 
 
-def _identified(doc: Mapping[str, Any]) -> str:
+def _estimates(inst: InstrumentsResult, lim: Limits) -> str:
+    """Each computed fit's coefficients side by side (period effects left out)."""
+    est = inst.estimates.computed()
+    if not est:
+        return ""
+    periods = set(inst.period_effects)
+    names: list[str] = []
+    for _, fit in est:
+        for n in fit.coef:
+            if n not in names and n not in periods and not (n.startswith("mean(") and n[5:-1] in periods):
+                names.append(n)
+    erows = []
+    for n in names[: lim.columns]:
+        r = [f"<code>{esc(n, 60)}</code>"]
+        for _, fit in est:
+            c, s = fit.coef.get(n), fit.se.get(n)
+            pm = f'<br><span class="pa-quiet">\u00b1 {_num(s, 3)}</span>' if s is not None else ""
+            r.append("\u2013" if c is None else f"{_num(c, 4)}{pm}")
+        erows.append(r)
+    parts = ["<h3>Estimates (coefficient \u00b1 standard error)</h3>",
+             _table(["regressor", *[esc(_FIT_NAMES.get(k, k)) for k, _ in est]], erows,
+                    numeric=list(range(1, len(est) + 1)))]
+    if periods:
+        parts.append(_note(f"The {len(periods)} period effects are estimated in every fit and not shown "
+                           "(see the JSON document)."))
+    return "".join(parts)
+
+
+def _identified(inst: InstrumentsResult) -> str:
     """Period effects, and which fits set which column aside."""
     out = []
-    periods = doc.get("period_effects") or []
+    periods = inst.period_effects
     if periods:
         out.append(f"<p>Period effects ({len(periods)}: {_names(periods[:3])}{', ...' if len(periods) > 3 else ''}) "
                    "are exogenous, each instrumented by itself; they do not count in k1 and are left out of the "
                    "contrasts.</p>")
-    for x in doc.get("not_identified") or []:
-        fits = list(x.get("fits") or [])
-        where = "every fit" if len(fits) >= len(_FIT_NAMES) else ", ".join(_FIT_NAMES.get(f, str(f)) for f in fits)
-        with_ = list(x.get("with") or [])
-        shown = _names(with_[:4]) + (", ..." if len(with_) > 4 else "")
-        out.append(f"<p>Not identified by {esc(where)}: <code>{esc(x.get('column'), 60)}</code> "
-                   f"({esc(x.get('reason'))}{'; with ' + shown if with_ else ''}).</p>")
+    for x in inst.not_identified:
+        where = ("every fit" if len(x.fits) >= _IDENTIFYING_FITS
+                 else ", ".join(_FIT_NAMES.get(f, str(f)) for f in x.fits))
+        shown = _names(x.with_[:4]) + (", ..." if len(x.with_) > 4 else "")
+        out.append(f"<p>Not identified by {esc(where)}: <code>{esc(x.column, 60)}</code> "
+                   f"({esc(x.reason)}{'; with ' + shown if x.with_ else ''}).</p>")
     return "".join(out)
 
 
-_TEST_LABELS = {"mundlak": "Mundlak: unit means of X jointly zero",
-                "hausman_within_random": "Hausman: within against random effects",
-                "overidentification": "Over-identifying restrictions (Sargan)",
-                "hausman_within_ht": "Hausman: within against Hausman-Taylor",
-                "attrition": "Attrition (Nijman-Verbeek): next period observed"}
-_NESTED_TESTS = {"overidentification_by_estimator": "Sargan, {}", "hausman_against_ht": "Hausman: Hausman-Taylor "
-                 "against {}"}
-_ESTIMATOR_NAMES = {"hausman_taylor": "Hausman-Taylor", "amemiya_macurdy": "Amemiya-MaCurdy",
-                    "breusch_mizon_schmidt": "Breusch-Mizon-Schmidt"}
-
-
-def _test_rows(tests: Mapping[str, Any]) -> list[list[str]]:
-    """One row per test; the per-estimator groups (Sargan of each, contrasts against
-    Hausman-Taylor) one row per estimator."""
-    rows = []
+def _test_rows(tests: SpecificationTests) -> list[list[str]]:
+    """One row per test, in the document's order; the per-estimator groups (Sargan of each
+    richer set, its contrast with Hausman-Taylor) one row per estimator."""
 
     def row(label: str, t: Any) -> list[str]:
-        if not isinstance(t, Mapping):
+        if t is None:
             return [esc(label), "\u2013", "\u2013", "not computed"]
-        return [esc(label), _num(t.get("statistic")), _int(t.get("df")), _p(t.get("p"))]
+        return [esc(label), _num(t.statistic), _int(t.df), _p(t.p)]
 
-    for key, t in tests.items():
-        if key in _NESTED_TESTS:
-            if not isinstance(t, Mapping):
-                continue
-            for name, sub in t.items():
-                if key == "overidentification_by_estimator" and name == "hausman_taylor":
-                    continue  # the Sargan row above
-                rows.append(row(_NESTED_TESTS[key].format(_ESTIMATOR_NAMES.get(name, name)), sub))
-            continue
-        rows.append(row(_TEST_LABELS.get(key, key), t))
+    rows = [row("Mundlak: unit means of X jointly zero", tests.mundlak),
+            row("Hausman: within against random effects", tests.hausman_within_random),
+            row("Over-identifying restrictions (Sargan)", tests.overidentification),
+            row("Hausman: within against Hausman-Taylor", tests.hausman_within_ht)]
+    by, against = tests.overidentification_by_estimator, tests.hausman_against_ht
+    if by is not None:  # its Hausman-Taylor entry is the Sargan row above
+        rows += [row("Sargan, Amemiya-MaCurdy", by.amemiya_macurdy),
+                 row("Sargan, Breusch-Mizon-Schmidt", by.breusch_mizon_schmidt)]
+    if against is not None:
+        rows += [row("Hausman: Hausman-Taylor against Amemiya-MaCurdy", against.amemiya_macurdy),
+                 row("Hausman: Hausman-Taylor against Breusch-Mizon-Schmidt", against.breusch_mizon_schmidt)]
+    rows.append(row("Attrition (Nijman-Verbeek): next period observed", tests.attrition))
+    if tests.attrition_note is not None:
+        rows.append(row("attrition_note", None))  # the row the page has always shown for it
     return rows
 
 
-def _ar_cell(row: Mapping[str, Any]) -> str:
-    ar = row.get("anderson_rubin")
-    if not isinstance(ar, Mapping):
-        return '<span class="pa-quiet">not computed</span>' if row.get("anderson_rubin_note") else "\u2013"
-    if ar.get("kind") == "empty":
+def _ar_cell(row: UnitStrength) -> str:
+    ar = row.anderson_rubin
+    if ar is None:
+        return '<span class="pa-quiet">not computed</span>' if row.anderson_rubin_note else "\u2013"
+    if ar.kind == "empty":
         return "empty (rejected at every value)"
-    if ar.get("kind") == "whole line":
+    if ar.kind == "whole line":
         return "the whole line"
 
     def end(v: Any, sign: str) -> str:
         return f"{sign}\u221e" if v is None else _num(v, 4)
 
     minus = "\u2212"
-    return " or ".join(f"[{end(lo, minus)}, {end(hi, '+')}]" for lo, hi in ar.get("intervals") or [])
+    return " or ".join(f"[{end(lo, minus)}, {end(hi, '+')}]" for lo, hi in ar.intervals)
 
 
 _STATE_WORDS = {"accepted": "yes", "assumed": "yes (assumed)", "invalid": "no", "undecided": "undecided"}
 
 
-def _candidates(doc: Mapping[str, Any], lim: Limits) -> str:
+def _candidates(inst: InstrumentsResult, lim: Limits) -> str:
     """Each X1 unit mean alone as an instrument, and the suggested set (saying when the set is rejected)."""
-    cands = doc.get("candidates") or []
-    if not cands:
+    if not inst.candidates:
         return ""
-    rows = [[f"<code>{esc(c.get('endogenous'), 60)}</code>", f"<code>{esc(c.get('instrument'), 60)}</code>",
-             _num(c.get("partial_f")), _p(c.get("mundlak_p")), _p(c.get("c_p")),
-             esc(_STATE_WORDS.get(c.get("state"), "yes" if c.get("usable") else "no"))]
-            for c in cands[: lim.columns]]
+    rows = [[f"<code>{esc(c.endogenous, 60)}</code>", f"<code>{esc(c.instrument, 60)}</code>",
+             _num(c.partial_f), _p(c.mundlak_p), _p(c.c_p),
+             esc(_STATE_WORDS.get(str(c.state), "yes" if c.usable else "no"))]
+            for c in inst.candidates[: lim.columns]]
     parts = ["<h3>Candidate instruments</h3>",
              _table(["regressor", "candidate", "partial F alone", "Mundlak p", "C-test p", "usable"], rows,
                     numeric=[2, 3, 4])]
-    for sg in doc.get("suggestion") or []:
-        text = (f"Suggested for <code>{esc(sg.get('endogenous'), 60)}</code>: {_names(sg.get('instruments'))} "
-                f"(F {_num(sg.get('partial_f'))}, {esc(sg.get('verdict'))}).")
-        if sg.get("set_rejected"):
+    for sg in inst.suggestion:
+        text = (f"Suggested for <code>{esc(sg.endogenous, 60)}</code>: {_names(sg.instruments)} "
+                f"(F {_num(sg.partial_f)}, {esc(sg.verdict)}).")
+        if sg.set_rejected:
             text += (" The over-identification tests reject the instrument set and no single mean can be blamed, "
                      "so the validity of these instruments is not established.")
         parts.append(f"<p>{text}</p>")
@@ -814,7 +826,7 @@ border-radius:4px;overflow:hidden;margin-right:6px}
 """
 
 
-def _body(result: Any, inst: Mapping[str, Any] | None, comp: Mapping[str, Any] | None,
+def _body(result: Any, inst: InstrumentsResult | None, comp: Mapping[str, Any] | None,
           svgs: Mapping[str, str], lim: Limits) -> list[str]:
     findings = _all_findings(result, inst, comp)
     parts = [_summary(result, findings, lim), _findings(findings, lim), _structure(result, svgs, lim),
@@ -831,7 +843,7 @@ def _source(result: Any) -> str:
     return str(getattr(data, "source", "") or "")
 
 
-def _page(result: Any, inst: Mapping[str, Any] | None, comp: Mapping[str, Any] | None,
+def _page(result: Any, inst: InstrumentsResult | None, comp: Mapping[str, Any] | None,
           svgs: Mapping[str, str], lim: Limits, title: str | None) -> str:
     source = _source(result)
     heading = title or "Panel audit"
@@ -859,7 +871,7 @@ def _page(result: Any, inst: Mapping[str, Any] | None, comp: Mapping[str, Any] |
 
 def render_html(
     profile_result: Any,
-    instruments: Any = None,
+    instruments: InstrumentsResult | None = None,
     comparison: Any = None,
     *,
     figures: bool | Mapping[str, Any] = True,
@@ -869,14 +881,15 @@ def render_html(
 ) -> str:
     """The whole report as one self-contained HTML document (text, UTF-8 when written).
 
-    ``profile_result`` is a ProfileResult; ``instruments`` and ``comparison`` an
-    InstrumentsResult / CompareResult or their contract JSON (dicts); their
-    sections appear only when given. ``figures`` is True (draw them), False
+    ``profile_result`` is a ProfileResult; ``instruments`` an InstrumentsResult (a
+    document read back from JSON: ``InstrumentsResult.from_dict(doc)``) and
+    ``comparison`` a CompareResult or its contract JSON (a dict); their sections
+    appear only when given. ``figures`` is True (draw them), False
     (none), or figures already drawn by ``build_figures``. The page is kept
     under the ``report.max_bytes`` limit by showing fewer table rows if needed.
     """
     lim = Limits.from_settings(settings or getattr(profile_result, "settings", None))
-    inst, comp = as_document(instruments), as_document(comparison)
+    inst, comp = _typed_instruments(instruments), as_document(comparison)
     if figures is True:
         drawn = build_figures(profile_result, inst, comp, quantiles=quantiles, limits=lim)
     elif figures is False:
@@ -903,22 +916,25 @@ def profile_fragment(result: Any, *, figures: bool = True) -> str:
     return _fragment(_body(result, None, None, svgs, lim))
 
 
-def instruments_fragment(result: Any, *, figures: bool = True) -> str:
-    """An instruments result (object or its JSON) as an HTML fragment for a notebook."""
-    from auditor.render import figures as fg
+def _typed_instruments(result: Any) -> InstrumentsResult | None:
+    """``result`` if it is an instruments result (or None); a clear error for its JSON."""
+    if isinstance(result, Mapping):
+        raise TypeError("the renderer takes an InstrumentsResult, not its JSON document: rebuild one with "
+                        "auditor.InstrumentsResult.from_dict(doc)")
+    return result
 
-    doc = as_document(result) or {}
-    lim = Limits.from_settings(getattr(result, "settings", None))
-    svgs = {}
-    if figures and doc.get("strength"):
-        svgs["first-stage"] = fg.to_svg(fg.first_stage_strength(
-            doc["strength"], rule_of_thumb=lim.f_rule_of_thumb, t_test_bound=lim.f_t_test), name="first-stage")
-        if any(r.get("anderson_rubin") for r in doc["strength"]):
-            svgs["anderson-rubin"] = fg.to_svg(fg.anderson_rubin_set(
-                doc["strength"], (doc.get("estimates") or {}).get("hausman_taylor")), name="anderson-rubin")
-    items = [{**dict(f), "source": "model readiness"} for f in doc.get("findings", []) or []]
+
+def instruments_fragment(result: InstrumentsResult, *, figures: bool = True) -> str:
+    """An instruments result as an HTML fragment for a notebook (``_repr_html_``); a
+    document read back from JSON renders through ``InstrumentsResult.from_dict(doc)``."""
+    inst = _typed_instruments(result)
+    if inst is None:
+        raise TypeError("instruments_fragment needs an InstrumentsResult, not None")
+    lim = Limits.from_settings(getattr(inst, "settings", None))
+    svgs = _svgs(_readiness_figures(inst, lim)) if figures else {}
+    items = _readiness_findings(inst)
     items.sort(key=lambda d: SEVERITY_RANK.get(str(d.get("severity")), 9))
-    return _fragment([_findings(items, lim), _readiness(doc, svgs, lim)])
+    return _fragment([_findings(items, lim), _readiness(inst, svgs, lim)])
 
 
 def compare_fragment(result: Any, *, figures: bool = True) -> str:
