@@ -280,3 +280,25 @@ def test_many_periods_stay_small_in_svg():
     ppu = fg.periods_per_unit(counts, n)
     assert ppu.axes[0].get_xlim() == (0.4, n + 0.6)
     assert len(fg.to_svg(ppu, name="p")) < 150_000
+
+
+def test_anderson_rubin_figure_draws_the_set_and_the_classical_95_interval():
+    # made-up numbers; the orange bar is estimate +- 1.96 classical standard errors (the normal
+    # 95% interval, common practice), not the clustered ones; a ray reaches the axis edge
+    from matplotlib.colors import to_hex
+
+    from auditor.commands.instruments_values import ConfidenceSet, FitCoefficients
+
+    rows = [UnitStrength(endogenous="area_ha", anderson_rubin=ConfidenceSet(level=0.9, intervals=((0.5, None),),
+                                                                            kind="ray"))]
+    est = FitCoefficients(coef={"area_ha": 1.0}, se={"area_ha": 0.25}, se_cluster={"area_ha": 2.0})
+    fig = fg.anderson_rubin_set(rows, est)
+    ax = fig.axes[0]
+    orange = [ln for ln in ax.get_lines() if to_hex(ln.get_color()) == fg.ORANGE.lower()]
+    assert len(orange) == 1
+    np.testing.assert_allclose(orange[0].get_xdata(), [1.0 - 1.96 * 0.25, 1.0 + 1.96 * 0.25])
+    blue = [ln for ln in ax.get_lines() if to_hex(ln.get_color()) == fg.BLUE.lower() and len(ln.get_xdata()) == 2]
+    lo, hi = ax.get_xlim()
+    assert blue[0].get_xdata()[0] == 0.5 and blue[0].get_xdata()[1] == pytest.approx(hi)
+    assert labels_bottom_up(ax) == ["area_ha"]
+    assert any("90% set" in t.get_text() for t in fig.legends[0].get_texts())
