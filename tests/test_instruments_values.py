@@ -166,6 +166,9 @@ def test_optional_names_are_written_only_when_set() -> None:
         "column": "a", "reason": "constant", "with": ["b"], "fits": []}
     assert RoleColumns(x1=("a",)).to_dict() == {"X1": ["a"], "X2": [], "Z1": [], "Z2": []}
     assert "hausman_taylor" not in VarianceComponents(sigma_u=1.0).to_dict()
+    # the dask engine's documents carry attrition_note after attrition; the memory engine's do not
+    assert list(SpecificationTests(attrition_note="not computed").to_dict())[-2:] == ["attrition", "attrition_note"]
+    assert "attrition_note" not in SpecificationTests().to_dict()
 
 
 def test_the_renderers_refuse_the_json_dict_and_say_how_to_rebuild_it(sim_result) -> None:
