@@ -364,12 +364,9 @@ class FitCoefficients(Part):
     _optional = frozenset({"instruments", "note"})
 
 
-#: the fits of ``estimates``, in the document's order, with their names for people
-FIT_LABELS: tuple[tuple[str, str], ...] = (
-    ("within", "within"), ("between", "between"), ("random", "random effects"), ("mundlak", "Mundlak"),
-    ("hausman_taylor", "Hausman-Taylor"), ("amemiya_macurdy", "Amemiya-MaCurdy"),
-    ("breusch_mizon_schmidt", "Breusch-Mizon-Schmidt"),
-)
+#: the fits of ``estimates``, in the document's order
+FITS: tuple[str, ...] = ("within", "between", "random", "mundlak", "hausman_taylor", "amemiya_macurdy",
+                         "breusch_mizon_schmidt")
 
 
 @dataclass(frozen=True)
@@ -383,12 +380,12 @@ class Estimates(Part):
     hausman_taylor: FitCoefficients | None = None
     amemiya_macurdy: FitCoefficients | None = None
     breusch_mizon_schmidt: FitCoefficients | None = None
-    _parts = {name: FitCoefficients for name, _ in FIT_LABELS}
+    _parts = dict.fromkeys(FITS, FitCoefficients)
 
     def computed(self) -> tuple[tuple[str, FitCoefficients], ...]:
-        """(name for people, coefficients) of each fit that was computed, in the document's order."""
-        fits = ((label, getattr(self, name)) for name, label in FIT_LABELS)
-        return tuple((label, fit) for label, fit in fits if fit is not None)
+        """(the document's name, coefficients) of each fit that was computed, in the document's order."""
+        fits = ((name, getattr(self, name)) for name in FITS)
+        return tuple((name, fit) for name, fit in fits if fit is not None)
 
 
 @dataclass(frozen=True)
