@@ -155,6 +155,15 @@ def test_a_result_without_hausman_taylor_or_strength_rows_still_renders() -> Non
     assert 'id="readiness"' in html.instruments_fragment(partial)
 
 
+def test_an_attrition_test_not_computed_shows_why_in_its_own_row() -> None:
+    # the dask engine leaves the attrition test out with a note: the page says why in that row,
+    # never a row labelled with the JSON name
+    why = "not computed on the dask engine (it needs every row of the panel)"
+    frag = html.instruments_fragment(_hand_built(tests=SpecificationTests(attrition_note=why)), figures=False)
+    assert f"<td>Attrition (Nijman-Verbeek): next period observed</td><td>\u2013</td><td>\u2013</td><td>not computed: {why}" in frag.replace(' class="pa-n"', "")
+    assert "attrition_note" not in frag
+
+
 def test_optional_names_are_written_only_when_set() -> None:
     # the document has always left out a contrast's note and positive_definite when unset,
     # and a strength row's anderson_rubin_note when a set was computed

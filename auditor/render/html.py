@@ -641,9 +641,9 @@ def _test_rows(tests: SpecificationTests) -> list[list[str]]:
     """One row per test, in the document's order; the per-estimator groups (Sargan of each
     richer set, its contrast with Hausman-Taylor) one row per estimator."""
 
-    def row(label: str, t: Any) -> list[str]:
+    def row(label: str, t: Any, why: str | None = None) -> list[str]:
         if t is None:
-            return [esc(label), "\u2013", "\u2013", "not computed"]
+            return [esc(label), "\u2013", "\u2013", "not computed" + (f": {esc(why)}" if why else "")]
         return [esc(label), _num(t.statistic), _int(t.df), _p(t.p)]
 
     rows = [row("Mundlak: unit means of X jointly zero", tests.mundlak),
@@ -657,9 +657,7 @@ def _test_rows(tests: SpecificationTests) -> list[list[str]]:
     if against is not None:
         rows += [row("Hausman: Hausman-Taylor against Amemiya-MaCurdy", against.amemiya_macurdy),
                  row("Hausman: Hausman-Taylor against Breusch-Mizon-Schmidt", against.breusch_mizon_schmidt)]
-    rows.append(row("Attrition (Nijman-Verbeek): next period observed", tests.attrition))
-    if tests.attrition_note is not None:
-        rows.append(row("attrition_note", None))  # the row the page has always shown for it
+    rows.append(row("Attrition (Nijman-Verbeek): next period observed", tests.attrition, tests.attrition_note))
     return rows
 
 
