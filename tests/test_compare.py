@@ -77,18 +77,18 @@ def test_ks_statistic_and_p_equal_scipy_ks_2samp_on_the_same_samples():
     )
     new = pl.DataFrame({"id": np.arange(n_units), "year": 2023, "v": rng.normal(0.3, 1.2, n_units)})
     res = compare(base, new, **KEYS)
-    col = next(c for c in res.columns if c["column"] == "v")
+    col = next(c for c in res.columns if c.column == "v")
     a = base.filter(pl.col("year") == 2022)["v"].to_numpy()
     b = new["v"].to_numpy()
     ref = stats.ks_2samp(a, b)
-    assert col["ks_statistic"] == pytest.approx(ref.statistic, abs=1e-6)
-    assert col["ks_p"] == pytest.approx(ref.pvalue, rel=1e-6, abs=1e-8)
+    assert col.ks_statistic == pytest.approx(ref.statistic, abs=1e-6)
+    assert col.ks_p == pytest.approx(ref.pvalue, rel=1e-6, abs=1e-8)
     pooled = np.sort(np.concatenate([a, b]))
     gap = np.max(np.abs(np.searchsorted(np.sort(a), pooled, "right") / a.size
                         - np.searchsorted(np.sort(b), pooled, "right") / b.size))
-    assert col["ks_statistic"] == pytest.approx(gap, abs=1e-6)
+    assert col.ks_statistic == pytest.approx(gap, abs=1e-6)
     assert res.reference == "base period 2022"
-    assert col["n_base"] == n_units and col["n_new"] == n_units
+    assert col.n_base == n_units and col.n_new == n_units
 
 
 def test_numeric_psi_equals_a_hand_computation_on_deciles_of_one_to_ten():
@@ -121,9 +121,9 @@ def test_numeric_psi_through_compare_uses_the_base_last_period_only():
     p = [0.1] * 10
     q = [5.5 / 15, 2.5 / 15, 1.5 / 15] + [0.5 / 15] * 6 + [2.5 / 15]
     hand = sum((qi - pi) * math.log(qi / pi) for pi, qi in zip(p, q, strict=True))
-    col = next(c for c in res.columns if c["column"] == "v")
-    assert col["psi"] == pytest.approx(hand, abs=1e-6)
-    assert col["reference"] == "base period 2021"
+    col = next(c for c in res.columns if c.column == "v")
+    assert col.psi == pytest.approx(hand, abs=1e-6)
+    assert col.reference == "base period 2021"
     # 0.85 > 0.25, the cut-off (common practice, no single source)
     assert _one(res, "distribution-shift", "v").severity == "warning"
 
@@ -146,9 +146,9 @@ def test_identical_samples_have_zero_psi_and_zero_ks():
     base = pl.DataFrame({"id": [1, 2, 3, 4], "year": [2020] * 4, "v": [1.0, 2, 3, 4], "c": list("aabb")})
     new = pl.DataFrame({"id": [1, 2, 3, 4], "year": [2021] * 4, "v": [1.0, 2, 3, 4], "c": list("aabb")})
     res = compare(base, new, **KEYS)
-    by = {c["column"]: c for c in res.columns}
-    assert by["v"]["psi"] == 0 and by["v"]["ks_statistic"] == 0
-    assert by["c"]["psi"] == 0
+    by = {c.column: c for c in res.columns}
+    assert by["v"].psi == 0 and by["v"].ks_statistic == 0
+    assert by["c"].psi == 0
 
 
 # --- hand-built cases, one per check -------------------------------------------------------
@@ -162,7 +162,7 @@ def test_overlapping_periods_counts_colliding_keys_with_examples():
     assert f.severity == "error" and f.count == 2  # two (unit, 2021) keys the base holds
     assert {(e["id"], e["year"]) for e in f.examples} == {("2", 2021), ("5", 2021)}
     assert "drop or re-key the 2021 rows" in f.message
-    assert res.periods["overlap"] == [2021] and res.periods["colliding_keys"] == 2
+    assert res.periods.overlap == (2021,) and res.periods.colliding_keys == 2
 
 
 def test_new_rows_in_a_held_period_without_collision_are_a_backfill_note():
@@ -191,16 +191,16 @@ def test_missing_keys_in_the_new_wave_are_an_error():
 def test_integer_ids_in_base_and_text_ids_in_new_still_match_and_report_type_changed():
     new = _small_new().with_columns(pl.col("id").cast(pl.String))
     res = compare(_small_base(), new, **KEYS)
-    assert res.units["returning"] == 6 and res.units["entering"] == 0
+    assert res.units.returning == 6 and res.units.entering == 0
     f = _one(res, "type-changed", "id")
     assert f.severity == "error"  # a key column (contract: error for a key)
-    assert {"column": "id", "base": "int64", "new": "string", "key": True} in res.schema["type_changed"]
+    assert {"column": "id", "base": "int64", "new": "string", "key": True} in [t.to_dict() for t in res.schema.type_changed]
 
 
 def test_float_ids_holding_whole_numbers_match_integer_ids():
     new = _small_new().with_columns(pl.col("id").cast(pl.Float64))
     res = compare(_small_base(), new, **KEYS)
-    assert res.units["returning"] == 6
+    assert res.units.returning == 6
 
 
 def test_type_changed_on_an_ordinary_column_is_a_warning():
@@ -214,7 +214,7 @@ def test_type_changed_on_an_ordinary_column_is_a_warning():
 def test_columns_added_and_removed():
     new = _small_new().with_columns(pl.lit(1).alias("brand_new"))
     res = compare(_small_base(), new, **KEYS)
-    assert res.schema["added"] == ["brand_new"] and res.schema["removed"] == ["gone"]
+    assert res.schema.added == ("brand_new",) and res.schema.removed == ("gone",)
     assert _one(res, "column-added", "brand_new").severity == "note"
     assert _one(res, "column-removed", "gone").severity == "warning"
 
@@ -258,9 +258,9 @@ def test_implausible_jump_against_the_base_within_changes():
     # the scale is 1.4826 x the MAD of the base's changes (numpy oracle on the same changes)
     d = base.sort("id", "year").with_columns(pl.col("x").diff().over("id").alias("d"))["d"].drop_nulls().to_numpy()
     mad = np.median(np.abs(d - np.median(d)))
-    col = next(c for c in res.columns if c["column"] == "x")
-    assert col["change_scale"] == pytest.approx(1.4826 * mad, rel=1e-5)
-    assert col["change_median"] == pytest.approx(np.median(d), rel=1e-5)
+    col = next(c for c in res.columns if c.column == "x")
+    assert col.within.change_scale == pytest.approx(1.4826 * mad, rel=1e-5)
+    assert col.within.change_median == pytest.approx(np.median(d), rel=1e-5)
 
 
 def test_new_and_vanished_categories():
@@ -289,14 +289,14 @@ def test_missing_jump():
     res = compare(_small_base(), new, **KEYS)
     f = _one(res, "missing-jump", "x")
     assert f.count == 3  # 3 of 6 rows missing against none in 2021
-    col = next(c for c in res.columns if c["column"] == "x")
-    assert col["missing_base"] == 0 and col["missing_new"] == 0.5
+    col = next(c for c in res.columns if c.column == "x")
+    assert col.missing_base == 0 and col.missing_new == 0.5
 
 
 def test_nan_counts_as_missing():
     new = _small_new().with_columns(pl.when(pl.col("id") <= 3).then(float("nan")).otherwise(pl.col("x")).alias("x"))
-    col = next(c for c in compare(_small_base(), new, **KEYS).columns if c["column"] == "x")
-    assert col["missing_new"] == 0.5
+    col = next(c for c in compare(_small_base(), new, **KEYS).columns if c.column == "x")
+    assert col.missing_new == 0.5
 
 
 def test_unexpected_period_skipping_a_year():
@@ -321,7 +321,7 @@ def test_quarterly_dates_continue_by_one_quarter():
     nxt = pl.DataFrame({"id": [1, 2], "year": [date(2024, 7, 1)] * 2, "v": [1.0, 2]})
     res = compare(base, nxt, **KEYS)
     assert not _checks(res, "unexpected-period")
-    assert res.periods["new"] == ["2024Q3"]
+    assert res.periods.new == ("2024Q3",)
     skip = compare(base, nxt.with_columns(pl.lit(date(2024, 10, 1)).alias("year")), **KEYS)
     assert _one(skip, "unexpected-period").count == 1
 
@@ -333,7 +333,7 @@ def test_units_returning_entering_and_not_returning():
         pl.DataFrame({"id": [7, 8], "year": [2022, 2022], "x": [1.0, 2.0], "fixed": [1, 2], "grade": ["a", "b"]}),
     ])
     res = compare(base, new, **KEYS)
-    assert res.units == {
+    assert res.units.to_dict() == {
         "base": 6, "new": 7, "returning": 5, "entering": 2, "not_returning": 1,
         "returning_after_absence": 1, "last_period": 5, "not_returning_from_last_period": 1,
     }
@@ -386,7 +386,7 @@ def test_a_clean_new_wave_from_the_same_process_raises_no_alarm():
     quiet = {"distribution-shift", "missing-jump", "invariant-changed", "implausible-jump", "new-categories",
              "vanished-categories", "type-changed", "unexpected-period"}
     assert [f.check for f in res.findings if f.check in quiet] == []
-    assert all(c["psi"] < 0.05 for c in res.columns if c["psi"] is not None)
+    assert all(c.psi < 0.05 for c in res.columns if c.psi is not None)
 
 
 # --- the invented orchard demo: every planted change is found -----------------------------------
@@ -417,8 +417,8 @@ def test_demo_next_season_every_planted_change_is_found(orchards):
     # units
     last = set(base.filter(pl.col("season") == 2024)["orchard_id"].drop_nulls().to_list())
     came = set(new.filter(pl.col("season") == 2025)["orchard_id"].to_list())
-    assert res.units["not_returning_from_last_period"] == len(last - came) == PLANTED_NEXT["not_returning"]
-    assert res.units["entering"] == PLANTED_NEXT["entering"]
+    assert res.units.not_returning_from_last_period == len(last - came) == PLANTED_NEXT["not_returning"]
+    assert res.units.entering == PLANTED_NEXT["entering"]
     # training: the orchards whose new value is none of their base values (Python sets)
     seen: dict[str, set] = {}
     for o, t in zip(base["orchard_id"].to_list(), base["founder_training_yrs"].to_list(), strict=True):
@@ -434,8 +434,8 @@ def test_demo_next_season_every_planted_change_is_found(orchards):
     assert h.examples[0] == {"level": "PT", "rows": PLANTED_NEXT["new_soil_code"]}
     assert [f.column for f in _checks(res, "distribution-shift")] == ["rainfall_mm"]
     assert _one(res, "missing-jump", "labour_days").count > 0
-    assert res.schema["removed"] == ["quarantine_flag"] and _one(res, "column-removed", "quarantine_flag")
-    assert res.schema["added"] == ["hail_net"] and _one(res, "column-added", "hail_net")
+    assert res.schema.removed == ("quarantine_flag",) and _one(res, "column-removed", "quarantine_flag")
+    assert res.schema.added == ("hail_net",) and _one(res, "column-added", "hail_net")
 
 
 def test_demo_from_the_shipped_csv_files_finds_the_planted_changes():
@@ -454,8 +454,8 @@ def test_demo_from_the_shipped_csv_files_finds_the_planted_changes():
     }
     assert _one(res, "overlapping-periods").count == PLANTED_NEXT["colliding_rows"]
     assert _one(res, "invariant-changed", "founder_training_yrs").count == PLANTED_NEXT["training_changed"]
-    assert res.units["entering"] == PLANTED_NEXT["entering"]
-    assert res.units["not_returning_from_last_period"] == PLANTED_NEXT["not_returning"]
+    assert res.units.entering == PLANTED_NEXT["entering"]
+    assert res.units.not_returning_from_last_period == PLANTED_NEXT["not_returning"]
 
 
 # --- the JSON document and the text ------------------------------------------------------
@@ -560,7 +560,7 @@ def test_a_base_of_one_period_calls_no_column_fixed():
     # with one base period no unit is seen twice: nothing is known to be time-invariant
     res = compare(_small_base().filter(pl.col("year") == 2021), _small_new().with_columns(pl.col("fixed") + 1), **KEYS)
     assert not _checks(res, "invariant-changed")
-    assert res.periods["step"] is None and not _checks(res, "unexpected-period")
+    assert res.periods.step is None and not _checks(res, "unexpected-period")
 
 
 def test_a_column_left_empty_in_the_new_wave_is_a_missing_jump_not_a_type_change():
@@ -576,7 +576,7 @@ def test_composite_unit_keys_match_across_types():
         (pl.col("id") % 2).cast(pl.String).alias("farm"), (pl.col("id") // 2).alias("plot")
     ).drop("id")
     res = compare(base, new, unit="farm,plot", time="year")
-    assert res.units["returning"] == 6 and res.units["entering"] == 0
+    assert res.units.returning == 6 and res.units.entering == 0
     assert _one(res, "type-changed", "farm").severity == "error"
 
 

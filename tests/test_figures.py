@@ -13,8 +13,16 @@ import numpy as np
 import polars as pl
 import pytest
 
+from auditor.commands.compare_values import ColumnShift
 from auditor.commands.instruments_values import UnitStrength
 from auditor.render import figures as fg
+
+
+def shift(column: str, ks: float | None, p: float | None) -> ColumnShift:
+    """A compare result's column row built by hand (the figure reads only column, KS and p)."""
+    return ColumnShift(column=column, compared_as="numeric", base_kind="time-varying", reference="base period 1",
+                       n_base=10, n_new=10, ks_statistic=ks, ks_p=p, ks_p_method="exact", psi=None,
+                       missing_base=0.0, missing_new=0.0)
 
 SEASONS = [2019, 2020, 2021, 2022, 2023]
 
@@ -52,7 +60,7 @@ def test_every_title_is_a_question():
         fg.missing_map(pl.DataFrame({"column": ["a"], "period": ["1"], "missing_share": [0.5]}), [1]),
         fg.first_stage_strength([UnitStrength(endogenous="z", instruments=("x",), partial_f=12.0,
                                               critical_value=16.38, verdict="weak")]),
-        fg.wave_shift([{"column": "a", "ks_statistic": 0.2, "ks_p": 0.01}]),
+        fg.wave_shift([shift("a", 0.2, 0.01)]),
     ]
     for f in figs:
         assert f.axes[0].get_title(loc="left").endswith("?"), f.axes[0].get_title(loc="left")
@@ -224,9 +232,7 @@ def test_first_stage_marks_rule_of_thumb_and_size_bound():
 
 
 def test_wave_shift_orders_columns_by_ks_statistic():
-    cols = [{"column": "a", "ks_statistic": 0.05, "ks_p": 0.5},
-            {"column": "b", "ks_statistic": 0.30, "ks_p": 0.001},
-            {"column": "c", "ks_statistic": None, "ks_p": None}]
+    cols = [shift("a", 0.05, 0.5), shift("b", 0.30, 0.001), shift("c", None, None)]
     ax = fg.wave_shift(cols).axes[0]
     assert labels_bottom_up(ax) == ["a", "b"]  # largest at the top
     assert sorted(b.get_width() for b in bar_patches(ax)) == [0.05, 0.30]
@@ -255,7 +261,7 @@ def test_labels_from_the_data_are_plain_text_in_the_svg():
 
 
 def test_png_output_is_a_png():
-    png = fg.to_png(fg.wave_shift([{"column": "a", "ks_statistic": 0.2, "ks_p": 0.01}]), dpi=50)
+    png = fg.to_png(fg.wave_shift([shift("a", 0.2, 0.01)]), dpi=50)
     assert png[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (PNG specification, section 5.2)
 
 

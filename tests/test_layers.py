@@ -28,7 +28,9 @@ type it renders (``ProfileResult``, ``CompareResult``, ``InstrumentsResult``,
 an import never runs, so it cannot form a cycle; the cycle check uses the imports that
 run. The results' parts are typed values defined beside their command
 (``auditor.commands.instruments_values`` for ``InstrumentsResult``: its strength rows, tests,
-estimates and the rest); renderers read their attributes and may name those types the same way.
+estimates and the rest; ``auditor.commands.compare_values`` for ``CompareResult``: its schema,
+units, periods and per-column rows); renderers read their attributes and may name those types
+the same way.
 """
 
 from __future__ import annotations
@@ -81,6 +83,9 @@ RESULT_TYPES = frozenset({
     "UnitStrength", "X2Strength", "Candidate", "SuggestedSet", "ReferenceF", "ChiSquareTest", "MeanEffect",
     "MundlakTest", "AttritionTest", "SarganByEstimator", "ContrastsWithHT", "SpecificationTests", "FitCoefficients",
     "Estimates", "VarianceComponents",
+    # the compare result's typed parts (auditor/commands/compare_values.py)
+    "ColumnShift", "SchemaChanges", "TypeChange", "UnitFlow", "PeriodPlacement", "RowCounts", "SourceNames",
+    "FixedValueCheck", "JumpCheck", "SharedValueCheck", "LevelCheck",
 })
 
 

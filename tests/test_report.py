@@ -7,6 +7,7 @@ documents come from shared/contract.md.
 
 from __future__ import annotations
 
+import dataclasses
 import re
 from html.parser import HTMLParser
 from pathlib import Path
@@ -16,6 +17,15 @@ import polars as pl
 import pytest
 
 from auditor.commands import report as report_command
+from auditor.commands.compare import CompareResult
+from auditor.commands.compare_values import (
+    ColumnShift,
+    PeriodPlacement,
+    RowCounts,
+    SchemaChanges,
+    SourceNames,
+    UnitFlow,
+)
 from auditor.commands.instruments import InstrumentsResult
 from auditor.errors import AuditError
 from auditor.render import html as report
@@ -83,15 +93,24 @@ INSTRUMENTS_DOC = {
 }
 # the renderers take typed results; a document read back from JSON is rebuilt first
 INSTRUMENTS = InstrumentsResult.from_dict(INSTRUMENTS_DOC)
-COMPARE_DOC = {
-    "tool": {"name": "panel-audit", "version": "0"},
-    "schema": {"added": ["pest_index"], "removed": [], "type_changed": []},
-    "units": {"base": 6, "new": 5, "returning": 4, "entering": 1, "not_returning": 2},
-    "periods": {"base": [2019, 2020, 2021, 2022, 2023], "new": [2024], "overlap": []},
-    "columns": [{"column": "yield_t", "ks_statistic": 0.4, "ks_p": 0.01, "psi": 0.3,
-                 "missing_base": 0.0, "missing_new": 0.1}],
-    "findings": [],
-}
+#: a compare result built by hand from its typed parts (the renderers read their attributes)
+COMPARE_RESULT = CompareResult(
+    schema=SchemaChanges(added=("pest_index",), removed=(), type_changed=()),
+    units=UnitFlow(base=6, new=5, returning=4, entering=1, not_returning=2, returning_after_absence=0,
+                   last_period=6, not_returning_from_last_period=2),
+    periods=PeriodPlacement(base=(2019, 2020, 2021, 2022, 2023), new=(2024,), overlap=(), frequency="integer",
+                            step=1, colliding_keys=0),
+    columns=(ColumnShift(column="yield_t", compared_as="numeric", base_kind="time-varying",
+                         reference="base period 2023", n_base=6, n_new=5, ks_statistic=0.4, ks_p=0.01,
+                         ks_p_method="exact", psi=0.3, missing_base=0.0, missing_new=0.1),),
+    reference="base period 2023",
+    reference_period=2023,
+    rows=RowCounts(base=22, new=5, base_reference=6, new_missing_keys=0),
+    unit=("orchard",),
+    time="season",
+    sources=SourceNames(base="base.csv", new="new.csv"),
+    wave_findings=(),
+)
 
 
 class _Collector(HTMLParser):
@@ -133,7 +152,7 @@ def test_page_parses_and_holds_the_five_profile_sections(small_profile):
 
 
 def test_readiness_and_new_wave_sections_appear_only_when_given(small_profile):
-    page = report.render_html(small_profile, INSTRUMENTS, COMPARE_DOC)
+    page = report.render_html(small_profile, INSTRUMENTS, COMPARE_RESULT)
     ids = section_ids(page)
     assert ids == ["summary", "findings", "structure", "variation", "missing", "readiness", "new-wave"]
     assert 'id="fig-first-stage"' in page and 'id="fig-wave-shift"' in page
@@ -191,7 +210,7 @@ def test_control_characters_in_names_are_shown_escaped():
 
 
 def test_no_outside_resource_is_referenced(small_profile):
-    page = report.render_html(small_profile, INSTRUMENTS, COMPARE_DOC)
+    page = report.render_html(small_profile, INSTRUMENTS, COMPARE_RESULT)
     for tag, attrs in parse(page).tags:
         assert tag not in {"script", "link", "iframe", "img", "object", "embed"}, tag
         for name, value in attrs.items():
@@ -383,8 +402,9 @@ def test_shift_quantiles_match_numpy():
     rng = np.random.default_rng(3)
     base = pl.DataFrame({"x": rng.normal(0, 1, 500), "y": rng.normal(0, 1, 500)})
     new = pl.DataFrame({"x": rng.normal(1, 1, 300), "y": rng.normal(0, 1, 300)})
-    doc = {"columns": [{"column": "x", "ks_statistic": 0.4}, {"column": "y", "ks_statistic": 0.05}]}
-    q = report_command.shift_quantiles(base, new, doc, columns=1, points=11)
+    shifts = [dataclasses.replace(COMPARE_RESULT.columns[0], column="x", ks_statistic=0.4),
+              dataclasses.replace(COMPARE_RESULT.columns[0], column="y", ks_statistic=0.05)]
+    q = report_command.shift_quantiles(base, new, shifts, columns=1, points=11)
     assert list(q) == ["x"]  # the most shifted column only
     probs = np.linspace(0, 1, 11)
     np.testing.assert_allclose(q["x"][0], np.quantile(base["x"].to_numpy(), probs), rtol=1e-12)
@@ -403,7 +423,7 @@ def test_profile_repr_html_is_a_fragment_of_the_same_renderer(small_profile):
 
 def test_instruments_and_compare_fragments_render_their_sections():
     a = report.instruments_fragment(INSTRUMENTS)
-    b = report.compare_fragment(COMPARE_DOC)
+    b = report.compare_fragment(COMPARE_RESULT)
     assert "readiness" in section_ids(a) and "new-wave" in section_ids(b)
     assert "<svg" in a and "<svg" in b
 

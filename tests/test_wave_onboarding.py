@@ -92,14 +92,14 @@ def test_clean_next_wave_gets_no_warning_from_compare(panel):
     base, clean = panel
     res = compare(base, clean, **KEYS)
     assert [f.check for f in res.findings if f.severity in ("error", "warning")] == []
-    cols = {c["column"]: c for c in res.columns}
+    cols = {c.column: c for c in res.columns}
     # the age grows by one a year for every library: judged against that step, not as a shift
-    assert cols["building_age"]["expected_step"] == 1 and cols["building_age"]["less_step"] is True
-    assert cols["building_age"]["implausible_jumps"] == 0
+    assert cols["building_age"].expected_step == 1 and cols["building_age"].less_step is True
+    assert cols["building_age"].implausible_jumps == 0
     # the zero-inflated hours: the scale of the non-zero changes, and no library implausible
-    assert cols["weekly_hours"]["change_scale_method"] == "non-zero mad"
-    assert cols["weekly_hours"]["implausible_jumps"] == 0
-    assert cols["book_price"]["periods_with_several_values"] == 0
+    assert cols["weekly_hours"].within.change_scale_method == "non-zero mad"
+    assert cols["weekly_hours"].implausible_jumps == 0
+    assert cols["book_price"].periods_with_several_values == 0
 
 
 def test_the_draft_is_written_for_the_next_delivery(files, panel):
@@ -361,8 +361,8 @@ def test_a_column_stepping_by_one_for_everybody_is_no_shift_and_a_31_rise_is_a_j
     new = pl.DataFrame({"id": np.arange(n), "t": 5}).with_columns((pl.col("id") % 40 + 5).alias("age"))
     res = compare(base, new, unit="id", time="t")
     assert not [f for f in res.findings if f.severity != "note"]
-    col = next(c for c in res.columns if c["column"] == "age")
-    assert col["psi"] == 0 and col["ks_statistic"] == 0  # compared less its step: identical
+    col = next(c for c in res.columns if c.column == "age")
+    assert col.psi == 0 and col.ks_statistic == 0  # compared less its step: identical
     jumped = new.with_columns(pl.when(pl.col("id") < 2).then(pl.col("age") + 30).otherwise(pl.col("age")))
     (f,) = [f for f in compare(base, jumped, unit="id", time="t").findings if f.check == "implausible-jump"]
     assert f.count == 2
@@ -383,8 +383,8 @@ def test_a_step_is_learnt_per_period_across_gaps():
     assert base.height == n * 4 - n // 5
     new = pl.DataFrame({"id": np.arange(n), "t": 5}).with_columns((pl.col("id") % 30 + 5).alias("age"))
     res = compare(base, new, unit="id", time="t")
-    col = next(c for c in res.columns if c["column"] == "age")
-    assert col["expected_step"] == 1 and col["implausible_jumps"] == 0
+    col = next(c for c in res.columns if c.column == "age")
+    assert col.expected_step == 1 and col.implausible_jumps == 0
 
 
 # --- p-values and warnings --------------------------------------------------------------------
@@ -396,11 +396,11 @@ def test_ks_p_values_keep_significant_digits_and_equal_scipy():
     rng = np.random.default_rng(4)
     base = pl.DataFrame({"id": np.arange(300), "t": 1, "x": rng.normal(0, 1, 300)})
     new = pl.DataFrame({"id": np.arange(300), "t": 2, "x": rng.normal(1.2, 1, 300)})
-    col = next(c for c in compare(base, new, unit="id", time="t").columns if c["column"] == "x")
+    col = next(c for c in compare(base, new, unit="id", time="t").columns if c.column == "x")
     ref = stats.ks_2samp(base["x"].to_numpy(), new["x"].to_numpy())  # scipy, method auto
     assert 0 < ref.pvalue < 1e-20
-    assert col["ks_p"] > 0 and col["ks_p"] == pytest.approx(ref.pvalue, rel=1e-5, abs=0)  # 2e-36 is not 0.0
-    assert col["ks_p_method"] == "exact"
+    assert col.ks_p > 0 and col.ks_p == pytest.approx(ref.pvalue, rel=1e-5, abs=0)  # 2e-36 is not 0.0
+    assert col.ks_p_method == "exact"
 
 
 def test_scipys_warning_is_caught_and_the_method_said(monkeypatch):

@@ -33,7 +33,7 @@ from __future__ import annotations
 
 import dataclasses
 import math
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from datetime import date
 from typing import Any
@@ -43,6 +43,21 @@ import polars as pl
 
 from auditor.checks.config import Settings, load_settings
 from auditor.checks.findings import Finding, make, sort_findings
+from auditor.commands.compare_values import (
+    ColumnShift,
+    FixedValueCheck,
+    JumpCheck,
+    LevelCheck,
+    PeriodLabel,
+    PeriodPlacement,
+    RowCounts,
+    SchemaChanges,
+    SharedValueCheck,
+    SourceNames,
+    TypeChange,
+    UnitFlow,
+    WithinCheck,
+)
 from auditor.dtypes import compare_dtype_name, null_or_nan, type_family
 from auditor.errors import AuditError, fail, short_list
 from auditor.io.load import INTERNAL, UNIT_ID, Panel, load_panel, parse_unit
@@ -66,25 +81,25 @@ def _key(j: int) -> str:
 class CompareResult:
     """What a new wave would do to the panel held so far.
 
-    ``schema``, ``units`` and ``periods`` are the contract's dicts; ``columns`` one
-    dict per compared column (KS statistic, PSI, missing shares, as fractions);
-    ``reference`` names the base period the distributions are compared with.
-    ``wave_findings`` are this command's own findings, ``merged_findings`` those of
-    the profile of base + new together (only with ``merged=True``). ``appended`` is the
-    Panel of base + new and ``sides`` the base and new Panels (only with
-    ``appended=True``; not part of the JSON).
+    ``schema``, ``units``, ``periods``, ``rows`` and ``sources`` are typed parts
+    (auditor/commands/compare_values.py); ``columns`` one ColumnShift per compared
+    column (KS statistic, PSI, missing shares, as fractions); ``reference`` names the
+    base period the distributions are compared with. ``wave_findings`` are this
+    command's own findings, ``merged_findings`` those of the profile of base + new
+    together (only with ``merged=True``). ``appended`` is the Panel of base + new and
+    ``sides`` the base and new Panels (only with ``appended=True``; not part of the JSON).
     """
 
-    schema: dict[str, Any]
-    units: dict[str, Any]
-    periods: dict[str, Any]
-    columns: tuple[dict[str, Any], ...]
+    schema: SchemaChanges
+    units: UnitFlow
+    periods: PeriodPlacement
+    columns: tuple[ColumnShift, ...]
     reference: str
-    reference_period: Any
-    rows: dict[str, int]
+    reference_period: PeriodLabel
+    rows: RowCounts
     unit: tuple[str, ...]
     time: str
-    sources: dict[str, str]
+    sources: SourceNames
     wave_findings: tuple[Finding, ...]
     merged_findings: tuple[Finding, ...] = ()
     merged_panel: dict[str, Any] | None = None
@@ -122,16 +137,49 @@ class CompareResult:
             "tool": {"name": "panel-audit", "version": __version__},
             "unit": list(self.unit),
             "time": self.time,
-            "sources": dict(self.sources),
+            "sources": self.sources.to_dict(),
             "reference": self.reference,
-            "rows": dict(self.rows),
-            "schema": self.schema,
-            "units": self.units,
-            "periods": self.periods,
-            "columns": [dict(c) for c in self.columns],
+            "rows": self.rows.to_dict(),
+            "schema": self.schema.to_dict(),
+            "units": self.units.to_dict(),
+            "periods": self.periods.to_dict(),
+            "columns": [c.to_dict() for c in self.columns],
             "merged": None if self.merged_panel is None else {"panel": self.merged_panel},
             "findings": findings,
         })
+
+    @classmethod
+    def from_dict(cls, doc: Mapping[str, Any]) -> CompareResult:
+        """A compare JSON document (``to_dict()``, ``panel-audit compare --json``) typed again,
+        for rendering a saved document: ``from_dict(r.to_dict()).to_dict() == r.to_dict()``.
+
+        The Panels, settings and detail tables are not in the document and stay empty;
+        ``reference_period`` is the last base period. Raises KeyError or TypeError on a
+        document that lacks a part.
+        """
+        wave, merged = [], []
+        for d in doc["findings"]:
+            f = Finding(check=d["check"], severity=d["severity"], message=d["message"], column=d.get("column"),
+                        count=d.get("count"), examples=tuple(d.get("examples") or ()))
+            (merged if d.get("scope") == "merged" else wave).append(f)
+        s, u, p, r, src = doc["schema"], doc["units"], doc["periods"], doc["rows"], doc["sources"]
+        return cls(
+            schema=SchemaChanges(tuple(s["added"]), tuple(s["removed"]),
+                                 tuple(TypeChange(**t) for t in s["type_changed"])),
+            units=UnitFlow(**u),
+            periods=PeriodPlacement(tuple(p["base"]), tuple(p["new"]), tuple(p["overlap"]), p["frequency"],
+                                    p["step"], p["colliding_keys"]),
+            columns=tuple(ColumnShift.from_dict(c) for c in doc["columns"]),
+            reference=doc["reference"],
+            reference_period=p["base"][-1],
+            rows=RowCounts(**r),
+            unit=tuple(doc["unit"]),
+            time=doc["time"],
+            sources=SourceNames(**src),
+            wave_findings=tuple(wave),
+            merged_findings=tuple(merged),
+            merged_panel=None if doc.get("merged") is None else doc["merged"]["panel"],
+        )
 
 
 # --- stability index and distance ----------------------------------------------------
@@ -519,15 +567,11 @@ class _Comparison:
             columns=tuple(columns),
             reference=f"base period {ref_label}",
             reference_period=ref_label,
-            rows={
-                "base": self.bp.rows,
-                "new": self.np.rows,
-                "base_reference": self.ref.height,
-                "new_missing_keys": self.np.missing_keys,
-            },
+            rows=RowCounts(base=self.bp.rows, new=self.np.rows, base_reference=self.ref.height,
+                           new_missing_keys=self.np.missing_keys),
             unit=self.units,
             time=self.time,
-            sources={"base": self.bp.source, "new": self.np.source},
+            sources=SourceNames(base=self.bp.source, new=self.np.source),
             detail_tables={k: pl.concat(v, how="diagonal_relaxed") for k, v in self.tables.items()},
             wave_findings=sort_findings(self.findings),
             merged_findings=merged_findings,
@@ -536,7 +580,7 @@ class _Comparison:
         )
 
     # -- schema ---------------------------------------------------------------------------
-    def _schema(self) -> dict[str, Any]:
+    def _schema(self) -> SchemaChanges:
         bs = self.bp.schema
         # A column the new wave leaves entirely empty has no type of its own (an empty CSV
         # column reads as text): it takes the base's type, and shows up as missing-jump.
@@ -554,9 +598,7 @@ class _Comparison:
         for c in [*keys, *[c for c in bcols if c in ns]]:
             # A width change within one family (int32 vs int64) changes nothing when appending.
             if _family(bs[c]) != _family(ns[c]):
-                changed.append(
-                    {"column": c, "base": compare_dtype_name(bs[c]), "new": compare_dtype_name(ns[c]), "key": c in keys}
-                )
+                changed.append(TypeChange(c, compare_dtype_name(bs[c]), compare_dtype_name(ns[c]), c in keys))
         for c in added:
             self.add(
                 "column-added",
@@ -574,24 +616,24 @@ class _Comparison:
                 count=1,
             )
         for ch in changed:
-            c = ch["column"]
-            severe = ch["key"]
-            if ch["key"]:
+            c = ch.column
+            severe = ch.key
+            if ch.key:
                 what = (
-                    f"key column '{c}' is {ch['base']} in the base and {ch['new']} in the new wave; "
-                    f"keys were compared as text: cast the new wave's '{c}' to {ch['base']} before appending"
+                    f"key column '{c}' is {ch.base} in the base and {ch.new} in the new wave; "
+                    f"keys were compared as text: cast the new wave's '{c}' to {ch.base} before appending"
                 )
             else:
                 what = (
-                    f"column '{c}' is {ch['base']} in the base and {ch['new']} in the new wave; "
-                    f"cast it to {ch['base']} (or fix the source) before appending"
+                    f"column '{c}' is {ch.base} in the base and {ch.new} in the new wave; "
+                    f"cast it to {ch.base} (or fix the source) before appending"
                 )
             f = make("type-changed", self.s, what, column=c, count=1)
             if severe and "type-changed" not in self.s.severities:
                 f = dataclasses.replace(f, severity="error")
             self.findings.append(f)
         self.common = [c for c in bcols if c in ns]
-        return {"added": added, "removed": removed, "type_changed": changed}
+        return SchemaChanges(tuple(added), tuple(removed), tuple(changed))
 
     # -- aligned frames -------------------------------------------------------------------
     def _align(self) -> None:
@@ -666,7 +708,7 @@ class _Comparison:
         return self._counts[key]
 
     # -- units ----------------------------------------------------------------------------
-    def _units(self) -> dict[str, Any]:
+    def _units(self) -> UnitFlow:
         last = self.B.group_by(UNIT_ID).agg(pl.col(POS).max().alias("__pa_last"))
         returning = self.code_map.filter(pl.col(BASE_UNIT).is_not_null())
         n_ret = returning.height
@@ -708,19 +750,19 @@ class _Comparison:
                 count=left_last.height,
                 examples=self._unit_examples(left_last),
             )
-        return {
-            "base": self.bunits.height,
-            "new": self.code_map.height,
-            "returning": n_ret,
-            "entering": entering,
-            "not_returning": not_returning.height,
-            "returning_after_absence": after_gap.height,
-            "last_period": in_last.height,
-            "not_returning_from_last_period": left_last.height,
-        }
+        return UnitFlow(
+            base=self.bunits.height,
+            new=self.code_map.height,
+            returning=n_ret,
+            entering=entering,
+            not_returning=not_returning.height,
+            returning_after_absence=after_gap.height,
+            last_period=in_last.height,
+            not_returning_from_last_period=left_last.height,
+        )
 
     # -- periods --------------------------------------------------------------------------
-    def _periods(self) -> dict[str, Any]:
+    def _periods(self) -> PeriodPlacement:
         base_set = set(self.base_pos)
         overlap = [p for p in self.new_pos if p in base_set]
         keys = [BASE_UNIT, POS]
@@ -795,14 +837,14 @@ class _Comparison:
                 examples=self.np.missing_key_examples[: self.examples],
             )
         self._unexpected_periods(base_set)
-        return {
-            "base": [self._lab(p) for p in self.base_pos],
-            "new": [self._lab(p) for p in self.new_pos],
-            "overlap": [self._lab(p) for p in overlap],
-            "frequency": self.scale.frequency,
-            "step": self.step,
-            "colliding_keys": colliding,
-        }
+        return PeriodPlacement(
+            base=tuple(self._lab(p) for p in self.base_pos),
+            new=tuple(self._lab(p) for p in self.new_pos),
+            overlap=tuple(self._lab(p) for p in overlap),
+            frequency=self.scale.frequency,
+            step=self.step,
+            colliding_keys=colliding,
+        )
 
     def _unexpected_periods(self, base_set: set[int]) -> None:
         step, _ = grid_step(self.base_pos)
@@ -860,7 +902,7 @@ class _Comparison:
             )
 
     # -- per column -----------------------------------------------------------------------
-    def _columns(self) -> list[dict[str, Any]]:
+    def _columns(self) -> list[ColumnShift]:
         kinds = self._base_kinds()
         tol = self.s.profile.float_tolerance
         # Columns held fixed within units: constant, time-invariant, and nearly-time-invariant
@@ -887,7 +929,7 @@ class _Comparison:
         ]
         jump_info = self._consistency(inv, jump, tol, kinds)
         for c in [c for c in self.compared if kinds.get(c) == "period-only"]:
-            jump_info.setdefault(c, {}).update(self._period_only(c, tol))
+            jump_info[c] = self._period_only(c, tol)
         cat_info = self._categories(kinds)
         self._samples = self._numeric_samples(jump_info)
         out = []
@@ -895,7 +937,7 @@ class _Comparison:
             out.append(self._distribution(j, c, kinds.get(c), jump_info.get(c), cat_info.get(c)))
         return out
 
-    def _numeric_samples(self, jump_info: dict[str, dict[str, Any]]) -> dict[str, tuple[np.ndarray, np.ndarray, float]]:
+    def _numeric_samples(self, jump_info: dict[str, WithinCheck]) -> dict[str, tuple[np.ndarray, np.ndarray, float]]:
         """Per numeric column: the reference sample and the new wave's (less the base's step
         for a stepped column), sorted, and their stability index; one column per thread."""
         bins = self.s.compare.psi_bins
@@ -903,7 +945,8 @@ class _Comparison:
         new_values = []
         for c in self.numeric:
             values = pl.col(c)
-            step = (jump_info.get(c) or {}).get("expected_step")
+            within = jump_info.get(c)
+            step = within.expected_step if isinstance(within, JumpCheck) else None
             if step is not None:
                 # like with like: the new wave less the base's step times the periods since the reference
                 values = values - step * self._periods_between(pl.col(POS), pl.lit(self.last_pos))
@@ -952,7 +995,7 @@ class _Comparison:
 
     def _consistency(
         self, inv: list[str], jump: list[str], tol: float, kinds: dict[str, str]
-    ) -> dict[str, dict[str, Any]]:
+    ) -> dict[str, WithinCheck]:
         """invariant-changed and implausible-jump findings; the expected change and its scale by column."""
         cols = [*inv, *jump]
         if not cols:
@@ -980,7 +1023,7 @@ class _Comparison:
         both = new_first.with_columns(pl.col(BASE_UNIT).cast(pl.UInt32)).join(
             base_last.rename({c: f"{c}\x00base" for c in cols}), left_on=BASE_UNIT, right_on=UNIT_ID, how="inner"
         ).join(self.bunits.rename({UNIT_ID: BASE_UNIT}), on=BASE_UNIT, how="left")
-        info: dict[str, dict[str, Any]] = {}
+        info: dict[str, WithinCheck] = {}
         # Invariant columns: a returning unit changes when its first new value is none of the
         # values it ever reported in the base (so a one-season typo in the base is not
         # held against a correct new value).
@@ -1014,7 +1057,7 @@ class _Comparison:
                 .sort(self.nkeys)
             )
             n = changed.height
-            info[c] = {"changed_units": n}
+            info[c] = FixedValueCheck(n)
             if not n:
                 continue
             self.keep("invariant-changed", changed.select(
@@ -1105,7 +1148,7 @@ class _Comparison:
             return dict(zip(jump, pool.map(learn, jump), strict=True))
 
     def _jumps(
-        self, jump: list[str], both: pl.DataFrame, learned: dict[str, dict[str, Any]], info: dict[str, dict[str, Any]]
+        self, jump: list[str], both: pl.DataFrame, learned: dict[str, dict[str, Any]], info: dict[str, WithinCheck]
     ) -> None:
         """implausible-jump: each returning unit's change across the boundary against what the
         base's own within-unit changes say (:meth:`_learn_changes`): a stepped column is judged
@@ -1129,11 +1172,14 @@ class _Comparison:
                 if entry["change_scale_method"].startswith("non-zero"):
                     z = pl.when(new_change == 0).then(0.0).otherwise(z)
                 zs.append(z.alias(f"{c}\x00z"))
-            info[c] = entry
         zed = both.with_columns(zs)
         for c in jump:
             hit = zed.filter(pl.col(f"{c}\x00z") > cut)
-            info[c]["implausible_jumps"] = hit.height
+            entry = learned[c]
+            found = JumpCheck(change_median=entry["change_median"], change_scale=entry["change_scale"],
+                              change_scale_method=entry["change_scale_method"],
+                              expected_step=entry.get("expected_step"), implausible_jumps=hit.height)
+            info[c] = found
             if not hit.height:
                 continue
             self.keep("implausible-jump", hit.sort(self.nkeys).select(
@@ -1143,7 +1189,7 @@ class _Comparison:
                 self._labels_expr(f"{c}\x00npos").alias("new_period"),
                 pl.col(c).cast(pl.String).alias("new_value"),
                 pl.col(f"{c}\x00z").round(3).alias("distance")))
-            stepped = info[c]["change_scale_method"] == "step" and "expected_step" in info[c]
+            stepped = found.expected_step is not None
             ex = hit.sort(f"{c}\x00z", descending=True).head(self.examples)
             examples = []
             for r in ex.iter_rows(named=True):
@@ -1155,10 +1201,10 @@ class _Comparison:
                 examples.append(e)
             if stepped:
                 why = (f"by more than {step_cut:g} steps away from the base's own change of "
-                       f"{info[c]['expected_step']:+g} a period")
+                       f"{found.expected_step:+g} a period")
             else:
                 why = (f"by more than {cut:g} robust deviations of the base's own period-to-period changes "
-                       f"(scale: {info[c]['change_scale_method']})")
+                       f"(scale: {found.change_scale_method})")
             self.add(
                 "implausible-jump",
                 f"'{c}' jumps for {_plural(hit.height, 'returning unit')} {why}; check for a unit or entry "
@@ -1168,7 +1214,7 @@ class _Comparison:
                 examples=examples,
             )
 
-    def _period_only(self, c: str, tol: float) -> dict[str, Any]:
+    def _period_only(self, c: str, tol: float) -> SharedValueCheck:
         """A column all units share within each base period (a price, a national index) must
         again hold one value per period in the new wave: period-value-differs otherwise."""
         v = pl.col(c)
@@ -1200,13 +1246,13 @@ class _Comparison:
                     for r in per.head(self.examples).iter_rows(named=True)
                 ],
             )
-        return {"expected": "one value per period", "periods_with_several_values": per.height}
+        return SharedValueCheck(per.height)
 
-    def _categories(self, kinds: dict[str, str]) -> dict[str, dict[str, Any]]:
+    def _categories(self, kinds: dict[str, str]) -> dict[str, LevelCheck]:
         max_levels = self.s.compare.category_max_levels
         min_expected = self.s.compare.vanished_min_expected
         distinct = getattr(self, "base_distinct", {})
-        info: dict[str, dict[str, Any]] = {}
+        info: dict[str, LevelCheck] = {}
         n_new = self.N.height
         for c in self.levels:
             nb = distinct.get(c)
@@ -1214,7 +1260,7 @@ class _Comparison:
             if nb is None:
                 nb = base_levels.len()
             if nb > max_levels:
-                info[c] = {"levels_checked": False}
+                info[c] = LevelCheck(checked=False)
                 continue
             new_counts = self._level_counts("new", c)
             fresh = new_counts.filter(~pl.col(c).is_in(base_levels.implode())).sort("n", c, descending=[True, False])
@@ -1226,7 +1272,7 @@ class _Comparison:
                 .filter(pl.col("expected") >= min_expected)
                 .sort("n", c, descending=[True, False])
             )
-            info[c] = {"levels_checked": True, "new_levels": fresh.height, "vanished_levels": gone.height}
+            info[c] = LevelCheck(checked=True, new_levels=fresh.height, vanished_levels=gone.height)
             if fresh.height:
                 rows = int(fresh.get_column("n").sum())
                 self.keep("new-categories", fresh.select(pl.lit(c).alias("column"), pl.col(c).cast(pl.String)
@@ -1256,8 +1302,8 @@ class _Comparison:
         return info
 
     def _distribution(
-        self, j: int, c: str, kind: str | None, jump: dict[str, Any] | None, cats: dict[str, Any] | None
-    ) -> dict[str, Any]:
+        self, j: int, c: str, kind: str | None, within: WithinCheck | None, levels: LevelCheck | None
+    ) -> ColumnShift:
         smoothing = self.s.compare.psi_smoothing
         miss = f"__pa_miss_{j}"
         ref_rows, new_rows = self.ref.height, self.N.height
@@ -1265,7 +1311,6 @@ class _Comparison:
         mn = float(self.N.get_column(miss).mean()) if new_rows else math.nan
         ks_stat = ks_p = math.nan
         ks_method = ""
-        step = (jump or {}).get("expected_step")
         if c in self.numeric:
             a, b, psi = self._samples[c]
             kind_cmp = "numeric"
@@ -1304,26 +1349,22 @@ class _Comparison:
                 column=c,
                 count=int(round(mn * new_rows)),
             )
-        row: dict[str, Any] = {
-            "column": c,
-            "compared_as": kind_cmp,
-            "less_step": step is not None,  # the new wave was compared less the base's step per period
-            "base_kind": kind,
-            "reference": ref,
-            "n_base": int(nb),
-            "n_new": int(nn),
-            "ks_statistic": _num(ks_stat),
-            "ks_p": significant(ks_p),
-            "ks_p_method": ks_method or None,
-            "psi": _num(psi),
-            "missing_base": _num(mb),
-            "missing_new": _num(mn),
-        }
-        if jump:
-            row.update(jump)
-        if cats:
-            row.update(cats)
-        return row
+        return ColumnShift(
+            column=c,
+            compared_as=kind_cmp,
+            base_kind=kind,
+            reference=ref,
+            n_base=int(nb),
+            n_new=int(nn),
+            ks_statistic=_num(ks_stat),
+            ks_p=significant(ks_p),
+            ks_p_method=ks_method or None,
+            psi=_num(psi),
+            missing_base=_num(mb),
+            missing_new=_num(mn),
+            within=within,
+            levels=levels,
+        )
 
     # -- merged ---------------------------------------------------------------------------
     def _merged_profile(self) -> tuple[tuple[Finding, ...], dict[str, Any] | None]:

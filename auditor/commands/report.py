@@ -8,16 +8,17 @@ and its figures together (auditor.io.outputs).
 from __future__ import annotations
 
 import contextlib
-from collections.abc import Mapping, Sequence
+from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from auditor.errors import fail
-from auditor.render.html import FIGURE_FILES, Limits, as_document, build_figures, render_html
+from auditor.render.html import FIGURE_FILES, Limits, build_figures, render_html
 
 if TYPE_CHECKING:  # pragma: no cover
     from auditor.checks.config import Settings
+    from auditor.commands.compare_values import ColumnShift
     from auditor.io.outputs import OutputSet
 
 
@@ -121,9 +122,8 @@ def build_report(
         result, inst, comp, quantiles, lim = _report_parts(
             data, unit, time, outcome, regressors, correlated, against, settings, period_effects, treat_as_invariant,
             engine, scheduler)
-        comp_doc = as_document(comp)
-        drawn = build_figures(result, inst, comp_doc, quantiles=quantiles, limits=lim)
-        page = render_html(result, inst, comp_doc, figures=drawn, settings=settings)
+        drawn = build_figures(result, inst, comp, quantiles=quantiles, limits=lim)
+        page = render_html(result, inst, comp, figures=drawn, settings=settings)
         outputs.stage(out_path, page)
         if png_path is not None:
             from auditor.render.figures import to_png
@@ -166,8 +166,7 @@ def _report_parts(data: Any, unit: Any, time: str, outcome: str | None, regresso
         base, new = comp.sides
         # like with like, as compare does: the new wave against the base's last period
         last = base.frame.filter(base.frame[PERIOD_ID] == base.n_periods - 1)
-        quantiles = shift_quantiles(last, new.frame, as_document(comp) or {},
-                                    columns=lim.shift_columns, points=lim.quantiles)
+        quantiles = shift_quantiles(last, new.frame, comp.columns, columns=lim.shift_columns, points=lim.quantiles)
         panel = comp.appended
     elif resolve_engine(engine, None, scheduler) == "dask":
         result = profile(data, unit=unit, time=time, settings=settings, engine=engine, scheduler=scheduler)
@@ -191,22 +190,22 @@ def _report_parts(data: Any, unit: Any, time: str, outcome: str | None, regresso
 
 
 def shift_quantiles(
-    base: Any, new: Any, comparison: Mapping[str, Any], *, columns: int = 4, points: int = 101
+    base: Any, new: Any, shifts: Sequence[ColumnShift], *, columns: int = 4, points: int = 101
 ) -> dict[str, tuple[list[float], list[float]]]:
     """Quantiles of the ``columns`` most shifted numeric columns in both waves.
 
     ``base`` and ``new`` are polars frames; the columns are those with the
-    largest ``ks_statistic`` in ``comparison`` (the compare JSON). Returns, per
+    largest ``ks_statistic`` among ``shifts`` (``CompareResult.columns``). Returns, per
     column, (base, new) values at ``points`` evenly spaced probabilities 0..1,
     computed by polars in one select per frame (never a loop over rows).
     """
     import polars as pl
 
     rows = sorted(
-        (c for c in comparison.get("columns", []) if c.get("ks_statistic") is not None),
-        key=lambda c: -float(c["ks_statistic"]),
+        (c for c in shifts if c.ks_statistic is not None),
+        key=lambda c: -float(c.ks_statistic or 0.0),
     )
-    names = [str(c["column"]) for c in rows if str(c["column"]) in base.columns and str(c["column"]) in new.columns]
+    names = [c.column for c in rows if c.column in base.columns and c.column in new.columns]
     names = [n for n in names if base.schema[n].is_numeric() and new.schema[n].is_numeric()][:columns]
     if not names:
         return {}

@@ -23,6 +23,7 @@ import polars as pl
 if TYPE_CHECKING:  # pragma: no cover
     from matplotlib.figure import Figure
 
+    from auditor.commands.compare_values import ColumnShift
     from auditor.commands.instruments_values import FitCoefficients, UnitStrength
 
 # Okabe & Ito (2008), "Color Universal Design": a palette that stays distinct
@@ -649,11 +650,11 @@ def anderson_rubin_set(strength: Sequence[UnitStrength], estimates: FitCoefficie
 
 
 @_styled
-def wave_shift(columns: Sequence[Mapping[str, Any]], *, max_columns: int = 30) -> Figure:
+def wave_shift(columns: Sequence[ColumnShift], *, max_columns: int = 30) -> Figure:
     """Which columns changed distribution in the new wave? KS statistic per column.
 
-    ``columns`` is the contract's compare list (``column``, ``ks_statistic``,
-    ``ks_p``, ``psi``). Bars are the two-sample Kolmogorov-Smirnov statistic
+    ``columns`` are a compare result's ColumnShift rows (``CompareResult.columns``:
+    ``column``, ``ks_statistic``, ``ks_p`` are read). Bars are the two-sample Kolmogorov-Smirnov statistic
     (the largest gap between the two cumulative distributions, 0-1), the
     ``max_columns`` largest drawn; darker bars have ks_p below 0.05. Returns the Figure.
     """
@@ -662,18 +663,18 @@ def wave_shift(columns: Sequence[Mapping[str, Any]], *, max_columns: int = 30) -
 
     title = "Which columns changed distribution in the new wave?"
     rows = sorted(
-        (r for r in columns if r.get("ks_statistic") is not None),
-        key=lambda r: (-float(r["ks_statistic"]), str(r.get("column"))),
+        (r for r in columns if r.ks_statistic is not None),
+        key=lambda r: (-float(r.ks_statistic or 0.0), str(r.column)),
     )[:max_columns]
     fig = _new_figure(max(1.7, 1.0 + 0.22 * max(len(rows), 1)))
     ax = fig.axes[0]
     if not rows:
         return _empty(fig, ax, title, "no numeric column in both waves")
     y = np.arange(len(rows))[::-1]
-    ks = np.array([float(r["ks_statistic"]) for r in rows])
-    sig = [r.get("ks_p") is not None and float(r["ks_p"]) < 0.05 for r in rows]
+    ks = np.array([float(r.ks_statistic or 0.0) for r in rows])
+    sig = [r.ks_p is not None and float(r.ks_p) < 0.05 for r in rows]
     ax.barh(y, ks, height=0.66, color=[VERMILLION if s else SKY for s in sig], linewidth=0)
-    ax.set_yticks(y, [plain(r.get("column"), 30) for r in rows])
+    ax.set_yticks(y, [plain(r.column, 30) for r in rows])
     ax.set_xlim(0, max(0.1, float(ks.max()) * 1.15))
     ax.set_ylim(-0.6, len(rows) - 0.4)
     ax.set_xlabel("Kolmogorov-Smirnov statistic (largest gap between the two distributions)")

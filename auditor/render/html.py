@@ -24,6 +24,7 @@ from auditor.vocab import clean
 
 if TYPE_CHECKING:  # pragma: no cover
     from auditor.checks.config import Settings
+    from auditor.commands.compare import CompareResult
     from auditor.commands.instruments import InstrumentsResult
     from auditor.commands.instruments_values import SpecificationTests, UnitStrength
 
@@ -150,14 +151,6 @@ def _note(text: str) -> str:
     return f'<p class="pa-quiet">{text}</p>'
 
 
-def as_document(obj: Any) -> dict[str, Any] | None:
-    if obj is None:
-        return None
-    if isinstance(obj, Mapping):
-        return dict(obj)
-    return obj.to_dict()
-
-
 # --- limits ----------------------------------------------------------------------------
 
 
@@ -199,7 +192,7 @@ class Limits:
 def build_figures(
     result: Any,
     instruments: InstrumentsResult | None = None,
-    comparison: Mapping[str, Any] | None = None,
+    comparison: CompareResult | None = None,
     *,
     quantiles: Mapping[str, tuple[Sequence[float], Sequence[float]]] | None = None,
     limits: Limits | None = None,
@@ -207,8 +200,8 @@ def build_figures(
     """Every figure the report shows, by name (see ``FIGURE_FILES``), as matplotlib Figures.
 
     ``result`` is a ProfileResult; ``instruments`` an InstrumentsResult and
-    ``comparison`` the contract's JSON of a CompareResult; ``quantiles`` (column ->
-    base and new quantiles) feeds the shifted-distributions figure.
+    ``comparison`` a CompareResult; ``quantiles`` (column -> base and new
+    quantiles) feeds the shifted-distributions figure.
     """
     from auditor.render import figures as fg
 
@@ -230,10 +223,10 @@ def build_figures(
         out["missing-map"] = fg.missing_map(details.missing_by_period, grid, max_columns=lim.figure_columns)
     if instruments is not None:
         out.update(_readiness_figures(instruments, lim))
-    if comparison is not None and comparison.get("columns"):
-        out["wave-shift"] = fg.wave_shift(comparison["columns"], max_columns=lim.figure_columns)
+    if comparison is not None and comparison.columns:
+        out["wave-shift"] = fg.wave_shift(comparison.columns, max_columns=lim.figure_columns)
         if quantiles:
-            ks = {str(c.get("column")): c.get("ks_statistic") for c in comparison["columns"]}
+            ks = {c.column: c.ks_statistic for c in comparison.columns}
             out["shifted-distributions"] = fg.shifted_distributions(quantiles, ks=ks)
     return out
 
@@ -265,16 +258,21 @@ def _svgs(figures: Mapping[str, Any]) -> dict[str, str]:
 # --- sections --------------------------------------------------------------------------
 
 
-def _all_findings(result: Any, instruments: InstrumentsResult | None, comparison: Mapping[str, Any] | None) -> list[dict[str, Any]]:
+def _wave_items(comparison: CompareResult) -> list[dict[str, Any]]:
+    """The comparison's findings (the wave's and the merged profile's) as the findings table
+    reads them: each Finding's JSON object, from ``new wave``."""
+    return [{**clean(f.to_dict()), "source": "new wave"} for f in comparison.findings]
+
+
+def _all_findings(result: Any, instruments: InstrumentsResult | None, comparison: CompareResult | None) -> list[dict[str, Any]]:
     items: list[dict[str, Any]] = []
     for f in getattr(result, "findings", ()) or ():
         d = f.to_dict() if hasattr(f, "to_dict") else dict(f)
         items.append({**d, "source": "profile"})
     if instruments is not None:
         items.extend(_readiness_findings(instruments))
-    for doc, source in ((comparison, "new wave"),):
-        if doc:
-            items.extend({**dict(f), "source": source} for f in doc.get("findings", []) or [])
+    if comparison is not None:
+        items.extend(_wave_items(comparison))
     order = {"profile": 0, "model readiness": 1, "new wave": 2}
     items.sort(key=lambda d: (SEVERITY_RANK.get(str(d.get("severity")), 9), order[d["source"]],
                               str(d.get("check")), str(d.get("column") or "")))
@@ -701,39 +699,37 @@ def _candidates(inst: InstrumentsResult, lim: Limits) -> str:
     return "".join(parts)
 
 
-def _new_wave(doc: Mapping[str, Any], svgs: Mapping[str, str], lim: Limits) -> str:
-    schema = doc.get("schema") or {}
-    units = doc.get("units") or {}
-    periods = doc.get("periods") or {}
+def _new_wave(comp: CompareResult, svgs: Mapping[str, str], lim: Limits) -> str:
+    schema, units, periods = comp.schema, comp.units, comp.periods
     parts = ['<section id="new-wave"><h2>New wave</h2>']
     parts.append(_facts([
-        ("units before", _int(units.get("base"))), ("units in the new wave", _int(units.get("new"))),
-        ("returning", _int(units.get("returning"))), ("new units", _int(units.get("entering"))),
-        ("not back", _int(units.get("not_returning"))),
-        ("periods before", esc(_span(periods.get("base")))), ("new periods", esc(_span(periods.get("new")))),
-        ("periods in both", esc(_span(periods.get("overlap"))) or "none"),
+        ("units before", _int(units.base)), ("units in the new wave", _int(units.new)),
+        ("returning", _int(units.returning)), ("new units", _int(units.entering)),
+        ("not back", _int(units.not_returning)),
+        ("periods before", esc(_span(periods.base))), ("new periods", esc(_span(periods.new))),
+        ("periods in both", esc(_span(periods.overlap)) or "none"),
     ]))
     changes = []
-    if schema.get("added"):
-        changes.append(f"<li>New columns: {_names(schema['added'])}</li>")
-    if schema.get("removed"):
-        changes.append(f"<li>Columns gone: {_names(schema['removed'])}</li>")
-    for t in schema.get("type_changed") or []:
-        changes.append(f"<li><code>{esc(t.get('column'), 60)}</code> changed type from "
-                       f"<code>{esc(t.get('base'))}</code> to <code>{esc(t.get('new'))}</code></li>")
+    if schema.added:
+        changes.append(f"<li>New columns: {_names(schema.added)}</li>")
+    if schema.removed:
+        changes.append(f"<li>Columns gone: {_names(schema.removed)}</li>")
+    for t in schema.type_changed:
+        changes.append(f"<li><code>{esc(t.column, 60)}</code> changed type from "
+                       f"<code>{esc(t.base)}</code> to <code>{esc(t.new)}</code></li>")
     parts.append(f"<h3>Columns</h3><ul>{''.join(changes)}</ul>" if changes
                  else "<p>Both waves have the same columns with the same types.</p>")
-    ref = esc(doc.get("reference") or "the panel so far")
+    ref = esc(comp.reference or "the panel so far")
     parts.append(_figure(svgs, "wave-shift",
                          f"Two-sample Kolmogorov-Smirnov statistic of each column: the new wave "
                          f"against {ref}."))
     parts.append(_figure(svgs, "shifted-distributions",
                          f"Cumulative distributions of the most shifted numeric columns, the new wave "
                          f"against {ref}; the widest vertical gap between the two lines is the KS statistic."))
-    cols = doc.get("columns") or []
+    cols = comp.columns
     if cols:
-        rows = [[f"<code>{esc(c.get('column'), 80)}</code>", _num(c.get("ks_statistic")), _p(c.get("ks_p")),
-                 _num(c.get("psi")), _pct(c.get("missing_base")), _pct(c.get("missing_new"))]
+        rows = [[f"<code>{esc(c.column, 80)}</code>", _num(c.ks_statistic), _p(c.ks_p),
+                 _num(c.psi), _pct(c.missing_base), _pct(c.missing_new)]
                 for c in cols[: lim.columns]]
         parts.append(_table(["column", "KS statistic", "KS p", "population stability", "missing before",
                              "missing now"], rows, numeric=[1, 2, 3, 4, 5]))
@@ -741,8 +737,9 @@ def _new_wave(doc: Mapping[str, Any], svgs: Mapping[str, str], lim: Limits) -> s
     return "".join(parts)
 
 
-def _span(values: Any) -> str:
-    vals = list(values or [])
+def _span(values: Sequence[int | str]) -> str:
+    """Period labels as the page shows them: one label, or the first and last and how many."""
+    vals = clean(list(values))
     if not vals:
         return ""
     if len(vals) == 1:
@@ -824,7 +821,7 @@ border-radius:4px;overflow:hidden;margin-right:6px}
 """
 
 
-def _body(result: Any, inst: InstrumentsResult | None, comp: Mapping[str, Any] | None,
+def _body(result: Any, inst: InstrumentsResult | None, comp: CompareResult | None,
           svgs: Mapping[str, str], lim: Limits) -> list[str]:
     findings = _all_findings(result, inst, comp)
     parts = [_summary(result, findings, lim), _findings(findings, lim), _structure(result, svgs, lim),
@@ -841,7 +838,7 @@ def _source(result: Any) -> str:
     return str(getattr(data, "source", "") or "")
 
 
-def _page(result: Any, inst: InstrumentsResult | None, comp: Mapping[str, Any] | None,
+def _page(result: Any, inst: InstrumentsResult | None, comp: CompareResult | None,
           svgs: Mapping[str, str], lim: Limits, title: str | None) -> str:
     source = _source(result)
     heading = title or "Panel audit"
@@ -870,7 +867,7 @@ def _page(result: Any, inst: InstrumentsResult | None, comp: Mapping[str, Any] |
 def render_html(
     profile_result: Any,
     instruments: InstrumentsResult | None = None,
-    comparison: Any = None,
+    comparison: CompareResult | None = None,
     *,
     figures: bool | Mapping[str, Any] = True,
     settings: Settings | None = None,
@@ -881,13 +878,13 @@ def render_html(
 
     ``profile_result`` is a ProfileResult; ``instruments`` an InstrumentsResult (a
     document read back from JSON: ``InstrumentsResult.from_dict(doc)``) and
-    ``comparison`` a CompareResult or its contract JSON (a dict); their sections
-    appear only when given. ``figures`` is True (draw them), False
+    ``comparison`` a CompareResult (likewise: ``CompareResult.from_dict(doc)``); their
+    sections appear only when given. ``figures`` is True (draw them), False
     (none), or figures already drawn by ``build_figures``. The page is kept
     under the ``report.max_bytes`` limit by showing fewer table rows if needed.
     """
     lim = Limits.from_settings(settings or getattr(profile_result, "settings", None))
-    inst, comp = _typed_instruments(instruments), as_document(comparison)
+    inst, comp = _typed_instruments(instruments), _typed_comparison(comparison)
     if figures is True:
         drawn = build_figures(profile_result, inst, comp, quantiles=quantiles, limits=lim)
     elif figures is False:
@@ -914,12 +911,19 @@ def profile_fragment(result: Any, *, figures: bool = True) -> str:
     return _fragment(_body(result, None, None, svgs, lim))
 
 
+def _typed(result: Any, kind: str) -> Any:
+    """``result`` if it is a typed result (or None); a clear TypeError for its JSON document,
+    naming the ``from_dict`` of the result type ``kind`` that rebuilds one."""
+    if isinstance(result, Mapping):
+        article = "an" if kind[0] in "AEIOU" else "a"
+        raise TypeError(f"the renderer takes {article} {kind}, not its JSON document: rebuild one with "
+                        f"auditor.{kind}.from_dict(doc)")
+    return result
+
+
 def _typed_instruments(result: Any) -> InstrumentsResult | None:
     """``result`` if it is an instruments result (or None); a clear error for its JSON."""
-    if isinstance(result, Mapping):
-        raise TypeError("the renderer takes an InstrumentsResult, not its JSON document: rebuild one with "
-                        "auditor.InstrumentsResult.from_dict(doc)")
-    return result
+    return _typed(result, "InstrumentsResult")
 
 
 def instruments_fragment(result: InstrumentsResult, *, figures: bool = True) -> str:
@@ -935,19 +939,27 @@ def instruments_fragment(result: InstrumentsResult, *, figures: bool = True) -> 
     return _fragment([_findings(items, lim), _readiness(inst, svgs, lim)])
 
 
-def compare_fragment(result: Any, *, figures: bool = True) -> str:
-    """A compare result (object or its JSON) as an HTML fragment for a notebook."""
+def _typed_comparison(comparison: Any) -> CompareResult | None:
+    """``comparison`` if it is a compare result (or None); a clear error for its JSON."""
+    return _typed(comparison, "CompareResult")
+
+
+def compare_fragment(result: CompareResult, *, figures: bool = True) -> str:
+    """A compare result as an HTML fragment for a notebook (a saved compare document is
+    typed again by ``CompareResult.from_dict``)."""
     from auditor.render import figures as fg
 
-    doc = as_document(result) or {}
-    lim = Limits.from_settings(getattr(result, "settings", None))
+    comp = _typed_comparison(result)
+    if comp is None:
+        raise TypeError("compare_fragment needs a compare result, not None")
+    lim = Limits.from_settings(comp.settings)
     svgs = {}
-    if figures and doc.get("columns"):
-        svgs["wave-shift"] = fg.to_svg(fg.wave_shift(doc["columns"], max_columns=lim.figure_columns),
+    if figures and comp.columns:
+        svgs["wave-shift"] = fg.to_svg(fg.wave_shift(comp.columns, max_columns=lim.figure_columns),
                                        name="wave-shift")
-    items = [{**dict(f), "source": "new wave"} for f in doc.get("findings", []) or []]
+    items = _wave_items(comp)
     items.sort(key=lambda d: SEVERITY_RANK.get(str(d.get("severity")), 9))
-    return _fragment([_findings(items, lim), _new_wave(doc, svgs, lim)])
+    return _fragment([_findings(items, lim), _new_wave(comp, svgs, lim)])
 
 
 # --- writing ---------------------------------------------------------------------------

@@ -108,26 +108,26 @@ def _column_moves(result: CompareResult, width: int, colour: bool) -> list[str]:
         rows = []
         for c in result.columns:
             notes = []
-            if c.get("changed_units"):
-                notes.append(_plural(c["changed_units"], "fixed value") + " changed")
-            if c.get("implausible_jumps"):
-                notes.append(_plural(c["implausible_jumps"], "jump"))
-            if c.get("new_levels"):
-                notes.append(_plural(c["new_levels"], "new level"))
-            if c.get("vanished_levels"):
-                notes.append(_plural(c["vanished_levels"], "level") + " gone")
-            if c.get("periods_with_several_values"):
-                notes.append(_plural(c["periods_with_several_values"], "period") + " not shared by all units")
-            if c.get("expected_step") is not None:
-                notes.append(f"step {c['expected_step']:+g} a period expected")
+            if c.changed_units:
+                notes.append(_plural(c.changed_units, "fixed value") + " changed")
+            if c.implausible_jumps:
+                notes.append(_plural(c.implausible_jumps, "jump"))
+            if c.new_levels:
+                notes.append(_plural(c.new_levels, "new level"))
+            if c.vanished_levels:
+                notes.append(_plural(c.vanished_levels, "level") + " gone")
+            if c.periods_with_several_values:
+                notes.append(_plural(c.periods_with_several_values, "period") + " not shared by all units")
+            if c.expected_step is not None:
+                notes.append(f"step {c.expected_step:+g} a period expected")
             rows.append(
                 [
-                    c["column"],
-                    c["compared_as"],
-                    fmt_num(c["psi"]),
-                    fmt_num(c["ks_statistic"]),
-                    _p_value(c["ks_p"]),
-                    f"{pct(c['missing_base'])} → {pct(c['missing_new'])}",
+                    c.column,
+                    c.compared_as,
+                    fmt_num(c.psi),
+                    fmt_num(c.ks_statistic),
+                    _p_value(c.ks_p),
+                    f"{pct(c.missing_base)} → {pct(c.missing_new)}",
                     "; ".join(notes),
                 ]
             )
@@ -149,7 +149,7 @@ def render(result: CompareResult, *, width: int | None = None, colour: bool = Fa
     errors = [f for f in wave if f.severity == "error"]
     lines = [
         paint(
-            f"panel-audit compare · new wave {safe(result.sources['new'])} against base {safe(result.sources['base'])}",
+            f"panel-audit compare · new wave {safe(result.sources.new)} against base {safe(result.sources.base)}",
             "bold",
             colour,
         )
@@ -157,32 +157,32 @@ def render(result: CompareResult, *, width: int | None = None, colour: bool = Fa
     verdict = _verdict(wave, errors, colour)
     lines += wrap(f"  verdict  {verdict}", width, 11)
 
-    step = f", step {p['step']}" if p.get("step") is not None else ""
-    held = f"already held: {_runs(p['overlap'])}"
-    if p.get("colliding_keys"):
-        held += f" ({fmt_num(p['colliding_keys'])} colliding keys)"
+    step = f", step {p.step}" if p.step is not None else ""
+    held = f"already held: {_runs(p.overlap)}"
+    if p.colliding_keys:
+        held += f" ({fmt_num(p.colliding_keys)} colliding keys)"
     lines += wrap(
-        f"  periods  base {_runs(p['base'])} ({len(p['base'])}{step}) · new {_runs(p['new'])} · {held}",
+        f"  periods  base {_runs(p.base)} ({len(p.base)}{step}) · new {_runs(p.new)} · {held}",
         width,
         11,
     )
     lines += wrap(
-        f"  units    returning {fmt_num(u['returning'])} of {fmt_num(u['base'])}"
-        f" ({fmt_num(u['returning_after_absence'])} after an absence) · entering {fmt_num(u['entering'])}"
-        f" · not back {fmt_num(u['not_returning'])}"
-        f" ({fmt_num(u['not_returning_from_last_period'])} of them were in {safe(result.reference_period)})",
+        f"  units    returning {fmt_num(u.returning)} of {fmt_num(u.base)}"
+        f" ({fmt_num(u.returning_after_absence)} after an absence) · entering {fmt_num(u.entering)}"
+        f" · not back {fmt_num(u.not_returning)}"
+        f" ({fmt_num(u.not_returning_from_last_period)} of them were in {safe(result.reference_period)})",
         width,
         11,
     )
-    changed = [f"{safe(t['column'])} {safe(t['base'])}→{safe(t['new'])}" for t in s["type_changed"]]
+    changed = [f"{safe(t.column)} {safe(t.base)}→{safe(t.new)}" for t in s.type_changed]
     lines += wrap(
-        f"  schema   added {_names(s['added'])} · removed {_names(s['removed'])} · type changes {_names(changed)}",
+        f"  schema   added {_names(s.added)} · removed {_names(s.removed)} · type changes {_names(changed)}",
         width,
         11,
     )
     lines += wrap(
-        f"  rows     base {fmt_num(result.rows['base'])} · new {fmt_num(result.rows['new'])} · distributions "
-        f"against {safe(result.reference)} ({fmt_num(result.rows['base_reference'])} rows)",
+        f"  rows     base {fmt_num(result.rows.base)} · new {fmt_num(result.rows.new)} · distributions "
+        f"against {safe(result.reference)} ({fmt_num(result.rows.base_reference)} rows)",
         width,
         11,
     )
