@@ -387,6 +387,22 @@ def test_a_step_is_learnt_per_period_across_gaps():
     assert col.expected_step == 1 and col.implausible_jumps == 0
 
 
+def test_a_column_stepping_down_keeps_the_sign_of_its_step():
+    # seasons left on a lease count down by one a season for every unit (hand-built): the
+    # step is -1, its size 1, and a wave that counts on has no jump while a reset does
+    n = 200
+    base = pl.DataFrame({"id": np.repeat(np.arange(n), 4), "t": np.tile([1, 2, 3, 4], n)}).with_columns(
+        (pl.col("id") % 40 + 20 - pl.col("t")).alias("lease_left"))
+    new = pl.DataFrame({"id": np.arange(n), "t": 5}).with_columns((pl.col("id") % 40 + 15).alias("lease_left"))
+    col = next(c for c in compare(base, new, unit="id", time="t").columns if c.column == "lease_left")
+    assert col.expected_step == -1 and col.within.change_median == -1 and col.within.change_scale == 1
+    assert col.implausible_jumps == 0 and col.psi == 0  # compared less its step: identical
+    reset = new.with_columns(pl.when(pl.col("id") < 4).then(pl.lit(30)).otherwise(pl.col("lease_left"))
+                             .alias("lease_left"))
+    col = next(c for c in compare(base, reset, unit="id", time="t").columns if c.column == "lease_left")
+    assert col.implausible_jumps == 4
+
+
 # --- p-values and warnings --------------------------------------------------------------------
 
 
