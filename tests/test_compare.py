@@ -326,6 +326,19 @@ def test_quarterly_dates_continue_by_one_quarter():
     assert _one(skip, "unexpected-period").count == 1
 
 
+def test_a_quarterly_base_of_one_period_expects_the_next_quarter():
+    # one base quarter has no grid of its own: on a calendar scale the next period is one
+    # step on (compare_align.align), so 2024Q2 continues it and 2024Q3 skips 2024Q2
+    from datetime import date
+
+    base = pl.DataFrame({"id": [1, 2], "year": [date(2024, 1, 1)] * 2, "v": [1.0, 2]})
+    nxt = pl.DataFrame({"id": [1, 2], "year": [date(2024, 4, 1)] * 2, "v": [1.0, 2]})
+    res = compare(base, nxt, **KEYS)
+    assert res.periods.step == 1 and not _checks(res, "unexpected-period")
+    skip = compare(base, nxt.with_columns(pl.lit(date(2024, 7, 1)).alias("year")), **KEYS)
+    assert "skips 2024Q2" in _one(skip, "unexpected-period").message
+
+
 def test_units_returning_entering_and_not_returning():
     base = _small_base().filter(~((pl.col("id") == 2) & (pl.col("year") == 2021)))  # 2 absent in 2021
     new = pl.concat([

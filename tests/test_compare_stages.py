@@ -69,3 +69,32 @@ def test_the_walker_finds_what_it_looks_for():
     )
     assert offences(source) == ["Run is 307 lines", "Run.stage sets self.a", "Run.stage sets self.b",
                                 "Run.stage sets self.c"]
+
+
+# --- a stage on its own: the stages take values, so they can be tested without a run ------
+
+
+def test_fixed_or_changing_follows_the_share_of_units_that_change():
+    # a hand-built profile table: of 60 units seen twice, 3 change 'soil' (5%, the shipped
+    # profile.nearly_invariant_units_share: still fixed) and 4 change 'slope' (6.7%:
+    # checked for jumps instead); 'elev' is time-invariant but seen twice in 1 unit only
+    from types import SimpleNamespace
+
+    import polars as pl
+
+    from auditor.checks.config import default_settings
+    from auditor.commands.compare_columns import base_kinds, fixed_and_changing
+
+    table = pl.DataFrame({
+        "name": ["soil", "slope", "elev"],
+        "kind": ["nearly-time-invariant", "nearly-time-invariant", "time-invariant"],
+        "distinct": [4, 9, 30],
+        "units_changing": [3, 4, 0],
+        "units_observed_twice": [60, 60, 1],
+    })
+    kinds = base_kinds(SimpleNamespace(columns=table))
+    assert kinds.changing_share == {"soil": 3 / 60, "slope": 4 / 60, "elev": 0.0}
+    assert kinds.distinct == {"soil": 4, "slope": 9, "elev": 30}
+    sides = SimpleNamespace(compared=("soil", "slope", "elev"), numeric=("soil", "slope", "elev"))
+    inv, jump = fixed_and_changing(sides, kinds, default_settings())  # type: ignore[arg-type]
+    assert inv == ["soil"] and jump == ["slope"]  # elev: too few repeat observations to call it fixed
