@@ -239,6 +239,15 @@ def test_wave_shift_orders_columns_by_ks_statistic():
     assert ax.get_xlim()[0] == 0
 
 
+def test_wave_shift_marks_the_columns_whose_ks_p_is_below_5_percent():
+    # the cut of 0.05 is common practice for the two-sample KS test; a p of 0.2 is not marked
+    from matplotlib.colors import to_hex
+
+    ax = fg.wave_shift([shift("a", 0.10, 0.2), shift("b", 0.30, 0.01), shift("c", 0.05, 0.05)]).axes[0]
+    colour = {round(b.get_width(), 2): to_hex(b.get_facecolor()).upper() for b in bar_patches(ax)}
+    assert colour == {0.10: fg.SKY, 0.30: fg.VERMILLION, 0.05: fg.SKY}
+
+
 def test_shifted_distributions_draw_one_panel_per_column():
     q = {"yield_t": ([1.0, 2.0, 3.0], [2.0, 3.0, 4.0]), "rain": ([0.0, 5.0], [1.0, 6.0])}
     fig = fg.shifted_distributions(q, ks={"yield_t": 0.33})
