@@ -17,7 +17,7 @@ from dataclasses import dataclass, replace
 from datetime import UTC, datetime
 from typing import TYPE_CHECKING, Any
 
-from auditor.checks.findings import SEVERITY_RANK
+from auditor.checks.findings import SEVERITY_RANK, Finding
 from auditor.render.sanitise import visible
 from auditor.version import __version__
 from auditor.vocab import clean
@@ -244,9 +244,24 @@ def _readiness_figures(inst: InstrumentsResult, lim: Limits) -> dict[str, Any]:
     return out
 
 
-def _readiness_findings(inst: InstrumentsResult) -> list[dict[str, Any]]:
-    """The instruments findings as the document writes them, marked as from model readiness."""
-    return [{**clean(f.to_dict()), "source": "model readiness"} for f in inst.findings]
+@dataclass(frozen=True)
+class Listed:
+    """A finding as the page lists it: the Finding, the part of the audit it came from
+    (``profile``, ``model readiness``, ``new wave``) and its examples as that part's JSON
+    document writes them (model readiness and new wave clean non-finite numbers)."""
+
+    source: str
+    finding: Finding
+    examples: tuple[Any, ...]
+
+
+def _listed(findings: Iterable[Finding], source: str, *, cleaned: bool) -> list[Listed]:
+    return [Listed(source, f, tuple(clean(dict(e)) if cleaned else dict(e) for e in f.examples)) for f in findings]
+
+
+def _readiness_findings(inst: InstrumentsResult) -> list[Listed]:
+    """The instruments findings, marked as from model readiness."""
+    return _listed(inst.findings, "model readiness", cleaned=True)
 
 
 def _svgs(figures: Mapping[str, Any]) -> dict[str, str]:
@@ -258,24 +273,20 @@ def _svgs(figures: Mapping[str, Any]) -> dict[str, str]:
 # --- sections --------------------------------------------------------------------------
 
 
-def _wave_items(comparison: CompareResult) -> list[dict[str, Any]]:
-    """The comparison's findings (the wave's and the merged profile's) as the findings table
-    reads them: each Finding's JSON object, from ``new wave``."""
-    return [{**clean(f.to_dict()), "source": "new wave"} for f in comparison.findings]
+def _wave_items(comparison: CompareResult) -> list[Listed]:
+    """The comparison's findings (the wave's and the merged profile's), from ``new wave``."""
+    return _listed(comparison.findings, "new wave", cleaned=True)
 
 
-def _all_findings(result: Any, instruments: InstrumentsResult | None, comparison: CompareResult | None) -> list[dict[str, Any]]:
-    items: list[dict[str, Any]] = []
-    for f in getattr(result, "findings", ()) or ():
-        d = f.to_dict() if hasattr(f, "to_dict") else dict(f)
-        items.append({**d, "source": "profile"})
+def _all_findings(result: Any, instruments: InstrumentsResult | None, comparison: CompareResult | None) -> list[Listed]:
+    items = _listed(getattr(result, "findings", ()) or (), "profile", cleaned=False)
     if instruments is not None:
         items.extend(_readiness_findings(instruments))
     if comparison is not None:
         items.extend(_wave_items(comparison))
     order = {"profile": 0, "model readiness": 1, "new wave": 2}
-    items.sort(key=lambda d: (SEVERITY_RANK.get(str(d.get("severity")), 9), order[d["source"]],
-                              str(d.get("check")), str(d.get("column") or "")))
+    items.sort(key=lambda i: (SEVERITY_RANK.get(i.finding.severity, 9), order[i.source], i.finding.check,
+                              i.finding.column or ""))
     return items
 
 
@@ -290,7 +301,7 @@ def _periods_text(panel: Mapping[str, Any]) -> str:
     return f"{_plural(n, 'period')}, {span} ({how})"
 
 
-def _summary(result: Any, findings: list[dict[str, Any]], lim: Limits) -> str:
+def _summary(result: Any, findings: list[Listed], lim: Limits) -> str:
     p = result.panel
     opu = p.get("obs_per_unit") or {}
     unit = ", ".join(esc(u) for u in p.get("unit", []) or [])
@@ -319,7 +330,7 @@ def _summary(result: Any, findings: list[dict[str, Any]], lim: Limits) -> str:
     if extra:
         text = "; ".join(extra)
         parts.append(text[0].upper() + text[1:] + ".")
-    tally = {s: sum(1 for f in findings if f.get("severity") == s) for s in SEVERITY_RANK}
+    tally = {s: sum(1 for i in findings if i.finding.severity == s) for s in SEVERITY_RANK}
     if findings:
         parts.append(
             f"The audit raised {_plural(tally['error'], 'error')}, {_plural(tally['warning'], 'warning')} "
@@ -331,13 +342,13 @@ def _summary(result: Any, findings: list[dict[str, Any]], lim: Limits) -> str:
         f'<span class="pa-chip pa-{s}"><b>{tally[s]:,}</b> {s}{"s" if tally[s] != 1 else ""}</span>'
         for s in SEVERITY_RANK
     )
-    top = findings[:5]
+    top = [i.finding for i in findings[:5]]
     lead = ""
     if top:
         items = "".join(
-            f"<li>{_tag(str(f.get('severity')))} <b>{esc(f.get('check'))}</b>"
-            f"{' in <code>' + esc(f.get('column'), 80) + '</code>' if f.get('column') else ''}: "
-            f"{esc(f.get('message'), 400)}</li>"
+            f"<li>{_tag(f.severity)} <b>{esc(f.check)}</b>"
+            f"{' in <code>' + esc(f.column, 80) + '</code>' if f.column else ''}: "
+            f"{esc(f.message, 400)}</li>"
             for f in top
         )
         lead = f'<h3>Most serious first</h3><ol class="pa-top">{items}</ol>'
@@ -373,21 +384,22 @@ def _check_cell(code: str) -> str:
     return f'<b><abbr title="{esc(tip, 600)}">{esc(code)}</abbr></b>'
 
 
-def _findings(findings: list[dict[str, Any]], lim: Limits) -> str:
+def _findings(findings: list[Listed], lim: Limits) -> str:
     if not findings:
         return '<section id="findings"><h2>Findings</h2><p>Nothing to report: every check passed.</p></section>'
-    sources = {f["source"] for f in findings}
+    sources = {i.source for i in findings}
     head = ["severity", "check", "column", "count", "what it means"]
     if len(sources) > 1:
         head.insert(0, "from")
     rows = []
-    for f in findings[: lim.findings]:
-        r = [_tag(str(f.get("severity"))), _check_cell(str(f.get("check"))),
-             f"<code>{esc(f.get('column'), 80)}</code>" if f.get("column") else "",
-             _int(f.get("count")) if f.get("count") is not None else "",
-             esc(f.get("message"), 600) + _examples(f.get("examples"))]
+    for i in findings[: lim.findings]:
+        f = i.finding
+        r = [_tag(f.severity), _check_cell(f.check),
+             f"<code>{esc(f.column, 80)}</code>" if f.column else "",
+             _int(f.count) if f.count is not None else "",
+             esc(f.message, 600) + _examples(i.examples)]
         if len(sources) > 1:
-            r.insert(0, esc(f["source"]))
+            r.insert(0, esc(i.source))
         rows.append(r)
     count_col = head.index("count")
     more = ""
@@ -935,7 +947,7 @@ def instruments_fragment(result: InstrumentsResult, *, figures: bool = True) -> 
     lim = Limits.from_settings(getattr(inst, "settings", None))
     svgs = _svgs(_readiness_figures(inst, lim)) if figures else {}
     items = _readiness_findings(inst)
-    items.sort(key=lambda d: SEVERITY_RANK.get(str(d.get("severity")), 9))
+    items.sort(key=lambda i: SEVERITY_RANK.get(i.finding.severity, 9))
     return _fragment([_findings(items, lim), _readiness(inst, svgs, lim)])
 
 
@@ -958,7 +970,7 @@ def compare_fragment(result: CompareResult, *, figures: bool = True) -> str:
         svgs["wave-shift"] = fg.to_svg(fg.wave_shift(comp.columns, max_columns=lim.figure_columns),
                                        name="wave-shift")
     items = _wave_items(comp)
-    items.sort(key=lambda d: SEVERITY_RANK.get(str(d.get("severity")), 9))
+    items.sort(key=lambda i: SEVERITY_RANK.get(i.finding.severity, 9))
     return _fragment([_findings(items, lim), _new_wave(comp, svgs, lim)])
 
 
