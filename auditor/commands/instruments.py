@@ -480,10 +480,7 @@ def instruments(
     preload()  # scipy.special and scipy.sparse, while the panel is read and profiled
     if settings is None:
         settings = load_settings(rules)
-    regs = _names(regressors)
-    corr = None if correlated is None else _names(correlated)
-    invariant = _names(list(treat_as_invariant))
-    outcome = str(outcome).strip()
+    spec = ModelSpec.of(outcome, regressors, correlated, period_effects, treat_as_invariant)
     from auditor import progress
     from auditor.stats.engines import resolve_engine
 
@@ -492,41 +489,58 @@ def instruments(
         from auditor.stats import cluster
 
         shell, _ = cluster.load(data, unit, time, settings)
-        _validate(shell, outcome, regs, corr, invariant)
+        _validate(shell, spec.outcome, list(spec.regressors), spec.correlated_list, list(spec.treat_as_invariant))
         with progress.step("the design's moments on the cluster"):
             with cluster.session(data, unit, time, settings, scheduler) as run:
-                sample = run.sample(outcome, regs, bool(period_effects), invariant)
-        return _run(run.panel, outcome, regs, corr, bool(period_effects), invariant, settings, sample=sample)
+                sample = run.sample(spec.outcome, list(spec.regressors), spec.period_effects,
+                                    list(spec.treat_as_invariant))
+        return _run(run.panel, spec, settings, sample=sample)
     with progress.step("reading the panel"):
         panel = load_panel(data, unit, time, streaming={"memory": False, "streaming": True}.get(name),
                            settings=settings)
-    return instruments_panel(panel, outcome=outcome, regressors=regs, correlated=corr,
-                             period_effects=period_effects, treat_as_invariant=invariant, settings=settings)
+    return instruments_panel(panel, spec, settings)
 
 
-def instruments_panel(
-    panel: Panel,
-    *,
-    outcome: str,
-    regressors: Sequence[str] | str,
-    correlated: Sequence[str] | str | None = None,
-    period_effects: bool = False,
-    treat_as_invariant: Sequence[str] = (),
-    settings: Settings,
-) -> InstrumentsResult:
+@dataclass(frozen=True)
+class ModelSpec:
+    """What model readiness is asked about: the ``outcome``, the ``regressors``, those
+    suspected of correlation with the unit effect (``correlated``; None: suggest them from
+    the Mundlak evidence), whether period effects are added, and the nearly-time-invariant
+    columns to treat as invariant. :meth:`of` takes the API's and the command line's forms
+    (a comma-separated text or a sequence of names)."""
+
+    outcome: str
+    regressors: tuple[str, ...]
+    correlated: tuple[str, ...] | None = None
+    period_effects: bool = False
+    treat_as_invariant: tuple[str, ...] = ()
+
+    @classmethod
+    def of(cls, outcome: str, regressors: Sequence[str] | str, correlated: Sequence[str] | str | None = None,
+           period_effects: bool = False, treat_as_invariant: Sequence[str] = ()) -> ModelSpec:
+        """The spec from names given as text (``"a,b"``) or sequences, trimmed."""
+        return cls(str(outcome).strip(), tuple(_names(regressors)),
+                   None if correlated is None else tuple(_names(correlated)), bool(period_effects),
+                   tuple(_names(list(treat_as_invariant))))
+
+    @property
+    def correlated_list(self) -> list[str] | None:
+        """``correlated`` as a list (None kept: suggest X2)."""
+        return None if self.correlated is None else list(self.correlated)
+
+
+def instruments_panel(panel: Panel, spec: ModelSpec, settings: Settings) -> InstrumentsResult:
     """Model readiness on an already loaded panel (as :func:`instruments`, without reading
     the input again: the report profiles and checks one Panel)."""
-    regs = _names(regressors)
-    corr = None if correlated is None else _names(correlated)
-    invariant = _names(list(treat_as_invariant))
-    outcome = str(outcome).strip()
-    _validate(panel, outcome, regs, corr, invariant)
-    return _run(panel, outcome, regs, corr, bool(period_effects), invariant, settings)
+    _validate(panel, spec.outcome, list(spec.regressors), spec.correlated_list, list(spec.treat_as_invariant))
+    return _run(panel, spec, settings)
 
 
-def _run(panel: Panel, outcome: str, regs: list[str], corr: list[str] | None, period_effects: bool,
-         invariant: list[str], settings: Settings, sample: Sample | None = None) -> InstrumentsResult:
+def _run(panel: Panel, spec: ModelSpec, settings: Settings, sample: Sample | None = None) -> InstrumentsResult:
     from auditor import progress
+
+    outcome, regs, corr = spec.outcome, list(spec.regressors), spec.correlated_list
+    period_effects, invariant = spec.period_effects, list(spec.treat_as_invariant)
 
     t = settings.instruments
     with progress.step(f"kinds and complete rows of {len(regs)} regressors"):
