@@ -359,10 +359,11 @@ def _cmd_rules(args: argparse.Namespace) -> int:
 
 def _cmd_report(args: argparse.Namespace) -> int:
     from auditor.checks.findings import exit_code
-    from auditor.commands.report import build_report
+    from auditor.commands.report import write_report
 
+    findings: list[Any] = []
     with _outputs(args, list(args.data), args.against) as outs:
-        run = build_report(
+        path = write_report(
             _data(args),
             unit=args.unit,
             time=args.time,
@@ -377,16 +378,17 @@ def _cmd_report(args: argparse.Namespace) -> int:
             period_effects=args.period_effects,
             treat_as_invariant=list(args.treat_as_invariant),
             outputs=outs,
+            collect_findings=findings,
             **_engine(args),
         )
         if args.json:
             from auditor.render.json import dumps
             from auditor.version import tool_info
 
-            _say(dumps({"tool": tool_info(), "report": str(run.path)}))
+            _say(dumps({"tool": tool_info(), "report": str(path)}))
         else:
-            _say(f"{run.path}\n")
-    return exit_code(run.findings, args.fail_on)
+            _say(f"{path}\n")
+    return exit_code(findings, args.fail_on)
 
 
 def _cmd_demo(args: argparse.Namespace) -> int:

@@ -252,17 +252,21 @@ def test_compare_on_the_cluster_equals_the_memory_engine(scheduler, tmp_path, cl
 
 
 def test_report_on_the_cluster_shows_the_memory_engines_figures(scheduler, waves, tmp_path):
-    from auditor.commands.report import build_report
+    from auditor.commands.report import write_report
 
     kw = {"unit": "hive", "time": "season", "outcome": "honey_kg", "regressors": ["frames", "colonies", "apiary"],
           "correlated": []}
-    on_cluster = build_report(waves, out=tmp_path / "dask.html", engine="dask", scheduler=scheduler, **kw)
-    memory = build_report(waves, out=tmp_path / "memory.html", engine="memory", **kw)
-    def shown(run):
-        return [f.to_dict() for f in run.findings if f.check not in PERIOD_BY_PERIOD]
+    on_cluster: list = []
+    memory: list = []
+    page = write_report(waves, out=tmp_path / "dask.html", engine="dask", scheduler=scheduler,
+                        collect_findings=on_cluster, **kw)
+    write_report(waves, out=tmp_path / "memory.html", engine="memory", collect_findings=memory, **kw)
+
+    def shown(found):
+        return [f.to_dict() for f in found if f.check not in PERIOD_BY_PERIOD]
 
     assert approx_equal(shown(on_cluster), shown(memory), 1e-9, 1e-12)
-    assert "not computed on the dask engine" in on_cluster.path.read_text()
+    assert "not computed on the dask engine" in page.read_text()
 
 
 def test_an_off_by_one_in_the_kernel_fails_every_driver(scheduler, waves, tmp_path, monkeypatch):

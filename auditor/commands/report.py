@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import contextlib
 from collections.abc import Sequence
-from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
@@ -18,6 +17,7 @@ from auditor.render.html import FIGURE_FILES, Limits, build_figures, render_html
 
 if TYPE_CHECKING:  # pragma: no cover
     from auditor.checks.config import Settings
+    from auditor.checks.findings import Finding
     from auditor.commands.compare_values import ColumnShift
     from auditor.io.outputs import OutputSet
 
@@ -40,47 +40,9 @@ def write_report(
     outputs: OutputSet | None = None,
     engine: str = "auto",
     scheduler: str | None = None,
+    collect_findings: list[Finding] | None = None,
 ) -> Path:
-    """Audit ``data`` and write the HTML report to ``out``; return the path written.
-
-    See :func:`build_report`, which also returns the findings behind the page.
-    """
-    return build_report(
-        data, unit=unit, time=time, out=out, outcome=outcome, regressors=regressors, correlated=correlated,
-        against=against, png_dir=png_dir, settings=settings, force=force, period_effects=period_effects,
-        treat_as_invariant=treat_as_invariant, outputs=outputs, engine=engine, scheduler=scheduler,
-    ).path
-
-
-@dataclass(frozen=True)
-class ReportRun:
-    """A written report: the page's ``path`` and every Finding it shows (profile, model
-    readiness and new wave), for the exit code of ``--fail-on``."""
-
-    path: Path
-    findings: tuple[Any, ...]
-
-
-def build_report(
-    data: Any,
-    *,
-    unit: str | Sequence[str],
-    time: str,
-    out: str | Path,
-    outcome: str | None = None,
-    regressors: Sequence[str] | None = None,
-    correlated: Sequence[str] | None = None,
-    against: Any = None,
-    png_dir: str | Path | None = None,
-    settings: Settings | str | Path | None = None,
-    force: bool = False,
-    period_effects: bool = False,
-    treat_as_invariant: Sequence[str] = (),
-    outputs: OutputSet | None = None,
-    engine: str = "auto",
-    scheduler: str | None = None,
-) -> ReportRun:
-    """Audit ``data`` and write the HTML report to ``out``.
+    """Audit ``data``, write the HTML report to ``out`` and return the path written.
 
     Runs the profile, and the instruments check when ``outcome`` and
     ``regressors`` are given (with ``period_effects`` and ``treat_as_invariant`` as
@@ -95,7 +57,8 @@ def build_report(
     ``outputs``: the caller's OutputSet, which then also publishes and keeps them.
     ``engine`` and ``scheduler`` as in :func:`auditor.commands.profile.profile` (with ``dask`` and
     ``against``, the base's profile runs on the cluster and the appended panel's sections
-    on this machine). Returns the ReportRun (path and findings).
+    on this machine). ``collect_findings``: a list that receives every Finding the page
+    shows (profile, model readiness and new wave), e.g. for an exit code.
     """
     from auditor.checks.config import Settings as _Settings
     from auditor.checks.config import load_settings
@@ -131,9 +94,10 @@ def build_report(
             for name, fig in drawn.items():
                 outputs.stage(png_path / FIGURE_FILES[name], to_png(fig))
         outputs.publish()
-    findings = (*result.findings, *(inst.findings if inst is not None else ()),
-                *(comp.wave_findings if comp is not None else ()))
-    return ReportRun(path=out_path, findings=tuple(findings))
+    if collect_findings is not None:
+        collect_findings.extend((*result.findings, *(inst.findings if inst is not None else ()),
+                                 *(comp.wave_findings if comp is not None else ())))
+    return out_path
 
 
 def _report_parts(data: Any, unit: Any, time: str, outcome: str | None, regressors: Sequence[str] | None,
@@ -143,16 +107,15 @@ def _report_parts(data: Any, unit: Any, time: str, outcome: str | None, regresso
     """The profile (of base + new with ``against``), model readiness and the comparison behind
     a report. The input is read once: the profile and the model readiness share one Panel
     (the appended one with ``against``); only on a dask cluster does each run its own passes."""
+    from auditor.commands.instruments import ModelSpec, instruments, instruments_panel
     from auditor.commands.profile import profile, profile_panel
     from auditor.stats.engines import resolve_engine
 
     comp = None
     quantiles = None
     lim = Limits.from_settings(settings)
-    model = {"outcome": outcome, "regressors": list(regressors or ()), "settings": settings,
-             "correlated": None if correlated is None else list(correlated),
-             "period_effects": period_effects, "treat_as_invariant": list(treat_as_invariant)}
     wanted = outcome is not None and bool(regressors)
+    spec = ModelSpec.of(outcome or "", regressors or (), correlated, period_effects, treat_as_invariant)
     inst = None
     if against is not None:
         from auditor.commands.compare import compare
@@ -171,9 +134,10 @@ def _report_parts(data: Any, unit: Any, time: str, outcome: str | None, regresso
     elif resolve_engine(engine, None, scheduler) == "dask":
         result = profile(data, unit=unit, time=time, settings=settings, engine=engine, scheduler=scheduler)
         if wanted:
-            from auditor.commands.instruments import instruments
-
-            inst = instruments(data, unit=unit, time=time, engine=engine, scheduler=scheduler, **model)
+            inst = instruments(data, unit=unit, time=time, outcome=spec.outcome, regressors=spec.regressors,
+                               correlated=spec.correlated, period_effects=spec.period_effects,
+                               treat_as_invariant=spec.treat_as_invariant, settings=settings, engine=engine,
+                               scheduler=scheduler)
         return result, inst, comp, quantiles, lim
     else:
         from auditor.io.load import load_panel
@@ -183,9 +147,7 @@ def _report_parts(data: Any, unit: Any, time: str, outcome: str | None, regresso
                            settings=settings)
         result = profile_panel(panel, settings)
     if wanted:
-        from auditor.commands.instruments import instruments_panel
-
-        inst = instruments_panel(panel, **model)
+        inst = instruments_panel(panel, spec, settings)
     return result, inst, comp, quantiles, lim
 
 
