@@ -14,15 +14,23 @@ value that could not be computed is None.
 from __future__ import annotations
 
 from collections.abc import Mapping
-from dataclasses import dataclass
+from dataclasses import asdict, dataclass
 from typing import Any
 
 #: a period label on the comparison's scale: a year or integer period, or text ("2024Q3")
 PeriodLabel = int | str
 
 
+class _Flat:
+    """A part whose JSON object is its fields, in order (no nested part, no optional key)."""
+
+    def to_dict(self) -> dict[str, Any]:
+        """This part's object of the contract's ``compare`` document: every field, in order."""
+        return asdict(self)  # type: ignore[call-overload]
+
+
 @dataclass(frozen=True)
-class TypeChange:
+class TypeChange(_Flat):
     """A column whose type family differs between the base and the new wave."""
 
     column: str
@@ -30,9 +38,6 @@ class TypeChange:
     new: str
     key: bool  # a unit or time key column (its change is an error)
 
-    def to_dict(self) -> dict[str, Any]:
-        """The contract's ``schema.type_changed`` entry."""
-        return {"column": self.column, "base": self.base, "new": self.new, "key": self.key}
 
 
 @dataclass(frozen=True)
@@ -50,7 +55,7 @@ class SchemaChanges:
 
 
 @dataclass(frozen=True)
-class UnitFlow:
+class UnitFlow(_Flat):
     """Units of the base and the new wave, and who came back (counts of units)."""
 
     base: int
@@ -62,18 +67,6 @@ class UnitFlow:
     last_period: int  # units in the base's last period
     not_returning_from_last_period: int
 
-    def to_dict(self) -> dict[str, Any]:
-        """The contract's ``units`` object."""
-        return {
-            "base": self.base,
-            "new": self.new,
-            "returning": self.returning,
-            "entering": self.entering,
-            "not_returning": self.not_returning,
-            "returning_after_absence": self.returning_after_absence,
-            "last_period": self.last_period,
-            "not_returning_from_last_period": self.not_returning_from_last_period,
-        }
 
 
 @dataclass(frozen=True)
@@ -94,7 +87,7 @@ class PeriodPlacement:
 
 
 @dataclass(frozen=True)
-class RowCounts:
+class RowCounts(_Flat):
     """Rows read on each side, those of the base's last period, and keyless new rows."""
 
     base: int
@@ -102,22 +95,15 @@ class RowCounts:
     base_reference: int  # rows of the base period the distributions are compared with
     new_missing_keys: int
 
-    def to_dict(self) -> dict[str, int]:
-        """The document's ``rows`` object."""
-        return {"base": self.base, "new": self.new, "base_reference": self.base_reference,
-                "new_missing_keys": self.new_missing_keys}
 
 
 @dataclass(frozen=True)
-class SourceNames:
+class SourceNames(_Flat):
     """How the two inputs are named (a path, or which kind of frame)."""
 
     base: str
     new: str
 
-    def to_dict(self) -> dict[str, str]:
-        """The document's ``sources`` object."""
-        return {"base": self.base, "new": self.new}
 
 
 # --- what each column's within-unit check found -----------------------------------------
