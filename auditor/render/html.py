@@ -52,6 +52,52 @@ FIGURE_FILES: dict[str, str] = {
 }
 
 
+#: the caption under each figure of the page (``{...}``: values filled in by ``_figure``)
+FIGURE_CAPTIONS: dict[str, str] = {
+    "participation": (
+        "Each band is one participation pattern, as tall as its share of units; filled cells "
+        "are the periods its units are observed in. The rarest patterns share the last band, "
+        "shaded by the share of its units present."
+    ),
+    "periods-per-unit": (
+        "Units by the number of periods they are observed in. Units seen once carry no within "
+        "variation."
+    ),
+    "entry-exit": (
+        "Units present in each period (top); units seen for the first time, back after a gap, "
+        "or seen for the last time (bottom). The first period's units are the starting "
+        "cohort, and who leaves after the last period is not yet known."
+    ),
+    "within-share": (
+        "Within share = within sum of squares / total sum of squares; colour is the column's "
+        "kind."
+    ),
+    "missing-map": (
+        "Share of rows missing each column, period by period; \u00d7 marks a column missing "
+        "entirely in a period (often a question not asked in that wave)."
+    ),
+    "first-stage": (
+        "Bars: the first-stage F of each correlated fixed regressor on its excluded "
+        "instruments. Black tick: its Stock-Yogo (2005) critical value; dashed: F = "
+        "{rule_of_thumb:g} (Staiger-Stock 1997); dotted: F = {t_test:g} (Lee, McCrary, "
+        "Moreira and Porter 2022)."
+    ),
+    "anderson-rubin": (
+        "Blue: the values of the coefficient the Anderson-Rubin test does not reject (robust "
+        "to weak instruments; an arrow marks an unbounded end). Orange: the Hausman-Taylor "
+        "estimate \u00b1 1.96 standard errors, which is reliable only with strong "
+        "instruments."
+    ),
+    "wave-shift": (
+        "Two-sample Kolmogorov-Smirnov statistic of each column: the new wave against {ref}."
+    ),
+    "shifted-distributions": (
+        "Cumulative distributions of the most shifted numeric columns, the new wave against "
+        "{ref}; the widest vertical gap between the two lines is the KS statistic."
+    ),
+}
+
+
 # --- small helpers -------------------------------------------------------------------
 
 
@@ -140,7 +186,10 @@ def _facts(items: Sequence[tuple[str, str]]) -> str:
     return f'<dl class="pa-facts">{cells}</dl>'
 
 
-def _figure(svgs: Mapping[str, str], name: str, caption: str) -> str:
+def _figure(svgs: Mapping[str, str], name: str, **values: Any) -> str:
+    """The figure ``name`` with its caption (``FIGURE_CAPTIONS``, ``values`` filled in), or
+    nothing when it was not drawn."""
+    caption = FIGURE_CAPTIONS[name].format(**values)
     svg = svgs.get(name)
     if not svg:
         return ""
@@ -429,10 +478,7 @@ def _structure(result: Any, svgs: Mapping[str, str], lim: Limits) -> str:
         ("Ahrens-Pincus r", _num(p.get("unbalancedness"))),
     ])
     parts = [f'<section id="structure"><h2>Structure</h2>{facts}']
-    parts.append(_figure(svgs, "participation",
-                         "Each band is one participation pattern, as tall as its share of units; "
-                         "filled cells are the periods its units are observed in. The rarest patterns "
-                         "share the last band, shaded by the share of its units present."))
+    parts.append(_figure(svgs, "participation"))
     patterns = p.get("patterns") or []
     if patterns:
         total = max(int(p.get("units") or 0), 1)
@@ -441,13 +487,8 @@ def _structure(result: Any, svgs: Mapping[str, str], lim: Limits) -> str:
         parts.append("<h3>Most common participation patterns</h3>")
         parts.append(_table(["periods observed", "units", "share of units"], rows, cls="pa-narrow",
                             numeric=[1, 2]))
-    parts.append(_figure(svgs, "periods-per-unit",
-                         "Units by the number of periods they are observed in. Units seen once "
-                         "carry no within variation."))
-    parts.append(_figure(svgs, "entry-exit",
-                         "Units present in each period (top); units seen for the first time, back after "
-                         "a gap, or seen for the last time (bottom). The first period's units are the starting cohort, and who "
-                         "leaves after the last period is not yet known."))
+    parts.append(_figure(svgs, "periods-per-unit"))
+    parts.append(_figure(svgs, "entry-exit"))
     attrition = p.get("attrition") or []
     if attrition:
         rows = [[esc(a.get("period")), _int(a.get("present")), _int(a.get("entering")),
@@ -476,9 +517,7 @@ def _variation(result: Any, svgs: Mapping[str, str], lim: Limits) -> str:
     parts = ['<section id="variation"><h2>Variation</h2>',
              "<p>How much each column moves within units over time, against how much it differs "
              "between units. A fixed-effects fit learns only from the within part.</p>"]
-    parts.append(_figure(svgs, "within-share",
-                         "Within share = within sum of squares / total sum of squares; colour is the "
-                         "column's kind."))
+    parts.append(_figure(svgs, "within-share"))
     if cols is None or cols.height == 0:
         parts.append("<p>No column besides the keys.</p></section>")
         return "".join(parts)
@@ -520,9 +559,7 @@ def _missing(result: Any, svgs: Mapping[str, str], lim: Limits) -> str:
     if gaps.height == 0:
         parts.append("<p>No value is missing in any column.</p></section>")
         return "".join(parts)
-    parts.append(_figure(svgs, "missing-map",
-                         "Share of rows missing each column, period by period; \u00d7 marks a column "
-                         "missing entirely in a period (often a question not asked in that wave)."))
+    parts.append(_figure(svgs, "missing-map"))
     whole: dict[str, list[str]] = {}
     details = getattr(result, "details", None)
     mbp = getattr(details, "missing_by_period", None)
@@ -565,11 +602,7 @@ def _readiness(inst: InstrumentsResult, svgs: Mapping[str, str], lim: Limits) ->
         met = "met" if oc.met else "<b>not met</b>"
         parts.append(f"<p>Order condition: k1 = {_int(oc.k1)} time-varying exogenous regressors "
                      f"against g2 = {_int(oc.g2)} correlated fixed ones, {met}.</p>")
-    parts.append(_figure(svgs, "first-stage",
-                         f"Bars: the first-stage F of each correlated fixed regressor on its excluded "
-                         f"instruments. Black tick: its Stock-Yogo (2005) critical value; dashed: "
-                         f"F = {lim.f_rule_of_thumb:g} (Staiger-Stock 1997); dotted: "
-                         f"F = {lim.f_t_test:g} (Lee, McCrary, Moreira and Porter 2022)."))
+    parts.append(_figure(svgs, "first-stage", rule_of_thumb=lim.f_rule_of_thumb, t_test=lim.f_t_test))
     if inst.strength:
         rows = [[f"<code>{esc(s.endogenous, 60)}</code>", esc(s.role), _names(s.instruments),
                  _num(s.partial_f), _num(s.robust_f), _num(s.partial_r2),
@@ -578,10 +611,7 @@ def _readiness(inst: InstrumentsResult, svgs: Mapping[str, str], lim: Limits) ->
         parts.append("<h3>First stages</h3>")
         parts.append(_table(["regressor", "role", "instruments", "partial F", "robust F", "partial R\u00b2",
                              "df", "critical value", "verdict", "Anderson-Rubin set"], rows, numeric=[3, 4, 5, 7]))
-        parts.append(_figure(svgs, "anderson-rubin",
-                             "Blue: the values of the coefficient the Anderson-Rubin test does not reject (robust "
-                             "to weak instruments; an arrow marks an unbounded end). Orange: the Hausman-Taylor "
-                             "estimate \u00b1 1.96 standard errors, which is reliable only with strong instruments."))
+        parts.append(_figure(svgs, "anderson-rubin"))
     parts.append(_candidates(inst, lim))
     parts.append("<h3>Tests</h3>")
     parts.append(_table(["test", "statistic", "df", "p"], _test_rows(inst.tests), cls="pa-narrow",
@@ -732,12 +762,8 @@ def _new_wave(comp: CompareResult, svgs: Mapping[str, str], lim: Limits) -> str:
     parts.append(f"<h3>Columns</h3><ul>{''.join(changes)}</ul>" if changes
                  else "<p>Both waves have the same columns with the same types.</p>")
     ref = esc(comp.reference or "the panel so far")
-    parts.append(_figure(svgs, "wave-shift",
-                         f"Two-sample Kolmogorov-Smirnov statistic of each column: the new wave "
-                         f"against {ref}."))
-    parts.append(_figure(svgs, "shifted-distributions",
-                         f"Cumulative distributions of the most shifted numeric columns, the new wave "
-                         f"against {ref}; the widest vertical gap between the two lines is the KS statistic."))
+    parts.append(_figure(svgs, "wave-shift", ref=ref))
+    parts.append(_figure(svgs, "shifted-distributions", ref=ref))
     cols = comp.columns
     if cols:
         rows = [[f"<code>{esc(c.column, 80)}</code>", _num(c.ks_statistic), _p(c.ks_p),
