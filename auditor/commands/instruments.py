@@ -489,7 +489,7 @@ def instruments(
         from auditor.stats import cluster
 
         shell, _ = cluster.load(data, unit, time, settings)
-        _validate(shell, spec.outcome, list(spec.regressors), spec.correlated_list, list(spec.treat_as_invariant))
+        spec.validate(shell)
         with progress.step("the design's moments on the cluster"):
             with cluster.session(data, unit, time, settings, scheduler) as run:
                 sample = run.sample(spec.outcome, list(spec.regressors), spec.period_effects,
@@ -528,11 +528,16 @@ class ModelSpec:
         """``correlated`` as a list (None kept: suggest X2)."""
         return None if self.correlated is None else list(self.correlated)
 
+    def validate(self, panel: Panel) -> None:
+        """Raise AuditError when ``panel`` cannot answer this spec (an unknown or non-numeric
+        outcome, a key as a regressor, a correlated or invariant column not among the regressors)."""
+        _validate(panel, self.outcome, list(self.regressors), self.correlated_list, list(self.treat_as_invariant))
+
 
 def instruments_panel(panel: Panel, spec: ModelSpec, settings: Settings) -> InstrumentsResult:
     """Model readiness on an already loaded panel (as :func:`instruments`, without reading
     the input again: the report profiles and checks one Panel)."""
-    _validate(panel, spec.outcome, list(spec.regressors), spec.correlated_list, list(spec.treat_as_invariant))
+    spec.validate(panel)
     return _run(panel, spec, settings)
 
 

@@ -131,7 +131,7 @@ def _report_parts(data: Any, unit: Any, time: str, outcome: str | None, regresso
         last = base.frame.filter(base.frame[PERIOD_ID] == base.n_periods - 1)
         quantiles = shift_quantiles(last, new.frame, comp.columns, columns=lim.shift_columns, points=lim.quantiles)
         panel = comp.appended
-    elif resolve_engine(engine, None, scheduler) == "dask":
+    elif (name := resolve_engine(engine, None, scheduler)) == "dask":
         result = profile(data, unit=unit, time=time, settings=settings, engine=engine, scheduler=scheduler)
         if wanted:
             inst = instruments(data, unit=unit, time=time, outcome=spec.outcome, regressors=spec.regressors,
@@ -142,7 +142,6 @@ def _report_parts(data: Any, unit: Any, time: str, outcome: str | None, regresso
     else:
         from auditor.io.load import load_panel
 
-        name = resolve_engine(engine, None, scheduler)
         panel = load_panel(data, unit, time, streaming={"memory": False, "streaming": True}.get(name),
                            settings=settings)
         result = profile_panel(panel, settings)
